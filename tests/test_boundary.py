@@ -1,0 +1,28 @@
+"""The engine never learns that Blender exists (DEVELOPERS.md, the boundary rule)."""
+
+import re
+from pathlib import Path
+
+ENGINE = Path(__file__).resolve().parents[1] / "engine"
+FORBIDDEN = re.compile(r"\b(bpy|bmesh|mathutils)\b")
+
+
+def test_engine_never_mentions_blender_modules():
+    files = sorted(ENGINE.rglob("*.py"))
+    assert files, "engine/ has no Python files"
+    offenders = [f"{p.relative_to(ENGINE.parent)}:{i}" for p in files
+                 for i, line in enumerate(p.read_text().splitlines(), 1) if FORBIDDEN.search(line)]
+    assert offenders == []
+
+
+def test_engine_imports_only_stdlib_numpy_scipy():
+    import sys
+    allowed_third_party = {"numpy", "scipy"}
+    stdlib = set(sys.stdlib_module_names)
+    pattern = re.compile(r"^\s*(?:import|from)\s+([A-Za-z_][\w]*)", re.M)
+    bad = []
+    for p in ENGINE.rglob("*.py"):
+        for name in pattern.findall(p.read_text()):
+            if name not in stdlib and name not in allowed_third_party and name != "__future__":
+                bad.append((p.name, name))
+    assert bad == []
