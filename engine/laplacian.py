@@ -14,7 +14,7 @@ import scipy.sparse as sp
 
 from .mesh import validate_mesh
 
-__all__ = ["cotangent_laplacian", "mass_matrix", "face_areas", "corner_cotangents"]
+__all__ = ["cotangent_laplacian", "intrinsic_laplacian", "mass_matrix", "face_areas", "corner_cotangents"]
 
 
 def face_areas(vertices, faces) -> np.ndarray:
@@ -143,3 +143,48 @@ def _mixed_voronoi(v: np.ndarray, f: np.ndarray, area: np.ndarray) -> np.ndarray
     any_obtuse = obtuse.any(axis=1)
     out = np.where(any_obtuse[:, None], np.where(obtuse, area[:, None] / 2.0, area[:, None] / 4.0), vor)
     return out
+
+
+def intrinsic_laplacian(lengths, faces, n_vertices: int) -> tuple[sp.csr_matrix, np.ndarray]:
+    """Cotangent stiffness and barycentric mass from edge lengths alone.
+
+    The cotangent Laplacian depends only on the metric, so a mesh given by its
+    edge lengths (an intrinsic triangulation, or a flat torus that has no
+    embedding in 3D) gets the same operators as an embedded one.
+
+    Parameters
+    ----------
+    lengths : (m, 3) float array
+        ``lengths[t, c]`` is the length of the edge of triangle ``t`` opposite
+        its corner ``c``, i.e. of the edge ``(faces[t, c+1], faces[t, c+2])``.
+    faces : (m, 3) int array
+    n_vertices : int
+
+    Returns
+    -------
+    stiffness : (n, n) csr_matrix, positive semidefinite convention
+    mass : (n,) float64 array, barycentric
+    """
+    lengths = np.asarray(lengths, dtype=np.float64)
+    f = np.asarray(faces, dtype=np.int64)
+    if lengths.shape != f.shape or f.ndim != 2 or f.shape[1] != 3:
+        raise ValueError(f"lengths must have the shape of faces (m, 3), got {lengths.shape} and {f.shape}")
+    if not np.isfinite(lengths).all() or (lengths < 0).any():
+        raise ValueError("edge lengths must be finite and non-negative")
+    if f.size and (f.min() < 0 or f.max() >= n_vertices):
+        raise ValueError(f"faces index {int(f.max())} out of range for {n_vertices} vertices")
+    a, b, c = lengths[:, 0], lengths[:, 1], lengths[:, 2]
+    # Heron's formula in its numerically stable form (Kahan): sort descending.
+    s = np.sort(lengths, axis=1)[:, ::-1]
+    x, y, z = s[:, 0], s[:, 1], s[:, 2]
+    prod = (x + (y + z)) * (z - (x - y)) * (z + (x - y)) * (x + (y - z))
+    area = 0.25 * np.sqrt(np.clip(prod, 0.0, None))
+    cot = np.zeros_like(lengths)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        denom = np.where(area > 0, 4.0 * area, 1.0)
+        cot[:, 0] = np.where(area > 0, (b * b + c * c - a * a) / denom, 0.0)
+        cot[:, 1] = np.where(area > 0, (c * c + a * a - b * b) / denom, 0.0)
+        cot[:, 2] = np.where(area > 0, (a * a + b * b - c * c) / denom, 0.0)
+    L = _stiffness_from_cotangents(n_vertices, f, cot)
+    mass = np.bincount(f.ravel(), weights=np.repeat(area / 3.0, 3), minlength=n_vertices)
+    return L, mass

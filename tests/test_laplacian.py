@@ -56,3 +56,14 @@ def test_unknown_mass_kind():
     v, f = meshes.by_name("icosphere")
     with pytest.raises(ValueError, match="unknown mass kind 'lumpy'"):
         mass_matrix(v, f, kind="lumpy")
+
+
+@pytest.mark.parametrize("mesh", ["icosphere", "noisy_sphere"])
+def test_intrinsic_matches_embedded(mesh):
+    # The cotangent formula depends only on edge lengths (common practice).
+    from engine.laplacian import intrinsic_laplacian
+    v, f = meshes.by_name(mesh)
+    lengths = np.stack([np.linalg.norm(v[f[:, (c + 1) % 3]] - v[f[:, (c + 2) % 3]], axis=1) for c in range(3)], axis=1)
+    L, m = intrinsic_laplacian(lengths, f, len(v))
+    assert abs(L - cotangent_laplacian(v, f)).max() < 1e-10
+    np.testing.assert_allclose(m, mass_matrix(v, f), rtol=1e-10)
