@@ -409,6 +409,9 @@ class _AsciiBody:
             return out
         if n == 0:
             return {p[0]: (np.zeros(0, p[1]), np.zeros(0, np.int64)) for p in lists}
+        fast = self._same_lengths(e, keep)
+        if fast is not None:
+            return fast
         # One pass over records to find list lengths (records may differ).
         offsets = np.empty((len(e.props), n), dtype=np.int64)
         lengths = np.zeros((len(e.props), n), dtype=np.int64)
@@ -448,6 +451,50 @@ class _AsciiBody:
                 first = np.repeat(offsets[j] - base - (np.cumsum(ln) - ln), ln)
                 idx = first + np.arange(int(ln.sum()))
                 out[p[0]] = (self._convert(arr[idx], p[1], what), ln.copy())
+        return out
+
+
+    def _same_lengths(self, e: _Element, keep: bool):
+        """Fast path: every record has the list lengths of the first one, else None."""
+        toks, n, at = self.tokens, e.count, self.pos
+        widths, cols = [], []
+        try:
+            for p in e.props:
+                if len(p) == 3:
+                    k = int(toks[at])
+                    if k < 0:
+                        return None
+                    cols.append((sum(widths), k))
+                    widths.append(1 + k)
+                    at += 1 + k
+                else:
+                    cols.append((sum(widths), None))
+                    widths.append(1)
+                    at += 1
+        except (IndexError, ValueError):
+            return None
+        width = sum(widths)
+        if self.pos + n * width > len(toks):
+            return None
+        block = np.array(toks[self.pos:self.pos + n * width], dtype="S").reshape(n, width)
+        for (start, k), p in zip(cols, e.props):
+            if k is not None:
+                try:
+                    if not (block[:, start].astype(np.int64) == k).all():
+                        return None
+                except ValueError:
+                    return None
+        self.pos += n * width
+        if not keep:
+            return {}
+        out = {}
+        for (start, k), p in zip(cols, e.props):
+            what = f"element {e.name!r} property {p[0]!r}"
+            if k is None:
+                out[p[0]] = self._convert(block[:, start], p[1], what)
+            else:
+                vals = self._convert(block[:, start + 1:start + 1 + k].reshape(-1), p[1], what)
+                out[p[0]] = (vals, np.full(n, k, dtype=np.int64))
         return out
 
 
@@ -685,20 +732,25 @@ def _binary_body(columns, c, s, count_type: str, index_type: str) -> list[bytes]
 
 
 def _ascii_body(columns, c, s) -> list[bytes]:
-    parts = []
+    fmts, lists = [], []
     for _, col in columns:
         if col.dtype.kind == "f":
-            digits = 9 if col.dtype.itemsize == 4 else 17
-            parts.append(np.char.mod(f"%.{digits}g", col.astype(np.float64)))
+            fmts.append("%.9g" if col.dtype.itemsize == 4 else "%.17g")
+            lists.append(col.astype(np.float64).tolist())
         else:
-            parts.append(np.char.mod("%d", col.astype(np.int64)))
-    lines = parts[0]
-    for p in parts[1:]:
-        lines = np.char.add(np.char.add(lines, " "), p)
-    out = ["\n".join(lines.tolist()) + "\n"]
-    if s.size:
-        pieces = np.split(c, np.cumsum(s)[:-1])
-        out.append("".join(f"{len(p)} {' '.join(map(str, p.tolist()))}\n" for p in pieces))
+            fmts.append("%d")
+            lists.append(col.astype(np.int64).tolist())
+    row = " ".join(fmts)
+    out = ["".join([row % r + "\n" for r in zip(*lists)])]
+    if s.size and (s == s[0]).all():
+        k = int(s[0])
+        rows = np.column_stack([s, c.reshape(-1, k)]).tolist()
+        face = " ".join(["%d"] * (k + 1)) + "\n"
+        out.append("".join([face % tuple(r) for r in rows]))
+    elif s.size:
+        cl, ends = c.tolist(), np.cumsum(s).tolist()
+        out.append("".join([f"{b - a} " + " ".join(map(str, cl[a:b])) + "\n"
+                            for a, b in zip([0] + ends[:-1], ends)]))
     return [o.encode("ascii") for o in out]
 
 
