@@ -223,13 +223,23 @@ def _read_ply(data: bytes):
 
 
 def _group_properties(cols: dict) -> dict:
-    props = dict(cols)
+    """Join red/green/blue[/alpha] into "color" and nx/ny/nz into "normal".
+
+    Only when all members are present with one dtype; the group takes the
+    place of its first member, so writing the result back keeps the order.
+    """
+    members: dict[str, str] = {}
     for group, parts in _GROUPS.items():
-        have = [p for p in parts if p in props]
-        need = parts[:3]
-        if all(p in props for p in need) and len({props[p].dtype for p in have}) == 1 \
-                and group not in props and have == list(parts[:len(have)]):
-            props[group] = np.column_stack([props.pop(p) for p in have])
+        have = [p for p in parts if p in cols]
+        if group not in cols and all(p in cols for p in parts[:3]) and len({cols[p].dtype for p in have}) == 1:
+            members.update({p: group for p in have})
+    props: dict = {}
+    for name, a in cols.items():
+        group = members.get(name)
+        if group is None:
+            props[name] = a
+        elif group not in props:
+            props[group] = np.column_stack([cols[p] for p in _GROUPS[group] if members.get(p) == group])
     return props
 
 
@@ -556,6 +566,11 @@ def _read_obj(data: bytes):
         raise _FormatError(f"face index 0 on line {fnumber[i]} (OBJ indices start at 1)")
     base = np.repeat(np.asarray(fbase, dtype=np.int64), sizes)
     corners = np.where(idx > 0, idx - 1, base + idx)  # negative: relative to the vertices so far
+    if corners.size and corners.min() < 0:
+        j = int(np.flatnonzero(corners < 0)[0])
+        i = int(np.searchsorted(np.cumsum(sizes), j, side="right"))
+        raise _FormatError(f"face index {int(idx[j])} on line {fnumber[i]} reaches before the first vertex "
+                           f"({fbase[i]} vertices defined so far)")
     return vertices, corners, sizes, {}
 
 
@@ -569,17 +584,16 @@ def _read_off(data: bytes):
     if not lines:
         raise _FormatError("empty OFF file")
     words = lines[0].split()
-    i = 0
+    i = 1  # the line after the counts
     if words[0].upper().endswith("OFF"):
         if words[0].upper() not in ("OFF", "COFF", "NOFF", "CNOFF", "NCOFF", "STOFF"):
             raise _FormatError(f"unsupported OFF variant {words[0]!r}")
         words = words[1:]
-        i = 1
-    if not words:
-        if i >= len(lines):
-            raise _FormatError("OFF file has no vertex/face counts")
-        words = lines[i].split()
-        i += 1
+        if not words:  # counts on their own line
+            if len(lines) < 2:
+                raise _FormatError("OFF file has no vertex/face counts")
+            words = lines[1].split()
+            i = 2
     try:
         nv, nf = int(words[0]), int(words[1])
     except (ValueError, IndexError):
