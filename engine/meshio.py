@@ -21,6 +21,7 @@ lines, then face lines ``k i_1 .. i_k [colour]``; ``#`` starts a comment)
 from __future__ import annotations
 
 import os
+import struct
 import tempfile
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -329,21 +330,27 @@ class _BinaryBody:
         offsets = np.empty((len(layout), n), dtype=np.int64)  # where each property's data starts
         lengths = np.zeros((len(layout), n), dtype=np.int64)
         data, at = self.data, self.pos
-        single_uchar = len(layout) == 1 and layout[0][2] == "u1"
-        if single_uchar:  # the common face element: list uchar int vertex_indices
-            isize = layout[0][0]
-            off, ln = offsets[0], lengths[0]
-            end = len(data)
-            try:
-                for r in range(n):
-                    k = data[at]
-                    ln[r] = k
-                    off[r] = at + 1
-                    at += 1 + k * isize
-            except IndexError:
-                raise _FormatError(f"truncated data in element {e.name!r} (record {r} of {n})") from None
-            if at > end:
-                raise _FormatError(f"truncated data in element {e.name!r} (record {n - 1} of {n})")
+        list_at = [j for j, (_, csize, _) in enumerate(layout) if csize]
+        if len(list_at) == 1:
+            # One list per record (the usual face element): the loop only reads
+            # the lengths; every offset then follows from a cumulative sum.
+            j0 = list_at[0]
+            isize, csize, ccode = layout[j0]
+            pre = sum(sz for sz, _, _ in layout[:j0])
+            fixed = sum(sz for sz, _, _ in layout) - isize + csize  # record bytes besides the items
+            ks = self._list_lengths(e, at, pre, fixed, isize, ccode)
+            sizes = fixed + ks * isize
+            rec = at + np.cumsum(sizes) - sizes
+            at = int(rec[-1] + sizes[-1])
+            shift = 0
+            for j, (sz, cs, _) in enumerate(layout):
+                if j == j0:
+                    offsets[j] = rec + shift + csize
+                    lengths[j] = ks
+                    shift += csize
+                else:
+                    offsets[j] = rec + shift + (ks * isize if j > j0 else 0)
+                    shift += sz
         else:
             for r in range(n):
                 for j, (isize, csize, ccode) in enumerate(layout):
@@ -372,6 +379,32 @@ class _BinaryBody:
                 pos = first + np.arange(total) * dt.itemsize
                 out[p[0]] = (_native(self._gather(pos, dt)), ln.copy())
         return out
+
+    def _list_lengths(self, e: _Element, at: int, pre: int, fixed: int, isize: int, ccode: str) -> np.ndarray:
+        data, n = self.data, e.count
+        ks = [0] * n
+        r = 0
+        try:
+            if ccode == "u1":
+                at += pre
+                for r in range(n):
+                    k = data[at]
+                    ks[r] = k
+                    at += fixed + k * isize
+                at -= pre
+            else:
+                unpack = struct.Struct(self.endian + np.dtype(ccode).char).unpack_from
+                for r in range(n):
+                    k = unpack(data, at + pre)[0]
+                    if k < 0:
+                        raise _FormatError(f"negative list length {k}")
+                    ks[r] = k
+                    at += fixed + k * isize
+        except (IndexError, struct.error):
+            raise _FormatError(f"truncated data in element {e.name!r} (record {r} of {n})") from None
+        if at > len(data):
+            raise _FormatError(f"truncated data in element {e.name!r} (record {n - 1} of {n})")
+        return np.asarray(ks, dtype=np.int64)
 
     def _gather(self, pos: np.ndarray, dt: np.dtype) -> np.ndarray:
         idx = pos[:, None] + np.arange(dt.itemsize)
@@ -652,7 +685,7 @@ def write_ply(path, vertices, *, corners=None, sizes=None, faces=None, propertie
     binary : bool
         Binary little-endian (default) or ASCII. ASCII writes floats with 9
         (float32) or 17 (float64) significant digits, enough to read back the
-        same bits (IEEE 754-2008, section 5.12.2).
+        same bits (IEEE 754-2008, section 5.12.2, from memory).
 
     Raises
     ------

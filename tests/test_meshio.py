@@ -160,6 +160,38 @@ def test_binary_ply_with_extra_elements_and_face_properties(tmp_path, endian):
     assert all(same_bits(a.properties[k], m.properties[k]) for k in m.properties)
 
 
+@pytest.mark.parametrize("endian", ["<", ">"])
+@pytest.mark.parametrize("two_lists", [False, True])
+def test_binary_faces_with_wide_counts_and_two_lists(tmp_path, endian, two_lists):
+    # Face lists counted by a ushort, optionally followed by a second list
+    # (texture coordinates per corner, as some exporters write them).
+    fmt = {"<": "binary_little_endian", ">": "binary_big_endian"}[endian]
+    header = ("element vertex 5\nproperty double x\nproperty double y\nproperty double z\n"
+              "element face 3\nproperty list ushort int vertex_indices\n"
+              + ("property list uchar float texcoord\n" if two_lists else ""))
+    body = np.arange(15, dtype=endian + "f8").tobytes()
+    faces = [[0, 1, 2], [1, 2, 3, 4], [4, 3, 2, 1, 0]]
+    for f in faces:
+        body += np.array(len(f), endian + "u2").tobytes() + np.array(f, endian + "i4").tobytes()
+        if two_lists:
+            body += bytes([2 * len(f)]) + np.zeros(2 * len(f), endian + "f4").tobytes()
+    path = tmp_path / "w.ply"
+    path.write_bytes(ply_bytes(fmt, header, body))
+    m = read_mesh(path)
+    assert m.vertices.ravel().tolist() == list(range(15))
+    assert m.corners.tolist() == sum(faces, []) and m.sizes.tolist() == [3, 4, 5]
+    path.write_bytes(ply_bytes(fmt, header, body[:-3]))
+    with pytest.raises(ValueError, match=r"w\.ply: truncated data in element 'face' \(record 2 of 3\)"):
+        read_mesh(path)
+
+
+def test_non_ascii_header(tmp_path):
+    path = tmp_path / "h.ply"
+    path.write_bytes(b"ply\nformat ascii 1.0\ncomment caf\xe9\nend_header\n")
+    with pytest.raises(ValueError, match=r"h\.ply: PLY header is not ASCII text"):
+        read_mesh(path)
+
+
 def test_binary_faces_of_one_size_with_properties(tmp_path):
     # Fast path (every list the same length) with a scalar after the list.
     header = ("element vertex 3\nproperty double x\nproperty double y\nproperty double z\n"
