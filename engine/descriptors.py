@@ -15,7 +15,7 @@ import math
 
 import numpy as np
 
-from .products import _as_float_2d
+from .products import _as_float_2d, _numeric
 
 __all__ = ["heat_kernel_rows", "heat_kernel_signature", "heat_times", "wave_energies",
            "wave_kernel_signature"]
@@ -197,9 +197,7 @@ def wave_kernel_signature(eigenvalues, eigenvectors, energies=None, *, n_energie
 
 
 def _check_eigenvalues(eigenvalues) -> np.ndarray:
-    lam = np.asarray(eigenvalues)
-    if lam.dtype == object or not (np.issubdtype(lam.dtype, np.floating) or np.issubdtype(lam.dtype, np.integer)):
-        raise ValueError(f"eigenvalues must be a numeric array, got dtype {lam.dtype}")
+    lam = _numeric(eigenvalues, "eigenvalues")
     if lam.ndim != 1 or lam.size == 0:
         raise ValueError(f"eigenvalues must have shape (k,) with k >= 1, got {lam.shape}")
     lam = lam.astype(np.float64)

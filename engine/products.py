@@ -532,10 +532,17 @@ def product_budget(n_vertices: int, K: int, order: int) -> tuple[int, int]:
 
 # --- validation shared with approximation.py and descriptors.py ---------------------------------
 
-def _as_float_2d(a, name: str) -> np.ndarray:
+def _numeric(a, name: str, *, allow_bool: bool = False) -> np.ndarray:
     x = np.asarray(a)
-    if x.dtype == object or not (np.issubdtype(x.dtype, np.floating) or np.issubdtype(x.dtype, np.integer)):
+    ok = np.issubdtype(x.dtype, np.floating) or np.issubdtype(x.dtype, np.integer) or (
+        allow_bool and x.dtype == bool)
+    if x.dtype == object or not ok:
         raise ValueError(f"{name} must be a numeric array, got dtype {x.dtype}")
+    return x
+
+
+def _as_float_2d(a, name: str) -> np.ndarray:
+    x = _numeric(a, name)
     if x.ndim != 2 or x.shape[0] == 0 or x.shape[1] == 0:
         raise ValueError(f"{name} must have shape (n, k) with n, k >= 1, got {x.shape}")
     x = np.ascontiguousarray(x, dtype=np.float64)
@@ -545,9 +552,7 @@ def _as_float_2d(a, name: str) -> np.ndarray:
 
 
 def _check_mass(mass, n: int) -> np.ndarray:
-    m = np.asarray(mass)
-    if m.dtype == object or not (np.issubdtype(m.dtype, np.floating) or np.issubdtype(m.dtype, np.integer)):
-        raise ValueError(f"mass must be a numeric array, got dtype {m.dtype}")
+    m = _numeric(mass, "mass")
     if m.shape != (n,):
         raise ValueError(f"mass must have shape ({n},) (one value per vertex), got {m.shape}")
     m = np.ascontiguousarray(m, dtype=np.float64)
@@ -594,10 +599,7 @@ def _check_exponents(exponents, k: int) -> np.ndarray:
 
 
 def _check_signal(signal, n: int) -> np.ndarray:
-    f = np.asarray(signal)
-    if f.dtype == object or not (np.issubdtype(f.dtype, np.floating) or np.issubdtype(f.dtype, np.integer)
-                                  or f.dtype == bool):
-        raise ValueError(f"signal must be a numeric array, got dtype {f.dtype}")
+    f = _numeric(signal, "signal", allow_bool=True)
     if f.ndim not in (1, 2) or f.shape[0] != n:
         raise ValueError(f"signal must have shape ({n},) or ({n}, c), got {f.shape}")
     f = np.asarray(f, dtype=np.float64)
