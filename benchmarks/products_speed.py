@@ -131,9 +131,10 @@ def run(n_vertices: int = 100_000, K: int = 20, order: int = 3, *,
         res = json.loads(out.stdout.strip().splitlines()[-1])
         results[method] = res
         grew = res["peak_mib"] - res["start_mib"]
+        errors = " ".join(f"{e:.1e}" for e in res["errors"])
         print(f"  {method:10s} {res['seconds']:8.2f} s   peak {res['peak_mib']:7.0f} MiB "
               f"(+{grew:.0f} over the data{'' if res['peak_reset'] else ', peak not reset'})  "
-              f"rank {res['rank']}  fit errors {np.round(res['errors'], 6).tolist()}")
+              f"rank {res['rank']}  fit errors {errors}")
     children = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024
     print(f"  largest child ru_maxrss {children:.0f} MiB")
     if "orthogonal" in results and "lstsq" in results:

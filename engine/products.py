@@ -73,6 +73,16 @@ product whose new content is under 5% of its norm adds little to an
 approximation basis anyway. A much smaller ``tol`` keeps discretisation
 noise as basis functions and, below about 1e-6, costs orthogonality of about
 ``eps / tol``.
+
+Where products have no exact dependencies there is no gap to find and
+``tol`` truncates a smoothly decaying spectrum. Measured on a 10k-vertex
+irregular bumpy sphere with the constant and nine random smooth functions
+``cos(w . x + b)``, ``|w| <= 3``, order 3 (286 products): ranks 107, 134, 167,
+211 and fit errors of ``exp(x) cos(2y)`` 1.4e-3, 1.6e-4, 2.0e-5, 1.2e-6 at
+``tol`` = 0.05, 0.01, 1e-3, 1e-5. Lower ``tol`` when the mesh is fine and the
+fit on this mesh matters more than dropping near-dependent products
+(a tolerance of 0.01 still gets the sphere ranks right at 10k vertices, not
+at 2.5k).
 """
 
 DEFAULT_BLOCK_SIZE = 128
@@ -271,6 +281,7 @@ def orthogonal_products(eigenvectors, mass, order: int, *, K: int | None = None,
     R = np.zeros((min(r, n), r))
     kept: list[int] = []
     k = 0
+    Qk = QT[:0]
     for start in range(0, r, block_size):
         stop = min(start + block_size, r)
         B = _monomials(phi, exps[start:stop])
@@ -296,6 +307,7 @@ def orthogonal_products(eigenvectors, mass, order: int, *, K: int | None = None,
         R[k:k + a, start + live] = tri[:a] * norm0[live]
         kept.extend(int(j) for j in start + live[acc[:a]])
         k += a
+    del Qk  # drop the last view into QT before resizing it
     QT.resize((k, n), refcheck=False)  # shrink in place: no second copy of the basis
     basis = QT.T
     return ProductBasis(basis=basis, kept=np.asarray(kept, dtype=np.int64), exponents=exps,

@@ -141,5 +141,9 @@ def test_descriptor_errors(sphere36):
         wave_kernel_signature(lam, phi, [1.0])
     with pytest.raises(ValueError, match="sigma must be a positive number"):
         wave_kernel_signature(lam, phi, sigma=-1.0)
+    with pytest.raises(ValueError, match="wave kernel signature needs a non-zero eigenvalue"):
+        wave_kernel_signature(np.zeros(2), phi[:, :2], [0.0, 1.0])
+    with pytest.raises(ValueError, match="eigenvalues must be a numeric array"):
+        heat_times(np.array(["a", "b"]))
     with pytest.raises(ValueError, match="energies must be a non-empty array"):
         wave_kernel_signature(lam, phi, [np.nan, 1.0])

@@ -15,6 +15,7 @@ import numpy as np
 import pytest
 import scipy.sparse as sp
 from scipy.sparse.linalg import eigsh
+from threadpoolctl import threadpool_limits
 
 from engine.laplacian import cotangent_laplacian, mass_matrix
 from engine.products import (
@@ -44,7 +45,9 @@ def _eigenpairs(mesh: str, k: int):
     m = mass_matrix(v, f)
     extra = k + max(8, k // 3)
     v0 = np.random.default_rng(0).standard_normal(len(m))
-    lam, phi = eigsh(L, extra, M=sp.diags(m), sigma=-1e-8, v0=v0)
+    # numpy's and scipy's OpenBLAS pools fight over two cores (PLATFORM.md): 3 s instead of 25 s here
+    with threadpool_limits(limits=1):
+        lam, phi = eigsh(L, extra, M=sp.diags(m), sigma=-1e-8, v0=v0)
     order = np.argsort(lam)[:k]
     lam, phi = lam[order], phi[:, order]
     phi = phi / np.sqrt(np.einsum("ij,ij,i->j", phi, phi, m))
@@ -248,6 +251,8 @@ def test_orthogonal_products_errors():
         orthogonal_products(phi, 0 * m, 2)
     with pytest.raises(ValueError, match=r"eigenvectors must have shape \(n, k\)"):
         orthogonal_products(phi[:, 0], m, 2)
+    with pytest.raises(ValueError, match="mass must be a numeric array, got dtype"):
+        orthogonal_products(phi, m.astype(str), 2)
     with pytest.raises(ValueError, match="eigenvectors must be a numeric array"):
         orthogonal_products(np.full((3, 2), "a"), np.ones(3), 2)
 
