@@ -5,8 +5,10 @@ temporary directory before ``bpy`` is imported. Without ``bpy`` (the numpy-2
 engine environment) the whole folder is skipped.
 """
 
+import atexit
 import importlib
 import os
+import shutil
 import subprocess
 import sys
 import sysconfig
@@ -18,6 +20,7 @@ import numpy as np
 import pytest
 
 SANDBOX = Path(tempfile.mkdtemp(prefix="overtone-blender-tests-"))
+atexit.register(shutil.rmtree, SANDBOX, ignore_errors=True)  # the install holds ~0.5 GB
 for _var in ("BLENDER_USER_CONFIG", "BLENDER_USER_SCRIPTS", "BLENDER_USER_EXTENSIONS",
              "BLENDER_USER_DATAFILES", "BLENDER_USER_RESOURCES", "XDG_CACHE_HOME"):
     (SANDBOX / _var.lower()).mkdir()

@@ -445,3 +445,20 @@ def test_sphere_builder_is_closed(sphere):
             faces_per_edge[key] += 1
     assert set(faces_per_edge.values()) == {2} and len(counts) == len(faces_per_edge)
     assert make_sphere("s2", 4, 6).data.polygons[0].loop_total == 3
+
+
+def test_signals_as_shown_follow_the_modifiers(bridge, grid):
+    group = grid.vertex_groups.new(name="edge")
+    group.add([v.index for v in grid.data.vertices if v.co.x == 0], 1.0, 'REPLACE')
+    height = grid.data.attributes.new("height", 'FLOAT', 'POINT')
+    height.data.foreach_set("value", np.array([v.co.x for v in grid.data.vertices], np.float32))
+    grid.modifiers.new("sub", 'SUBSURF').levels = 1
+    signals = {s.name: s for s in bridge.list_signals(grid, evaluated=True)}
+    weights = bridge.read_signal(grid, signals["edge"], evaluated=True)
+    heights = bridge.read_signal(grid, signals["height"], evaluated=True)
+    shown = bridge.read_mesh(grid, evaluated=True)
+    assert weights.shape == heights.shape == (99,)
+    # x = 0 column keeps weight 1 and interior columns lose it; height follows x
+    np.testing.assert_allclose(weights[np.isclose(shown.positions[:, 0], 0)], 1.0)
+    assert np.all(weights[shown.positions[:, 0] > 1] == 0)
+    assert np.all(np.diff(heights[np.argsort(shown.positions[:, 0], kind="stable")]) >= -1e-6)

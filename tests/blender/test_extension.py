@@ -70,7 +70,9 @@ def test_build_is_deterministic(tmp_path, extension_zip):
     assert proc.returncode == 0, proc.stderr
     again = tmp_path / extension_zip.name
     digest = lambda p: hashlib.sha256(p.read_bytes()).hexdigest()  # noqa: E731
-    assert digest(again) == digest(extension_zip)
+    same = digest(again) == digest(extension_zip)
+    again.unlink()  # 260 MB; pytest keeps old tmp folders around
+    assert same
 
 
 def test_failed_download_is_a_clear_error(monkeypatch, tmp_path):
