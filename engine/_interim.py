@@ -1,7 +1,7 @@
 """Temporary private stand-ins for modules being written in parallel.
 
 Each name here mirrors the contract of a module that lands on main soon
-(eigenbasis.py, cache.py, products.py, descriptors.py, mesh.prepare_mesh).
+(eigenbasis.py, cache.py, products.py, descriptors.py).
 Everything that uses them imports them through :mod:`engine.shape` so the
 switch to the real modules is one import line. Delete this file once they land.
 """
@@ -19,54 +19,6 @@ import scipy.linalg as sla
 import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 
-from .mesh import validate_mesh
-
-
-# ---------------------------------------------------------------- mesh.prepare_mesh
-@dataclass(frozen=True)
-class PreparedMesh:
-    vertices: np.ndarray
-    faces: np.ndarray
-    to_clean: np.ndarray     # (n_original,) clean index or -1
-    from_clean: np.ndarray   # (n_clean,) original index
-    n_original: int
-    n_components: int = 1
-
-    def restore(self, values):
-        values = np.asarray(values)
-        out = np.zeros((self.n_original,) + values.shape[1:], dtype=values.dtype)
-        out[self.from_clean] = values
-        missing = self.to_clean < 0
-        if missing.any():  # unreferenced vertices: value of the nearest clean vertex
-            from scipy.spatial import cKDTree
-            _, j = cKDTree(self.vertices).query(self._original_vertices[missing])
-            out[missing] = values[j]
-        return out
-
-    def to_cleaned(self, values):
-        return np.asarray(values)[self.from_clean]
-
-
-def prepare_mesh(vertices, faces=None, *, corners=None, sizes=None) -> PreparedMesh:
-    if faces is None:
-        if corners is None or sizes is None:
-            raise ValueError("give faces, or corners and sizes")
-        corners = np.asarray(corners, dtype=np.int64)
-        sizes = np.asarray(sizes, dtype=np.int64)
-        starts = np.concatenate([[0], np.cumsum(sizes)[:-1]])
-        tris = [np.column_stack([np.full(s - 2, corners[a]), corners[a + 1:a + s - 1], corners[a + 2:a + s]])
-                for a, s in zip(starts, sizes) if s >= 3]
-        faces = np.vstack(tris)
-    v, f = validate_mesh(vertices, faces)
-    n = len(v)
-    used = np.zeros(n, bool)
-    used[f.ravel()] = True
-    from_clean = np.flatnonzero(used)
-    to_clean = -np.ones(n, np.int64)
-    to_clean[from_clean] = np.arange(len(from_clean))
-    pm = PreparedMesh(v[from_clean], to_clean[f], to_clean, from_clean, n)
-    object.__setattr__(pm, "_original_vertices", v)
-    return pm
 
 
 # ---------------------------------------------------------------- cache.py

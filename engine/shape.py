@@ -14,9 +14,10 @@ from __future__ import annotations
 import numpy as np
 
 from .laplacian import cotangent_laplacian, mass_matrix
+from .mesh import prepare_mesh
 # One import point for the modules being written in parallel (see _interim.py).
 from ._interim import (Cache, Eigenbasis, ProductBasis, eigenbasis, geometry_key, heat_kernel_rows,
-                       heat_kernel_signature, orthogonal_products, prepare_mesh, wave_kernel_signature)
+                       heat_kernel_signature, orthogonal_products, wave_kernel_signature)
 
 __all__ = ["Shape"]
 
@@ -116,13 +117,13 @@ class Shape:
                                   "residuals": self._eig.residuals})
         return self._eig
 
-    def products(self, K: int, order: int) -> ProductBasis:
+    def products(self, K: int, order: int, *, tol: float = 1e-8) -> ProductBasis:
         """Mass-orthonormal products of the first ``K`` eigenfunctions up to ``order``."""
-        key = (int(K), int(order))
+        key = (int(K), int(order), float(tol))
         if key in self._products:
             self.hits["memory"] += 1
             return self._products[key]
-        disk = geometry_key(self.vertices, self.faces, what="products", K=K, order=order)
+        disk = geometry_key(self.vertices, self.faces, what="products", K=K, order=order, tol=tol)
         if self.cache is not None:
             stored = self.cache.load(disk)
             if stored is not None:
@@ -132,7 +133,7 @@ class Shape:
                 return pb
         eb = self.eigenbasis(K)
         self.hits["computed"] += 1
-        pb = orthogonal_products(eb.eigenvectors[:, :K], self.mass, order, K=K)
+        pb = orthogonal_products(eb.eigenvectors[:, :K], self.mass, order, K=K, tol=tol)
         self._products[key] = pb
         if self.cache is not None:
             self.cache.save(disk, {"basis": pb.basis, "kept": pb.kept, "exponents": pb.exponents,
