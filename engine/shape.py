@@ -42,8 +42,8 @@ class Shape:
     vertices : (n_clean, 3) float64 array
     faces : (m_clean, 3) int64 array
     hits : dict
-        How many eigenbasis / products requests were answered from memory,
-        from disk, or computed.
+        How many eigenbasis / products requests were answered from memory or
+        disk, or computed.
     """
 
     def __init__(self, vertices, faces=None, *, corners=None, sizes=None, cache=None):
