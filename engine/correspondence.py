@@ -156,7 +156,7 @@ def _check_values(values, n, what):
 def correspond(source: Shape, target: Shape, *, match: str = "auto", landmarks=None, k: int = 60,
                k_start: int = 20, step: int = 10, refine: bool = False, product_K: int | None = None,
                product_order: int = 3, overlap_radius: float = 3.0, overlap_threshold: float = 0.9,
-               landmark_weight: float = 1.0) -> Correspondence:
+               landmark_weight: float = 1.0, commute: float = 0.1, orient: float = 1e-3) -> Correspondence:
     """Correspondence from every target vertex to the source surface.
 
     Parameters
@@ -186,6 +186,10 @@ def correspond(source: Shape, target: Shape, *, match: str = "auto", landmarks=N
         Overlap above which ``auto`` picks aligned.
     landmark_weight : float
         Weight of the landmark heat-kernel columns in the nearest-neighbour search.
+    commute, orient : float
+        Weights of Laplacian commutativity and of the orientation term in the
+        descriptor functional map (eigenvalues scaled to [0, 1], descriptor
+        coefficients to unit norm).
 
     Returns
     -------
@@ -239,10 +243,16 @@ def correspond(source: Shape, target: Shape, *, match: str = "auto", landmarks=N
             extra_s, extra_t = _landmark_columns(source, target, kk, lm, landmark_weight)
         k0 = int(min(k_start, kk))
         ms, mt = source.mass / source.area, target.mass / target.area
-        orient_s = [orientation_operator(source.vertices, source.faces, ps[:, :k0], ms, d) for d in ds.T[::4]]
-        orient_t = [orientation_operator(target.vertices, target.faces, pt[:, :k0], mt, d) for d in dt.T[::4]]
+        # orientation operators of every 4th descriptor, each scaled to unit maximum
+        orient_s = [orientation_operator(source.vertices, source.faces, ps[:, :k0], ms, d / np.abs(d).max())
+                    for d in ds.T[::4]]
+        orient_t = [orientation_operator(target.vertices, target.faces, pt[:, :k0], mt, d / np.abs(d).max())
+                    for d in dt.T[::4]]
         C0 = fmap_from_descriptors(ls[:k0], ps[:, :k0], ms, ds, lt[:k0], pt[:, :k0], mt, dt,
-                                   orient_s=orient_s, orient_t=orient_t, orient=1e-1)
+                                   orient_s=orient_s, orient_t=orient_t, orient=orient, commute=commute)
+        # nearest orthogonal matrix: a near-isometry's map between orthonormal bases is orthogonal
+        u, _, vt = np.linalg.svd(C0)
+        C0 = u @ vt
         timings["descriptor_map"] = time.perf_counter() - t1
         t1 = time.perf_counter()
         C, vertex = zoomout(C0, ps, pt, mt, k_final=kk, step=step, extra_s=extra_s, extra_t=extra_t)

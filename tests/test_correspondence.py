@@ -49,7 +49,7 @@ def test_posed_pair_with_landmarks_beats_closest_points():
     truth = pairs.colour(p.target_rest, sc)
     err = np.sqrt(((c.pull(pairs.colour(p.source_rest, sc)) - truth) ** 2).mean())
     err0 = np.sqrt(((base.pull(pairs.colour(p.source_rest, sc)) - truth) ** 2).mean())
-    assert err < 0.6 * err0
+    assert err < 0.33 * err0   # goal: posed pairs >= 3x lower colour RMSE than closest points
     mask = c.pull_labels(pairs.mask(p.source_rest, sc))
     assert mask.dtype == bool and (mask != pairs.mask(p.target_rest, sc)).mean() < 0.15
 
