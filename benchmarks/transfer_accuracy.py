@@ -27,14 +27,25 @@ def map_error(p, c):
 
 def main():
     print(f"{'pair':22s} {'method':16s} {'mode':10s} {'colour RMSE':>11s} {'mask err':>9s} {'map err':>8s} {'src err':>8s}")
-    for make in (pairs.creature_pose, pairs.creature_resolution, pairs.creature_proportion, pairs.creature_rigid):
+    makers = [pairs.creature_pose, pairs.creature_resolution, pairs.creature_proportion, pairs.creature_rigid,
+              pairs.cow_rigid, pairs.elephant_resolution, pairs.elephant_bent, pairs.elephant_proportion]
+    only = sys.argv[1:]
+    for make in makers:
         p = make()
+        if only and not any(o in p.name for o in only):
+            continue
         S, T = Shape(p.source_vertices, p.source_faces), Shape(p.target_vertices, p.target_faces)
         sc = pairs.rest_scale(p)
         src, tru = pairs.colour(p.source_rest, sc), pairs.colour(p.target_rest, sc)
         msrc, mtru = pairs.mask(p.source_rest, sc), pairs.mask(p.target_rest, sc)
         base = correspond(S, T, match="aligned")
         rows = [("closest-point", base, "pointwise")]
+        if p.landmarks:
+            S_w = Shape(pairs.landmark_warp(p), p.source_faces)
+            warped = correspond(S_w, T, match="aligned")
+            # same triangles and weights, read on the unwarped source
+            rows.append(("warp+closest", type(warped)(S, T, "aligned", "landmark warp", warped.triangle,
+                                                        warped.barycentric, warped.confidence, warped.fmap), "pointwise"))
         c = correspond(S, T, landmarks=p.landmarks or None)
         rank = S.products(10, 3).basis.shape[1]
         for b in ("pointwise", "laplacian", "products", "orthoproducts"):

@@ -156,7 +156,8 @@ def _check_values(values, n, what):
 def correspond(source: Shape, target: Shape, *, match: str = "auto", landmarks=None, k: int = 60,
                k_start: int = 20, step: int = 10, refine: bool = False, product_K: int | None = None,
                product_order: int = 3, overlap_radius: float = 3.0, overlap_threshold: float = 0.9,
-               landmark_weight: float = 1.0, commute: float = 0.1, orient: float = 1e-3) -> Correspondence:
+               landmark_weight: float = 1.0, commute: float = 0.1, orient: float = 1e-3,
+               align_steps=(0.05, 0.02, 0.01)) -> Correspondence:
     """Correspondence from every target vertex to the source surface.
 
     Parameters
@@ -186,6 +187,12 @@ def correspond(source: Shape, target: Shape, *, match: str = "auto", landmarks=N
         Overlap above which ``auto`` picks aligned.
     landmark_weight : float
         Weight of the landmark heat-kernel columns in the nearest-neighbour search.
+    align_steps : sequence of float
+        Intrinsic mode only: after the spectral map, deform the source onto
+        the target (an affine fit, then a displacement field smoothed by the
+        Laplacian with these smoothing lengths, as fractions of sqrt(area),
+        one per step) and take closest points on the deformed source. Empty
+        to skip.
     commute, orient : float
         Weights of Laplacian commutativity and of the orientation term in the
         descriptor functional map (eigenvalues scaled to [0, 1], descriptor
@@ -266,6 +273,12 @@ def correspond(source: Shape, target: Shape, *, match: str = "auto", landmarks=N
         rev = ("embedding", emb_s, emb_t)
         window = None
     timings["initial_map"] = time.perf_counter() - t0
+
+    if mode == "intrinsic" and align_steps:
+        t0 = time.perf_counter()
+        tri, bary = _align_refine(source, target, tri, bary, align_steps)
+        vertex = source.faces[tri, np.argmax(bary, axis=1)]
+        timings["align_refine"] = time.perf_counter() - t0
 
     ranks = {}
     if refine:
@@ -445,6 +458,42 @@ def _simplex_qp(G, s):
         w[..., p], w[..., q] = 1 - t, t
         best_w[take], best_v[take] = w[take], v[take]
     return best_w, best_v
+
+
+def _align_refine(source, target, tri, bary, steps):
+    """Deform the source onto the target through the current map, then closest points.
+
+    Each step solves ``min_D sum_i m_i |Pi_i (X + D) - y_i|^2 + r^2 D^T L D``
+    for a displacement ``D`` of the (affinely pre-aligned) source vertices
+    ``X`` toward the target vertices ``y`` they map to, with smoothing length
+    ``r``, then re-maps every target vertex to its closest point on the
+    deformed source (a non-rigid ICP regularised by the Laplacian).
+    """
+    import scipy.sparse as sp
+    import scipy.sparse.linalg as spla
+    n_t = len(tri)
+    y = target.vertices
+    w = target.mass
+    X = source.vertices.copy()
+    L = source.stiffness
+    for r in steps:
+        Pi = sp.csr_matrix((bary.ravel(), (np.repeat(np.arange(n_t), 3), source.faces[tri].ravel())),
+                           shape=(n_t, source.n_vertices))
+        p = Pi @ X
+        # affine fit of mapped points to targets (weighted least squares)
+        ph = np.hstack([p, np.ones((n_t, 1))])
+        sw = np.sqrt(w)[:, None]
+        A = np.linalg.lstsq(sw * ph, sw * y, rcond=None)[0]
+        X = np.hstack([X, np.ones((len(X), 1))]) @ A
+        p = Pi @ X
+        PtW = Pi.T.multiply(w[None, :]).tocsr()
+        H = (PtW @ Pi + (r * r * source.area) * L).tocsc()
+        H = H + sp.diags(np.full(source.n_vertices, 1e-9 * H.diagonal().mean()))
+        D = spla.splu(H).solve(np.asarray(PtW @ (y - p)))
+        X = X + D
+        cp = SurfaceLocator(X, source.faces).closest(y)
+        tri, bary = cp.triangle, cp.barycentric
+    return tri, bary
 
 
 def _coverage(source, points, radius):

@@ -188,3 +188,70 @@ def creature_rigid(*, size=(30, 20)) -> Pair:
     vt = rigid(v, angle=2.1, scale=1.7, shift=(3, -2, 1))
     vt2, ft, rt = _shuffle(vt, f, v.copy(), 9)
     return Pair("creature-rigid", v, f, vt2, ft, v.copy(), rt, kind="rigid")
+
+
+# ---------------------------------------------------------------- open data (tests/refdata.py)
+def _read(name):
+    from engine.meshio import read_mesh
+    from tests import refdata
+    m = read_mesh(refdata.path(name))
+    return m.vertices, m.triangles()
+
+
+def _along_y(fn, v, *args, **kw):
+    """Apply a deformation written for the x axis along y of a mesh spanning y in [-0.5, 0.5]."""
+    sw = np.column_stack([v[:, 1] + 0.5, v[:, 0], v[:, 2]])
+    out = fn(sw, *args, length=1.0, **kw)
+    return np.column_stack([out[:, 1], out[:, 0] - 0.5, out[:, 2]])
+
+
+def cow_rigid() -> Pair:
+    """pymeshlab's cow.obj against CGAL's cow.off: the same faces, vertices under a
+    rotation and uniform scale (PLATFORM.md). Every vertex must map to itself."""
+    vs, fs = _read("cow_cgal")
+    vt, ft = _read("cow_pymeshlab")
+    vt, ft, rt = _shuffle(vt, ft, vs.copy(), 11)
+    return Pair("cow-rigid", vs, fs, vt, ft, vs.copy(), rt, kind="rigid")
+
+
+def elephant_resolution() -> Pair:
+    """CGAL elephant (2.8k) and refined_elephant (44k): the same object remeshed, one frame."""
+    vs, fs = _read("elephant")
+    vt, ft = _read("refined_elephant")
+    vt, ft, rt = _shuffle(vt, ft, vt.copy(), 12)
+    return Pair("elephant-resolution", vs, fs, vt, ft, vs.copy(), rt, kind="resolution")
+
+
+def elephant_bent(*, landmarks=7) -> Pair:
+    """CGAL elephant against a bent, twisted, moved and shuffled copy of itself."""
+    vs, fs = _read("elephant")
+    vt = _along_y(twist, _along_y(bend, vs, 1.2), 0.9)
+    vt = rigid(vt, angle=1.3, shift=(2.0, 0.5, 0.0))
+    vt, ft, rt = _shuffle(vt, fs.copy(), vs.copy(), 13)
+    p = Pair("elephant-bent", vs, fs, vt, ft, vs.copy(), rt, kind="pose")
+    if landmarks:
+        p.landmarks = landmarks_by_rest(p, landmarks)
+    return p
+
+
+def elephant_proportion(*, landmarks=7) -> Pair:
+    """CGAL elephant against a stretched, thinned, twisted copy (other proportions)."""
+    vs, fs = _read("elephant")
+    vt = vs * np.array([0.8, 1.4, 1.1]) * (1 + 0.5 * (vs[:, 1:2] + 0.5))
+    vt = _along_y(twist, np.column_stack([vt[:, 0], vt[:, 1] / 1.4, vt[:, 2]]), 0.8)
+    vt = rigid(vt, angle=0.4, shift=(0.0, 0.0, 2.0))
+    vt, ft, rt = _shuffle(vt, fs.copy(), vs.copy(), 14)
+    p = Pair("elephant-proportion", vs, fs, vt, ft, vs.copy(), rt, kind="proportion")
+    if landmarks:
+        p.landmarks = landmarks_by_rest(p, landmarks)
+    return p
+
+
+def landmark_warp(p: Pair) -> np.ndarray:
+    """Baseline: source vertices moved by a thin-plate-spline warp through the
+    landmarks (scipy RBFInterpolator), to be followed by closest points."""
+    from scipy.interpolate import RBFInterpolator
+    s = np.array([a for a, _ in p.landmarks])
+    t = np.array([b for _, b in p.landmarks])
+    warp = RBFInterpolator(p.source_vertices[s], p.target_vertices[t], kernel="thin_plate_spline", degree=1)
+    return warp(p.source_vertices)
