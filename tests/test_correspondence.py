@@ -73,3 +73,32 @@ def test_pull_and_labels_shapes_and_errors():
         correspond(S, T, landmarks=[(0, 10 ** 6)])
     with pytest.raises(ValueError, match="Shape objects"):
         correspond(p.source_vertices, T)
+
+
+@pytest.mark.refdata
+def test_cow_obj_against_cow_off_is_the_identity():
+    # pymeshlab cow.obj and CGAL cow.off: same faces, vertices under rotation + scale (PLATFORM.md)
+    p = pairs.cow_rigid()
+    S, T = _shapes(p)
+    c = correspond(S, T)
+    assert c.mode == "intrinsic"
+    corner = S.faces[c.triangle, np.argmax(c.barycentric, axis=1)]
+    src_orig = S.prepared.from_clean[corner]
+    np.testing.assert_allclose(p.source_rest[src_orig], p.target_rest[T.prepared.from_clean], atol=1e-9)
+    # the alignment step re-projects onto a deformed copy fitted to file coordinates
+    # rounded to a few digits, so the weight at the vertex is 1 up to ~1e-3
+    assert np.abs(c.barycentric.max(axis=1) - 1).max() < 2e-3
+
+
+@pytest.mark.refdata
+def test_bent_elephant_with_landmarks_beats_closest_points_threefold():
+    p = pairs.elephant_bent()
+    S, T = _shapes(p)
+    c = correspond(S, T, landmarks=p.landmarks)
+    base = correspond(S, T, match="aligned")
+    sc = pairs.rest_scale(p)
+    src, truth = pairs.colour(p.source_rest, sc), pairs.colour(p.target_rest, sc)
+    err = np.sqrt(((c.pull(src) - truth) ** 2).mean())
+    err0 = np.sqrt(((base.pull(src) - truth) ** 2).mean())
+    assert err < err0 / 3
+    assert _map_error(p, c).mean() < 0.03
