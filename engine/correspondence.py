@@ -1,0 +1,502 @@
+"""Where each target vertex lies on the source surface.
+
+:func:`correspond` answers, for every target vertex, a source triangle and
+barycentric weights. Two ways there:
+
+aligned
+    The meshes overlap in space: closest points on the source triangles
+    (:mod:`engine.closest_point`), then optionally a spectral refinement in
+    the product embedding (below) kept within a few edge lengths.
+intrinsic
+    Pose, placement and scale differ: area-normalised eigenbases, heat and
+    wave kernel signatures plus each landmark's heat-kernel rows give a
+    functional map by least squares with Laplacian commutativity and an
+    orientation-preserving term (so a mirror-symmetric character is not
+    mirrored); ZoomOut refinement grows it to a larger basis, with the
+    landmark rows kept in the nearest-neighbour search.
+
+The final point map (both modes, ``refine=True``) matches target vertices to
+source points in the embedding of orthogonalised eigenfunction products:
+target products ``Q_t``; on the source, the products of the source functions
+that the current map carries onto the target eigenfunctions, orthogonalised
+with the target's own kept set and coefficients, so both embeddings are the
+same functions seen from the two sides (a point map commutes with pointwise
+products). Each target vertex takes the best source vertex among its current
+match's spatial neighbours, then the best point on that vertex's triangles by
+a least-squares fit in the embedding.
+
+``mode="auto"`` measures the overlap: the fraction of target vertices within
+``3`` mean edge lengths of the source surface and of source vertices within
+as much of the target; both above 0.9 picks aligned.
+
+Confidence per target vertex is the round-trip agreement: target vertex ->
+source point -> (reverse map) -> target vertex; ``exp(-(d / 4h)^2)`` with
+``d`` the distance between start and end and ``h`` the target's mean edge
+length (1 is a perfect round trip, 0.5 about 3.3 edge lengths off).
+"""
+
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy.spatial import cKDTree
+
+from ._interim import raw_products
+from .closest_point import SurfaceLocator, _incident_triangles
+from .functional_map import fmap_from_descriptors, orientation_operator, zoomout
+from .shape import Shape
+
+__all__ = ["Correspondence", "correspond"]
+
+MATCHES = ("auto", "aligned", "intrinsic")
+
+
+@dataclass(frozen=True)
+class Correspondence:
+    """A map from every target vertex to a point on the source surface.
+
+    Attributes
+    ----------
+    source, target : Shape
+    mode : str
+        ``"aligned"`` or ``"intrinsic"``.
+    reason : str
+        Why that mode (for ``match="auto"`` the measured overlap).
+    triangle : (n_t, 3)... (n_t,) int64 array
+        Source triangle (index into ``source.faces``) per cleaned target vertex.
+    barycentric : (n_t, 3) float64 array
+        Weights of that triangle's corners; non-negative, rows sum to 1.
+    confidence : (n_t,) float64 array in [0, 1]
+        Round-trip agreement (module docstring).
+    fmap : (k_t, k_s) float64 array
+        Functional map, source eigen-coefficients -> target eigen-coefficients.
+    stats : dict
+        JSON-able: overlap, coverage of source area, consistency, sizes and
+        ranks, timings, cache hits.
+    """
+
+    source: Shape
+    target: Shape
+    mode: str
+    reason: str
+    triangle: np.ndarray
+    barycentric: np.ndarray
+    confidence: np.ndarray
+    fmap: np.ndarray
+    stats: dict = field(default_factory=dict)
+
+    def matrix(self):
+        """The pull-back as a sparse ``(n_t_clean, n_s_clean)`` matrix of barycentric weights."""
+        import scipy.sparse as sp
+        n_t = len(self.triangle)
+        cols = self.source.faces[self.triangle]
+        return sp.csr_matrix((self.barycentric.ravel(), (np.repeat(np.arange(n_t), 3), cols.ravel())),
+                             shape=(n_t, self.source.n_vertices))
+
+    def points(self) -> np.ndarray:
+        """(n_t, 3) mapped points on the source surface (source coordinates)."""
+        return np.einsum("ij,ijk->ik", self.barycentric, self.source.vertices[self.source.faces[self.triangle]])
+
+    def pull(self, source_values) -> np.ndarray:
+        """Barycentric interpolation of per-vertex source values.
+
+        Parameters
+        ----------
+        source_values : (n_s_original, ...) float array
+
+        Returns
+        -------
+        (n_t_original, ...) float64 array
+        """
+        v = _check_values(source_values, self.source.n_original, "source values")
+        clean = self.source.to_cleaned(v.astype(np.float64))
+        corners = clean[self.source.faces[self.triangle]]           # (n_t, 3, ...)
+        w = self.barycentric.reshape(self.barycentric.shape + (1,) * (clean.ndim - 1))
+        return self.target.restore((w * corners).sum(axis=1))
+
+    def pull_labels(self, labels) -> np.ndarray:
+        """Labels or masks, never blended: each target vertex takes the label of
+        the corner with the largest barycentric weight.
+
+        Parameters
+        ----------
+        labels : (n_s_original,) or (n_s_original, c) array of any dtype
+
+        Returns
+        -------
+        (n_t_original, ...) array of the same dtype
+        """
+        a = np.asarray(labels)
+        if a.ndim == 0 or a.shape[0] != self.source.n_original:
+            raise ValueError(f"labels must have one row per source vertex ({self.source.n_original}), "
+                             f"got shape {a.shape}")
+        clean = self.source.to_cleaned(a)
+        corner = self.source.faces[self.triangle, np.argmax(self.barycentric, axis=1)]
+        return self.target.restore(clean[corner])
+
+    def report(self) -> dict:
+        """JSON-able summary: mode and reason plus :attr:`stats`."""
+        return {"mode": self.mode, "reason": self.reason, **self.stats}
+
+
+def _check_values(values, n, what):
+    a = np.asarray(values)
+    if a.ndim == 0 or a.shape[0] != n:
+        raise ValueError(f"{what} must have one row per source vertex ({n}), got shape {a.shape}")
+    if not (np.issubdtype(a.dtype, np.number) or a.dtype == bool):
+        raise ValueError(f"{what} must be numeric, got dtype {a.dtype}")
+    if not np.isfinite(a).all():
+        raise ValueError(f"{what} contain {int((~np.isfinite(a)).sum())} non-finite entries")
+    return a
+
+
+# ---------------------------------------------------------------- entry point
+def correspond(source: Shape, target: Shape, *, match: str = "auto", landmarks=None, k: int = 60,
+               k_start: int = 20, step: int = 10, refine: bool = False, product_K: int | None = None,
+               product_order: int = 3, overlap_radius: float = 3.0, overlap_threshold: float = 0.9,
+               landmark_weight: float = 1.0, commute: float = 0.1, orient: float = 1e-3,
+               align_steps=(0.05, 0.02, 0.01)) -> Correspondence:
+    """Correspondence from every target vertex to the source surface.
+
+    Parameters
+    ----------
+    source, target : Shape
+    match : {"auto", "aligned", "intrinsic"}
+    landmarks : list of (source_vertex, target_vertex), optional
+        Original vertex indices known to correspond.
+    k : int
+        Final size of the eigenbasis for the intrinsic functional map.
+    k_start : int
+        Size of the first (descriptor) functional map.
+    step : int
+        ZoomOut step.
+    refine : bool
+        Final point map in the product embedding. Off by default: measured on
+        the ground-truth pairs it does not yet improve the map (the
+        fmap-aligned source products carry ~8% error even with a
+        well-conditioned kept set, worse than closest points on aligned
+        pairs); see the module report.
+    product_K, product_order : int
+        Eigenfunctions and order of the product embedding; ``product_K`` by
+        default from the vertex count (12 below 20k target vertices, else 10).
+    overlap_radius : float
+        In mean edge lengths, for the overlap measure.
+    overlap_threshold : float
+        Overlap above which ``auto`` picks aligned.
+    landmark_weight : float
+        Weight of the landmark heat-kernel columns in the nearest-neighbour search.
+    align_steps : sequence of float
+        Intrinsic mode only: after the spectral map, deform the source onto
+        the target (an affine fit, then a displacement field smoothed by the
+        Laplacian with these smoothing lengths, as fractions of sqrt(area),
+        one per step) and take closest points on the deformed source. Empty
+        to skip.
+    commute, orient : float
+        Weights of Laplacian commutativity and of the orientation term in the
+        descriptor functional map (eigenvalues scaled to [0, 1], descriptor
+        coefficients to unit norm).
+
+    Returns
+    -------
+    Correspondence
+    """
+    if not isinstance(source, Shape) or not isinstance(target, Shape):
+        raise ValueError("source and target must be Shape objects")
+    if match not in MATCHES:
+        raise ValueError(f"unknown match {match!r}; expected one of {', '.join(MATCHES)}")
+    lm = _check_landmarks(landmarks, source, target)
+    timings: dict = {}
+    t0 = time.perf_counter()
+    loc_s = SurfaceLocator(source.vertices, source.faces)
+    loc_t = SurfaceLocator(target.vertices, target.faces)
+    cp_t = loc_s.closest(target.vertices)           # target vertices -> source surface
+    cp_s = loc_t.closest(source.vertices)           # source vertices -> target surface
+    h = max(source.mean_edge, target.mean_edge)
+    frac_t = float(np.mean(cp_t.distance < overlap_radius * h))
+    frac_s = float(np.mean(cp_s.distance < overlap_radius * h))
+    overlap = min(frac_t, frac_s)
+    timings["overlap"] = time.perf_counter() - t0
+    if match == "auto":
+        mode = "aligned" if overlap >= overlap_threshold else "intrinsic"
+        reason = (f"auto: {frac_t:.0%} of target vertices and {frac_s:.0%} of source vertices lie within "
+                  f"{overlap_radius:g} mean edge lengths of the other surface "
+                  f"({'>=' if mode == 'aligned' else '<'} {overlap_threshold:.0%}): {mode}")
+    else:
+        mode = match
+        reason = f"requested {mode} (measured overlap {overlap:.0%})"
+    stats: dict = {"overlap": {"target_near_source": frac_t, "source_near_target": frac_s}}
+    K = product_K if product_K is not None else (12 if target.n_vertices < 20000 else 10)
+
+    t0 = time.perf_counter()
+    if mode == "aligned":
+        tri, bary = cp_t.triangle, cp_t.barycentric
+        vertex = source.faces[tri, np.argmax(bary, axis=1)]
+        k_map = max(K, 20)
+        C = None
+        rev = ("closest", cp_s)
+        extra_s = extra_t = None
+        window = 2.0 * h
+    else:
+        kk = int(min(k, source.n_vertices - 1, target.n_vertices - 1))
+        ls, ps = source.normalised_basis(kk)
+        lt, pt = target.normalised_basis(kk)
+        timings["eigenbasis"] = time.perf_counter() - t0
+        t1 = time.perf_counter()
+        ds, dt = _descriptors(source, target, kk, lm)
+        extra_s = extra_t = None
+        if lm is not None:
+            extra_s, extra_t = _landmark_columns(source, target, kk, lm, landmark_weight)
+        k0 = int(min(k_start, kk))
+        ms, mt = source.mass / source.area, target.mass / target.area
+        # orientation operators of every 4th descriptor, each scaled to unit maximum
+        orient_s = [orientation_operator(source.vertices, source.faces, ps[:, :k0], ms, d / np.abs(d).max())
+                    for d in ds.T[::4]]
+        orient_t = [orientation_operator(target.vertices, target.faces, pt[:, :k0], mt, d / np.abs(d).max())
+                    for d in dt.T[::4]]
+        C0 = fmap_from_descriptors(ls[:k0], ps[:, :k0], ms, ds, lt[:k0], pt[:, :k0], mt, dt,
+                                   orient_s=orient_s, orient_t=orient_t, orient=orient, commute=commute)
+        # nearest orthogonal matrix: a near-isometry's map between orthonormal bases is orthogonal
+        u, _, vt = np.linalg.svd(C0)
+        C0 = u @ vt
+        timings["descriptor_map"] = time.perf_counter() - t1
+        t1 = time.perf_counter()
+        C, vertex = zoomout(C0, ps, pt, mt, k_final=kk, step=step, extra_s=extra_s, extra_t=extra_t)
+        timings["zoomout"] = time.perf_counter() - t1
+        tri, bary = _vertex_as_point(source, vertex)
+        k_map = kk
+        emb_t = pt @ C
+        emb_s = ps
+        if extra_s is not None:
+            emb_t, emb_s = np.hstack([emb_t, extra_t]), np.hstack([emb_s, extra_s])
+        rev = ("embedding", emb_s, emb_t)
+        window = None
+    timings["initial_map"] = time.perf_counter() - t0
+
+    if mode == "intrinsic" and align_steps:
+        t0 = time.perf_counter()
+        tri, bary = _align_refine(source, target, tri, bary, align_steps)
+        vertex = source.faces[tri, np.argmax(bary, axis=1)]
+        timings["align_refine"] = time.perf_counter() - t0
+
+    ranks = {}
+    if refine:
+        t0 = time.perf_counter()
+        tri, bary, vertex, ranks = _refine_products(source, target, tri, bary, vertex, K, product_order,
+                                                    window=window, h=h)
+        timings["product_refine"] = time.perf_counter() - t0
+
+    # functional map of the final point map (unit-area bases)
+    kf = int(min(k_map, source.n_vertices - 1, target.n_vertices - 1))
+    _, ps = source.normalised_basis(kf)
+    _, pt = target.normalised_basis(kf)
+    mt = target.mass / target.area
+    pulled = np.einsum("ij,ijk->ik", bary, ps[source.faces[tri]])
+    C = pt.T @ (mt[:, None] * pulled)
+
+    # confidence and consistency: round trip through the reverse map
+    t0 = time.perf_counter()
+    if rev[0] == "closest":
+        back = target.faces[rev[1].triangle, np.argmax(rev[1].barycentric, axis=1)]
+    else:
+        _, back = cKDTree(rev[2]).query(rev[1], workers=-1)
+    end = back[vertex]
+    d = np.linalg.norm(target.vertices[end] - target.vertices, axis=1)
+    conf = np.exp(-(d / (4 * target.mean_edge)) ** 2)
+    coverage = _coverage(source, np.einsum("ij,ijk->ik", bary, source.vertices[source.faces[tri]]),
+                         2 * max(source.mean_edge, target.mean_edge * np.sqrt(source.area / target.area)))
+    timings["confidence"] = time.perf_counter() - t0
+    stats.update({
+        "coverage_of_source_area": coverage,
+        "consistency": {"median_round_trip_over_sqrt_area": float(np.median(d) / np.sqrt(target.area)),
+                        "within_2_edges": float(np.mean(d < 2 * target.mean_edge)),
+                        "mean_confidence": float(conf.mean())},
+        "sizes": {"source_vertices": source.n_vertices, "target_vertices": target.n_vertices,
+                  "fmap": list(C.shape), "landmarks": 0 if lm is None else len(lm[0]), **ranks},
+        "timings": {k_: round(v, 4) for k_, v in timings.items()},
+        "cache_hits": {"source": dict(source.hits), "target": dict(target.hits)},
+    })
+    return Correspondence(source, target, mode, reason, tri.astype(np.int64), bary, conf, C, stats)
+
+
+# ---------------------------------------------------------------- pieces
+def _check_landmarks(landmarks, source, target):
+    if landmarks is None or len(landmarks) == 0:
+        return None
+    a = np.asarray(landmarks)
+    if a.ndim != 2 or a.shape[1] != 2 or not np.issubdtype(a.dtype, np.integer):
+        raise ValueError(f"landmarks must be a list of (source_vertex, target_vertex) integer pairs, "
+                         f"got shape {a.shape} and dtype {a.dtype}")
+    return source.original_index(a[:, 0]), target.original_index(a[:, 1])
+
+
+def _descriptors(source, target, k, lm):
+    """HKS and WKS (area-normalised, so comparable across shapes), columns scaled."""
+    ds = np.hstack([source.hks(k, 12), source.wks(k, 12)])
+    dt = np.hstack([target.hks(k, 12), target.wks(k, 12)])
+    if lm is not None:
+        es, et = _landmark_columns(source, target, k, lm, 1.0)
+        ds, dt = np.hstack([ds, es]), np.hstack([dt, et])
+    return ds, dt
+
+
+LANDMARK_TIMES = (0.003, 0.01, 0.03)   # unit-area shapes: kernel radius ~ sqrt(4t) ~ 0.1-0.35
+
+
+def _landmark_columns(source, target, k, lm, weight):
+    hs = source.heat_rows(k, lm[0], LANDMARK_TIMES)
+    ht = target.heat_rows(k, lm[1], LANDMARK_TIMES)
+    # scale each column by its value at the landmark so both shapes share units
+    scale = np.maximum(np.abs(hs).max(axis=0), 1e-300)
+    return weight * hs / scale, weight * ht / np.maximum(np.abs(ht).max(axis=0), 1e-300)
+
+
+def _vertex_as_point(shape, vertex):
+    """A vertex map as (triangle, barycentric): weight 1 at that corner of one incident triangle."""
+    inc = _incident_triangles(shape.faces, shape.n_vertices, cap=1)[:, 0]
+    tri = inc[vertex]
+    corner = np.argmax(shape.faces[tri] == vertex[:, None], axis=1)
+    return tri, np.eye(3)[corner]
+
+
+def _refine_products(source, target, tri, bary, vertex, K, order, *, window, h, iterations=2, neighbours=24):
+    """Point map in the product embedding, searched near the current match."""
+    K = int(min(K, source.n_vertices - 2, target.n_vertices - 2))
+    pb = target.products(K, order, tol=1e-2)
+    Qt = pb.basis * np.sqrt(target.area)
+    kept = np.asarray(pb.kept)
+    Rk = np.asarray(pb.coefficients)[:, kept]
+    Rinv = np.linalg.pinv(Rk)
+    ex = np.asarray(pb.exponents)[kept]
+    kk = int(min(2 * K + 10, source.n_vertices - 2))
+    _, ps = source.normalised_basis(kk)
+    _, pt = target.normalised_basis(K)
+    mt = target.mass / target.area
+    tree = cKDTree(source.vertices)
+    inc = _incident_triangles(source.faces, source.n_vertices)
+    for _ in range(iterations):
+        pulled = np.einsum("ij,ijk->ik", bary, ps[source.faces[tri]])      # Pi Phi_s
+        Cm = pt.T @ (mt[:, None] * pulled)                                  # (K, kk)
+        G = ps @ np.linalg.pinv(Cm) / np.sqrt(target.area)                 # source functions -> phi_t
+        Qs = raw_products(G, ex) @ Rinv * np.sqrt(target.area)
+        # candidates: spatial neighbours of the current match on the source
+        here = np.einsum("ij,ijk->ik", bary, source.vertices[source.faces[tri]])
+        dist, cand = tree.query(here, k=min(neighbours, source.n_vertices), workers=-1)
+        cost = _row_distances(Qt, Qs, cand)
+        if window is not None:  # aligned: stay within the window of the closest point
+            cost = np.where(dist <= window, cost, np.inf)
+            cost[:, 0] = np.minimum(cost[:, 0], _row_distances(Qt, Qs, cand[:, :1])[:, 0])
+        best = cand[np.arange(len(cand)), np.argmin(cost, axis=1)]
+        tri, bary = _best_on_triangles(Qt, Qs, source.faces, inc, best)
+        vertex = best
+    return tri, bary, vertex, {"product_K": K, "product_order": order, "product_columns": int(len(pb.exponents)),
+                               "product_rank": int(len(kept))}
+
+
+def _row_distances(Qt, Qs, cand, chunk=4000):
+    out = np.empty(cand.shape)
+    for s in range(0, len(cand), chunk):
+        c = cand[s:s + chunk]
+        diff = Qs[c] - Qt[s:s + chunk, None, :]
+        out[s:s + chunk] = np.einsum("ijk,ijk->ij", diff, diff)
+    return out
+
+
+def _best_on_triangles(Qt, Qs, faces, inc, best, chunk=4000):
+    """Best point on the triangles around ``best`` for each target row, by least squares on the simplex."""
+    n = len(best)
+    tri_out = np.empty(n, np.int64)
+    w_out = np.empty((n, 3))
+    for s in range(0, n, chunk):
+        b = best[s:s + chunk]
+        q = Qt[s:s + chunk]
+        T = inc[b]                                   # (c, d) triangles, -1 padded
+        valid = T >= 0
+        T = np.where(valid, T, T[:, :1])
+        F = faces[T]                                 # (c, d, 3)
+        P = Qs[F]                                    # (c, d, 3, r)
+        Gm = np.einsum("cdir,cdjr->cdij", P, P)      # corner Gram
+        sv = np.einsum("cdir,cr->cdi", P, q)
+        w, val = _simplex_qp(Gm, sv)
+        val = np.where(valid, val, np.inf)
+        j = np.argmin(val, axis=1)
+        rows = np.arange(len(b))
+        tri_out[s:s + chunk] = T[rows, j]
+        w_out[s:s + chunk] = w[rows, j]
+    return tri_out, w_out
+
+
+def _simplex_qp(G, s):
+    """Minimise ``w^T G w - 2 w^T s`` over the probability simplex in 3 variables."""
+    shape = s.shape[:-1]
+    best_w = np.zeros(shape + (3,))
+    best_v = np.full(shape, np.inf)
+    # interior with sum-to-one (KKT)
+    A = np.zeros(shape + (4, 4))
+    A[..., :3, :3] = 2 * G
+    A[..., :3, 3] = 1
+    A[..., 3, :3] = 1
+    rhs = np.concatenate([2 * s, np.ones(shape + (1,))], axis=-1)
+    reg = 1e-12 * (np.abs(G).max(axis=(-1, -2)) + 1e-300)
+    A[..., :3, :3] += 2 * reg[..., None, None] * np.eye(3)
+    try:
+        sol = np.linalg.solve(A, rhs[..., None])[..., 0][..., :3]
+    except np.linalg.LinAlgError:
+        sol = np.full(shape + (3,), -1.0)
+    ok = np.isfinite(sol).all(axis=-1) & (sol >= 0).all(axis=-1)
+    v = np.einsum("...i,...ij,...j->...", sol, G, sol) - 2 * np.einsum("...i,...i->...", sol, s)
+    take = ok & (v < best_v)
+    best_w[take], best_v[take] = sol[take], v[take]
+    for p, q in ((0, 1), (1, 2), (2, 0)):
+        a, b, c = G[..., p, p], G[..., p, q], G[..., q, q]
+        den = a - 2 * b + c
+        t = np.clip(np.where(den > 0, (a - b - s[..., p] + s[..., q]) / np.where(den > 0, den, 1), 0.0), 0, 1)
+        v = (1 - t) ** 2 * a + 2 * t * (1 - t) * b + t * t * c - 2 * (1 - t) * s[..., p] - 2 * t * s[..., q]
+        take = v < best_v
+        w = np.zeros(shape + (3,))
+        w[..., p], w[..., q] = 1 - t, t
+        best_w[take], best_v[take] = w[take], v[take]
+    return best_w, best_v
+
+
+def _align_refine(source, target, tri, bary, steps):
+    """Deform the source onto the target through the current map, then closest points.
+
+    Each step solves ``min_D sum_i m_i |Pi_i (X + D) - y_i|^2 + r^2 D^T L D``
+    for a displacement ``D`` of the (affinely pre-aligned) source vertices
+    ``X`` toward the target vertices ``y`` they map to, with smoothing length
+    ``r``, then re-maps every target vertex to its closest point on the
+    deformed source (a non-rigid ICP regularised by the Laplacian).
+    """
+    import scipy.sparse as sp
+    import scipy.sparse.linalg as spla
+    n_t = len(tri)
+    y = target.vertices
+    w = target.mass
+    X = source.vertices.copy()
+    L = source.stiffness
+    for r in steps:
+        Pi = sp.csr_matrix((bary.ravel(), (np.repeat(np.arange(n_t), 3), source.faces[tri].ravel())),
+                           shape=(n_t, source.n_vertices))
+        p = Pi @ X
+        # affine fit of mapped points to targets (weighted least squares)
+        ph = np.hstack([p, np.ones((n_t, 1))])
+        sw = np.sqrt(w)[:, None]
+        A = np.linalg.lstsq(sw * ph, sw * y, rcond=None)[0]
+        X = np.hstack([X, np.ones((len(X), 1))]) @ A
+        p = Pi @ X
+        PtW = Pi.T.multiply(w[None, :]).tocsr()
+        H = (PtW @ Pi + (r * r * source.area) * L).tocsc()
+        H = H + sp.diags(np.full(source.n_vertices, 1e-9 * H.diagonal().mean()))
+        D = spla.splu(H).solve(np.asarray(PtW @ (y - p)))
+        X = X + D
+        cp = SurfaceLocator(X, source.faces).closest(y)
+        tri, bary = cp.triangle, cp.barycentric
+    return tri, bary
+
+
+def _coverage(source, points, radius):
+    """Fraction of source area within ``radius`` of some mapped point."""
+    d, _ = cKDTree(points).query(source.vertices, workers=-1)
+    return float(source.mass[d <= radius].sum() / source.area)

@@ -1,0 +1,190 @@
+"""Functional maps between two eigenbases.
+
+Convention: a functional map ``C`` of shape ``(k_t, k_s)`` takes the
+coefficients of a function in the source eigenbasis to its coefficients in
+the target eigenbasis (Ovsjanikov et al., Functional Maps, SIGGRAPH 2012).
+A point map from target vertices to source points ``Pi`` (``n_t x n_s``, rows
+of barycentric weights) induces ``C = Phi_t^T M_t Pi Phi_s``; conversely a
+point map is recovered from ``C`` by matching each target row of
+``Phi_t C`` to its nearest source row of ``Phi_s``.
+
+Refinement is spectral upsampling (Melzi et al., ZoomOut, SIGGRAPH Asia 2019):
+alternate point map and functional map while the basis grows.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from scipy.spatial import cKDTree
+
+__all__ = ["fmap_from_descriptors", "fmap_from_pointmap", "pointmap_from_fmap", "zoomout",
+           "orientation_operator"]
+
+
+def fmap_from_descriptors(lam_s, phi_s, mass_s, desc_s, lam_t, phi_t, mass_t, desc_t, *,
+                          commute: float = 1e-2, orient_s=(), orient_t=(), orient: float = 0.0):
+    """Least-squares functional map from corresponding descriptors.
+
+    Minimises ``||C A - B||^2 + commute ||C Lambda_s - Lambda_t C||^2
+    + orient sum_f ||C O_s^f - O_t^f C||^2`` over ``C``, where ``A, B`` are the
+    descriptors' coefficients, ``Lambda`` the eigenvalues (scaled to unit
+    range) and ``O^f`` the orientation operators of descriptor ``f`` (Ren,
+    Poulenard, Wonka and Ovsjanikov, Continuous and orientation-preserving
+    correspondences via functional maps, 2018).
+
+    Parameters
+    ----------
+    lam_s : (k_s,) float array
+    phi_s : (n_s, k_s) float array
+    mass_s : (n_s,) float array
+    desc_s : (n_s, q) float array
+    lam_t, phi_t, mass_t, desc_t : the same on the target
+    commute, orient : float
+        Weights of the commutativity and orientation terms.
+    orient_s, orient_t : sequences of (k, k) arrays
+
+    Returns
+    -------
+    (k_t, k_s) float64 array
+    """
+    A = phi_s.T @ (mass_s[:, None] * desc_s)
+    B = phi_t.T @ (mass_t[:, None] * desc_t)
+    norm = np.linalg.norm(A, axis=0) + 1e-300
+    A, B = A / norm, B / norm
+    ks, kt = A.shape[0], B.shape[0]
+    scale = max(lam_s[-1], lam_t[-1])
+    ls, lt = lam_s / scale, lam_t / scale
+    It, Is = np.eye(kt), np.eye(ks)
+    # vec(C X) = (X^T kron I_t) vec(C), vec(Y C) = (I_s kron Y) vec(C) (column-major vec)
+    H = np.kron(A @ A.T, It)
+    g = (B @ A.T).ravel(order="F")
+    D = (lt[:, None] - ls[None, :]) ** 2
+    H += commute * np.diag(D.ravel(order="F"))
+    for Os, Ot in zip(orient_s, orient_t):
+        E = np.kron(Os.T, It) - np.kron(Is, Ot)
+        H += orient * (E.T @ E)
+    c = np.linalg.solve(H + 1e-10 * np.trace(H) / len(H) * np.eye(len(H)), g)
+    return c.reshape(kt, ks, order="F")
+
+
+def orientation_operator(vertices, faces, phi, mass, f):
+    """Reduced operator ``g -> <n, grad f x grad g>`` in the basis ``phi``.
+
+    Parameters
+    ----------
+    vertices : (n, 3), faces : (m, 3)
+    phi : (n, k) mass-orthonormal basis
+    mass : (n,) float array
+    f : (n,) float array, a descriptor
+
+    Returns
+    -------
+    (k, k) float64 array ``O`` with ``O[i, j] = <phi_i, n . (grad f x grad phi_j)>_M``.
+    """
+    v0, v1, v2 = (vertices[faces[:, i]] for i in range(3))
+    nrm = np.cross(v1 - v0, v2 - v0)
+    dbl = np.linalg.norm(nrm, axis=1)
+    dbl = np.where(dbl > 0, dbl, 1.0)
+    n = nrm / dbl[:, None]
+    area = 0.5 * dbl
+    # gradient of a hat function: (n x e_opposite) / (2 area)
+    e = [v2 - v1, v0 - v2, v1 - v0]
+    gh = [np.cross(n, ei) / dbl[:, None] for ei in e]
+
+    def grad(x):  # x: (n,) or (n, k) -> (m, 3) or (m, 3, k)
+        xs = [x[faces[:, i]] for i in range(3)]
+        if x.ndim == 1:
+            return sum(g * s[:, None] for g, s in zip(gh, xs))
+        return sum(g[:, :, None] * s[:, None, :] for g, s in zip(gh, xs))
+
+    gf = grad(np.asarray(f, float))
+    gphi = grad(phi)
+    nf = np.cross(n, gf)  # n . (gf x gg) = (n x gf) . gg
+    h = np.einsum("mc,mck->mk", nf, gphi)          # per face, per basis function
+    phi_face = phi[faces].mean(axis=1)             # (m, k)
+    return phi_face.T @ (area[:, None] * h)
+
+
+def fmap_from_pointmap(phi_s, phi_t, mass_t, source_rows):
+    """``C = Phi_t^T M_t Pi Phi_s`` for a vertex map or a barycentric map.
+
+    Parameters
+    ----------
+    phi_s : (n_s, k_s), phi_t : (n_t, k_t), mass_t : (n_t,)
+    source_rows : (n_t,) int array of source vertices, or a callable giving
+        ``Pi @ X`` for a source array ``X``.
+
+    Returns
+    -------
+    (k_t, k_s) float64 array
+    """
+    pulled = source_rows(phi_s) if callable(source_rows) else phi_s[source_rows]
+    return phi_t.T @ (mass_t[:, None] * pulled)
+
+
+def pointmap_from_fmap(C, phi_s, phi_t, *, extra_s=None, extra_t=None, rows=None, tree_s=None):
+    """Nearest source vertex for each target vertex in the spectral embedding.
+
+    Target vertex ``i`` is embedded as ``(Phi_t C)[i]``, source vertex ``j``
+    as ``Phi_s[j]``; optional extra columns (e.g. landmark heat-kernel rows)
+    are appended to both.
+
+    Parameters
+    ----------
+    C : (k_t, k_s) float array
+    phi_s : (n_s, >=k_s), phi_t : (n_t, >=k_t)
+    extra_s : (n_s, e) float array, optional
+    extra_t : (n_t, e) float array, optional
+    rows : (r,) int array, optional
+        Only these target vertices.
+
+    Returns
+    -------
+    (n_t,) or (r,) int64 array of source vertices
+    """
+    kt, ks = C.shape
+    pt = phi_t[:, :kt] if rows is None else phi_t[rows, :kt]
+    emb_t = pt @ C
+    emb_s = phi_s[:, :ks]
+    if extra_s is not None:
+        et = extra_t if rows is None else extra_t[rows]
+        emb_t = np.hstack([emb_t, et])
+        emb_s = np.hstack([emb_s, extra_s])
+    _, j = cKDTree(emb_s).query(emb_t, workers=-1)
+    return j.astype(np.int64)
+
+
+def zoomout(C0, phi_s, phi_t, mass_t, *, k_final: int, step: int = 10, extra_s=None, extra_t=None,
+            sample: int = 3000, seed: int = 0):
+    """Spectral upsampling of a functional map.
+
+    Each step maps target vertices to source vertices with the current ``C``
+    and recomputes a ``C`` one ``step`` larger. Intermediate steps use
+    ``sample`` random target vertices (area-weighted least squares on the
+    sample), the last step all of them.
+
+    Returns
+    -------
+    C : (k_final, k_final) float64 array
+    vertex_map : (n_t,) int64 array, target vertex -> source vertex
+    """
+    n_t = phi_t.shape[0]
+    rng = np.random.default_rng(seed)
+    rows = None if n_t <= sample else np.sort(rng.choice(n_t, sample, replace=False))
+    C = np.asarray(C0, float)
+    k = C.shape[0]
+    k_final = int(min(k_final, phi_s.shape[1], phi_t.shape[1]))
+    while True:
+        last = k >= k_final
+        r = None if last else rows
+        j = pointmap_from_fmap(C, phi_s, phi_t, extra_s=extra_s, extra_t=extra_t, rows=r)
+        if last:
+            C = phi_t[:, :k].T @ (mass_t[:, None] * phi_s[j, :k])
+            return C, j
+        k = min(k + step, k_final)
+        if r is None:
+            C = phi_t[:, :k].T @ (mass_t[:, None] * phi_s[j, :k])
+        else:
+            # least squares on the sample: Phi_t[r] C ~ Phi_s[j]
+            w = np.sqrt(mass_t[r])[:, None]
+            C = np.linalg.lstsq(w * phi_t[r, :k], w * phi_s[j, :k], rcond=None)[0]

@@ -1,0 +1,189 @@
+"""One mesh, its expensive operators computed once and then asked questions.
+
+A :class:`Shape` prepares (cleans) the mesh, then computes lazily and keeps:
+the cotangent stiffness and lumped mass, eigenbases of any size, orthogonal
+eigenfunction products, heat and wave kernel signatures. With a cache folder
+the eigenbasis and the products are also kept on disk, keyed by a hash of the
+cleaned geometry and the parameters, so a second session on the same mesh
+skips the solves. Everything is computed on the cleaned mesh; :meth:`restore`
+carries per-vertex results back to every original vertex.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from .laplacian import cotangent_laplacian, mass_matrix
+from .mesh import prepare_mesh
+# One import point for the modules being written in parallel (see _interim.py).
+from ._interim import (Cache, Eigenbasis, ProductBasis, eigenbasis, geometry_key, heat_kernel_rows,
+                       heat_kernel_signature, orthogonal_products, wave_kernel_signature)
+
+__all__ = ["Shape"]
+
+
+class Shape:
+    """A mesh with its spectral quantities, computed on demand and cached.
+
+    Parameters
+    ----------
+    vertices : (n, 3) float array
+    faces : (m, 3) int array, optional
+        Triangles; or give polygons as ``corners`` (flat vertex indices) and
+        ``sizes`` (corners per polygon).
+    corners : (c,) int array, optional
+    sizes : (p,) int array, optional
+    cache : Cache or path-like, optional
+        Folder cache for eigenbases and products.
+
+    Attributes
+    ----------
+    prepared : PreparedMesh
+    vertices : (n_clean, 3) float64 array
+    faces : (m_clean, 3) int64 array
+    hits : dict
+        How many eigenbasis / products requests were answered from memory or
+        disk, or computed.
+    """
+
+    def __init__(self, vertices, faces=None, *, corners=None, sizes=None, cache=None):
+        self.prepared = prepare_mesh(vertices, faces, corners=corners, sizes=sizes)
+        self.vertices = self.prepared.vertices
+        self.faces = self.prepared.faces
+        if cache is not None and not isinstance(cache, Cache):
+            cache = Cache(cache)
+        self.cache = cache
+        self.key = geometry_key(self.vertices, self.faces)
+        self.hits = {"memory": 0, "disk": 0, "computed": 0}
+        self._stiffness = None
+        self._mass = None
+        self._eig: Eigenbasis | None = None
+        self._products: dict = {}
+
+    # ------------------------------------------------------------------ sizes
+    @property
+    def n_vertices(self) -> int:
+        return len(self.vertices)
+
+    @property
+    def n_original(self) -> int:
+        return int(self.prepared.n_original)
+
+    @property
+    def stiffness(self):
+        """(n, n) csr_matrix, cotangent stiffness, positive semidefinite."""
+        if self._stiffness is None:
+            self._stiffness = cotangent_laplacian(self.vertices, self.faces)
+        return self._stiffness
+
+    @property
+    def mass(self) -> np.ndarray:
+        """(n,) float64 lumped barycentric mass; sums to the area."""
+        if self._mass is None:
+            self._mass = mass_matrix(self.vertices, self.faces)
+        return self._mass
+
+    @property
+    def area(self) -> float:
+        return float(self.mass.sum())
+
+    @property
+    def mean_edge(self) -> float:
+        e = self.vertices[self.faces] - self.vertices[np.roll(self.faces, 1, axis=1)]
+        return float(np.sqrt((e ** 2).sum(axis=2)).mean())
+
+    # ------------------------------------------------------------------ bases
+    def eigenbasis(self, k: int) -> Eigenbasis:
+        """The first ``k`` eigenpairs of ``L phi = lambda M phi``.
+
+        A larger basis computed earlier answers a smaller request.
+        """
+        k = int(min(k, self.n_vertices))
+        if self._eig is not None and self._eig.eigenvectors.shape[1] >= k:
+            self.hits["memory"] += 1
+            return _first(self._eig, k)
+        key = geometry_key(self.vertices, self.faces, what="eigenbasis", k=k)
+        if self.cache is not None:
+            stored = self.cache.load(key)
+            if stored is not None:
+                self.hits["disk"] += 1
+                self._eig = Eigenbasis(stored["eigenvalues"], stored["eigenvectors"], self.mass,
+                                       stored["residuals"], {"cache": "disk"})
+                return self._eig
+        self.hits["computed"] += 1
+        self._eig = eigenbasis(self.stiffness, self.mass, k)
+        if self.cache is not None:
+            self.cache.save(key, {"eigenvalues": self._eig.eigenvalues, "eigenvectors": self._eig.eigenvectors,
+                                  "residuals": self._eig.residuals})
+        return self._eig
+
+    def products(self, K: int, order: int, *, tol: float = 1e-8) -> ProductBasis:
+        """Mass-orthonormal products of the first ``K`` eigenfunctions up to ``order``."""
+        key = (int(K), int(order), float(tol))
+        if key in self._products:
+            self.hits["memory"] += 1
+            return self._products[key]
+        disk = geometry_key(self.vertices, self.faces, what="products", K=K, order=order, tol=tol)
+        if self.cache is not None:
+            stored = self.cache.load(disk)
+            if stored is not None:
+                self.hits["disk"] += 1
+                pb = ProductBasis(stored["basis"], stored["kept"], stored["exponents"], stored["coefficients"])
+                self._products[key] = pb
+                return pb
+        eb = self.eigenbasis(K)
+        self.hits["computed"] += 1
+        pb = orthogonal_products(eb.eigenvectors[:, :K], self.mass, order, K=K, tol=tol)
+        self._products[key] = pb
+        if self.cache is not None:
+            self.cache.save(disk, {"basis": pb.basis, "kept": pb.kept, "exponents": pb.exponents,
+                                   "coefficients": pb.coefficients})
+        return pb
+
+    # ------------------------------------------------------------------ descriptors
+    def hks(self, k: int = 60, count: int = 16, *, scale_invariant: bool = True) -> np.ndarray:
+        """Heat kernel signature, (n, count), on the area-normalised shape."""
+        lam, phi = self.normalised_basis(k)
+        return heat_kernel_signature(lam, phi, count=count)
+
+    def wks(self, k: int = 60, count: int = 16) -> np.ndarray:
+        """Wave kernel signature, (n, count)."""
+        lam, phi = self.normalised_basis(k)
+        return wave_kernel_signature(lam, phi, count=count)
+
+    def heat_rows(self, k: int, idx, times) -> np.ndarray:
+        """Heat kernel rows of the vertices ``idx`` at ``times`` (area-normalised)."""
+        lam, phi = self.normalised_basis(k)
+        return heat_kernel_rows(lam, phi, idx, times)
+
+    def normalised_basis(self, k: int) -> tuple[np.ndarray, np.ndarray]:
+        """Eigenpairs of the shape scaled to unit area: ``(lambda * A, phi * sqrt(A))``."""
+        eb = self.eigenbasis(k)
+        a = self.area
+        return eb.eigenvalues[:k] * a, eb.eigenvectors[:, :k] * np.sqrt(a)
+
+    # ------------------------------------------------------------------ maps
+    def restore(self, values) -> np.ndarray:
+        """Per-clean-vertex values -> per-original-vertex values."""
+        return self.prepared.restore(values)
+
+    def to_cleaned(self, values) -> np.ndarray:
+        """Per-original-vertex values -> per-clean-vertex values."""
+        return self.prepared.to_cleaned(values)
+
+    def original_index(self, idx) -> np.ndarray:
+        """Clean indices of original vertex indices; ValueError for dropped ones."""
+        idx = np.asarray(idx, dtype=np.int64)
+        if idx.size and (idx.min() < 0 or idx.max() >= self.n_original):
+            raise ValueError(f"vertex index {int(idx.max() if idx.max() >= self.n_original else idx.min())} "
+                             f"out of range for {self.n_original} vertices")
+        clean = np.asarray(self.prepared.to_clean)[idx]
+        if (clean < 0).any():
+            raise ValueError(f"vertex {int(idx[clean < 0][0])} is in no triangle")
+        return clean
+
+
+def _first(eb: Eigenbasis, k: int) -> Eigenbasis:
+    if eb.eigenvectors.shape[1] == k:
+        return eb
+    return Eigenbasis(eb.eigenvalues[:k], eb.eigenvectors[:, :k], eb.mass, eb.residuals[:k], dict(eb.info))

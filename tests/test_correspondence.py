@@ -1,0 +1,104 @@
+"""Correspondence on ground-truth pairs (tests/pairs.py)."""
+
+import numpy as np
+import pytest
+
+from engine.correspondence import correspond
+from engine.shape import Shape
+from tests import pairs
+
+
+def _shapes(p):
+    return Shape(p.source_vertices, p.source_faces), Shape(p.target_vertices, p.target_faces)
+
+
+def _map_error(p, c):
+    pts = np.einsum("ij,ijk->ik", c.barycentric, p.source_rest[c.source.prepared.from_clean][c.source.faces[c.triangle]])
+    return np.linalg.norm(pts - p.target_rest[c.target.prepared.from_clean], axis=1) / np.sqrt(c.source.area)
+
+
+def test_rigid_copy_maps_every_vertex_to_itself():
+    p = pairs.creature_rigid(size=(20, 14))
+    S, T = _shapes(p)
+    c = correspond(S, T)
+    assert c.mode == "intrinsic" and "auto" in c.reason
+    corner = S.faces[c.triangle, np.argmax(c.barycentric, axis=1)]
+    # target vertex i is the shuffled copy of source vertex with the same rest position
+    np.testing.assert_allclose(S.vertices[corner], p.target_rest[T.prepared.from_clean], atol=1e-12)
+    assert _map_error(p, c).max() < 1e-9
+    assert c.stats["coverage_of_source_area"] > 0.99
+
+
+def test_aligned_two_resolutions_picks_aligned_and_is_close():
+    p = pairs.creature_resolution(source=(30, 18), target=(40, 24))
+    S, T = _shapes(p)
+    c = correspond(S, T)
+    assert c.mode == "aligned"
+    assert _map_error(p, c).mean() < 0.01
+    assert c.confidence.min() >= 0 and c.confidence.max() <= 1
+    assert c.fmap.shape[0] == c.fmap.shape[1]
+
+
+def test_posed_pair_with_landmarks_beats_closest_points():
+    p = pairs.creature_pose(source=(30, 18), target=(26, 16))
+    S, T = _shapes(p)
+    c = correspond(S, T, landmarks=p.landmarks)
+    base = correspond(S, T, match="aligned")
+    assert c.mode == "intrinsic"
+    sc = pairs.rest_scale(p)
+    truth = pairs.colour(p.target_rest, sc)
+    err = np.sqrt(((c.pull(pairs.colour(p.source_rest, sc)) - truth) ** 2).mean())
+    err0 = np.sqrt(((base.pull(pairs.colour(p.source_rest, sc)) - truth) ** 2).mean())
+    assert err < 0.33 * err0   # goal: posed pairs >= 3x lower colour RMSE than closest points
+    mask = c.pull_labels(pairs.mask(p.source_rest, sc))
+    assert mask.dtype == bool and (mask != pairs.mask(p.target_rest, sc)).mean() < 0.15
+
+
+def test_pull_and_labels_shapes_and_errors():
+    p = pairs.creature_resolution(source=(16, 10), target=(20, 12))
+    S, T = _shapes(p)
+    c = correspond(S, T, match="aligned")
+    labels = np.arange(S.n_original) % 5
+    out = c.pull_labels(labels)
+    assert out.shape == (T.n_original,) and set(np.unique(out)) <= set(range(5))
+    with pytest.raises(ValueError, match="one row per source vertex"):
+        c.pull(np.zeros(3))
+    with pytest.raises(ValueError, match="non-finite"):
+        c.pull(np.full(S.n_original, np.nan))
+    with pytest.raises(ValueError, match="unknown match 'nope'"):
+        correspond(S, T, match="nope")
+    with pytest.raises(ValueError, match="landmarks must be"):
+        correspond(S, T, landmarks=[(0, 1, 2)])
+    with pytest.raises(ValueError, match="out of range"):
+        correspond(S, T, landmarks=[(0, 10 ** 6)])
+    with pytest.raises(ValueError, match="Shape objects"):
+        correspond(p.source_vertices, T)
+
+
+@pytest.mark.refdata
+def test_cow_obj_against_cow_off_is_the_identity():
+    # pymeshlab cow.obj and CGAL cow.off: same faces, vertices under rotation + scale (PLATFORM.md)
+    p = pairs.cow_rigid()
+    S, T = _shapes(p)
+    c = correspond(S, T)
+    assert c.mode == "intrinsic"
+    corner = S.faces[c.triangle, np.argmax(c.barycentric, axis=1)]
+    src_orig = S.prepared.from_clean[corner]
+    np.testing.assert_allclose(p.source_rest[src_orig], p.target_rest[T.prepared.from_clean], atol=1e-9)
+    # the alignment step re-projects onto a deformed copy fitted to file coordinates
+    # rounded to a few digits, so the weight at the vertex is 1 up to ~1e-3
+    assert np.abs(c.barycentric.max(axis=1) - 1).max() < 2e-3
+
+
+@pytest.mark.refdata
+def test_bent_elephant_with_landmarks_beats_closest_points_threefold():
+    p = pairs.elephant_bent()
+    S, T = _shapes(p)
+    c = correspond(S, T, landmarks=p.landmarks)
+    base = correspond(S, T, match="aligned")
+    sc = pairs.rest_scale(p)
+    src, truth = pairs.colour(p.source_rest, sc), pairs.colour(p.target_rest, sc)
+    err = np.sqrt(((c.pull(src) - truth) ** 2).mean())
+    err0 = np.sqrt(((base.pull(src) - truth) ** 2).mean())
+    assert err < err0 / 3
+    assert _map_error(p, c).mean() < 0.03

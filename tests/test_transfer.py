@@ -1,0 +1,67 @@
+"""Transfer of signals through bases, on ground-truth pairs."""
+
+import numpy as np
+import pytest
+
+from engine.correspondence import correspond
+from engine.shape import Shape
+from engine.transfer import Transfer
+from tests import pairs
+
+
+@pytest.fixture(scope="module")
+def pair():
+    p = pairs.creature_resolution(source=(24, 14), target=(30, 18))
+    S, T = Shape(p.source_vertices, p.source_faces), Shape(p.target_vertices, p.target_faces)
+    return p, S, T, correspond(S, T)
+
+
+@pytest.mark.parametrize("basis", ["pointwise", "laplacian", "orthoproducts", "products"])
+def test_colour_close_to_truth_and_within_range(pair, basis):
+    p, S, T, c = pair
+    sc = pairs.rest_scale(p)
+    tr = Transfer(S, T, c, basis=basis, k=60)
+    r = tr.transfer(pairs.colour(p.source_rest, sc), kind="color")
+    assert r.values.shape == (T.n_original, 3)
+    assert r.values.min() >= 0 and r.values.max() <= 1
+    rmse = np.sqrt(((r.values - pairs.colour(p.target_rest, sc)) ** 2).mean())
+    assert rmse < 0.03
+    assert 0 <= r.source_error < 0.05
+    if basis == "pointwise":
+        assert r.source_error == 0.0
+
+
+def test_warm_transfer_is_linear_and_reuses_bases(pair):
+    p, S, T, c = pair
+    tr = Transfer(S, T, c, basis="orthoproducts")
+    hits = dict(S.hits)
+    f = np.random.default_rng(0).uniform(0.2, 0.8, (S.n_original, 3))
+    a, b = tr.transfer(f).values, tr.transfer(0.5 * f).values
+    np.testing.assert_allclose(b, 0.5 * a, atol=1e-12)
+    assert S.hits == hits   # nothing recomputed
+
+
+def test_labels_and_masks_never_blended(pair):
+    p, S, T, c = pair
+    tr = Transfer(S, T, c, basis="laplacian", k=30)
+    lab = tr.transfer(np.arange(S.n_original) % 7, kind="label").values
+    assert set(np.unique(lab)) <= set(range(7))
+    m = tr.transfer(np.arange(S.n_original) % 2 == 0, kind="mask").values
+    assert m.dtype == bool
+
+
+def test_errors(pair):
+    p, S, T, c = pair
+    with pytest.raises(ValueError, match="unknown basis 'fourier'"):
+        Transfer(S, T, c, basis="fourier")
+    with pytest.raises(ValueError, match="another source/target pair"):
+        Transfer(T, S, c)
+    tr = Transfer(S, T, c)
+    with pytest.raises(ValueError, match="unknown signal kind 'rgb'"):
+        tr.transfer(np.zeros((S.n_original, 3)), kind="rgb")
+    with pytest.raises(ValueError, match="rows"):
+        tr.transfer(np.zeros((5, 3)))
+    bad = np.zeros((S.n_original, 3))
+    bad[3, 1] = np.nan
+    with pytest.raises(ValueError, match="finite|NaN|nan"):
+        tr.transfer(bad)
