@@ -138,9 +138,10 @@ def body_point(uv, *, curl: float = 0.0, bumps: float = 0.012) -> np.ndarray:
 
 
 def _scales(u: np.ndarray, v: np.ndarray) -> np.ndarray:
-    # a lattice of small round bumps, fading out at the tips
+    # an egg-crate lattice of small bumps and dimples (zero mean, so the
+    # bumps do not inflate the overall shape), fading out at the tips
     fade = np.sin(np.pi * np.clip(u, 0, 1)) ** 2
-    return fade * np.clip(np.cos(2 * np.pi * 40 * u) * np.cos(2 * np.pi * 16 * v), 0, None) ** 2
+    return fade * np.cos(2 * np.pi * 40 * u) * np.cos(2 * np.pi * 16 * v)
 
 
 def creature_signals(uv) -> dict[str, np.ndarray]:

@@ -1,8 +1,13 @@
 """Surface detail: split a shape into a smooth base and local displacements.
 
-A surface ``x`` is split into a base ``b`` (its coordinates low-passed in its
-own Laplacian eigenbasis: the first ``base_size`` eigenfunctions) and a
-displacement ``x - b``. The displacement is expressed in an orthonormal frame
+A surface ``x`` is split into a base ``b`` (its coordinates low-passed by the
+spectral filter ``1 / (1 + t lambda)^2`` of its own Laplacian: two implicit
+heat-flow steps, ``(M + t L) b = M x``, with ``t`` set from the wavelength
+that separates detail from shape) and a displacement ``x - b``. A smooth
+filter, unlike truncating the eigenbasis, leaves on a smooth surface a
+residual close to ``2 t H n`` (mean curvature times the normal): local and
+much the same on two meshings of one shape, so detail carried from one to
+the other does not pick up ringing of the overall shape. The displacement is expressed in an orthonormal frame
 of the base surface at every vertex (two tangents and the normal), so it moves
 with the surface when the shape bends. To carry detail to another mesh, the
 per-vertex local offsets are pulled through a correspondence and added to the
@@ -22,8 +27,8 @@ import numpy as np
 
 from .mesh import validate_mesh
 
-__all__ = ["DetailLayer", "vertex_normals", "vertex_gradients", "tangent_frames", "low_pass",
-           "split_detail", "apply_detail"]
+__all__ = ["DetailLayer", "vertex_normals", "vertex_gradients", "tangent_frames",
+           "smooth_base", "split_detail", "apply_detail"]
 
 
 @dataclass(frozen=True)
@@ -126,23 +131,52 @@ def tangent_frames(vertices, faces, guides) -> np.ndarray:
     return np.stack([t1, t2, n], axis=1)
 
 
-def low_pass(vertices, eigenvectors, mass, base_size: int) -> np.ndarray:
-    """Coordinates reconstructed from the first ``base_size`` eigenfunctions, (n, 3)."""
-    phi = np.asarray(eigenvectors, dtype=np.float64)
-    m = np.asarray(mass, dtype=np.float64)
+def smooth_base(vertices, stiffness, mass, *, wavelength: float) -> np.ndarray:
+    """Coordinates low-passed by ``1 / (1 + t lambda)^2``, (n, 3).
+
+    Parameters
+    ----------
+    vertices : (n, 3) float array
+    stiffness : (n, n) sparse matrix, the PSD cotangent Laplacian
+    mass : (n,) float array
+    wavelength : float
+        Features shorter than this are detail. ``t = (wavelength / 2 pi)^2``:
+        a wave of this length (``lambda = (2 pi / wavelength)^2``) keeps a
+        quarter of its amplitude in the base, shorter waves less.
+    """
+    import scipy.sparse as sp
+    import scipy.sparse.linalg as spla
+
     v = np.asarray(vertices, dtype=np.float64)
-    if phi.ndim != 2 or phi.shape[0] != v.shape[0] or m.shape != (v.shape[0],):
-        raise ValueError(f"eigenvectors {phi.shape} and mass {m.shape} do not fit {v.shape[0]} vertices")
-    if not 1 <= base_size <= phi.shape[1]:
-        raise ValueError(f"base_size must be between 1 and {phi.shape[1]} (the eigenfunctions given), got {base_size}")
-    p = phi[:, :base_size]
-    return p @ (p.T @ (m[:, None] * v))
+    m = np.asarray(mass, dtype=np.float64)
+    if not (np.isfinite(wavelength) and wavelength > 0):
+        raise ValueError(f"wavelength must be positive, got {wavelength}")
+    if stiffness.shape != (v.shape[0], v.shape[0]) or m.shape != (v.shape[0],):
+        raise ValueError(f"stiffness {stiffness.shape} and mass {m.shape} do not fit {v.shape[0]} vertices")
+    t = (wavelength / (2 * np.pi)) ** 2
+    solve = spla.factorized(sp.csc_matrix(sp.diags(m) + t * stiffness))
+    b = v
+    for _ in range(2):
+        b = np.column_stack([solve(m * b[:, i]) for i in range(3)])
+    return b
 
 
-def split_detail(vertices, faces, eigenvectors, mass, *, base_size: int, guides) -> DetailLayer:
-    """Split a surface into its smooth base and local-frame offsets."""
+def split_detail(vertices, faces, base, *, guides) -> DetailLayer:
+    """Split a surface into a given smooth base and local-frame offsets.
+
+    Parameters
+    ----------
+    vertices : (n, 3) float array
+    faces : (m, 3) int array
+    base : (n, 3) float array
+        The smooth base (:func:`smooth_base`).
+    guides : (n, g) float array
+        Guide fields for the tangent frames (:func:`tangent_frames`).
+    """
     v, f = validate_mesh(vertices, faces)
-    base = low_pass(v, eigenvectors, mass, base_size)
+    base = np.asarray(base, dtype=np.float64)
+    if base.shape != v.shape:
+        raise ValueError(f"base must have shape {v.shape}, got {base.shape}")
     frames = tangent_frames(base, f, guides)
     offsets = np.einsum("nij,nj->ni", frames, v - base)
     return DetailLayer(base, frames, offsets)

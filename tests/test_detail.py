@@ -7,7 +7,7 @@ import scipy.sparse.linalg as sla
 
 from engine import cotangent_laplacian, mass_matrix
 from engine.demo import creature
-from engine.detail import apply_detail, low_pass, split_detail, tangent_frames, vertex_gradients, vertex_normals
+from engine.detail import apply_detail, smooth_base, split_detail, tangent_frames, vertex_gradients, vertex_normals
 from tests import meshes
 
 
@@ -43,37 +43,41 @@ def test_frames_are_orthonormal_and_right_handed():
 
 def test_split_then_apply_restores_the_surface():
     c = creature(30, 16)
-    phi, m = _eig(c.vertices, c.faces, 20)
-    layer = split_detail(c.vertices, c.faces, phi, m, base_size=12, guides=phi[:, 1:3])
+    phi, m = _eig(c.vertices, c.faces, 4)
+    base = smooth_base(c.vertices, cotangent_laplacian(c.vertices, c.faces), m, wavelength=0.3)
+    layer = split_detail(c.vertices, c.faces, base, guides=phi[:, 1:3])
     np.testing.assert_allclose(apply_detail(layer, layer.offsets), c.vertices, atol=1e-12)
     np.testing.assert_allclose(apply_detail(layer, layer.offsets, strength=0.0), layer.base)
 
 
-def test_low_pass_removes_a_high_degree_bump_from_the_sphere():
-    # Bump the unit sphere by eps * P4(z) (a degree-4 zonal harmonic). The
-    # coordinates of the bumped sphere are x_i (1 + eps P4): x_i * P4 lies in
-    # degrees 3 and 5 only (products of spherical harmonics, Gaunt
-    # coefficients), so the low pass onto degrees 0 and 1 (the constant and
-    # the 3 coordinate functions: 4 eigenfunctions) returns the unit sphere.
+def test_smooth_base_filters_each_eigenfunction_by_its_eigenvalue():
+    # On the unit sphere the coordinates are eigenfunctions with lambda = 2
+    # (l = 1: l(l+1)), so two implicit steps give x / (1 + 2t)^2. A degree-4
+    # zonal bump eps * P4(z) along the normal adds x_i * P4, which lies in
+    # degrees 3 and 5 only (Gaunt coefficients; lambda = 12 and 30), so the
+    # filter keeps between eps / (1 + 30t)^2 and eps / (1 + 12t)^2 of it.
     v, f = meshes.icosphere(4)
-    phi, m = _eig(v, f, 4)
-    z = v[:, 2]
-    eps = 0.05
+    L, m = cotangent_laplacian(v, f), mass_matrix(v, f)
+    wavelength = 1.0
+    t = (wavelength / (2 * np.pi)) ** 2
+    base = smooth_base(v, L, m, wavelength=wavelength)
+    np.testing.assert_allclose(base, v / (1 + 2 * t) ** 2, atol=2e-3)  # discretisation, O(h^2)
+    z, eps = v[:, 2], 0.05
     bumped = v * (1 + eps * (35 * z**4 - 30 * z**2 + 3) / 8)[:, None]
-    # Compare with the low pass of the unbumped sphere, which removes the
-    # discretisation error of the eigenfunctions themselves.
-    leak = np.abs(low_pass(bumped, phi, m, 4) - low_pass(v, phi, m, 4)).max()
-    assert leak < 1e-3 * eps  # measured 1.0e-5 * eps at 2,562 vertices
-    assert np.abs(bumped - v).max() > 0.9 * eps  # the bump itself is there
+    kept = np.abs(smooth_base(bumped, L, m, wavelength=wavelength) - base).max()
+    assert kept < eps / (1 + 12 * t) ** 2 + 2e-3
+    assert kept > eps / (1 + 30 * t) ** 2 - 2e-3
 
 
 def test_errors():
     v, f = meshes.icosphere(1)
     phi = np.ones((len(v), 3))
-    with pytest.raises(ValueError, match="base_size must be between 1 and 3"):
-        low_pass(v, phi, np.ones(len(v)), 5)
+    with pytest.raises(ValueError, match="wavelength must be positive"):
+        smooth_base(v, cotangent_laplacian(v, f), np.ones(len(v)), wavelength=0.0)
     with pytest.raises(ValueError, match="field must have shape"):
         vertex_gradients(v, f, np.ones(3))
-    layer = split_detail(v, f, np.ones((len(v), 1)) / np.sqrt(len(v)), np.ones(len(v)), base_size=1, guides=v[:, 0])
+    with pytest.raises(ValueError, match=r"base must have shape \(42, 3\)"):
+        split_detail(v, f, v[:3], guides=v[:, 0])
+    layer = split_detail(v, f, 0.9 * v, guides=v[:, 0])
     with pytest.raises(ValueError, match="offsets contain non-finite"):
         apply_detail(layer, np.full(v.shape, np.nan))

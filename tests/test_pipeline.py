@@ -1,0 +1,95 @@
+"""The pair facade and the file jobs (engine/pipeline.py)."""
+
+import json
+
+import numpy as np
+import pytest
+
+from engine.demo import creature, creature_signals
+from engine.meshio import read_mesh, write_ply
+from engine.pipeline import Pair, Settings, load_landmarks, run_transfer_job, weighted_centre_vertex
+from engine.shape import Shape
+
+
+@pytest.fixture(scope="module")
+def aligned_pair():
+    src = creature(40, 20)
+    tgt = creature(50, 24, twist_offset=True, shuffle_seed=4)
+    return src, tgt, Pair(Shape(src.vertices, src.faces), Shape(tgt.vertices, tgt.faces), Settings(match="aligned"))
+
+
+def test_carry_validates_every_signal_before_carrying(aligned_pair):
+    src, tgt, pair = aligned_pair
+    good = creature_signals(src.uv)["tint"]
+    with pytest.raises(ValueError, match="signal 'bad' has a non-finite value"):
+        pair.carry({"tint": (good, "color"), "bad": (np.full(len(src.vertices), np.nan), "float")})
+
+
+def test_identical_meshes_carry_detail_exactly():
+    # A mesh mapped to itself: every vertex lands on itself (closest point is
+    # the vertex), so the target's new positions are the source's.
+    c = creature(30, 16, bumps=0.02)
+    pair = Pair(Shape(c.vertices, c.faces), Shape(c.vertices, c.faces), Settings(match="aligned"))
+    np.testing.assert_allclose(pair.detail(), c.vertices, atol=1e-9)
+    # strength 0 leaves the smooth base: the bumps are gone
+    assert np.abs(pair.detail(strength=0.0) - c.vertices).mean() > 1e-4
+
+
+def test_report_is_json(aligned_pair):
+    src, _, pair = aligned_pair
+    res = pair.carry({"head": (creature_signals(src.uv)["head"], "weight")})
+    report = pair.report(res)
+    assert report["mode"] == "aligned"
+    assert 0.0 <= report["signals"]["head"]["source_error"] <= 1.0
+    json.dumps(report)
+
+
+def test_weighted_centre_vertex():
+    v = np.array([[0, 0, 0], [1, 0, 0], [2, 0, 0], [3, 0, 0.0]])
+    assert weighted_centre_vertex(v, [0, 1, 1, 0]) in (1, 2)
+    assert weighted_centre_vertex(v, [0, 0, 1, 3]) == 3
+    with pytest.raises(ValueError, match="not all zero"):
+        weighted_centre_vertex(v, np.zeros(4))
+
+
+def test_landmark_file_errors(tmp_path):
+    p = tmp_path / "pairs.json"
+    p.write_text("[[0, 1], [2, 99]]")
+    with pytest.raises(ValueError, match="target vertex 99 out of range for 50 vertices"):
+        load_landmarks(p, 10, 50)
+    p.write_text("{oops")
+    with pytest.raises(ValueError, match="not valid JSON"):
+        load_landmarks(p, 10, 50)
+    p.write_text("[[0, 1.5]]")
+    with pytest.raises(ValueError, match="two whole numbers"):
+        load_landmarks(p, 10, 50)
+
+
+def test_settings_errors():
+    with pytest.raises(ValueError, match="unknown basis 'fourier'"):
+        Settings(basis="fourier")
+    with pytest.raises(ValueError, match="unknown match 'nearest'"):
+        Settings(match="nearest")
+    with pytest.raises(ValueError, match="order must be between 1 and 5"):
+        Settings(order=6)
+
+
+def test_transfer_job_writes_every_property_with_its_type(tmp_path, aligned_pair):
+    src, tgt, _ = aligned_pair
+    s = creature_signals(src.uv)
+    from engine.color import encode_bytes
+    write_ply(tmp_path / "s.ply", src.vertices, faces=src.faces,
+              properties={"color": encode_bytes(s["tint"]), "dirt": s["dirt"].astype(np.float32),
+                          "stripe_id": s["stripe_id"].astype(np.int32)})
+    write_ply(tmp_path / "t.ply", tgt.vertices, faces=tgt.faces)
+    report = run_transfer_job(tmp_path / "s.ply", tmp_path / "t.ply", tmp_path / "o.ply",
+                              report_path=tmp_path / "r.json", match="aligned")
+    out = read_mesh(tmp_path / "o.ply")
+    assert out.properties["color"].dtype == np.uint8 and out.properties["color"].shape == (len(tgt.vertices), 3)
+    assert out.properties["dirt"].dtype == np.float32
+    assert out.properties["stripe_id"].dtype == np.int32
+    assert set(np.unique(out.properties["stripe_id"])) <= set(np.unique(s["stripe_id"]))  # labels never blended
+    conf = out.properties["confidence"]
+    assert conf.dtype == np.float32 and conf.min() >= 0 and conf.max() <= 1
+    assert json.loads((tmp_path / "r.json").read_text())["mode"] == report["mode"] == "aligned"
+    np.testing.assert_array_equal(out.vertices, tgt.vertices)
