@@ -92,7 +92,7 @@ def blender_sandbox_env(base: dict[str, str] | None = None) -> dict[str, str]:
     return env
 
 
-_SUMMARY = re.compile(r"=+ (.*) in [\d.]+s")
+_SUMMARY = re.compile(r"^=*\s*((?:\d+ \w+(?:, )?)+) in [\d.]+s")
 
 
 def _pytest(python: Path, args: list[str], label: str, env: dict[str, str]) -> tuple[int, dict[str, int]]:
