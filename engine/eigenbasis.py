@@ -373,7 +373,6 @@ def _nested_dissection(G: sp.csr_matrix, m: np.ndarray, leaf: int = _LEAF):
         if verts.size <= leaf:
             continue
         d = csgraph.dijkstra(W, indices=int(verts[0]))
-        far = np.full(n, -1.0)
         mind = np.full(n, np.inf)
         for j in range(4):
             cand = d[verts] if j == 0 else mind[verts]
@@ -381,7 +380,6 @@ def _nested_dissection(G: sp.csr_matrix, m: np.ndarray, leaf: int = _LEAF):
             dj = csgraph.dijkstra(W, indices=land)
             coords[verts, j] = dj[verts]
             mind[verts] = np.minimum(mind[verts], dj[verts])
-        del far
     U = sp.triu(G, 1).tocoo()
     ei, ej = U.row.astype(np.int64), U.col.astype(np.int64)
     out: list[np.ndarray] = []
