@@ -475,21 +475,22 @@ class _BlockFactor:
             else:
                 G = Linv
             stored += G.size
-            self.blocks.append((int(a), int(b), R, np.ascontiguousarray(G), np.ascontiguousarray(G.T)))
+            self.blocks.append((int(a), int(b), R, np.ascontiguousarray(G)))
         self.stored = stored
 
     def solve(self, B: np.ndarray) -> np.ndarray:
         """``A^{-1} B`` for (n, r) ``B``."""
         y = np.array(B[self.perm], dtype=np.float64, order="C")
-        for a, b, R, G, _ in self.blocks:
+        for a, b, R, G in self.blocks:
             t = G @ y[a:b]
             s = b - a
             y[a:b] = t[:s]
             if R.size:
                 y[R] -= t[s:]
         y /= self.d[:, None]
-        for a, b, R, _, GT in reversed(self.blocks):
+        for a, b, R, G in reversed(self.blocks):
             s = b - a
+            GT = G.T
             if R.size:
                 y[a:b] = GT[:, :s] @ y[a:b] - GT[:, s:] @ y[R]
             else:
@@ -603,12 +604,16 @@ def _sparse(L, m, p, Z, *, seed, tol, k_needed):
             best = min(best, worst)
             if stall >= 3 or cycles >= 60:
                 break
-            Qold = Q
-            Q, H = X, np.diag(mu)
+            Qprev = Q
+            Q, H = X, np.diag(mu)  # thick restart (Krylov-Schur)
         else:
-            Qold = Q
+            Qprev = Q
         t1 = time.perf_counter()
-        W = _orthonormal(_orth_against(F, Qold))  # second pass of CGS2, then normalise
+        # Second classical Gram-Schmidt pass (CGS2; C above was the first).
+        # A single pass was tried: 25-40% less time here, but the lost
+        # orthogonality mixed neighbouring Ritz vectors (residual 1.4e-6
+        # instead of 1e-8 on the icosphere), so both passes stay.
+        W = _orthonormal(_orth_against(F, Qprev))
         t_orth += time.perf_counter() - t1
         if W.shape[1] == 0:
             break

@@ -11,6 +11,16 @@ from engine.laplacian import cotangent_laplacian, intrinsic_laplacian, mass_matr
 from tests.meshes import grid, icosphere, noisy_sphere
 
 
+@pytest.fixture(autouse=True, scope="module")
+def _one_blas_thread():
+    # The 2-core test machine is shared; two BLAS threads competing with
+    # other processes made the many small matrix products here 5-10x slower.
+    from threadpoolctl import threadpool_limits
+
+    with threadpool_limits(limits=1):
+        yield
+
+
 def _ops(v, f):
     return cotangent_laplacian(v, f), mass_matrix(v, f)
 
