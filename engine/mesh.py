@@ -1,14 +1,35 @@
 """Mesh intake: the one validator at the door, triangulation and cleaning.
 
 Every public entry point of the engine that takes a mesh calls
-:func:`validate_mesh` first.
+:func:`validate_mesh` first. :func:`prepare_mesh` takes what a file or a host
+application holds (triangles, or polygons as corners and sizes), triangulates
+it, and cleans it without losing data: whatever is welded, dropped or set aside
+is remembered, so per-vertex results on the cleaned mesh can be handed back for
+every original vertex (:meth:`PreparedMesh.restore`).
 """
 
 from __future__ import annotations
 
-import numpy as np
+from dataclasses import dataclass
 
-__all__ = ["validate_mesh"]
+import numpy as np
+import scipy.sparse as sp
+from scipy.sparse.csgraph import connected_components
+from scipy.spatial import cKDTree
+
+from ._triangulate import triangulate
+
+__all__ = ["validate_mesh", "prepare_mesh", "PreparedMesh"]
+
+# Triangles with area <= _ZERO_AREA * (bounding-box diagonal)**2 are dropped.
+# The area comes from a cross product of edge vectors whose coordinates are at
+# most the diagonal d in size; in float64 each product carries a rounding error
+# of about 1.1e-16 * d**2, so an area below a few hundred ulp of d**2 cannot be
+# told from zero. 1e-14 * d**2 is about 45 ulp: it catches collapsed and exactly
+# collinear triangles (whose computed area is pure rounding noise) while a real
+# sliver, even one with an edge ratio of 1e-6 on a 1e-3-diagonal feature, has
+# an area many orders of magnitude above it (common practice).
+_ZERO_AREA = 1e-14
 
 
 def validate_mesh(vertices, faces) -> tuple[np.ndarray, np.ndarray]:
@@ -31,14 +52,8 @@ def validate_mesh(vertices, faces) -> tuple[np.ndarray, np.ndarray]:
         With a message naming the problem: no vertices, no faces, a wrong
         shape or dtype, an index out of range, a non-finite coordinate.
     """
-    v = np.asarray(vertices)
+    v = _validate_vertices(vertices)
     f = np.asarray(faces)
-    if v.dtype == object or not (np.issubdtype(v.dtype, np.floating) or np.issubdtype(v.dtype, np.integer)):
-        raise ValueError(f"vertices must be a numeric array, got dtype {v.dtype}")
-    if v.ndim != 2 or v.shape[1] != 3:
-        raise ValueError(f"vertices must have shape (n, 3), got {v.shape}")
-    if v.shape[0] == 0:
-        raise ValueError("mesh has no vertices")
     if f.dtype == object or not np.issubdtype(f.dtype, np.integer):
         if f.size == 0:
             f = f.reshape(0, 3).astype(np.int64) if f.ndim == 2 or f.size == 0 else f
@@ -48,12 +63,6 @@ def validate_mesh(vertices, faces) -> tuple[np.ndarray, np.ndarray]:
         raise ValueError(f"faces must have shape (m, 3) (triangles), got {f.shape}")
     if f.shape[0] == 0:
         raise ValueError("mesh has no faces")
-    v = np.ascontiguousarray(v, dtype=np.float64)
-    bad = ~np.isfinite(v).all(axis=1)
-    if bad.any():
-        i = int(np.flatnonzero(bad)[0])
-        raise ValueError(f"vertex {i} has a non-finite coordinate {v[i].tolist()} "
-                         f"({int(bad.sum())} such vertices)")
     n = v.shape[0]
     lo, hi = int(f.min()), int(f.max())
     if lo < 0 or hi >= n:
@@ -61,3 +70,363 @@ def validate_mesh(vertices, faces) -> tuple[np.ndarray, np.ndarray]:
         value = hi if hi >= n else lo
         raise ValueError(f"faces index {value} out of range for {n} vertices (face {int(which)})")
     return v, np.ascontiguousarray(f, dtype=np.int64)
+
+
+def _validate_vertices(vertices) -> np.ndarray:
+    """The vertex half of :func:`validate_mesh`: (n, 3) finite numbers, as float64."""
+    v = np.asarray(vertices)
+    if v.dtype == object or not (np.issubdtype(v.dtype, np.floating) or np.issubdtype(v.dtype, np.integer)):
+        raise ValueError(f"vertices must be a numeric array, got dtype {v.dtype}")
+    if v.ndim != 2 or v.shape[1] != 3:
+        raise ValueError(f"vertices must have shape (n, 3), got {v.shape}")
+    if v.shape[0] == 0:
+        raise ValueError("mesh has no vertices")
+    v = np.ascontiguousarray(v, dtype=np.float64)
+    bad = ~np.isfinite(v).all(axis=1)
+    if bad.any():
+        i = int(np.flatnonzero(bad)[0])
+        raise ValueError(f"vertex {i} has a non-finite coordinate {v[i].tolist()} "
+                         f"({int(bad.sum())} such vertices)")
+    return v
+
+
+def _validate_polygons(corners, sizes, n: int) -> tuple[np.ndarray, np.ndarray]:
+    """Check polygons given as a flat corner list and per-polygon sizes.
+
+    Parameters
+    ----------
+    corners : (c,) integer array
+    sizes : (f,) integer array
+    n : int
+        Number of vertices the corners index into.
+
+    Returns
+    -------
+    corners : (c,) int64 array
+    sizes : (f,) int64 array
+    """
+    c = np.asarray(corners)
+    s = np.asarray(sizes)
+    for name, a in (("corners", c), ("sizes", s)):
+        if a.size == 0:
+            a = a.reshape(0)
+        elif a.dtype == object or not np.issubdtype(a.dtype, np.integer):
+            raise ValueError(f"{name} must be an integer array, got dtype {a.dtype}")
+        if a.ndim != 1:
+            raise ValueError(f"{name} must be one-dimensional, got shape {a.shape}")
+    c = np.ascontiguousarray(c.reshape(-1), dtype=np.int64)
+    s = np.ascontiguousarray(s.reshape(-1), dtype=np.int64)
+    if s.size == 0:
+        raise ValueError("mesh has no faces")
+    small = np.flatnonzero(s < 3)
+    if small.size:
+        i = int(small[0])
+        raise ValueError(f"polygon {i} has {int(s[i])} corners, at least 3 needed "
+                         f"({small.size} such polygons)")
+    total = int(s.sum())
+    if total != c.size:
+        raise ValueError(f"polygon sizes add up to {total} corners but {c.size} corners were given")
+    bad = np.flatnonzero((c < 0) | (c >= n))
+    if bad.size:
+        j = int(bad[0])
+        polygon = int(np.searchsorted(np.cumsum(s), j, side="right"))
+        raise ValueError(f"corners index {int(c[j])} out of range for {n} vertices (polygon {polygon})")
+    return c, s
+
+
+@dataclass(frozen=True)
+class PreparedMesh:
+    """A cleaned triangle mesh with the map back to the mesh it came from.
+
+    Attributes
+    ----------
+    vertices : (n', 3) float64 array
+        Only vertices that some kept triangle uses, in original order.
+    faces : (m', 3) int64 array
+        Triangles indexing ``vertices``, each keeping its polygon's winding.
+    to_clean : (n,) int64 array
+        For every original vertex its index in ``vertices``; -1 for a vertex no
+        kept triangle uses (neither itself nor an exact copy of it).
+    from_clean : (n',) int64 array
+        For every cleaned vertex one original vertex: the lowest original index
+        among the exact copies welded into it.
+    restore_index : (n,) int64 array
+        For every original vertex the cleaned vertex whose value it receives in
+        :meth:`restore`: ``to_clean`` where that is set, else the spatially
+        nearest cleaned vertex.
+    tri_polygon : (m',) int64 array
+        For every kept triangle the original polygon (or input triangle) index.
+    n_original : int
+        Number of original vertices ``n``.
+    n_components : int
+        Connected components of the cleaned mesh (through shared vertices).
+    component : (n',) int64 array
+        Component label of each cleaned vertex, ``0 .. n_components - 1``.
+    n_boundary_loops : int
+        Closed chains of boundary edges (edges used by exactly one triangle).
+    non_manifold_edges : int
+        Edges used by more than two triangles.
+    non_manifold_vertices : int
+        Vertices whose triangles do not form one edge-connected fan (a bow-tie
+        vertex where two sheets touch at a point counts; so does every vertex
+        whose fans are joined only through a non-manifold edge's other faces).
+    notes : tuple of str
+        What the cleaning did, one short sentence each.
+    """
+
+    vertices: np.ndarray
+    faces: np.ndarray
+    to_clean: np.ndarray
+    from_clean: np.ndarray
+    restore_index: np.ndarray
+    tri_polygon: np.ndarray
+    n_original: int
+    n_components: int
+    component: np.ndarray
+    n_boundary_loops: int
+    non_manifold_edges: int
+    non_manifold_vertices: int
+    notes: tuple[str, ...]
+
+    def restore(self, values) -> np.ndarray:
+        """Per-vertex values on the cleaned mesh, handed back to every original vertex.
+
+        Parameters
+        ----------
+        values : (n', ...) array
+            One row per cleaned vertex.
+
+        Returns
+        -------
+        (n, ...) array
+            Welded copies get their representative's row; vertices that no
+            kept triangle uses get the row of the spatially nearest cleaned
+            vertex. Integer and boolean values are copied, never blended.
+        """
+        a = np.asarray(values)
+        if a.ndim == 0 or a.shape[0] != len(self.vertices):
+            raise ValueError(f"values must have one row per cleaned vertex ({len(self.vertices)}), "
+                             f"got shape {a.shape}")
+        return a[self.restore_index]
+
+    def to_cleaned(self, values) -> np.ndarray:
+        """Per-vertex values on the original mesh, taken to the cleaned vertices.
+
+        Parameters
+        ----------
+        values : (n, ...) array
+            One row per original vertex.
+
+        Returns
+        -------
+        (n', ...) array
+            For a group of welded copies the row of its representative (the
+            lowest original index, ``from_clean``); the copies' own rows are
+            not averaged, so labels and weights pass through unchanged.
+        """
+        a = np.asarray(values)
+        if a.ndim == 0 or a.shape[0] != self.n_original:
+            raise ValueError(f"values must have one row per original vertex ({self.n_original}), "
+                             f"got shape {a.shape}")
+        return a[self.from_clean]
+
+
+def prepare_mesh(vertices, faces=None, *, corners=None, sizes=None, weld: bool = True) -> PreparedMesh:
+    """Validate, triangulate and clean a mesh, keeping the map back to it.
+
+    Parameters
+    ----------
+    vertices : (n, 3) float array
+    faces : (m, 3) integer array, optional
+        Triangles. Give either ``faces`` or ``corners`` and ``sizes``.
+    corners : (c,) integer array, optional
+        Polygon corners, one polygon after another.
+    sizes : (f,) integer array, optional
+        Corners per polygon (each at least 3).
+    weld : bool
+        Merge vertices with exactly identical coordinates (seams split for UVs
+        or normals in exporters). Nothing within a tolerance is merged: two
+        vertices a hair apart may be meant to be apart.
+
+    Returns
+    -------
+    PreparedMesh
+
+    Raises
+    ------
+    ValueError
+        For invalid input (see :func:`validate_mesh`; for polygons: a size
+        below 3, sizes not adding up to the number of corners, an index out of
+        range), or when no triangle with non-zero area is left.
+
+    Notes
+    -----
+    Steps, in order: triangulate (polygons), weld exact duplicates, drop
+    triangles with area at most ``1e-14 * d**2`` where ``d`` is the bounding-box
+    diagonal of the referenced vertices (below that an area is rounding noise
+    of the cross product; see ``_ZERO_AREA``), drop repeated triangles (same
+    three vertices in any order or orientation; the first is kept), set aside
+    vertices no triangle uses, then count components, boundary loops and
+    non-manifold edges and vertices.
+    """
+    if faces is not None and (corners is not None or sizes is not None):
+        raise ValueError("give either faces or corners and sizes, not both")
+    if faces is not None:
+        v, tris = validate_mesh(vertices, faces)
+        tri_polygon = np.arange(len(tris), dtype=np.int64)
+    elif corners is not None and sizes is not None:
+        v = _validate_vertices(vertices)
+        c, s = _validate_polygons(corners, sizes, len(v))
+        tris, tri_polygon = triangulate(v, c, s)
+    else:
+        raise ValueError("no faces given: pass faces, or corners and sizes")
+    n = len(v)
+    notes: list[str] = []
+
+    # Weld exact duplicates onto the lowest original index of each group.
+    rep = np.arange(n, dtype=np.int64)
+    if weld and n > 1:
+        order = np.lexsort((v[:, 2], v[:, 1], v[:, 0]))
+        sv = v[order]
+        new_group = np.ones(n, dtype=bool)
+        new_group[1:] = (sv[1:] != sv[:-1]).any(axis=1)
+        group = np.cumsum(new_group) - 1
+        lowest = order[new_group]  # lexsort is stable: each group starts with its lowest index
+        rep[order] = lowest[group]
+        n_welded = int(n - len(lowest))
+        if n_welded:
+            notes.append(f"welded {n_welded} duplicate vertices")
+        tris = rep[tris]
+
+    # Drop zero-area triangles (including those welding collapsed).
+    used = np.flatnonzero(np.bincount(tris.reshape(-1), minlength=n))
+    span = v[used].max(axis=0) - v[used].min(axis=0)
+    diag2 = float(span @ span)
+    p0, p1, p2 = v[tris[:, 0]], v[tris[:, 1]], v[tris[:, 2]]
+    area = 0.5 * np.linalg.norm(np.cross(p1 - p0, p2 - p0), axis=1)
+    keep = area > _ZERO_AREA * diag2
+    keep &= (tris[:, 0] != tris[:, 1]) & (tris[:, 1] != tris[:, 2]) & (tris[:, 2] != tris[:, 0])
+    if not keep.any():
+        raise ValueError("mesh has no faces with non-zero area")
+    if not keep.all():
+        notes.append(f"dropped {int((~keep).sum())} zero-area faces")
+    tris, tri_polygon = tris[keep], tri_polygon[keep]
+
+    # Drop repeated triangles, keeping the first of each vertex set.
+    first = _first_of_rows(np.sort(tris, axis=1))
+    if len(first) < len(tris):
+        notes.append(f"dropped {len(tris) - len(first)} duplicate faces")
+        first.sort()
+        tris, tri_polygon = tris[first], tri_polygon[first]
+
+    # Compact: only referenced vertices, in original order.
+    from_clean = np.flatnonzero(np.bincount(tris.reshape(-1), minlength=n))
+    new_index = np.full(n, -1, dtype=np.int64)
+    new_index[from_clean] = np.arange(len(from_clean))
+    to_clean = new_index[rep]
+    faces_c = np.ascontiguousarray(new_index[tris])
+    verts_c = np.ascontiguousarray(v[from_clean])
+    loose = np.flatnonzero(to_clean < 0)
+    restore_index = to_clean.copy()
+    if loose.size:
+        notes.append(f"set aside {loose.size} unreferenced vertices")
+        restore_index[loose] = cKDTree(verts_c).query(v[loose])[1]
+
+    nv = len(verts_c)
+    e = np.concatenate([faces_c[:, [0, 1]], faces_c[:, [1, 2]], faces_c[:, [2, 0]]])
+    adjacency = sp.coo_matrix((np.ones(len(e)), (e[:, 0], e[:, 1])), shape=(nv, nv))
+    n_components, component = connected_components(adjacency, directed=False)
+    if n_components > 1:
+        notes.append(f"{n_components} connected components")
+    loops, nm_edges, nm_vertices = _topology(faces_c, nv)
+    if nm_edges:
+        notes.append(f"{nm_edges} non-manifold edges")
+    if nm_vertices:
+        notes.append(f"{nm_vertices} non-manifold vertices")
+    return PreparedMesh(
+        vertices=verts_c, faces=faces_c, to_clean=to_clean, from_clean=from_clean,
+        restore_index=restore_index.astype(np.int64), tri_polygon=tri_polygon,
+        n_original=n, n_components=int(n_components), component=component.astype(np.int64),
+        n_boundary_loops=loops, non_manifold_edges=nm_edges, non_manifold_vertices=nm_vertices,
+        notes=tuple(notes))
+
+
+def _topology(faces: np.ndarray, nv: int) -> tuple[int, int, int]:
+    """Boundary loops, non-manifold edges and non-manifold vertices of a triangle mesh.
+
+    Half-edge ``t*3 + k`` runs from corner ``k`` to corner ``k + 1`` of triangle
+    ``t``. An undirected edge used by one triangle is a boundary edge. Boundary
+    loops are the cycles obtained by following boundary half-edges head to
+    tail (at a vertex where several boundary chains meet, incoming and outgoing
+    half-edges are paired in the order of their triangles, so two loops that
+    touch at a bow-tie vertex may be counted as one); where orientation is inconsistent and a vertex has unequal
+    numbers of incoming and outgoing boundary half-edges, the loops are counted
+    as connected pieces of the boundary instead.
+
+    A vertex is non-manifold when its corners split into more than one fan:
+    corners at the vertex in two triangles that share an edge through it are
+    joined (common practice; the same definition as a vertex-manifold test).
+    """
+    m = len(faces)
+    tail = faces.reshape(-1)
+    head = faces[:, [1, 2, 0]].reshape(-1)
+    key = np.minimum(tail, head) * nv + np.maximum(tail, head)
+    order = np.argsort(key, kind="stable")
+    sk = key[order]
+    starts = np.flatnonzero(np.r_[True, sk[1:] != sk[:-1]])
+    counts = np.diff(np.r_[starts, len(sk)])
+    nm_edges = int((counts > 2).sum())
+
+    # Boundary loops.
+    bnd = order[starts[counts == 1]]
+    loops = 0
+    if bnd.size:
+        bt, bh = tail[bnd], head[bnd]
+        out_deg = np.bincount(bt, minlength=nv)
+        in_deg = np.bincount(bh, minlength=nv)
+        if np.array_equal(out_deg, in_deg):
+            # Pair the j-th incoming with the j-th outgoing half-edge at each vertex.
+            by_tail = np.argsort(bt, kind="stable")
+            by_head = np.argsort(bh, kind="stable")
+            nxt = np.empty(len(bnd), dtype=np.int64)
+            nxt[by_head] = by_tail
+            g = sp.coo_matrix((np.ones(len(bnd)), (np.arange(len(bnd)), nxt)), shape=(len(bnd),) * 2)
+            loops = int(connected_components(g, directed=False)[0])
+        else:
+            verts = np.unique(np.r_[bt, bh])
+            g = sp.coo_matrix((np.ones(len(bnd)), (bt, bh)), shape=(nv, nv))
+            labels = connected_components(g, directed=False)[1]
+            loops = len(np.unique(labels[verts]))
+
+    # Non-manifold vertices: fans of corners around each vertex.
+    # Half-edge h = (a -> b) in triangle t: corners (t, a) and (t, b). Two
+    # half-edges of the same undirected edge join the corners at a and at b.
+    corner_at = np.arange(m * 3)  # half-edge h starts at corner h
+    corner_head = (np.arange(m)[:, None] * 3 + np.array([1, 2, 0])).reshape(-1)
+    group = np.repeat(np.arange(len(starts)), counts)
+    later = np.r_[False, group[1:] == group[:-1]]  # sorted position shares its edge with the one before
+    h1, h0 = order[later], order[np.r_[later[1:], False]]
+    # Join the corners at each end vertex of the shared edge.
+    t0c = np.stack([corner_at[h0], corner_head[h0]], axis=1)
+    t1c = np.stack([corner_at[h1], corner_head[h1]], axis=1)
+    same_dir = tail[h0] == tail[h1]
+    t1c = np.where(same_dir[:, None], t1c, t1c[:, ::-1])
+    rows, cols = t0c.reshape(-1), t1c.reshape(-1)
+    g = sp.coo_matrix((np.ones(len(rows)), (rows, cols)), shape=(m * 3, m * 3))
+    labels = connected_components(g, directed=False)[1]
+    fans = tail[_first_of_rows(np.column_stack([tail, labels]))]
+    nm_vertices = int((np.bincount(fans, minlength=nv) > 1).sum())
+    return loops, nm_edges, nm_vertices
+
+
+def _first_of_rows(rows: np.ndarray) -> np.ndarray:
+    """Indices of the first occurrence of each distinct row, ascending.
+
+    A lexicographic sort of the integer columns; much faster than
+    ``np.unique(..., axis=0)``, which sorts a structured view.
+    """
+    order = np.lexsort(rows.T[::-1])
+    sr = rows[order]
+    new = np.ones(len(rows), dtype=bool)
+    new[1:] = (sr[1:] != sr[:-1]).any(axis=1)
+    return np.sort(order[new])  # lexsort is stable: each run starts with its lowest index

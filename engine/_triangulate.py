@@ -1,0 +1,217 @@
+"""Polygons to triangles: quads all at once, larger polygons by ear clipping.
+
+Polygons arrive the way mesh files and Blender store them: one flat list of
+corner vertex indices ``corners`` and the number of corners of each polygon
+``sizes``. Triangles pass through unchanged. Quads are split along the diagonal
+that keeps both halves inside the quad (the shorter one when both do), all
+quads in one vectorised step. Polygons with more than four corners are rare and
+are ear-clipped one at a time in their best-fit plane, which is correct for
+concave polygons where a fan is not.
+
+Every triangle keeps the winding of its polygon, so a consistently oriented
+polygon mesh gives a consistently oriented triangle mesh.
+
+Sources: the Newell normal (M. E. Newell's method, as given in Sutherland,
+Sproull and Schumacker, "A characterization of ten hidden-surface algorithms",
+1974 (from memory)) is the sum of ``p_i x p_{i+1}`` over the polygon's edges and
+equals twice the vector area of the polygon; ear clipping rests on the two-ears
+theorem (Meisters, "Polygons have ears", Amer. Math. Monthly 82, 1975): every
+simple polygon with more than three corners has two non-overlapping ears.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+__all__: list[str] = []
+
+# Below this fraction of the squared polygon extent a signed area counts as
+# zero: the rounding error of a cross product of coordinates of size ``s`` is a
+# few ulp of ``s**2`` (about 1e-16 relative), so 1e-14 leaves a wide margin
+# while real slivers stay far above it (common practice).
+_REL_EPS = 1e-14
+
+
+def triangulate(vertices: np.ndarray, corners: np.ndarray, sizes: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Split polygons into triangles that keep each polygon's winding.
+
+    The caller has validated the input (``sizes >= 3``,
+    ``sizes.sum() == len(corners)``, indices in range).
+
+    Parameters
+    ----------
+    vertices : (n, 3) float64 array
+    corners : (c,) int64 array
+        Corner vertex indices of all polygons, one polygon after another.
+    sizes : (f,) int64 array
+        Number of corners of each polygon.
+
+    Returns
+    -------
+    triangles : (t, 3) int64 array
+        Ordered by polygon; within a polygon in the order they were cut.
+    tri_polygon : (t,) int64 array
+        Index of the polygon each triangle came from.
+
+    Notes
+    -----
+    Degenerate polygons (collinear or repeated corners, zero Newell normal)
+    never raise: they are cut as a fan and the resulting zero-area triangles are
+    left for the mesh cleaning to drop.
+    """
+    v = np.asarray(vertices, dtype=np.float64)
+    corners = np.asarray(corners, dtype=np.int64)
+    sizes = np.asarray(sizes, dtype=np.int64)
+    starts = np.cumsum(sizes) - sizes
+    tris: list[np.ndarray] = []
+    owners: list[np.ndarray] = []
+
+    which = np.flatnonzero(sizes == 3)
+    if which.size:
+        tris.append(corners[starts[which, None] + np.arange(3)])
+        owners.append(which)
+
+    which = np.flatnonzero(sizes == 4)
+    if which.size:
+        quads = corners[starts[which, None] + np.arange(4)]
+        tris.append(_split_quads(v, quads).reshape(-1, 3))
+        owners.append(np.repeat(which, 2))
+
+    for p in np.flatnonzero(sizes > 4):
+        ring = corners[starts[p]:starts[p] + sizes[p]]
+        local = _ear_clip(v[ring])
+        tris.append(ring[local])
+        owners.append(np.full(len(local), p, dtype=np.int64))
+
+    if not tris:
+        return np.zeros((0, 3), np.int64), np.zeros(0, np.int64)
+    triangles = np.concatenate(tris).astype(np.int64, copy=False)
+    tri_polygon = np.concatenate(owners).astype(np.int64, copy=False)
+    order = np.argsort(tri_polygon, kind="stable")
+    return np.ascontiguousarray(triangles[order]), tri_polygon[order]
+
+
+def _split_quads(v: np.ndarray, quads: np.ndarray) -> np.ndarray:
+    """Cut each quad ``abcd`` into two triangles, (q, 2, 3).
+
+    Diagonal ``ac`` gives ``abc, acd``; diagonal ``bd`` gives ``abd, bcd``. A
+    diagonal is valid when both of its triangles have positive area along the
+    quad's Newell normal ``(c - a) x (d - b)`` (for a quad the Newell sum
+    reduces to the cross product of its diagonals), i.e. both lie inside the
+    quad with its winding. In a simple quad at most one corner is reflex and the
+    valid diagonal is the one through it. When both are valid the shorter one
+    is taken; when neither is (a degenerate or bow-tie quad), the one whose
+    smaller triangle is larger.
+    """
+    a, b, c, d = (v[quads[:, i]] for i in range(4))
+    normal = np.cross(c - a, d - b)
+
+    def along(p, q, r):
+        return np.einsum("ij,ij->i", np.cross(q - p, r - p), normal)
+
+    score_ac = np.minimum(along(a, b, c), along(a, c, d))
+    score_bd = np.minimum(along(a, b, d), along(b, c, d))
+    scale = np.maximum(np.einsum("ij,ij->i", c - a, c - a), np.einsum("ij,ij->i", d - b, d - b))
+    tol = _REL_EPS * scale * scale  # score is quadratic in area: (length^2)^2
+    ok_ac, ok_bd = score_ac > tol, score_bd > tol
+    shorter_bd = np.einsum("ij,ij->i", d - b, d - b) < np.einsum("ij,ij->i", c - a, c - a)
+    use_bd = (ok_bd & ~ok_ac) | (ok_ac & ok_bd & shorter_bd) | (~ok_ac & ~ok_bd & (score_bd > score_ac))
+    qa, qb, qc, qd = quads.T
+    out = np.empty((len(quads), 2, 3), dtype=np.int64)
+    out[:, 0] = np.where(use_bd[:, None], np.column_stack([qa, qb, qd]), np.column_stack([qa, qb, qc]))
+    out[:, 1] = np.where(use_bd[:, None], np.column_stack([qb, qc, qd]), np.column_stack([qa, qc, qd]))
+    return out
+
+
+def _fan(k: int) -> np.ndarray:
+    i = np.arange(1, k - 1)
+    return np.column_stack([np.zeros_like(i), i, i + 1])
+
+
+def _ear_clip(points: np.ndarray) -> np.ndarray:
+    """Ear-clip one polygon given by its corner positions, (k - 2, 3) local indices.
+
+    The corners are projected onto the plane through their centroid
+    perpendicular to the Newell normal, with the in-plane axes chosen so that
+    the polygon winds counter-clockwise there; a corner is convex when the
+    signed area of (previous, corner, next) is positive. An ear is a convex
+    corner whose triangle contains no other remaining corner (closed test, so a
+    corner touching the cut also blocks it). If no ear is found (a self-
+    intersecting or numerically flat remainder), a corner with zero signed area
+    is cut off instead, and failing that the remainder becomes a fan.
+    """
+    k = len(points)
+    q = points - points.mean(axis=0)
+    normal = np.cross(q, np.roll(q, -1, axis=0)).sum(axis=0)
+    extent2 = float(np.max(np.einsum("ij,ij->i", q, q))) if k else 0.0
+    nn = float(np.linalg.norm(normal))
+    if not nn > _REL_EPS * extent2:
+        return _fan(k)
+    n_hat = normal / nn
+    axis = np.zeros(3)
+    axis[np.argmin(np.abs(n_hat))] = 1.0
+    u = np.cross(n_hat, axis)
+    u /= np.linalg.norm(u)
+    w = np.cross(n_hat, u)  # (u, w, n_hat) is right-handed: counter-clockwise in (u, w)
+    x, y = q @ u, q @ w
+    eps = _REL_EPS * extent2
+
+    prev = [(i - 1) % k for i in range(k)]
+    nxt = [(i + 1) % k for i in range(k)]
+    alive = np.ones(k, dtype=bool)
+
+    def signed(i: int) -> float:
+        a, c = prev[i], nxt[i]
+        return (x[i] - x[a]) * (y[c] - y[i]) - (y[i] - y[a]) * (x[c] - x[i])
+
+    def is_ear(i: int) -> bool:
+        a, c = prev[i], nxt[i]
+        if signed(i) <= eps:
+            return False
+        others = alive.copy()
+        others[[a, i, c]] = False
+        idx = np.flatnonzero(others)
+        if idx.size == 0:
+            return True
+        px, py = x[idx], y[idx]
+        # Drop corners sitting exactly on the ear's own corners (repeated positions).
+        same = ((px == x[a]) & (py == y[a])) | ((px == x[i]) & (py == y[i])) | ((px == x[c]) & (py == y[c]))
+        px, py = px[~same], py[~same]
+        d1 = (x[i] - x[a]) * (py - y[a]) - (y[i] - y[a]) * (px - x[a])
+        d2 = (x[c] - x[i]) * (py - y[i]) - (y[c] - y[i]) * (px - x[i])
+        d3 = (x[a] - x[c]) * (py - y[c]) - (y[a] - y[c]) * (px - x[c])
+        return not bool(np.any((d1 >= -eps) & (d2 >= -eps) & (d3 >= -eps)))
+
+    out: list[tuple[int, int, int]] = []
+    remaining = k
+    i = 0
+    while remaining > 3:
+        start, found = i, False
+        while True:
+            if is_ear(i):
+                found = True
+                break
+            i = nxt[i]
+            if i == start:
+                break
+        if not found:
+            # No proper ear: cut a flat corner if there is one, else fan the rest.
+            flat = [j for j in np.flatnonzero(alive) if abs(signed(int(j))) <= eps]
+            if not flat:
+                ring = [i]
+                j = nxt[i]
+                while j != i:
+                    ring.append(j)
+                    j = nxt[j]
+                out.extend((ring[0], ring[t], ring[t + 1]) for t in range(1, len(ring) - 1))
+                return np.asarray(out, dtype=np.int64)
+            i = int(flat[0])
+        a, c = prev[i], nxt[i]
+        out.append((a, i, c))
+        alive[i] = False
+        nxt[a], prev[c] = c, a
+        remaining -= 1
+        i = c
+    a = i
+    out.append((prev[a], a, nxt[a]))
+    return np.asarray(out, dtype=np.int64)

@@ -1,0 +1,177 @@
+"""Surface detail: split a shape into a smooth base and local displacements.
+
+A surface ``x`` is split into a base ``b`` (its coordinates low-passed in its
+own Laplacian eigenbasis: the first ``base_size`` eigenfunctions) and a
+displacement ``x - b``. The displacement is expressed in an orthonormal frame
+of the base surface at every vertex (two tangents and the normal), so it moves
+with the surface when the shape bends. To carry detail to another mesh, the
+per-vertex local offsets are pulled through a correspondence and added to the
+other mesh's own base in its own frames.
+
+Frames must correspond on the two meshes. The first tangent follows the
+gradient of a *guide* field: a smooth scalar function on the source, pulled to
+the target through the same correspondence, so both meshes get matching
+tangent directions.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from .mesh import validate_mesh
+
+__all__ = ["DetailLayer", "vertex_normals", "vertex_gradients", "tangent_frames", "low_pass",
+           "split_detail", "apply_detail"]
+
+
+@dataclass(frozen=True)
+class DetailLayer:
+    """A shape split into base and detail.
+
+    Attributes
+    ----------
+    base : (n, 3) float64
+        The smooth base surface's vertex positions.
+    frames : (n, 3, 3) float64
+        Rows ``[t1, t2, n]`` at every vertex of the base.
+    offsets : (n, 3) float64
+        ``x - base`` in the local frame: components along t1, t2 and n.
+    """
+
+    base: np.ndarray
+    frames: np.ndarray
+    offsets: np.ndarray
+
+
+def vertex_normals(vertices, faces) -> np.ndarray:
+    """Area-weighted unit vertex normals, (n, 3). Isolated vertices get +z."""
+    v, f = validate_mesh(vertices, faces)
+    fn = np.cross(v[f[:, 1]] - v[f[:, 0]], v[f[:, 2]] - v[f[:, 0]])  # length = 2 * area
+    n = np.zeros_like(v)
+    for c in range(3):
+        np.add.at(n, f[:, c], fn)
+    return _unit(n, fallback=np.array([0.0, 0.0, 1.0]))
+
+
+def vertex_gradients(vertices, faces, field) -> np.ndarray:
+    """Gradient of a per-vertex scalar field, averaged to vertices by area.
+
+    Parameters
+    ----------
+    vertices : (n, 3) float array
+    faces : (m, 3) int array
+    field : (n,) float array
+
+    Returns
+    -------
+    (n, 3) float64
+        The piecewise-linear gradient of each triangle, area-weighted at
+        each vertex.
+    """
+    v, f = validate_mesh(vertices, faces)
+    g = np.asarray(field, dtype=np.float64)
+    if g.shape != (v.shape[0],):
+        raise ValueError(f"field must have shape ({v.shape[0]},), got {g.shape}")
+    e = [v[f[:, 2]] - v[f[:, 1]], v[f[:, 0]] - v[f[:, 2]], v[f[:, 1]] - v[f[:, 0]]]
+    normal = np.cross(e[2], -e[1])
+    dbl_area = np.linalg.norm(normal, axis=1)
+    unit_n = normal / np.where(dbl_area > 0, dbl_area, 1.0)[:, None]
+    # grad = sum_c g_c (n x e_c) / (2A), e_c the edge opposite corner c
+    grad = sum(g[f[:, c]][:, None] * np.cross(unit_n, e[c]) for c in range(3))
+    grad = grad / np.where(dbl_area > 0, dbl_area, 1.0)[:, None]
+    out = np.zeros_like(v)
+    w = np.zeros(v.shape[0])
+    for c in range(3):
+        np.add.at(out, f[:, c], grad * dbl_area[:, None])
+        np.add.at(w, f[:, c], dbl_area)
+    return out / np.where(w > 0, w, 1.0)[:, None]
+
+
+def tangent_frames(vertices, faces, guides) -> np.ndarray:
+    """Orthonormal frames ``[t1, t2, n]`` per vertex, (n, 3, 3).
+
+    Parameters
+    ----------
+    vertices : (n, 3) float array
+    faces : (m, 3) int array
+    guides : (n, g) float array
+        Scalar guide fields in order of preference. ``t1`` follows the
+        tangential gradient of the first guide wherever that gradient is at
+        least 5% of its median size, otherwise of the next guide, and finally
+        the tangential part of the x axis (or y where x is normal).
+    """
+    v, f = validate_mesh(vertices, faces)
+    guides = np.asarray(guides, dtype=np.float64)
+    if guides.ndim == 1:
+        guides = guides[:, None]
+    if guides.shape[0] != v.shape[0]:
+        raise ValueError(f"guides must have {v.shape[0]} rows, got {guides.shape[0]}")
+    n = vertex_normals(v, f)
+    t1 = np.zeros_like(v)
+    done = np.zeros(v.shape[0], dtype=bool)
+    for j in range(guides.shape[1]):
+        grad = vertex_gradients(v, f, guides[:, j])
+        grad -= np.einsum("ij,ij->i", grad, n)[:, None] * n
+        size = np.linalg.norm(grad, axis=1)
+        ok = ~done & (size > 0.05 * max(np.median(size), 1e-300))
+        t1[ok] = grad[ok] / size[ok, None]
+        done |= ok
+    if not done.all():
+        axis = np.where(np.abs(n[:, :1]) < 0.9, np.array([[1.0, 0.0, 0.0]]), np.array([[0.0, 1.0, 0.0]]))
+        proj = axis - np.einsum("ij,ij->i", axis, n)[:, None] * n
+        t1[~done] = _unit(proj[~done], fallback=np.array([1.0, 0.0, 0.0]))
+    t2 = np.cross(n, t1)
+    return np.stack([t1, t2, n], axis=1)
+
+
+def low_pass(vertices, eigenvectors, mass, base_size: int) -> np.ndarray:
+    """Coordinates reconstructed from the first ``base_size`` eigenfunctions, (n, 3)."""
+    phi = np.asarray(eigenvectors, dtype=np.float64)
+    m = np.asarray(mass, dtype=np.float64)
+    v = np.asarray(vertices, dtype=np.float64)
+    if phi.ndim != 2 or phi.shape[0] != v.shape[0] or m.shape != (v.shape[0],):
+        raise ValueError(f"eigenvectors {phi.shape} and mass {m.shape} do not fit {v.shape[0]} vertices")
+    if not 1 <= base_size <= phi.shape[1]:
+        raise ValueError(f"base_size must be between 1 and {phi.shape[1]} (the eigenfunctions given), got {base_size}")
+    p = phi[:, :base_size]
+    return p @ (p.T @ (m[:, None] * v))
+
+
+def split_detail(vertices, faces, eigenvectors, mass, *, base_size: int, guides) -> DetailLayer:
+    """Split a surface into its smooth base and local-frame offsets."""
+    v, f = validate_mesh(vertices, faces)
+    base = low_pass(v, eigenvectors, mass, base_size)
+    frames = tangent_frames(base, f, guides)
+    offsets = np.einsum("nij,nj->ni", frames, v - base)
+    return DetailLayer(base, frames, offsets)
+
+
+def apply_detail(layer: DetailLayer, offsets, *, strength: float = 1.0) -> np.ndarray:
+    """New positions: ``layer.base`` plus ``strength * offsets`` in ``layer.frames``.
+
+    Parameters
+    ----------
+    layer : DetailLayer
+        The target's own split (its base and frames).
+    offsets : (n, 3) float array
+        Local offsets to add (typically the source's, pulled to the target).
+    strength : float
+        Scale of the added detail; 0 gives the target's smooth base.
+    """
+    o = np.asarray(offsets, dtype=np.float64)
+    if o.shape != layer.base.shape:
+        raise ValueError(f"offsets must have shape {layer.base.shape}, got {o.shape}")
+    if not np.isfinite(o).all():
+        raise ValueError("offsets contain non-finite values")
+    if not np.isfinite(strength):
+        raise ValueError(f"strength must be finite, got {strength}")
+    return layer.base + strength * np.einsum("nji,nj->ni", layer.frames, o)
+
+
+def _unit(x: np.ndarray, *, fallback: np.ndarray) -> np.ndarray:
+    size = np.linalg.norm(x, axis=1, keepdims=True)
+    out = x / np.where(size > 0, size, 1.0)
+    out[size[:, 0] == 0] = fallback
+    return out
