@@ -43,10 +43,9 @@ from dataclasses import dataclass
 
 import numpy as np
 import scipy.sparse as sp
-from scipy.sparse.csgraph import connected_components
 
 from .laplacian import _cotangents, _stiffness_from_cotangents, mass_matrix
-from .mesh import validate_mesh
+from .mesh import _topology, validate_mesh
 from .robust import _robust
 
 __all__ = ["Operators", "operators", "MeshDefects", "mesh_defects"]
@@ -117,8 +116,8 @@ def mesh_defects(vertices, faces) -> MeshDefects:
     -------
     MeshDefects
         ``nonmanifold_edges``: edges in more than two faces.
-        ``nonmanifold_vertices``: vertices whose faces form more than one fan
-        (fans joined across edges shared by exactly two faces).
+        ``nonmanifold_vertices``: vertices whose faces form more than one
+        edge-connected fan (as counted by :func:`prepare_mesh`).
         ``sliver_triangles``: triangles with an angle below 1 degree, and the
         ``smallest_angle`` in degrees. ``negative_edges`` of
         ``interior_edges`` (edges in exactly two faces) have a negative
@@ -130,8 +129,10 @@ def mesh_defects(vertices, faces) -> MeshDefects:
 
 
 def _defects(v: np.ndarray, f: np.ndarray, cot: np.ndarray) -> MeshDefects:
-    n, m = v.shape[0], f.shape[0]
-    # face-edge 3t + c lies opposite corner c, from corner c+1 to corner c+2
+    n = v.shape[0]
+    _, nonmanifold_edges, nonmanifold_vertices = _topology(f, n)
+    # Interior (two-face) edges and their cotangent weights; face-edge 3t + c
+    # lies opposite corner c, from corner c+1 to corner c+2.
     p, q = f[:, [1, 2, 0]].ravel(), f[:, [2, 0, 1]].ravel()
     key = np.minimum(p, q) * np.int64(n) + np.maximum(p, q)
     order = np.argsort(key, kind="stable")
@@ -139,28 +140,9 @@ def _defects(v: np.ndarray, f: np.ndarray, cot: np.ndarray) -> MeshDefects:
     start = np.ones(ks.size, dtype=bool)
     start[1:] = ks[1:] != ks[:-1]
     counts = np.diff(np.append(np.flatnonzero(start), ks.size))
-    nonmanifold_edges = int((counts > 2).sum())
-
-    # Interior (two-face) edges: their cotangent weight, and fans around vertices.
-    group = np.cumsum(start) - 1
-    two = counts[group] == 2
-    first = start & two
+    first = start & (counts[np.cumsum(start) - 1] == 2)
     x, y = order[first], order[np.flatnonzero(first) + 1]
-    weight = cot.ravel()[x] + cot.ravel()[y]
-    negative = int((weight < 0).sum())
-    # corners 3t + c; face-edge 3t + c joins corners 3t + (c+1)%3 and 3t + (c+2)%3
-    tx, cx, ty, cy = x // 3, x % 3, y // 3, y % 3
-    ax, bx = 3 * tx + (cx + 1) % 3, 3 * tx + (cx + 2) % 3
-    ay, by = 3 * ty + (cy + 1) % 3, 3 * ty + (cy + 2) % 3
-    same = f.ravel()[ax] == f.ravel()[ay]  # consistently or oppositely oriented neighbours
-    src = np.concatenate([ax, bx])
-    dst = np.concatenate([np.where(same, ay, by), np.where(same, by, ay)])
-    graph = sp.coo_matrix((np.ones(src.size), (src, dst)), shape=(3 * m, 3 * m))
-    n_fans, label = connected_components(graph, directed=False)
-    # joined corners share their vertex, so each fan belongs to one vertex
-    fan_vertex = np.zeros(n_fans, dtype=np.int64)
-    fan_vertex[label] = f.ravel()
-    nonmanifold_vertices = int((np.bincount(fan_vertex, minlength=n) > 1).sum())
+    negative = int((cot.ravel()[x] + cot.ravel()[y] < 0).sum())
 
     angles = np.degrees(np.arctan2(1.0, cot))  # in (0, 180); 90 where the triangle is degenerate
     e1 = v[f[:, 1]] - v[f[:, 0]]
@@ -169,7 +151,7 @@ def _defects(v: np.ndarray, f: np.ndarray, cot: np.ndarray) -> MeshDefects:
     angles[degenerate] = 0.0
     smallest = angles.min(axis=1)
     return MeshDefects(nonmanifold_edges, nonmanifold_vertices, int((smallest < _SLIVER_DEGREES).sum()),
-                       float(smallest.min()), negative, int(two.sum() // 2))
+                       float(smallest.min()), negative, int(x.size))
 
 
 def operators(vertices, faces, *, robust: bool | str = "auto", mass: str = "barycentric",

@@ -16,8 +16,8 @@ Triangle Meshes" (Computer Graphics Forum 39(5), SGP 2020):
    vertices, also for non-manifold input and for boundaries (a boundary face
    is glued front to back).
 3. **Intrinsic Delaunay flips.** Edges whose cotangent weight is negative (the
-   two opposite angles sum to more than pi) are flipped, with the new length
-   from a planar layout of the two triangles, until every weight is
+   two opposite angles sum to more than pi) are flipped, the new length read
+   off a planar layout of the two triangles, until every weight is
    non-negative. The edge lengths stay those of the same flat-cone metric.
 4. **Operators.** The cotangent stiffness and lumped mass of the intrinsic
    Delaunay triangulation of the cover, halved because the cover covers every
