@@ -197,7 +197,7 @@ def test_equals_plain_on_delaunay_icosphere():
 
 # ---------------------------------------------------------------- slivers: PSD, weights
 
-@pytest.mark.parametrize("case", ["grid_jitter", "hand", "sliver_book"])
+@pytest.mark.parametrize("case", ["grid_jitter", pytest.param("hand", marks=pytest.mark.refdata), "sliver_book"])
 def test_psd_and_non_negative_weights_where_plain_has_negative(case):
     if case == "grid_jitter":
         v, f = meshes.grid(30, 15, jitter=0.45)
@@ -291,6 +291,7 @@ def test_agrees_with_reference_on_reference_meshes(name):
 
 # ---------------------------------------------------------------- flips
 
+@pytest.mark.refdata
 def test_flips_reach_delaunay_and_keep_the_area():
     v, f = _ref_mesh("hand")
     tri, twin = tufted_cover(v, f)
