@@ -10,6 +10,11 @@ Mesh intake
     write_ply             PLY writer, atomic, lossless
     MeshData              what read_mesh returns
 
+Eigenbasis and cache
+    eigenbasis            k smallest eigenpairs of L phi = lambda M phi (Eigenbasis)
+    Cache                 on-disk .npz cache, atomic, validated, never trusted blindly
+    geometry_key          stable hash of arrays and parameters
+
 Eigenfunction products (products.py)
     product_exponents     monomials of the first K eigenfunctions up to an order
     raw_products          their pointwise products
@@ -24,12 +29,19 @@ Approximation and descriptors
     heat_kernel_signature, wave_kernel_signature, heat_kernel_rows, heat_times, wave_energies
 
 Operators
+    operators             stiffness and mass, robust variant when the mesh needs it (Operators)
+    robust_laplacian      non-manifold Laplacian: tufted cover, mollification, intrinsic Delaunay
+    mesh_defects          what makes a mesh need the robust variant (MeshDefects)
     cotangent_laplacian   positive semidefinite cotangent stiffness matrix
     mass_matrix           lumped mass (barycentric or mixed Voronoi), 1-D
     face_areas            triangle areas
     intrinsic_laplacian   the same operators from edge lengths alone
 """
 
+from .operators import MeshDefects, Operators, mesh_defects, operators
+from .robust import robust_laplacian
+from .eigenbasis import Eigenbasis, eigenbasis
+from .cache import Cache, geometry_key
 from .laplacian import cotangent_laplacian, face_areas, intrinsic_laplacian, mass_matrix
 from .approximation import Approximation, Basis, LaplacianBasis, approximate, relative_error
 from .descriptors import heat_kernel_rows, heat_kernel_signature, heat_times, wave_energies, wave_kernel_signature
@@ -63,6 +75,15 @@ __all__ = [
     "heat_kernel_rows",
     "wave_energies",
     "wave_kernel_signature",
+    "operators",
+    "Operators",
+    "mesh_defects",
+    "MeshDefects",
+    "robust_laplacian",
+    "eigenbasis",
+    "Eigenbasis",
+    "Cache",
+    "geometry_key",
     "cotangent_laplacian",
     "mass_matrix",
     "intrinsic_laplacian",
