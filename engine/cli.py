@@ -51,9 +51,10 @@ def main(argv: Sequence[str] | None = None) -> int:
         print(f"error: {exc}", file=sys.stderr)
         return EXIT_BAD_INPUT
     except (ValueError, OSError, KeyError) as exc:
-        message = str(exc) if not isinstance(exc, KeyError) else f"missing {exc}"
-        if isinstance(exc, OSError) and exc.filename is not None and str(exc.filename) not in message:
-            message = f"{exc.filename}: {message}"
+        if isinstance(exc, OSError) and exc.filename is not None:
+            message = f"{exc.filename}: {exc.strerror or exc}"
+        else:
+            message = str(exc) if not isinstance(exc, KeyError) else f"missing {exc}"
         print(f"error: {message}", file=sys.stderr)
         return EXIT_BAD_INPUT
     except MemoryError:

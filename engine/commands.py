@@ -143,6 +143,87 @@ def _split_names(text: str | None) -> list[str] | None:
     return names
 
 
+# -- transfer and detail --------------------------------------------------------
+
+def _add_pair_arguments(p: argparse.ArgumentParser) -> None:
+    from .correspondence import MATCHES
+
+    p.add_argument("source", help="source mesh file (.ply, .obj, .off)")
+    p.add_argument("target", help="target mesh file (.ply, .obj, .off)")
+    p.add_argument("-o", "--output", required=True, help="output .ply")
+    p.add_argument("--match", choices=MATCHES, default="auto",
+                   help="how to find corresponding points (default auto: by measured overlap)")
+    p.add_argument("--landmarks", metavar="PAIRS.json",
+                   help="JSON list of [source_vertex, target_vertex] pairs known to correspond")
+    p.add_argument("--report", metavar="REPORT.json", help="write the run's report here")
+    p.add_argument("--cache", metavar="FOLDER", help="reuse and store bases and correspondences here")
+
+
+def add_transfer(p: argparse.ArgumentParser) -> None:
+    from .transfer import BASES as TRANSFER_BASES
+
+    _add_pair_arguments(p)
+    p.add_argument("--attributes", help="comma-separated source vertex properties (default: all but "
+                   "coordinates and normals)")
+    p.add_argument("--basis", choices=TRANSFER_BASES, default=None,
+                   help="how continuous signals travel (default: the engine's default)")
+    p.add_argument("--k", type=_positive_int, help="eigenfunctions of the 'laplacian' basis")
+    p.add_argument("--order", type=_order, help="product order of the product bases (1-5)")
+
+
+def run_transfer(args: argparse.Namespace) -> int:
+    from .pipeline import run_transfer_job
+
+    report = run_transfer_job(args.source, args.target, args.output, attributes=_split_names(args.attributes),
+                              basis=args.basis, match=args.match, landmarks_path=args.landmarks, k=args.k,
+                              order=args.order, report_path=args.report, cache_dir=args.cache)
+    _print_pair_report(report)
+    basis = report["settings"]["basis"]
+    for name, info in report.get("signals", {}).items():
+        if info["kind"] in ("label", "mask"):
+            print(f"  {name} ({info['kind']}): taken from the nearest source corner, never blended")
+        elif basis == "pointwise":
+            print(f"  {name} ({info['kind']}): interpolated on source triangles, unfiltered")
+        else:
+            print(f"  {name} ({info['kind']}): the {basis} basis carries it on the source with relative "
+                  f"error {info['source_error']:.4f}")
+    print(f"-> {args.output}")
+    return 0
+
+
+def add_detail(p: argparse.ArgumentParser) -> None:
+    _add_pair_arguments(p)
+    p.add_argument("--strength", type=float, default=None, help="scale of the carried detail (default 1)")
+    p.add_argument("--size", type=float, default=None,
+                   help="features shorter than this fraction of the shape's size are detail (default 0.05)")
+
+
+def run_detail(args: argparse.Namespace) -> int:
+    from .pipeline import run_detail_job
+
+    report = run_detail_job(args.source, args.target, args.output, strength=args.strength, size=args.size,
+                            match=args.match, landmarks_path=args.landmarks, report_path=args.report,
+                            cache_dir=args.cache)
+    _print_pair_report(report)
+    d = report["detail"]
+    print(f"  detail: strength {d['strength']:g}, size {d['size']:g}; target vertices moved by "
+          f"{d['mean_offset']:.3g} on average, {d['max_offset']:.3g} at most")
+    print(f"-> {args.output}")
+    return 0
+
+
+def _print_pair_report(report: dict) -> None:
+    print(f"match: {report['mode']} ({report['reason']})")
+    cov = report.get("coverage_of_source_area")
+    cons = report.get("consistency") or {}
+    line = f"  mean confidence {report['mean_confidence']:.3f}"
+    if cov is not None:
+        line += f", covers {cov:.1%} of the source area"
+    if cons.get("within_2_edges") is not None:
+        line += f", {cons['within_2_edges']:.1%} of round trips within 2 edges"
+    print(line + f"; {report['timings'].get('total', 0):.1f} s")
+
+
 # -- demo ----------------------------------------------------------------------
 
 def add_demo(p: argparse.ArgumentParser) -> None:
@@ -190,5 +271,8 @@ COMMANDS = {
     "basis": (add_basis, run_basis, "eigenbasis (and product basis) of a mesh, written to .npz"),
     "approximate": (add_approximate, run_approximate,
                     "reconstruct a mesh's vertex properties through a basis, written to .ply"),
+    "transfer": (add_transfer, run_transfer,
+                 "carry a source mesh's vertex properties to a target mesh, written to .ply"),
+    "detail": (add_detail, run_detail, "carry a source mesh's surface detail to a target mesh, written to .ply"),
     "demo": (add_demo, run_demo, "run the engine on the built-in demo creature"),
 }

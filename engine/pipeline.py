@@ -307,6 +307,14 @@ def load_landmarks(path, n_source: int, n_target: int) -> tuple:
     return tuple(pairs)
 
 
+def _check_output(path) -> None:
+    folder = Path(path).resolve().parent
+    if not folder.is_dir():
+        raise ValueError(f"output folder {str(folder)!r} does not exist")
+    if not os.access(folder, os.W_OK):
+        raise ValueError(f"output folder {str(folder)!r} is not writable")
+
+
 def _read_shape(path, cache):
     from .meshio import read_mesh
     data = read_mesh(path)
@@ -330,6 +338,9 @@ def run_transfer_job(source_path, target_path, output_path, *, attributes=None, 
     from .signals import signal_to_property, signals_from_properties
 
     t0 = time.perf_counter()
+    for out in (output_path, report_path):
+        if out:
+            _check_output(out)
     src_data, source = _read_shape(source_path, _cache(cache_dir))
     tgt_data, target = _read_shape(target_path, _cache(cache_dir))
     signals = signals_from_properties(src_data.properties, names=attributes)
@@ -361,6 +372,9 @@ def run_detail_job(source_path, target_path, output_path, *, strength=None, size
     from .meshio import write_ply
 
     t0 = time.perf_counter()
+    for out in (output_path, report_path):
+        if out:
+            _check_output(out)
     _, source = _read_shape(source_path, _cache(cache_dir))
     tgt_data, target = _read_shape(target_path, _cache(cache_dir))
     settings = _settings(landmarks_path, source.n_original, target.n_original, match=match,
