@@ -262,7 +262,8 @@ def correspond(source: Shape, target: Shape, *, match: str = "auto", landmarks=N
         C0 = u @ vt
         timings["descriptor_map"] = time.perf_counter() - t1
         t1 = time.perf_counter()
-        C, vertex = zoomout(C0, ps, pt, mt, k_final=kk, step=step, extra_s=extra_s, extra_t=extra_t)
+        C, vertex, rows = zoomout(C0, ps, pt, mt, k_final=kk, step=step, extra_s=extra_s, extra_t=extra_t,
+                                  full_last=not align_steps)
         timings["zoomout"] = time.perf_counter() - t1
         tri, bary = _vertex_as_point(source, vertex)
         k_map = kk
@@ -276,8 +277,9 @@ def correspond(source: Shape, target: Shape, *, match: str = "auto", landmarks=N
 
     if mode == "intrinsic" and align_steps:
         t0 = time.perf_counter()
-        tri, bary = _align_refine(source, target, tri, bary, align_steps)
+        tri, bary, X = _align_refine(source, target, tri, bary, align_steps, lm, rows)
         vertex = source.faces[tri, np.argmax(bary, axis=1)]
+        rev = ("closest", SurfaceLocator(target.vertices, target.faces).closest(X))
         timings["align_refine"] = time.perf_counter() - t0
 
     ranks = {}
@@ -460,23 +462,37 @@ def _simplex_qp(G, s):
     return best_w, best_v
 
 
-def _align_refine(source, target, tri, bary, steps):
+def _align_refine(source, target, tri, bary, steps, lm=None, rows=None):
     """Deform the source onto the target through the current map, then closest points.
 
     Each step solves ``min_D sum_i m_i |Pi_i (X + D) - y_i|^2 + r^2 D^T L D``
     for a displacement ``D`` of the (affinely pre-aligned) source vertices
     ``X`` toward the target vertices ``y`` they map to, with smoothing length
     ``r``, then re-maps every target vertex to its closest point on the
-    deformed source (a non-rigid ICP regularised by the Laplacian).
+    deformed source (a non-rigid ICP regularised by the Laplacian). With four
+    or more landmarks the source starts from a thin-plate-spline warp through
+    them (``scipy.interpolate.RBFInterpolator``) instead of the identity.
+    ``rows``: the target vertices that ``tri, bary`` describe (None: all);
+    after the first step every target vertex is matched.
+
+    Returns
+    -------
+    triangle, barycentric for every target vertex; the deformed source (n_s, 3).
     """
     import scipy.sparse as sp
     import scipy.sparse.linalg as spla
-    n_t = len(tri)
-    y = target.vertices
-    w = target.mass
+    y = target.vertices if rows is None else target.vertices[rows]
+    w = target.mass if rows is None else target.mass[rows] * (target.n_vertices / len(rows))
     X = source.vertices.copy()
+    if lm is not None and len(lm[0]) >= 4:
+        from scipy.interpolate import RBFInterpolator
+        try:
+            X = RBFInterpolator(X[lm[0]], target.vertices[lm[1]], kernel="thin_plate_spline", degree=1)(X)
+        except (np.linalg.LinAlgError, ValueError):   # degenerate landmark layout: keep the identity
+            X = source.vertices.copy()
     L = source.stiffness
     for r in steps:
+        n_t = len(tri)
         Pi = sp.csr_matrix((bary.ravel(), (np.repeat(np.arange(n_t), 3), source.faces[tri].ravel())),
                            shape=(n_t, source.n_vertices))
         p = Pi @ X
@@ -491,9 +507,10 @@ def _align_refine(source, target, tri, bary, steps):
         H = H + sp.diags(np.full(source.n_vertices, 1e-9 * H.diagonal().mean()))
         D = spla.splu(H).solve(np.asarray(PtW @ (y - p)))
         X = X + D
+        y, w = target.vertices, target.mass
         cp = SurfaceLocator(X, source.faces).closest(y)
         tri, bary = cp.triangle, cp.barycentric
-    return tri, bary
+    return tri, bary, X
 
 
 def _coverage(source, points, radius):

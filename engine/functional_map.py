@@ -155,7 +155,7 @@ def pointmap_from_fmap(C, phi_s, phi_t, *, extra_s=None, extra_t=None, rows=None
 
 
 def zoomout(C0, phi_s, phi_t, mass_t, *, k_final: int, step: int = 10, extra_s=None, extra_t=None,
-            sample: int = 3000, seed: int = 0):
+            sample: int = 3000, seed: int = 0, full_last: bool = True):
     """Spectral upsampling of a functional map.
 
     Each step maps target vertices to source vertices with the current ``C``
@@ -163,10 +163,16 @@ def zoomout(C0, phi_s, phi_t, mass_t, *, k_final: int, step: int = 10, extra_s=N
     ``sample`` random target vertices (area-weighted least squares on the
     sample), the last step all of them.
 
+    With ``full_last=False`` the last step also stays on the sample (for a
+    caller that only needs a sparse set of matches).
+
     Returns
     -------
     C : (k_final, k_final) float64 array
     vertex_map : (n_t,) int64 array, target vertex -> source vertex
+        (or (s,) for the sampled rows when ``full_last`` is False)
+    rows : (s,) int64 array or None
+        The target vertices of ``vertex_map`` (None: all).
     """
     n_t = phi_t.shape[0]
     rng = np.random.default_rng(seed)
@@ -176,11 +182,12 @@ def zoomout(C0, phi_s, phi_t, mass_t, *, k_final: int, step: int = 10, extra_s=N
     k_final = int(min(k_final, phi_s.shape[1], phi_t.shape[1]))
     while True:
         last = k >= k_final
-        r = None if last else rows
+        r = None if (last and full_last) else rows
         j = pointmap_from_fmap(C, phi_s, phi_t, extra_s=extra_s, extra_t=extra_t, rows=r)
         if last:
-            C = phi_t[:, :k].T @ (mass_t[:, None] * phi_s[j, :k])
-            return C, j
+            if r is None:
+                C = phi_t[:, :k].T @ (mass_t[:, None] * phi_s[j, :k])
+            return C, j, r
         k = min(k + step, k_final)
         if r is None:
             C = phi_t[:, :k].T @ (mass_t[:, None] * phi_s[j, :k])
