@@ -10,6 +10,19 @@ Mesh intake
     write_ply             PLY writer, atomic, lossless
     MeshData              what read_mesh returns
 
+Eigenfunction products (products.py)
+    product_exponents     monomials of the first K eigenfunctions up to an order
+    raw_products          their pointwise products
+    orthogonal_products   mass-orthonormal products, dependent ones dropped (ProductBasis)
+    least_squares_products  the raw-products baseline with a least-squares fit
+    product_budget        caps (K, order) by the vertex count
+
+Approximation and descriptors
+    approximate           project a signal on a basis and reconstruct it (Approximation)
+    relative_error        mass-weighted relative L2 error
+    LaplacianBasis        the eigenbasis as an approximation basis
+    heat_kernel_signature, wave_kernel_signature, heat_kernel_rows, heat_times, wave_energies
+
 Operators
     cotangent_laplacian   positive semidefinite cotangent stiffness matrix
     mass_matrix           lumped mass (barycentric or mixed Voronoi), 1-D
@@ -18,6 +31,10 @@ Operators
 """
 
 from .laplacian import cotangent_laplacian, face_areas, intrinsic_laplacian, mass_matrix
+from .approximation import Approximation, Basis, LaplacianBasis, approximate, relative_error
+from .descriptors import heat_kernel_rows, heat_kernel_signature, heat_times, wave_energies, wave_kernel_signature
+from .products import (DEFAULT_PRODUCT_TOLERANCE, LeastSquaresProducts, ProductBasis, least_squares_products,
+                       orthogonal_products, product_budget, product_exponents, raw_products)
 from .mesh import PreparedMesh, prepare_mesh, validate_mesh
 from .meshio import MeshData, read_mesh, write_ply
 
@@ -28,6 +45,24 @@ __all__ = [
     "read_mesh",
     "write_ply",
     "MeshData",
+    "product_exponents",
+    "raw_products",
+    "ProductBasis",
+    "orthogonal_products",
+    "LeastSquaresProducts",
+    "least_squares_products",
+    "product_budget",
+    "DEFAULT_PRODUCT_TOLERANCE",
+    "Basis",
+    "LaplacianBasis",
+    "Approximation",
+    "approximate",
+    "relative_error",
+    "heat_times",
+    "heat_kernel_signature",
+    "heat_kernel_rows",
+    "wave_energies",
+    "wave_kernel_signature",
     "cotangent_laplacian",
     "mass_matrix",
     "intrinsic_laplacian",

@@ -1,0 +1,101 @@
+"""Settings of one transfer, kept on the scene (``scene.overtone``).
+
+Read by the operators and the batch runner; drawn by the panels.
+"""
+
+from __future__ import annotations
+
+from typing import cast
+
+import bpy
+from bpy.props import (BoolProperty, CollectionProperty, EnumProperty, FloatProperty,
+                       IntProperty, PointerProperty, StringProperty)
+
+__all__ = ["OvertoneSignalItem", "OvertoneSettings", "MATCH_MODES", "BASES", "settings_of",
+           "register", "unregister"]
+
+MATCH_MODES = [
+    ("AUTO", "Auto", "Decide from how well the two surfaces overlap in space"),
+    ("ALIGNED", "Aligned", "The surfaces overlap in space: refine the closest-point match"),
+    ("INTRINSIC", "Intrinsic",
+     "Different pose or proportions: match the surfaces by their intrinsic shape"),
+]
+BASES = [
+    ("ORTHOPRODUCTS", "Orthogonalised Products",
+     "Eigenfunctions and their products, made mass-orthonormal: sharp edges survive"),
+    ("LAPLACIAN", "Eigenfunctions", "Laplace-Beltrami eigenfunctions only: smooth signals"),
+    ("PRODUCTS", "Raw Products", "Eigenfunctions and their products, fitted by least squares"),
+    ("POINTWISE", "Point to Point", "Copy values through the point correspondence, no basis"),
+]
+
+
+class OvertoneSignalItem(bpy.types.PropertyGroup):
+    """One signal on the source, with a tick box."""
+
+    use: BoolProperty(name="Carry", default=True,  # type: ignore[valid-type]
+                      description="Carry this signal to the target")
+    kind: StringProperty(name="Kind")  # type: ignore[valid-type]
+    domain: StringProperty(name="Domain")  # type: ignore[valid-type]
+    data_type: StringProperty(name="Data Type")  # type: ignore[valid-type]
+
+
+class OvertoneSettings(bpy.types.PropertyGroup):
+    """What to carry and how; the last run's report."""
+
+    match_mode: EnumProperty(name="Matching", items=MATCH_MODES,  # type: ignore[valid-type]
+                             default="AUTO")
+    basis: EnumProperty(name="Basis", items=BASES,  # type: ignore[valid-type]
+                        default="ORTHOPRODUCTS")
+    eigenfunctions: IntProperty(  # type: ignore[valid-type]
+        name="Eigenfunctions", default=60, min=4, soft_max=300, max=1000,
+        description="How many Laplace-Beltrami eigenfunctions describe each surface")
+    product_order: IntProperty(  # type: ignore[valid-type]
+        name="Product Order", default=2, min=1, max=4,
+        description="Highest number of eigenfunctions multiplied together in the basis")
+    detail_strength: FloatProperty(  # type: ignore[valid-type]
+        name="Strength", default=1.0, min=0.0, soft_max=2.0, max=10.0,
+        description="Scale of the carried surface detail")
+    detail_band: IntProperty(  # type: ignore[valid-type]
+        name="Base Shape", default=30, min=1, max=1000,
+        description="Eigenfunctions that make up the overall shape; "
+                    "what lies above them is carried as detail")
+    as_shown: BoolProperty(  # type: ignore[valid-type]
+        name="As Shown", default=False,
+        description="Use the source as shown in the viewport, with its modifiers applied")
+    replace_existing: BoolProperty(  # type: ignore[valid-type]
+        name="Replace Existing", default=False,
+        description="Overwrite a target layer of the same name instead of adding a new one")
+    signals: CollectionProperty(type=OvertoneSignalItem)  # type: ignore[valid-type]
+    signals_index: IntProperty(default=0)  # type: ignore[valid-type]
+    signals_source: StringProperty(  # type: ignore[valid-type]
+        name="Listed From", description="Object the signal list was read from")
+    report_text: StringProperty(name="Report")  # type: ignore[valid-type]
+    report_ok: BoolProperty(default=False)  # type: ignore[valid-type]
+    report_seconds: FloatProperty(name="Time", unit='TIME_ABSOLUTE')  # type: ignore[valid-type]
+    report_confidence: FloatProperty(  # type: ignore[valid-type]
+        name="Mean Confidence", min=0.0, max=1.0, subtype='FACTOR')
+    report_written: IntProperty(name="Layers Written")  # type: ignore[valid-type]
+
+
+def settings_of(context: bpy.types.Context) -> OvertoneSettings:
+    """The scene's Overtone settings."""
+    scene = context.scene
+    if scene is None:
+        raise ValueError("no scene in this context")
+    return cast(OvertoneSettings, getattr(scene, "overtone"))
+
+
+_CLASSES = (OvertoneSignalItem, OvertoneSettings)
+
+
+def register() -> None:
+    for cls in _CLASSES:
+        bpy.utils.register_class(cls)
+    bpy.types.Scene.overtone = PointerProperty(  # type: ignore[attr-defined, func-returns-value]
+        type=OvertoneSettings)
+
+
+def unregister() -> None:
+    del bpy.types.Scene.overtone  # type: ignore[attr-defined]
+    for cls in reversed(_CLASSES):
+        bpy.utils.unregister_class(cls)
