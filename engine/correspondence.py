@@ -43,7 +43,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy.spatial import cKDTree
 
-from ._interim import raw_products
+from .products import product_exponents, raw_products
 from .closest_point import SurfaceLocator, _incident_triangles
 from .functional_map import fmap_from_descriptors, orientation_operator, zoomout
 from .shape import Shape

@@ -27,7 +27,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ._interim import raw_products
+from .products import product_exponents, raw_products
 from .correspondence import Correspondence
 from .signals import KINDS, check_signal
 
@@ -97,7 +97,6 @@ class Transfer:
             info.update(K=K, order=order, columns=int(len(pb.exponents)), rank=int(pb.basis.shape[1]))
         elif basis == "products":
             eb = source.eigenbasis(K)
-            from ._interim import product_exponents
             raw = raw_products(eb.eigenvectors[:, :K], product_exponents(K, order))
             s = np.sqrt(source.mass)[:, None]
             self._B = raw
