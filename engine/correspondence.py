@@ -13,9 +13,15 @@ intrinsic
     functional map by least squares with Laplacian commutativity and an
     orientation-preserving term (so a mirror-symmetric character is not
     mirrored); ZoomOut refinement grows it to a larger basis, with the
-    landmark rows kept in the nearest-neighbour search.
+    landmark rows kept in the nearest-neighbour search. Then the source is
+    deformed onto the target through that map (landmark thin-plate-spline
+    start, affine fit, Laplacian-regularised displacement with shrinking
+    smoothing lengths) and every target vertex takes its closest point on the
+    deformed source: this is what carries variants with other proportions,
+    which no isometry prior serves.
 
-The final point map (both modes, ``refine=True``) matches target vertices to
+The optional product refinement (``refine=True``, off by default because it
+does not yet improve the maps measured in benchmarks/transfer_accuracy.py) matches target vertices to
 source points in the embedding of orthogonalised eigenfunction products:
 target products ``Q_t``; on the source, the products of the source functions
 that the current map carries onto the target eigenfunctions, orthogonalised
@@ -30,7 +36,8 @@ a least-squares fit in the embedding.
 as much of the target; both above 0.9 picks aligned.
 
 Confidence per target vertex is the round-trip agreement: target vertex ->
-source point -> (reverse map) -> target vertex; ``exp(-(d / 4h)^2)`` with
+source point -> (reverse map: closest points from the (deformed) source
+onto the target, or the spectral embedding without alignment) -> target vertex; ``exp(-(d / 4h)^2)`` with
 ``d`` the distance between start and end and ``h`` the target's mean edge
 length (1 is a perfect round trip, 0.5 about 3.3 edge lengths off).
 """
@@ -64,7 +71,7 @@ class Correspondence:
         ``"aligned"`` or ``"intrinsic"``.
     reason : str
         Why that mode (for ``match="auto"`` the measured overlap).
-    triangle : (n_t, 3)... (n_t,) int64 array
+    triangle : (n_t,) int64 array
         Source triangle (index into ``source.faces``) per cleaned target vertex.
     barycentric : (n_t, 3) float64 array
         Weights of that triangle's corners; non-negative, rows sum to 1.
