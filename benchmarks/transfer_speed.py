@@ -41,7 +41,7 @@ def run(p, basis):
           f"warm {warm:.3f} s ({warm / base:.2f}x)")
 
 
-def main(basis="orthoproducts"):
+def main(basis="pointwise"):
     run(pairs.creature_resolution(source=(250, 120), target=(240, 126)), basis)
     run(pairs.creature_pose(source=(250, 120), target=(240, 126)), basis)
 

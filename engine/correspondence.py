@@ -52,7 +52,7 @@ from scipy.spatial import cKDTree
 
 from .products import product_exponents, raw_products
 from .closest_point import SurfaceLocator, _incident_triangles
-from .functional_map import fmap_from_descriptors, orientation_operator, zoomout
+from .functional_map import fmap_from_descriptors, nearest_rows, orientation_operator, zoomout
 from .shape import Shape
 
 __all__ = ["Correspondence", "correspond"]
@@ -309,7 +309,7 @@ def correspond(source: Shape, target: Shape, *, match: str = "auto", landmarks=N
     if rev[0] == "closest":
         back = target.faces[rev[1].triangle, np.argmax(rev[1].barycentric, axis=1)]
     else:
-        _, back = cKDTree(rev[2]).query(rev[1], workers=-1)
+        back = nearest_rows(rev[2], rev[1])
     end = back[vertex]
     d = np.linalg.norm(target.vertices[end] - target.vertices, axis=1)
     conf = np.exp(-(d / (4 * target.mean_edge)) ** 2)
