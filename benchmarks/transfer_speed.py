@@ -19,8 +19,7 @@ from engine.transfer import Transfer  # noqa: E402
 from tests import pairs  # noqa: E402
 
 
-def main(basis="orthoproducts"):
-    p = pairs.creature_resolution(source=(250, 120), target=(240, 126))
+def run(p, basis):
     sc = pairs.rest_scale(p)
     col = pairs.colour(p.source_rest, sc)
     t = time.perf_counter()
@@ -29,16 +28,22 @@ def main(basis="orthoproducts"):
     base = time.perf_counter() - t
     t = time.perf_counter()
     S, T = Shape(p.source_vertices, p.source_faces), Shape(p.target_vertices, p.target_faces)
-    c = correspond(S, T)
+    c = correspond(S, T, landmarks=p.landmarks or None)
     tr = Transfer(S, T, c, basis=basis)
     tr.transfer(col)
     cold = time.perf_counter() - t
     t = time.perf_counter()
     tr.transfer(col[:, ::-1].copy())
     warm = time.perf_counter() - t
-    print(f"{len(p.source_vertices)} -> {len(p.target_vertices)} vertices, mode {c.mode}, basis {basis}")
+    print(f"{p.name}: {len(p.source_vertices)} -> {len(p.target_vertices)} vertices, mode {c.mode}, "
+          f"basis {basis}; stage seconds {c.stats['timings']}")
     print(f"closest-point baseline {base:.3f} s; cold {cold:.2f} s ({cold / base:.1f}x); "
           f"warm {warm:.3f} s ({warm / base:.2f}x)")
+
+
+def main(basis="pointwise"):
+    run(pairs.creature_resolution(source=(250, 120), target=(240, 126)), basis)
+    run(pairs.creature_pose(source=(250, 120), target=(240, 126)), basis)
 
 
 if __name__ == "__main__":

@@ -1,7 +1,7 @@
 """Temporary private stand-ins for modules being written in parallel.
 
 Each name here mirrors the contract of a module that lands on main soon
-(eigenbasis.py, cache.py, products.py, descriptors.py).
+(eigenbasis.py, cache.py).
 Everything that uses them imports them through :mod:`engine.shape` so the
 switch to the real modules is one import line. Delete this file once they land.
 """
@@ -12,7 +12,6 @@ import hashlib
 import json
 import os
 from dataclasses import dataclass, field
-from itertools import combinations_with_replacement
 
 import numpy as np
 import scipy.linalg as sla
@@ -90,77 +89,3 @@ def eigenbasis(stiffness, mass, k, *, seed=0) -> Eigenbasis:
     return Eigenbasis(w, V, mass, res, {"method": "interim"})
 
 
-# ---------------------------------------------------------------- products.py
-@dataclass(frozen=True)
-class ProductBasis:
-    basis: np.ndarray
-    kept: np.ndarray
-    exponents: np.ndarray
-    coefficients: np.ndarray
-
-
-def product_exponents(K, order):
-    rows = []
-    for d in range(order + 1):
-        for combo in combinations_with_replacement(range(K), d):
-            e = np.zeros(K, np.int64)
-            for c in combo:
-                e[c] += 1
-            rows.append(e)
-    return np.array(rows)
-
-
-def raw_products(eigenvectors, exponents):
-    out = np.ones((eigenvectors.shape[0], len(exponents)))
-    for j, e in enumerate(exponents):
-        for i in np.flatnonzero(e):
-            out[:, j] *= eigenvectors[:, i] ** e[i]
-    return out
-
-
-def orthogonal_products(eigenvectors, mass, order, *, K=None, tol=1e-8) -> ProductBasis:
-    K = eigenvectors.shape[1] if K is None else K
-    ex = product_exponents(K, order)
-    raw = raw_products(eigenvectors[:, :K], ex)
-    s = np.sqrt(mass)[:, None]
-    Q, R, piv = sla.qr(raw * s, mode="economic", pivoting=True)
-    d = np.abs(np.diag(R))
-    r = int(np.sum(d > tol * d[0]))
-    basis = Q[:, :r] / s
-    coef = np.zeros((r, raw.shape[1]))
-    coef[:, piv] = R[:r]
-    return ProductBasis(basis, np.sort(piv[:r]), ex, coef)
-
-
-# ---------------------------------------------------------------- descriptors.py
-def _default_times(eigenvalues, count):
-    lam = eigenvalues[eigenvalues > 1e-9 * max(eigenvalues[-1], 1e-300)]
-    t_min, t_max = 4 * np.log(10) / lam[-1], 4 * np.log(10) / lam[0]
-    return np.geomspace(t_min, t_max, count)
-
-
-def heat_kernel_signature(eigenvalues, eigenvectors, times=None, *, count=16):
-    times = _default_times(eigenvalues, count) if times is None else np.asarray(times, float)
-    return (eigenvectors ** 2) @ np.exp(-np.outer(eigenvalues, times))
-
-
-def wave_kernel_signature(eigenvalues, eigenvectors, energies=None, *, count=16, sigma=7.0):
-    lam = np.maximum(eigenvalues, 1e-12)
-    log_l = np.log(lam[1:] if eigenvalues[0] < 1e-9 * eigenvalues[-1] else lam)
-    if energies is None:
-        energies = np.linspace(log_l[0], log_l[-1] / 1.02, count)
-    s = sigma * (energies[1] - energies[0]) if len(energies) > 1 else 1.0
-    w = np.exp(-((energies[None, :] - np.log(lam)[:, None]) ** 2) / (2 * s * s))
-    if eigenvalues[0] < 1e-9 * eigenvalues[-1]:
-        w[0] = 0
-    desc = (eigenvectors ** 2) @ w
-    return desc / np.maximum(w.sum(axis=0), 1e-300)
-
-
-def heat_kernel_rows(eigenvalues, eigenvectors, idx, times):
-    idx = np.atleast_1d(np.asarray(idx))
-    times = np.atleast_1d(np.asarray(times, float))
-    out = []
-    for t in times:
-        out.append(eigenvectors @ (np.exp(-eigenvalues * t)[:, None] * eigenvectors[idx].T))
-    return np.concatenate(out, axis=1)

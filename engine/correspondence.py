@@ -13,9 +13,15 @@ intrinsic
     functional map by least squares with Laplacian commutativity and an
     orientation-preserving term (so a mirror-symmetric character is not
     mirrored); ZoomOut refinement grows it to a larger basis, with the
-    landmark rows kept in the nearest-neighbour search.
+    landmark rows kept in the nearest-neighbour search. Then the source is
+    deformed onto the target through that map (landmark thin-plate-spline
+    start, affine fit, Laplacian-regularised displacement with shrinking
+    smoothing lengths) and every target vertex takes its closest point on the
+    deformed source: this is what carries variants with other proportions,
+    which no isometry prior serves.
 
-The final point map (both modes, ``refine=True``) matches target vertices to
+The optional product refinement (``refine=True``, off by default because it
+does not yet improve the maps measured in benchmarks/transfer_accuracy.py) matches target vertices to
 source points in the embedding of orthogonalised eigenfunction products:
 target products ``Q_t``; on the source, the products of the source functions
 that the current map carries onto the target eigenfunctions, orthogonalised
@@ -30,7 +36,8 @@ a least-squares fit in the embedding.
 as much of the target; both above 0.9 picks aligned.
 
 Confidence per target vertex is the round-trip agreement: target vertex ->
-source point -> (reverse map) -> target vertex; ``exp(-(d / 4h)^2)`` with
+source point -> (reverse map: closest points from the (deformed) source
+onto the target, or the spectral embedding without alignment) -> target vertex; ``exp(-(d / 4h)^2)`` with
 ``d`` the distance between start and end and ``h`` the target's mean edge
 length (1 is a perfect round trip, 0.5 about 3.3 edge lengths off).
 """
@@ -43,9 +50,9 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy.spatial import cKDTree
 
-from ._interim import raw_products
+from .products import product_exponents, raw_products
 from .closest_point import SurfaceLocator, _incident_triangles
-from .functional_map import fmap_from_descriptors, orientation_operator, zoomout
+from .functional_map import fmap_from_descriptors, nearest_rows, orientation_operator, zoomout
 from .shape import Shape
 
 __all__ = ["Correspondence", "correspond"]
@@ -64,7 +71,7 @@ class Correspondence:
         ``"aligned"`` or ``"intrinsic"``.
     reason : str
         Why that mode (for ``match="auto"`` the measured overlap).
-    triangle : (n_t, 3)... (n_t,) int64 array
+    triangle : (n_t,) int64 array
         Source triangle (index into ``source.faces``) per cleaned target vertex.
     barycentric : (n_t, 3) float64 array
         Weights of that triangle's corners; non-negative, rows sum to 1.
@@ -262,7 +269,8 @@ def correspond(source: Shape, target: Shape, *, match: str = "auto", landmarks=N
         C0 = u @ vt
         timings["descriptor_map"] = time.perf_counter() - t1
         t1 = time.perf_counter()
-        C, vertex = zoomout(C0, ps, pt, mt, k_final=kk, step=step, extra_s=extra_s, extra_t=extra_t)
+        C, vertex, rows = zoomout(C0, ps, pt, mt, k_final=kk, step=step, extra_s=extra_s, extra_t=extra_t,
+                                  full_last=not align_steps)
         timings["zoomout"] = time.perf_counter() - t1
         tri, bary = _vertex_as_point(source, vertex)
         k_map = kk
@@ -276,8 +284,9 @@ def correspond(source: Shape, target: Shape, *, match: str = "auto", landmarks=N
 
     if mode == "intrinsic" and align_steps:
         t0 = time.perf_counter()
-        tri, bary = _align_refine(source, target, tri, bary, align_steps)
+        tri, bary, X = _align_refine(source, target, tri, bary, align_steps, lm, rows)
         vertex = source.faces[tri, np.argmax(bary, axis=1)]
+        rev = ("closest", SurfaceLocator(target.vertices, target.faces).closest(X))
         timings["align_refine"] = time.perf_counter() - t0
 
     ranks = {}
@@ -300,7 +309,7 @@ def correspond(source: Shape, target: Shape, *, match: str = "auto", landmarks=N
     if rev[0] == "closest":
         back = target.faces[rev[1].triangle, np.argmax(rev[1].barycentric, axis=1)]
     else:
-        _, back = cKDTree(rev[2]).query(rev[1], workers=-1)
+        back = nearest_rows(rev[2], rev[1])
     end = back[vertex]
     d = np.linalg.norm(target.vertices[end] - target.vertices, axis=1)
     conf = np.exp(-(d / (4 * target.mean_edge)) ** 2)
@@ -460,23 +469,37 @@ def _simplex_qp(G, s):
     return best_w, best_v
 
 
-def _align_refine(source, target, tri, bary, steps):
+def _align_refine(source, target, tri, bary, steps, lm=None, rows=None):
     """Deform the source onto the target through the current map, then closest points.
 
     Each step solves ``min_D sum_i m_i |Pi_i (X + D) - y_i|^2 + r^2 D^T L D``
     for a displacement ``D`` of the (affinely pre-aligned) source vertices
     ``X`` toward the target vertices ``y`` they map to, with smoothing length
     ``r``, then re-maps every target vertex to its closest point on the
-    deformed source (a non-rigid ICP regularised by the Laplacian).
+    deformed source (a non-rigid ICP regularised by the Laplacian). With four
+    or more landmarks the source starts from a thin-plate-spline warp through
+    them (``scipy.interpolate.RBFInterpolator``) instead of the identity.
+    ``rows``: the target vertices that ``tri, bary`` describe (None: all);
+    after the first step every target vertex is matched.
+
+    Returns
+    -------
+    triangle, barycentric for every target vertex; the deformed source (n_s, 3).
     """
     import scipy.sparse as sp
     import scipy.sparse.linalg as spla
-    n_t = len(tri)
-    y = target.vertices
-    w = target.mass
+    y = target.vertices if rows is None else target.vertices[rows]
+    w = target.mass if rows is None else target.mass[rows] * (target.n_vertices / len(rows))
     X = source.vertices.copy()
+    if lm is not None and len(lm[0]) >= 4:
+        from scipy.interpolate import RBFInterpolator
+        try:
+            X = RBFInterpolator(X[lm[0]], target.vertices[lm[1]], kernel="thin_plate_spline", degree=1)(X)
+        except (np.linalg.LinAlgError, ValueError):   # degenerate landmark layout: keep the identity
+            X = source.vertices.copy()
     L = source.stiffness
     for r in steps:
+        n_t = len(tri)
         Pi = sp.csr_matrix((bary.ravel(), (np.repeat(np.arange(n_t), 3), source.faces[tri].ravel())),
                            shape=(n_t, source.n_vertices))
         p = Pi @ X
@@ -491,9 +514,10 @@ def _align_refine(source, target, tri, bary, steps):
         H = H + sp.diags(np.full(source.n_vertices, 1e-9 * H.diagonal().mean()))
         D = spla.splu(H).solve(np.asarray(PtW @ (y - p)))
         X = X + D
+        y, w = target.vertices, target.mass
         cp = SurfaceLocator(X, source.faces).closest(y)
         tri, bary = cp.triangle, cp.barycentric
-    return tri, bary
+    return tri, bary, X
 
 
 def _coverage(source, points, radius):

@@ -18,7 +18,7 @@ import numpy as np
 from scipy.spatial import cKDTree
 
 __all__ = ["fmap_from_descriptors", "fmap_from_pointmap", "pointmap_from_fmap", "zoomout",
-           "orientation_operator"]
+           "orientation_operator", "nearest_rows"]
 
 
 def fmap_from_descriptors(lam_s, phi_s, mass_s, desc_s, lam_t, phi_t, mass_t, desc_t, *,
@@ -150,12 +150,28 @@ def pointmap_from_fmap(C, phi_s, phi_t, *, extra_s=None, extra_t=None, rows=None
         et = extra_t if rows is None else extra_t[rows]
         emb_t = np.hstack([emb_t, et])
         emb_s = np.hstack([emb_s, extra_s])
-    _, j = cKDTree(emb_s).query(emb_t, workers=-1)
-    return j.astype(np.int64)
+    return nearest_rows(emb_s, emb_t)
+
+
+def nearest_rows(data, query, *, block: int = 512):
+    """Index of the nearest row of ``data`` for each row of ``query``.
+
+    A ``cKDTree`` up to 24 dimensions; above that a blocked brute force by
+    matrix products, which is faster there (PLATFORM.md measured kd-trees
+    losing to brute force at a few hundred dimensions).
+    """
+    if data.shape[1] <= 24:
+        return cKDTree(data).query(query, workers=-1)[1].astype(np.int64)
+    d2 = np.einsum("ij,ij->i", data, data)
+    out = np.empty(len(query), np.int64)
+    for s in range(0, len(query), block):
+        q = query[s:s + block]
+        out[s:s + block] = np.argmin(d2[None, :] - 2.0 * (q @ data.T), axis=1)
+    return out
 
 
 def zoomout(C0, phi_s, phi_t, mass_t, *, k_final: int, step: int = 10, extra_s=None, extra_t=None,
-            sample: int = 3000, seed: int = 0):
+            sample: int = 3000, seed: int = 0, full_last: bool = True):
     """Spectral upsampling of a functional map.
 
     Each step maps target vertices to source vertices with the current ``C``
@@ -163,10 +179,16 @@ def zoomout(C0, phi_s, phi_t, mass_t, *, k_final: int, step: int = 10, extra_s=N
     ``sample`` random target vertices (area-weighted least squares on the
     sample), the last step all of them.
 
+    With ``full_last=False`` the last step also stays on the sample (for a
+    caller that only needs a sparse set of matches).
+
     Returns
     -------
     C : (k_final, k_final) float64 array
     vertex_map : (n_t,) int64 array, target vertex -> source vertex
+        (or (s,) for the sampled rows when ``full_last`` is False)
+    rows : (s,) int64 array or None
+        The target vertices of ``vertex_map`` (None: all).
     """
     n_t = phi_t.shape[0]
     rng = np.random.default_rng(seed)
@@ -176,11 +198,12 @@ def zoomout(C0, phi_s, phi_t, mass_t, *, k_final: int, step: int = 10, extra_s=N
     k_final = int(min(k_final, phi_s.shape[1], phi_t.shape[1]))
     while True:
         last = k >= k_final
-        r = None if last else rows
+        r = None if (last and full_last) else rows
         j = pointmap_from_fmap(C, phi_s, phi_t, extra_s=extra_s, extra_t=extra_t, rows=r)
         if last:
-            C = phi_t[:, :k].T @ (mass_t[:, None] * phi_s[j, :k])
-            return C, j
+            if r is None:
+                C = phi_t[:, :k].T @ (mass_t[:, None] * phi_s[j, :k])
+            return C, j, r
         k = min(k + step, k_final)
         if r is None:
             C = phi_t[:, :k].T @ (mass_t[:, None] * phi_s[j, :k])

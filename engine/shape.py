@@ -16,8 +16,9 @@ import numpy as np
 from .laplacian import cotangent_laplacian, mass_matrix
 from .mesh import prepare_mesh
 # One import point for the modules being written in parallel (see _interim.py).
-from ._interim import (Cache, Eigenbasis, ProductBasis, eigenbasis, geometry_key, heat_kernel_rows,
-                       heat_kernel_signature, orthogonal_products, wave_kernel_signature)
+from ._interim import Cache, Eigenbasis, eigenbasis, geometry_key
+from .descriptors import heat_kernel_rows, heat_kernel_signature, wave_kernel_signature
+from .products import DEFAULT_PRODUCT_TOLERANCE, ProductBasis, orthogonal_products
 
 __all__ = ["Shape"]
 
@@ -117,7 +118,7 @@ class Shape:
                                   "residuals": self._eig.residuals})
         return self._eig
 
-    def products(self, K: int, order: int, *, tol: float = 1e-8) -> ProductBasis:
+    def products(self, K: int, order: int, *, tol: float = DEFAULT_PRODUCT_TOLERANCE) -> ProductBasis:
         """Mass-orthonormal products of the first ``K`` eigenfunctions up to ``order``."""
         key = (int(K), int(order), float(tol))
         if key in self._products:
@@ -128,7 +129,8 @@ class Shape:
             stored = self.cache.load(disk)
             if stored is not None:
                 self.hits["disk"] += 1
-                pb = ProductBasis(stored["basis"], stored["kept"], stored["exponents"], stored["coefficients"])
+                pb = ProductBasis(stored["basis"], stored["kept"], stored["exponents"], stored["coefficients"],
+                                  self.mass, float(tol), int(stored["basis"].shape[1]))
                 self._products[key] = pb
                 return pb
         eb = self.eigenbasis(K)
@@ -144,12 +146,12 @@ class Shape:
     def hks(self, k: int = 60, count: int = 16, *, scale_invariant: bool = True) -> np.ndarray:
         """Heat kernel signature, (n, count), on the area-normalised shape."""
         lam, phi = self.normalised_basis(k)
-        return heat_kernel_signature(lam, phi, count=count)
+        return heat_kernel_signature(lam, phi, n_times=count)
 
     def wks(self, k: int = 60, count: int = 16) -> np.ndarray:
         """Wave kernel signature, (n, count)."""
         lam, phi = self.normalised_basis(k)
-        return wave_kernel_signature(lam, phi, count=count)
+        return wave_kernel_signature(lam, phi, n_energies=count)
 
     def heat_rows(self, k: int, idx, times) -> np.ndarray:
         """Heat kernel rows of the vertices ``idx`` at ``times`` (area-normalised)."""

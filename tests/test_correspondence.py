@@ -102,3 +102,12 @@ def test_bent_elephant_with_landmarks_beats_closest_points_threefold():
     err0 = np.sqrt(((base.pull(src) - truth) ** 2).mean())
     assert err < err0 / 3
     assert _map_error(p, c).mean() < 0.03
+
+
+@pytest.mark.parametrize("dims", [3, 40])
+def test_nearest_rows_matches_kdtree(dims):
+    from scipy.spatial import cKDTree
+    from engine.functional_map import nearest_rows
+    rng = np.random.default_rng(2)
+    data, query = rng.normal(size=(700, dims)), rng.normal(size=(300, dims))
+    np.testing.assert_array_equal(nearest_rows(data, query), cKDTree(data).query(query)[1])

@@ -65,3 +65,20 @@ def test_errors(pair):
     bad[3, 1] = np.nan
     with pytest.raises(ValueError, match="finite|NaN|nan"):
         tr.transfer(bad)
+
+
+def test_shape_caches_in_memory_and_on_disk(tmp_path):
+    from tests.meshes import icosphere
+    v, f = icosphere(2)
+    a = Shape(v, f, cache=tmp_path)
+    e1 = a.eigenbasis(12)
+    a.eigenbasis(8)                       # answered by the larger basis
+    assert a.hits == {"memory": 1, "disk": 0, "computed": 1}
+    b = Shape(v, f, cache=tmp_path)       # a new session on the same geometry
+    e2 = b.eigenbasis(12)
+    assert b.hits["disk"] == 1 and b.hits["computed"] == 0
+    np.testing.assert_allclose(e2.eigenvectors, e1.eigenvectors)
+    # unit sphere: first non-zero eigenvalue l(l+1) = 2 (Chavel 1984, from memory), 3-fold
+    np.testing.assert_allclose(e1.eigenvalues[1:4], 2.0, rtol=0.05)
+    # restore takes cleaned values back to every original vertex
+    np.testing.assert_array_equal(a.restore(np.arange(a.n_vertices)), np.arange(len(v)))
