@@ -28,6 +28,14 @@ Approximation and descriptors
     LaplacianBasis        the eigenbasis as an approximation basis
     heat_kernel_signature, wave_kernel_signature, heat_kernel_rows, heat_times, wave_energies
 
+Shapes, correspondence and transfer
+    Shape                 one mesh: operators, eigenbasis, products, descriptors, computed once
+    correspond            target vertex -> point on the source surface (Correspondence)
+    Transfer              carries signals through a basis of choice (TransferResult)
+    Pair, Settings        the whole job for one source/target pair (pipeline.py)
+    run_transfer_job, run_detail_job   file in, file out: one pair per call
+    SurfaceLocator        closest points on a triangle mesh
+
 Operators
     operators             stiffness and mass, robust variant when the mesh needs it (Operators)
     robust_laplacian      non-manifold Laplacian: tufted cover, mollification, intrinsic Delaunay
@@ -38,6 +46,11 @@ Operators
     intrinsic_laplacian   the same operators from edge lengths alone
 """
 
+from .closest_point import SurfaceLocator, SurfacePoints
+from .correspondence import Correspondence, correspond
+from .pipeline import Pair, Settings, run_detail_job, run_transfer_job
+from .shape import Shape
+from .transfer import Transfer, TransferResult
 from .operators import MeshDefects, Operators, mesh_defects, operators
 from .robust import robust_laplacian
 from .eigenbasis import Eigenbasis, eigenbasis
@@ -51,6 +64,17 @@ from .mesh import PreparedMesh, prepare_mesh, validate_mesh
 from .meshio import MeshData, read_mesh, write_ply
 
 __all__ = [
+    "Shape",
+    "correspond",
+    "Correspondence",
+    "Transfer",
+    "TransferResult",
+    "Pair",
+    "Settings",
+    "run_transfer_job",
+    "run_detail_job",
+    "SurfaceLocator",
+    "SurfacePoints",
     "validate_mesh",
     "prepare_mesh",
     "PreparedMesh",

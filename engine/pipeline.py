@@ -26,6 +26,7 @@ import numpy as np
 
 from .correspondence import MATCHES, Correspondence, correspond
 from .detail import apply_detail, smooth_base, split_detail
+from .cache import Cache, geometry_key
 from .shape import Shape
 from .signals import check_signal
 from .transfer import BASES, Transfer, TransferResult
@@ -115,7 +116,6 @@ class Pair:
         cache = self.target.cache or self.source.cache
         if cache is None:
             return None
-        from .shape import geometry_key
         return geometry_key(self.source.vertices, self.source.faces, self.target.vertices, self.target.faces,
                             what="correspondence", **self.settings.map_key())
 
@@ -123,7 +123,9 @@ class Pair:
         key = self._map_cache_key()
         cache = self.target.cache or self.source.cache
         if key is not None:
-            stored = cache.load(key)
+            n_t = self.target.n_vertices
+            stored = cache.load(key, {"triangle": (n_t,), "barycentric": (n_t, 3), "confidence": (n_t,),
+                                      "fmap": (None, None), "meta": ()})
             if stored is not None and _valid_map(stored, self.source, self.target):
                 self.cache_hits["correspondence"] = "disk"
                 meta = json.loads(str(stored["meta"]))
@@ -230,6 +232,8 @@ class Pair:
             "coverage_of_source_area": corr.get("coverage_of_source_area"),
             "consistency": corr.get("consistency"),
             "mean_confidence": float(self.confidence.mean()),
+            "operators": {"source": self.source.operators.reason or "cotangent",
+                          "target": self.target.operators.reason or "cotangent"},
             "correspondence": corr,
             "timings": dict(self.timings),
             "cache_hits": {**self.cache_hits, "source": dict(self.source.hits), "target": dict(self.target.hits)},
@@ -397,7 +401,6 @@ def run_detail_job(source_path, target_path, output_path, *, strength=None, size
 def _cache(cache_dir):
     if not cache_dir:
         return None
-    from .shape import Cache
     return Cache(cache_dir)
 
 

@@ -13,12 +13,12 @@ from __future__ import annotations
 
 import numpy as np
 
-from .laplacian import cotangent_laplacian, mass_matrix
+from .cache import Cache, geometry_key
+from .eigenbasis import Eigenbasis, eigenbasis
 from .mesh import prepare_mesh
-# One import point for the modules being written in parallel (see _interim.py).
-from ._interim import Cache, Eigenbasis, eigenbasis, geometry_key
+from .operators import operators
 from .descriptors import heat_kernel_rows, heat_kernel_signature, wave_kernel_signature
-from .products import DEFAULT_PRODUCT_TOLERANCE, ProductBasis, orthogonal_products
+from .products import ProductBasis, default_product_tolerance, orthogonal_products
 
 __all__ = ["Shape"]
 
@@ -56,8 +56,7 @@ class Shape:
         self.cache = cache
         self.key = geometry_key(self.vertices, self.faces)
         self.hits = {"memory": 0, "disk": 0, "computed": 0}
-        self._stiffness = None
-        self._mass = None
+        self._operators = None
         self._eig: Eigenbasis | None = None
         self._products: dict = {}
 
@@ -71,18 +70,21 @@ class Shape:
         return int(self.prepared.n_original)
 
     @property
+    def operators(self):
+        """Stiffness and mass, robust (intrinsic) variant when the mesh needs it (``engine.operators``)."""
+        if self._operators is None:
+            self._operators = operators(self.vertices, self.faces, robust="auto")
+        return self._operators
+
+    @property
     def stiffness(self):
         """(n, n) csr_matrix, cotangent stiffness, positive semidefinite."""
-        if self._stiffness is None:
-            self._stiffness = cotangent_laplacian(self.vertices, self.faces)
-        return self._stiffness
+        return self.operators.stiffness
 
     @property
     def mass(self) -> np.ndarray:
         """(n,) float64 lumped barycentric mass; sums to the area."""
-        if self._mass is None:
-            self._mass = mass_matrix(self.vertices, self.faces)
-        return self._mass
+        return self.operators.mass
 
     @property
     def area(self) -> float:
@@ -99,13 +101,15 @@ class Shape:
 
         A larger basis computed earlier answers a smaller request.
         """
-        k = int(min(k, self.n_vertices))
+        k = int(min(k, self.n_vertices - 1))
         if self._eig is not None and self._eig.eigenvectors.shape[1] >= k:
             self.hits["memory"] += 1
-            return _first(self._eig, k)
-        key = geometry_key(self.vertices, self.faces, what="eigenbasis", k=k)
+            return self._eig if self._eig.k == k else self._eig.truncate(k)
+        key = geometry_key(self.vertices, self.faces, what="eigenbasis", k=k,
+                           robust=bool(self.operators.robust))
         if self.cache is not None:
-            stored = self.cache.load(key)
+            n = self.n_vertices
+            stored = self.cache.load(key, {"eigenvalues": (k,), "eigenvectors": (n, k), "residuals": (k,)})
             if stored is not None:
                 self.hits["disk"] += 1
                 self._eig = Eigenbasis(stored["eigenvalues"], stored["eigenvectors"], self.mass,
@@ -118,15 +122,22 @@ class Shape:
                                   "residuals": self._eig.residuals})
         return self._eig
 
-    def products(self, K: int, order: int, *, tol: float = DEFAULT_PRODUCT_TOLERANCE) -> ProductBasis:
-        """Mass-orthonormal products of the first ``K`` eigenfunctions up to ``order``."""
+    def products(self, K: int, order: int, *, tol: float | None = None) -> ProductBasis:
+        """Mass-orthonormal products of the first ``K`` eigenfunctions up to ``order``.
+
+        ``tol`` defaults to ``engine.products.default_product_tolerance`` for the vertex count.
+        """
+        if tol is None:
+            tol = default_product_tolerance(self.n_vertices)
         key = (int(K), int(order), float(tol))
         if key in self._products:
             self.hits["memory"] += 1
             return self._products[key]
-        disk = geometry_key(self.vertices, self.faces, what="products", K=K, order=order, tol=tol)
+        disk = geometry_key(self.vertices, self.faces, what="products", K=K, order=order, tol=tol,
+                            robust=bool(self.operators.robust))
         if self.cache is not None:
-            stored = self.cache.load(disk)
+            stored = self.cache.load(disk, {"basis": (self.n_vertices, None), "kept": (None,),
+                                            "exponents": (None, int(K)), "coefficients": (None, None)})
             if stored is not None:
                 self.hits["disk"] += 1
                 pb = ProductBasis(stored["basis"], stored["kept"], stored["exponents"], stored["coefficients"],
@@ -183,9 +194,3 @@ class Shape:
         if (clean < 0).any():
             raise ValueError(f"vertex {int(idx[clean < 0][0])} is in no triangle")
         return clean
-
-
-def _first(eb: Eigenbasis, k: int) -> Eigenbasis:
-    if eb.eigenvectors.shape[1] == k:
-        return eb
-    return Eigenbasis(eb.eigenvalues[:k], eb.eigenvectors[:, :k], eb.mass, eb.residuals[:k], dict(eb.info))

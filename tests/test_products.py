@@ -143,7 +143,7 @@ def test_mass_orthonormal_on_noisy_sphere(order):
     np.testing.assert_allclose(G, np.eye(pb.rank), atol=1e-12)
     assert pb.rank == len(pb.kept) == pb.coefficients.shape[0]
     assert pb.coefficients.shape == (pb.rank, math.comb(12 + order, order))
-    assert pb.tolerance == DEFAULT_PRODUCT_TOLERANCE
+    assert pb.tolerance == max(DEFAULT_PRODUCT_TOLERANCE, 2 / len(m))  # the default for this vertex count
 
 
 def test_coefficients_re_express_raw_products(sphere10k):
@@ -181,7 +181,7 @@ def test_sphere_ranks_match_harmonic_counts(sphere10k):
     # products of degree <= l harmonics, order N, span degrees <= N l: (N l + 1)^2 functions
     _, _, lam, phi, m = sphere10k
     for K, order, l in [(4, 3, 1), (9, 2, 2), (9, 3, 2), (16, 2, 3)]:
-        assert orthogonal_products(phi, m, order, K=K).rank == (order * l + 1) ** 2
+        assert orthogonal_products(phi, m, order, K=K, tol=0.05).rank == (order * l + 1) ** 2
 
 
 @pytest.mark.parametrize("block_size", [1, 5, 40, 512])
