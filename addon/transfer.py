@@ -36,7 +36,7 @@ from .worker import Status, shared_worker
 
 __all__ = ["PairRequest", "Plan", "BackgroundRun", "selected_pair", "pick_pair", "check_pair",
            "default_signals", "make_plan", "run_plan", "finish", "transfer_pair",
-           "CONFIDENCE_NAME", "DETAIL_NAME", "PREVIEW_SUFFIX"]
+           "CONFIDENCE_NAME", "DETAIL_NAME", "PREVIEW_SUFFIX", "RESULTS_PROPERTY"]
 
 CONFIDENCE_NAME = "overtone_confidence"
 DETAIL_NAME = "overtone_detail"
@@ -135,15 +135,22 @@ def _check_object(role: str, obj: bpy.types.Object) -> None:
                          "Overtone needs a surface")
 
 
+RESULTS_PROPERTY = "overtone_results"
+"""Custom property on a target listing the layers Overtone wrote there: those
+never pair up as landmarks (a carried "head" group is a result, not a pin)."""
+
+
 def _shared_groups(source: bpy.types.Object, target: bpy.types.Object) -> list[str]:
-    names = {vg.name for vg in target.vertex_groups}
+    ours = set(cast(Any, target.get(RESULTS_PROPERTY, ())))
+    names = {vg.name for vg in target.vertex_groups} - ours
     return [vg.name for vg in source.vertex_groups if vg.name in names]
 
 
 def default_signals(source: bpy.types.Object, target: bpy.types.Object, *,
                     evaluated: bool = False) -> tuple[str, ...]:
     """What is carried when nothing is ticked: every colour attribute and vertex
-    group of the source, except groups the target also has (those are landmarks)."""
+    group of the source, except groups the target also has (those are landmarks,
+    unless Overtone wrote them: see :data:`RESULTS_PROPERTY`)."""
     shared = set(_shared_groups(source, target))
     return tuple(s.name for s in bridge.list_signals(source, evaluated=evaluated)
                  if s.kind == "color" or (s.data_type == "VERTEX_GROUP" and s.name not in shared))
@@ -289,6 +296,9 @@ def finish(plan: Plan, out: job.JobOutput) -> dict[str, Any]:
         raise ValueError(f"source {plan.source!r} as shown has a different vertex count than its "
                          "mesh: turn off As Shown to preview onto it")
     written = bridge.write_outputs(obj, _outputs(plan, out), replace=plan.request.replace_existing)
+    if plan.kind != "preview":
+        ours = set(cast(Any, obj.get(RESULTS_PROPERTY, ()))) | set(written.values())
+        obj[RESULTS_PROPERTY] = sorted(ours)
     report = dict(out.report)
     report["written"] = written
     report["object"] = plan.written_on

@@ -234,6 +234,12 @@ def test_same_named_vertex_groups_are_landmarks(mod, scene):
         pipeline.weighted_centre_vertex(mod.bridge.read_mesh(src).positions, w_s),
         pipeline.weighted_centre_vertex(mod.bridge.read_mesh(tgt).positions, w_t)]]
     assert "snout_ot1" not in {s.name for s in mod.bridge.list_signals(tgt)}  # not carried
+    # the carried "head" group is not a landmark on the next run, and is carried again
+    assert sorted(tgt["overtone_results"]) == ["head", "overtone_confidence", "tint", "tint_bytes"]
+    assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
+    report = json.loads(scene.overtone.report_json)
+    assert report["landmarks"]["groups"] == ["snout"] and report["pair"] == "memory"
+    assert "head_ot1" in tgt.vertex_groups
 
 
 def test_results_survive_save_and_reopen(mod, scene, tmp_path):
@@ -329,9 +335,9 @@ def test_background_run_matches_the_run_in_process(mod, scene):
     assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
     for name, values in in_worker.items():
         np.testing.assert_allclose(read(mod, tgt, name), values, atol=1e-6)
-    # the same plan again in the worker: the pair is in the worker's memory (a new
-    # plan would differ: the target now has a "head" group, which pairs up as a landmark)
-    run = mod.transfer.BackgroundRun(plan)
+    # again in the worker: the pair is in the worker's memory (the carried "head"
+    # group on the target is a result, not a landmark: the plan is the same)
+    run = mod.transfer.BackgroundRun(mod.operators.plan_from_context(bpy.context, "transfer"))
     run.worker.wait(timeout=300)
     assert mod.operators.step_run(run, scene.overtone, lambda k, m: None) == {'FINISHED'}
     assert scene.overtone.report_cache.startswith("pair memory")
