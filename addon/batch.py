@@ -68,7 +68,7 @@ class Job:
 _CHOICES = {"match_mode": [m[0] for m in MATCH_MODES], "basis": [b[0] for b in BASES]}
 _SETTING_TYPES: dict[str, type | tuple[type, ...]] = {
     "match_mode": str, "basis": str, "eigenfunctions": int, "product_order": int,
-    "detail_strength": (int, float), "detail_band": int, "as_shown": bool,
+    "detail_strength": (int, float), "detail_size": (int, float), "as_shown": bool,
     "replace_existing": bool,
 }
 _PAIR_KEYS = {"source", "target", "signals", "detail", "settings"}
@@ -93,8 +93,10 @@ def _apply_settings(request: PairRequest, settings: Any, where: str) -> PairRequ
             if value not in _CHOICES[key]:
                 raise JobError(f"{where}: unknown {key} {value.lower()!r} "
                                f"(choose from {', '.join(c.lower() for c in _CHOICES[key])})")
-        elif key in ("eigenfunctions", "product_order", "detail_band") and value < 1:
+        elif key in ("eigenfunctions", "product_order") and value < 1:
             raise JobError(f"{where}: setting {key!r} must be at least 1, got {value}")
+        elif key == "detail_size" and not 0 < value <= 1:
+            raise JobError(f"{where}: setting 'detail_size' must be in (0, 1], got {value}")
         changes[key] = value
     return replace(request, **changes)
 
@@ -178,11 +180,17 @@ def check_job(job: Job) -> Job:
             objs.append(obj)
         request = pair.request
         if request.signals == ("*",):
-            if objs[0].type == 'MESH':
-                listed = bridge.list_signals(objs[0], evaluated=request.as_shown)
+            if objs[0].type == 'MESH' and objs[1].type == 'MESH':
+                # every signal, except vertex groups the target also has: those pair up as landmarks
+                shared = {vg.name for vg in objs[1].vertex_groups}
+                listed = [s.name for s in bridge.list_signals(objs[0], evaluated=request.as_shown)
+                          if not (s.data_type == "VERTEX_GROUP" and s.name in shared)]
             else:
                 listed = []
-            request = replace(request, signals=tuple(s.name for s in listed))
+            if not listed and request.detail:
+                request = replace(request, signals=())
+            else:
+                request = replace(request, signals=tuple(listed))
         try:
             check_pair(objs[0], objs[1], request)
         except ValueError as error:
@@ -235,7 +243,7 @@ def run_job(job: Job) -> tuple[int, dict[str, Any]]:
             entry["result"] = transfer_pair(bpy.data.objects[pair.source],
                                             bpy.data.objects[pair.target], pair.request)
             entry["status"] = "done"
-        except (ValueError, NotImplementedError) as error:
+        except (ValueError, RuntimeError) as error:
             entry["status"] = "failed"
             entry["error"] = str(error)
             print(f"{COMMAND}: {pair.source} -> {pair.target}: {error}", file=sys.stderr)

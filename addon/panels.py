@@ -65,10 +65,15 @@ class OVERTONE_PT_main(_Sidebar):
         col = layout.column()
         col.prop(settings, "as_shown")
         col.prop(settings, "replace_existing")
+        if settings.running:
+            layout.prop(settings, "progress", text=settings.progress_text or "Working", slider=True)
+            layout.label(text="Esc cancels", icon='CANCEL')
         col = layout.column(align=True)
+        col.enabled = not settings.running
         col.scale_y = 1.3
         col.operator("overtone.transfer_attributes", icon='BRUSH_DATA')
         col.operator("overtone.transfer_detail", icon='SHAPEKEY_DATA')
+        layout.operator("overtone.preview_carry", icon='HIDE_OFF')
 
 
 class _SettingsPanel(_Sidebar):
@@ -94,7 +99,7 @@ class OVERTONE_PT_matching(_SettingsPanel):
 
 class OVERTONE_PT_detail(_SettingsPanel):
     bl_label = "Detail"
-    shown = ("detail_strength", "detail_band")
+    shown = ("detail_strength", "detail_size")
 
 
 class OVERTONE_PT_report(_Sidebar):
@@ -108,11 +113,24 @@ class OVERTONE_PT_report(_Sidebar):
             layout.label(text="Nothing carried yet")
             return
         layout.label(text=settings.report_text, icon='CHECKMARK' if settings.report_ok else 'ERROR')
-        if settings.report_ok:
-            col = layout.column(align=True)
-            col.prop(settings, "report_written", emboss=False)
-            col.prop(settings, "report_confidence", emboss=False)
-            col.prop(settings, "report_seconds", emboss=False)
+        if not settings.report_ok:
+            return
+        col = layout.column(align=True)
+        if settings.report_mode:
+            col.label(text=f"Matching: {settings.report_mode}")
+        if settings.report_reason:
+            col.label(text=settings.report_reason)
+        col.prop(settings, "report_confidence", emboss=False)
+        col.prop(settings, "report_coverage", emboss=False)
+        col.prop(settings, "report_seconds", emboss=False)
+        col.prop(settings, "report_written", emboss=False)
+        if settings.report_cache:
+            col.label(text=f"Cache: {settings.report_cache}")
+        if len(settings.report_signals):
+            box = layout.box()
+            box.label(text="Source error per signal")
+            for item in settings.report_signals:
+                box.prop(item, "source_error", text=item.name, emboss=False)
 
 
 _CLASSES = (OVERTONE_UL_signals, OVERTONE_PT_main, OVERTONE_PT_matching, OVERTONE_PT_detail,

@@ -8,7 +8,7 @@ from typing import cast
 import bpy
 from bpy.props import IntProperty, StringProperty
 
-__all__ = ["OvertonePreferences", "preferences_of", "cache_folder", "clear_cache_files",
+__all__ = ["OvertonePreferences", "preferences_of", "cache_folder",
            "register", "unregister"]
 
 _PACKAGE = __package__ or "overtone"
@@ -53,21 +53,6 @@ def cache_folder(context: bpy.types.Context) -> Path:
     if not folder:
         raise ValueError("no cache folder: set one in the Overtone preferences")
     return Path(folder)
-
-
-def clear_cache_files(folder: Path) -> tuple[int, int]:
-    """Delete the cache files (``*.npz``) in ``folder``; return (files, bytes) removed.
-
-    Stands in until the engine's cache object can clear itself.
-    """
-    files = bytes_ = 0
-    if folder.is_dir():
-        for path in sorted(folder.glob("*.npz")):
-            size = path.stat().st_size
-            path.unlink()
-            files += 1
-            bytes_ += size
-    return files, bytes_
 
 
 register, unregister = bpy.utils.register_classes_factory(  # type: ignore[func-returns-value, misc]

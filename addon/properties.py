@@ -11,7 +11,7 @@ import bpy
 from bpy.props import (BoolProperty, CollectionProperty, EnumProperty, FloatProperty,
                        IntProperty, PointerProperty, StringProperty)
 
-__all__ = ["OvertoneSignalItem", "OvertoneSettings", "MATCH_MODES", "BASES", "settings_of",
+__all__ = ["OvertoneSignalItem", "OvertoneSignalReport", "OvertoneSettings", "MATCH_MODES", "BASES", "settings_of",
            "register", "unregister"]
 
 MATCH_MODES = [
@@ -39,6 +39,15 @@ class OvertoneSignalItem(bpy.types.PropertyGroup):
     data_type: StringProperty(name="Data Type")  # type: ignore[valid-type]
 
 
+class OvertoneSignalReport(bpy.types.PropertyGroup):
+    """One carried signal in the last run's report."""
+
+    source_error: FloatProperty(  # type: ignore[valid-type]
+        name="Source Error", min=0.0, precision=4,
+        description="Relative error of the basis reconstruction of the signal on the source")
+    written_as: StringProperty(name="Written As")  # type: ignore[valid-type]
+
+
 class OvertoneSettings(bpy.types.PropertyGroup):
     """What to carry and how; the last run's report."""
 
@@ -55,10 +64,10 @@ class OvertoneSettings(bpy.types.PropertyGroup):
     detail_strength: FloatProperty(  # type: ignore[valid-type]
         name="Strength", default=1.0, min=0.0, soft_max=2.0, max=10.0,
         description="Scale of the carried surface detail")
-    detail_band: IntProperty(  # type: ignore[valid-type]
-        name="Base Shape", default=30, min=1, max=1000,
-        description="Eigenfunctions that make up the overall shape; "
-                    "what lies above them is carried as detail")
+    detail_size: FloatProperty(  # type: ignore[valid-type]
+        name="Detail Size", default=0.05, min=0.001, max=1.0, soft_max=0.3, precision=3,
+        description="Features smaller than this fraction of the source's size count as detail; "
+                    "larger ones belong to the overall shape, which stays the target's")
     as_shown: BoolProperty(  # type: ignore[valid-type]
         name="As Shown", default=False,
         description="Use the source as shown in the viewport, with its modifiers applied")
@@ -70,6 +79,18 @@ class OvertoneSettings(bpy.types.PropertyGroup):
     signals_source: StringProperty(  # type: ignore[valid-type]
         name="Listed From", description="Object the signal list was read from")
     report_text: StringProperty(name="Report")  # type: ignore[valid-type]
+    report_mode: StringProperty(name="Matching")  # type: ignore[valid-type]
+    report_reason: StringProperty(name="Why")  # type: ignore[valid-type]
+    report_coverage: FloatProperty(  # type: ignore[valid-type]
+        name="Source Covered", min=0.0, max=1.0, subtype='FACTOR',
+        description="Fraction of the source's area the target's points land near")
+    report_cache: StringProperty(name="Cache")  # type: ignore[valid-type]
+    report_signals: CollectionProperty(type=OvertoneSignalReport)  # type: ignore[valid-type]
+    report_json: StringProperty(name="Full Report")  # type: ignore[valid-type]
+    running: BoolProperty(default=False)  # type: ignore[valid-type]
+    progress: FloatProperty(  # type: ignore[valid-type]
+        name="Progress", min=0.0, max=1.0, subtype='FACTOR')
+    progress_text: StringProperty(name="Working On")  # type: ignore[valid-type]
     report_ok: BoolProperty(default=False)  # type: ignore[valid-type]
     report_seconds: FloatProperty(name="Time", unit='TIME_ABSOLUTE')  # type: ignore[valid-type]
     report_confidence: FloatProperty(  # type: ignore[valid-type]
@@ -85,7 +106,7 @@ def settings_of(context: bpy.types.Context) -> OvertoneSettings:
     return cast(OvertoneSettings, getattr(scene, "overtone"))
 
 
-_CLASSES = (OvertoneSignalItem, OvertoneSettings)
+_CLASSES = (OvertoneSignalItem, OvertoneSignalReport, OvertoneSettings)
 
 
 def register() -> None:

@@ -1,19 +1,46 @@
-"""One source/target pair: what to carry, checks, and the hook into the engine.
+"""One source/target pair: what to carry, the checks, and the way to the engine.
 
-The operators and the batch runner both end in :func:`transfer_pair`.
+Every route ends here: the operators (at once or through the worker), the
+batch runner, the demo. A run has three steps, and only the first and last
+touch Blender:
+
+1. :func:`make_plan` checks the objects and reads everything into a
+   :class:`.job.JobInput` (world-space arrays; the source "as shown" when asked);
+2. :func:`.job.run_job` runs the engine, here (:func:`run_plan`) or in the
+   worker process (:class:`BackgroundRun`);
+3. :func:`finish` checks that the object written to has not changed since
+   step 1 and writes every result through :func:`.bridge.write_outputs`, all
+   or nothing.
+
+Transfers never modify the source. The preview is the one job that writes
+onto the source: new layers ``<name>_carried`` holding the basis's own
+reconstruction of each signal; existing layers are never changed (a previous
+preview layer of the same name is replaced only with "Replace Existing").
 """
 
 from __future__ import annotations
 
+import shutil
+import tempfile
+import time
 from collections.abc import Sequence
-from dataclasses import dataclass, fields
-from typing import Any
+from dataclasses import dataclass, fields, replace
+from pathlib import Path
+from typing import Any, cast
 
 import bpy
+import numpy as np
 
-from . import bridge
+from . import bridge, job, preferences
+from .worker import Status, shared_worker
 
-__all__ = ["PairRequest", "selected_pair", "check_pair", "transfer_pair"]
+__all__ = ["PairRequest", "Plan", "BackgroundRun", "selected_pair", "pick_pair", "check_pair",
+           "default_signals", "make_plan", "run_plan", "finish", "transfer_pair",
+           "CONFIDENCE_NAME", "DETAIL_NAME", "PREVIEW_SUFFIX", "RESULTS_PROPERTY"]
+
+CONFIDENCE_NAME = "overtone_confidence"
+DETAIL_NAME = "overtone_detail"
+PREVIEW_SUFFIX = "_carried"
 
 
 @dataclass(frozen=True)
@@ -21,6 +48,8 @@ class PairRequest:
     """Everything one transfer needs besides the two objects.
 
     Field names match ``OvertoneSettings`` and the batch job's ``settings``.
+    An empty ``signals`` means: every colour attribute and vertex group of the
+    source (vertex groups that pair up as landmarks excepted).
     """
 
     signals: tuple[str, ...] = ()
@@ -30,7 +59,7 @@ class PairRequest:
     eigenfunctions: int = 60
     product_order: int = 2
     detail_strength: float = 1.0
-    detail_band: int = 30
+    detail_size: float = 0.05
     as_shown: bool = False
     replace_existing: bool = False
 
@@ -41,6 +70,31 @@ class PairRequest:
         values = {f.name: getattr(settings, f.name) for f in fields(cls)
                   if f.name not in ("signals", "detail")}
         return cls(signals=tuple(signals), detail=detail, **values)
+
+    def engine_settings(self) -> dict[str, Any]:
+        """Keyword arguments of ``engine.pipeline.Settings``."""
+        return {"match": self.match_mode.lower(), "basis": self.basis.lower(),
+                "k": int(self.eigenfunctions), "order": int(self.product_order),
+                "detail_strength": float(self.detail_strength), "detail_size": float(self.detail_size)}
+
+
+@dataclass(frozen=True)
+class Plan:
+    """A checked run: the job's arrays and where its results go."""
+
+    kind: str
+    source: str
+    target: str
+    request: PairRequest
+    inputs: job.JobInput
+
+    @property
+    def written_on(self) -> str:
+        """The object the results are written to (the source for a preview)."""
+        return self.source if self.kind == "preview" else self.target
+
+
+# --------------------------------------------------------------------------- checks
 
 
 def selected_pair(context: bpy.types.Context
@@ -53,6 +107,55 @@ def selected_pair(context: bpy.types.Context
     return (others[0] if len(others) == 1 else None), target
 
 
+def pick_pair(context: bpy.types.Context) -> tuple[bpy.types.Object, bpy.types.Object]:
+    """(source, target) from the selection, or a ValueError naming what is wrong."""
+    active = context.active_object
+    selected = list(context.selected_objects)
+    if active is None:
+        raise ValueError("no active object: select the source mesh, then the target mesh (active)")
+    others = [o for o in selected if o != active]
+    if not others:
+        raise ValueError(f"only {active.name!r} is selected: also select the source mesh "
+                         "(the active object is the target)")
+    if len(others) > 1:
+        names = ", ".join(repr(o.name) for o in others)
+        raise ValueError(f"select exactly two objects: besides the target {active.name!r}, "
+                         f"{names} are selected")
+    return others[0], active
+
+
+def _check_object(role: str, obj: bpy.types.Object) -> None:
+    if obj.type != 'MESH':
+        raise ValueError(f"{role} {obj.name!r} is not a mesh (type {obj.type})")
+    if obj.mode == 'EDIT':
+        raise ValueError(f"{role} {obj.name!r} is in edit mode: leave it first")
+    mesh = cast(bpy.types.Mesh, obj.data)
+    if len(mesh.polygons) == 0:
+        raise ValueError(f"{role} {obj.name!r} has no faces ({len(mesh.vertices)} vertices): "
+                         "Overtone needs a surface")
+
+
+RESULTS_PROPERTY = "overtone_results"
+"""Custom property on a target listing the layers Overtone wrote there: those
+never pair up as landmarks (a carried "head" group is a result, not a pin)."""
+
+
+def _shared_groups(source: bpy.types.Object, target: bpy.types.Object) -> list[str]:
+    ours = set(cast(Any, target.get(RESULTS_PROPERTY, ())))
+    names = {vg.name for vg in target.vertex_groups} - ours
+    return [vg.name for vg in source.vertex_groups if vg.name in names]
+
+
+def default_signals(source: bpy.types.Object, target: bpy.types.Object, *,
+                    evaluated: bool = False) -> tuple[str, ...]:
+    """What is carried when nothing is ticked: every colour attribute and vertex
+    group of the source, except groups the target also has (those are landmarks,
+    unless Overtone wrote them: see :data:`RESULTS_PROPERTY`)."""
+    shared = set(_shared_groups(source, target))
+    return tuple(s.name for s in bridge.list_signals(source, evaluated=evaluated)
+                 if s.kind == "color" or (s.data_type == "VERTEX_GROUP" and s.name not in shared))
+
+
 def check_pair(source: bpy.types.Object | None, target: bpy.types.Object | None,
                request: PairRequest) -> list[bridge.Signal]:
     """Check a pair before any work; return the source signals to carry.
@@ -60,13 +163,12 @@ def check_pair(source: bpy.types.Object | None, target: bpy.types.Object | None,
     Raises
     ------
     ValueError
-        Naming what is missing or wrong.
+        Naming the object and what is missing or wrong.
     """
     if source is None or target is None:
         raise ValueError("select two meshes: the source, then the target (active)")
     for role, obj in (("source", source), ("target", target)):
-        if obj.type != 'MESH':
-            raise ValueError(f"{role} {obj.name!r} is not a mesh (type {obj.type})")
+        _check_object(role, obj)
     if source == target:
         raise ValueError(f"source and target are the same object {source.name!r}")
     available = {s.name: s for s in bridge.list_signals(source, evaluated=request.as_shown)}
@@ -75,21 +177,223 @@ def check_pair(source: bpy.types.Object | None, target: bpy.types.Object | None,
         raise ValueError(f"source {source.name!r} has no signal {', '.join(map(repr, missing))}"
                          f" (it has {', '.join(map(repr, available)) or 'none'})")
     if not request.signals and not request.detail:
-        raise ValueError("nothing to carry: tick at least one signal")
+        raise ValueError(f"nothing to carry: source {source.name!r} has no colour attributes or "
+                         "vertex groups (tick a signal)")
     return [available[name] for name in request.signals]
+
+
+# --------------------------------------------------------------------------- reading
+
+
+def _mesh_input(obj: bpy.types.Object, evaluated: bool) -> job.MeshInput:
+    arrays = bridge.read_mesh(obj, evaluated=evaluated)
+    return job.MeshInput(obj.name, arrays.positions, arrays.corner_verts, arrays.face_sizes)
+
+
+def _signal_input(obj: bpy.types.Object, signal: bridge.Signal, evaluated: bool) -> job.SignalInput:
+    values = bridge.read_signal(obj, signal, evaluated=evaluated)
+    return job.SignalInput(signal.name, signal.kind, signal.domain, signal.data_type, values)
+
+
+def _cache_settings() -> tuple[str | None, int]:
+    try:
+        folder = preferences.cache_folder(bpy.context)
+        limit = int(preferences.preferences_of(bpy.context).cache_limit_mb)
+    except (ValueError, KeyError, AttributeError):
+        return None, 0
+    return str(folder), limit * 1024 * 1024
+
+
+def make_plan(kind: str, source: bpy.types.Object | None, target: bpy.types.Object | None,
+              request: PairRequest) -> Plan:
+    """Check the pair and read everything the job needs (the only Blender reads).
+
+    ``kind`` is "transfer", "detail" or "preview" (the preview needs only the
+    source; pass it as both).
+    """
+    if kind not in job.JOB_KINDS:
+        raise ValueError(f"unknown job kind {kind!r}")
+    if kind == "preview":
+        if source is None:
+            raise ValueError("select the source mesh to preview")
+        _check_object("source", source)
+        listed = {s.name: s for s in bridge.list_signals(source, evaluated=request.as_shown)}
+        names = request.signals or tuple(n for n, s in listed.items()
+                                         if s.kind == "color" or s.data_type == "VERTEX_GROUP")
+        missing = [n for n in names if n not in listed]
+        if missing:
+            raise ValueError(f"source {source.name!r} has no signal {', '.join(map(repr, missing))}"
+                             f" (it has {', '.join(map(repr, listed)) or 'none'})")
+        if not names:
+            raise ValueError(f"source {source.name!r} has no signals to preview")
+        signals = [listed[n] for n in names]
+        target_input = None
+        groups: dict[str, tuple[Any, Any]] = {}
+    else:
+        if source is not None and target is not None and source != target and not request.signals \
+                and not request.detail and source.type == 'MESH':
+            request = replace(request, signals=default_signals(source, target,
+                                                                evaluated=request.as_shown))
+        signals = check_pair(source, target, request)
+        assert source is not None and target is not None
+        if kind == "detail":
+            signals = []
+        target_input = _mesh_input(target, False)
+        shared = _shared_groups(source, target)
+        src_w = bridge.read_vertex_groups(source, shared, evaluated=request.as_shown)
+        tgt_w = bridge.read_vertex_groups(target, shared)
+        groups = {name: (src_w[name], tgt_w[name]) for name in shared}
+    folder, limit = _cache_settings()
+    inputs = job.JobInput(kind, _mesh_input(source, request.as_shown), target_input,
+                          tuple(_signal_input(source, s, request.as_shown) for s in signals),
+                          groups, request.engine_settings(), folder, limit)
+    return Plan(kind, source.name, (target or source).name, request, inputs)
+
+
+# --------------------------------------------------------------------------- writing
+
+
+def _outputs(plan: Plan, out: job.JobOutput) -> list[bridge.Output]:
+    outputs: list[bridge.Output] = []
+    if plan.kind == "detail":
+        if out.positions is None:
+            raise ValueError("the detail job returned no positions")
+        return [bridge.shape_key_output(DETAIL_NAME, out.positions)]
+    suffix = PREVIEW_SUFFIX if plan.kind == "preview" else ""
+    for sig in plan.inputs.signals:
+        values = out.values.get(sig.name)
+        if values is None:
+            raise ValueError(f"the engine returned no result for {sig.name!r}")
+        name = sig.name + suffix
+        kind = cast(Any, sig.kind)
+        outputs.append(bridge.Output(bridge.Signal(name, kind, sig.domain, sig.data_type), values))
+    if plan.kind == "transfer":
+        if out.confidence is None:
+            raise ValueError("the transfer returned no confidence")
+        outputs.append(bridge.confidence_output(np.clip(out.confidence, 0.0, 1.0), name=CONFIDENCE_NAME))
+    return outputs
+
+
+def finish(plan: Plan, out: job.JobOutput) -> dict[str, Any]:
+    """Write a job's results onto the scene, all or nothing; return the report.
+
+    Raises
+    ------
+    ValueError
+        The object is gone or its geometry changed since the plan was made, or
+        a result does not fit (nothing is written then).
+    """
+    obj = bpy.data.objects.get(plan.written_on)
+    if obj is None or obj.type != 'MESH':
+        raise ValueError(f"object {plan.written_on!r} is gone: nothing written")
+    expected = plan.inputs.source if plan.kind == "preview" else plan.inputs.target
+    assert expected is not None
+    evaluated = plan.kind == "preview" and plan.request.as_shown
+    if _mesh_input(obj, evaluated).digest() != expected.digest():
+        raise ValueError(f"object {plan.written_on!r} changed while Overtone was working: "
+                         "nothing written, run again")
+    if evaluated and len(cast(bpy.types.Mesh, obj.data).vertices) != len(expected.positions):
+        raise ValueError(f"source {plan.source!r} as shown has a different vertex count than its "
+                         "mesh: turn off As Shown to preview onto it")
+    written = bridge.write_outputs(obj, _outputs(plan, out), replace=plan.request.replace_existing)
+    if plan.kind != "preview":
+        ours = set(cast(Any, obj.get(RESULTS_PROPERTY, ()))) | set(written.values())
+        obj[RESULTS_PROPERTY] = sorted(ours)
+    report = dict(out.report)
+    report["written"] = written
+    report["object"] = plan.written_on
+    report["summary"] = _summary(plan, report)
+    return report
+
+
+def _summary(plan: Plan, report: dict[str, Any]) -> str:
+    if plan.kind == "preview":
+        errors = ", ".join(f"{n} {v['source_error']:.3f}" for n, v in report.get("signals", {}).items())
+        return f"previewed on {plan.source!r} ({report.get('description', '')}): error {errors}"
+    conf = report.get("mean_confidence")
+    conf_text = f"{conf:.2f}" if isinstance(conf, float) else "?"
+    what = "detail" if plan.kind == "detail" else f"{len(plan.inputs.signals)} signals"
+    return (f"carried {what} from {plan.source!r} to {plan.target!r} "
+            f"({report.get('mode')}, mean confidence {conf_text})")
+
+
+# --------------------------------------------------------------------------- running
+
+
+def run_plan(plan: Plan) -> dict[str, Any]:
+    """Run a plan in this process (background mode, batch, Blender without a
+    window) and write its results."""
+    started = time.perf_counter()
+    report = finish(plan, job.run_job(plan.inputs))
+    report.setdefault("timings", {})["wall"] = round(time.perf_counter() - started, 4)
+    return report
+
+
+class BackgroundRun:
+    """A plan running in the worker process; the modal operator polls it.
+
+    Parameters
+    ----------
+    plan : Plan
+    """
+
+    def __init__(self, plan: Plan) -> None:
+        self.plan = plan
+        self.started = time.perf_counter()
+        self.folder = Path(tempfile.mkdtemp(prefix="overtone-job-"))
+        self.worker = shared_worker()
+        try:
+            job.save_input(self.folder, plan.inputs)
+            self.worker.submit(self.folder)
+        except BaseException:
+            shutil.rmtree(self.folder, ignore_errors=True)
+            raise
+
+    def poll(self) -> Status:
+        """Where the job stands (reads small files; never blocks)."""
+        return self.worker.poll()
+
+    def cancel(self) -> None:
+        """Stop the worker; nothing is written."""
+        self.worker.cancel()
+        shutil.rmtree(self.folder, ignore_errors=True)
+
+    def finish(self) -> dict[str, Any]:
+        """Write the finished job's results; raises ValueError if it failed."""
+        try:
+            status = self.poll()
+            if status.state != "done":
+                raise ValueError(status.text)
+            report = finish(self.plan, job.load_output(self.folder))
+            report.setdefault("timings", {})["wall"] = round(time.perf_counter() - self.started, 4)
+            return report
+        finally:
+            if self.worker.folder == self.folder:
+                self.worker.folder = None
+            shutil.rmtree(self.folder, ignore_errors=True)
 
 
 def transfer_pair(source: bpy.types.Object, target: bpy.types.Object,
                   request: PairRequest) -> dict[str, Any]:
-    """Carry the requested signals (and detail) from ``source`` to ``target``.
+    """Carry the requested signals and, with ``request.detail``, the detail from
+    ``source`` to ``target``, in this process.
 
-    Returns a JSON-able report. The engine's transfer API has not landed yet:
-    this is the one place that will call it.
-
-    Raises
-    ------
-    NotImplementedError
-        Always, for now.
+    Both jobs run before anything is written. Returns the JSON-able report
+    (``written`` maps each result to the name it got; a detail run adds
+    ``detail``).
     """
-    check_pair(source, target, request)
-    raise NotImplementedError("transfer engine not wired yet")
+    plans = []
+    if request.signals or not request.detail:
+        plans.append(make_plan("transfer", source, target, replace(request, detail=False)))
+    if request.detail:
+        plans.append(make_plan("detail", source, target, request))
+    started = time.perf_counter()
+    outs = [job.run_job(plan.inputs) for plan in plans]
+    reports = [finish(plan, out) for plan, out in zip(plans, outs)]
+    report = reports[0]
+    if len(reports) == 2:
+        report = {**reports[0], "detail": reports[1].get("detail"),
+                  "written": {**reports[0]["written"], **reports[1]["written"]},
+                  "summary": reports[0]["summary"] + "; and the detail"}
+    report.setdefault("timings", {})["wall"] = round(time.perf_counter() - started, 4)
+    return report

@@ -149,3 +149,21 @@ def grid(scene):
 @pytest.fixture
 def sphere(scene):
     return make_sphere()
+
+
+def make_mesh(name, vertices, faces):
+    """A triangle mesh object from arrays."""
+    faces = np.asarray(faces)
+    return _link(name, vertices, faces.ravel(), np.full(len(faces), faces.shape[1]))
+
+
+def engine_module(name):
+    """A module of the installed extension's bundled engine (``pipeline``, ``demo``, ...)."""
+    return importlib.import_module(f"{MODULE}.engine.{name}")
+
+
+def select(source, target):
+    """Select both; the target is active (PLATFORM.md: selection and active object are honoured)."""
+    for obj in bpy.context.scene.objects:
+        obj.select_set(obj in (source, target))
+    bpy.context.view_layer.objects.active = target

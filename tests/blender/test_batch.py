@@ -6,6 +6,7 @@ import runpy
 import sys
 
 import bpy
+import numpy as np
 import pytest
 
 from .conftest import MODULE, ROOT, make_grid
@@ -103,16 +104,71 @@ def test_all_signals_resolved_and_pair_hook_reported(batch, pair, tmp_path, caps
     request = job.pairs[0].request
     assert request.signals == ("AO", "arm") and request.detail
     assert (request.match_mode, request.basis, request.eigenfunctions) == ("INTRINSIC", "LAPLACIAN", 80)
-    # the per-pair hook is not wired to the engine yet: the pair fails, the report says so
-    path = job_file(tmp_path, {"pairs": [{"source": "Scan", "target": "LOD1"}],
+
+
+def test_a_failing_pair_is_reported_and_the_others_kept(batch, pair, tmp_path, capsys):
+    # "Crushed" passes the checks (a mesh with faces) but every face has zero area:
+    # the engine refuses it; the good pair is still carried and the file saved
+    crushed = make_grid("Crushed")
+    crushed.data.attributes["position"].data.foreach_set("vector", np.zeros(len(crushed.data.vertices) * 3))
+    crushed.data.update()
+    crushed.vertex_groups.new(name="arm")
+    pair[0].vertex_groups["arm"].add([0, 1, 2], 1.0, 'REPLACE')
+    path = job_file(tmp_path, {"settings": {"basis": "pointwise"},
+                               "pairs": [{"source": "Crushed", "target": "LOD1", "signals": ["arm"]},
+                                         {"source": "Scan", "target": "LOD1", "signals": ["arm"]}],
                                "report": "out/report.json", "save": {"as": "out/result.blend"}})
     assert batch.main([str(path)]) == 1
     report = json.loads((tmp_path / "out" / "report.json").read_text())
-    assert report["failed"] == 1 and report["saved"] is None
-    assert report["pairs"][0]["status"] == "failed"
-    assert report["pairs"][0]["error"] == "transfer engine not wired yet"
-    assert not (tmp_path / "out" / "result.blend").exists()  # nothing done, nothing saved
-    assert "Scan -> LOD1: transfer engine not wired yet" in capsys.readouterr().err
+    assert report["failed"] == 1 and [p["status"] for p in report["pairs"]] == ["failed", "done"]
+    assert report["pairs"][0]["error"].startswith("'Crushed': ")
+    assert report["saved"] == str(tmp_path / "out" / "result.blend")
+    assert "Crushed -> LOD1: 'Crushed': " in capsys.readouterr().err
+    assert "arm" in bpy.data.objects["LOD1"].vertex_groups
+
+
+def test_batch_carries_and_saves(batch, scene, tmp_path):
+    """Generated creature pairs in a saved .blend; the job saves a copy; reopened, the
+    results equal the engine's own Pair on the same arrays."""
+    from .conftest import engine_module, make_mesh
+    demo = engine_module("demo")
+    s, t = demo.creature(30, 16, bumps=0.02), demo.creature(26, 18, twist_offset=True, bumps=0.0)
+    src, tgt = make_mesh("Scan", s.vertices, s.faces), make_mesh("LOD1", t.vertices, t.faces)
+    tint = np.column_stack([demo.creature_signals(s.uv)["tint"], np.ones(len(s.vertices))])
+    src.data.color_attributes.new("tint", 'FLOAT_COLOR', 'POINT').data.foreach_set(
+        "color", tint.astype(np.float32).ravel())
+    blend = tmp_path / "scene.blend"
+    bpy.ops.wm.save_as_mainfile(filepath=str(blend))
+    path = job_file(tmp_path, {"settings": {"basis": "pointwise"},
+                               "pairs": [{"source": "Scan", "target": "LOD1", "signals": "all",
+                                          "detail": True}],
+                               "report": "out/report.json", "save": {"as": "out/result.blend"}})
+    assert batch.main([str(path)]) == 0
+    report = json.loads((tmp_path / "out" / "report.json").read_text())
+    entry = report["pairs"][0]
+    assert entry["status"] == "done" and report["saved"] == str(tmp_path / "out" / "result.blend")
+    assert entry["result"]["written"] == {"tint": "tint", "overtone_confidence": "overtone_confidence",
+                                          "overtone_detail": "overtone_detail"}
+    bridge = importlib.import_module(MODULE + ".bridge")
+    pipeline, shape = engine_module("pipeline"), engine_module("shape").Shape
+    bpy.ops.wm.open_mainfile(filepath=str(tmp_path / "out" / "result.blend"))
+    src, tgt = bpy.data.objects["Scan"], bpy.data.objects["LOD1"]
+    a, b = bridge.read_mesh(src), bridge.read_mesh(tgt)
+    pair = pipeline.Pair(shape(a.positions, corners=a.corner_verts, sizes=a.face_sizes),
+                         shape(b.positions, corners=b.corner_verts, sizes=b.face_sizes),
+                         pipeline.Settings(basis="pointwise", k=60, order=2))
+    signal = bridge.list_signals(tgt)[0]
+    assert signal.name == "tint"
+    np.testing.assert_allclose(bridge.read_signal(tgt, signal), pair.carry({"t": (tint, "color")})["t"].values,
+                               atol=1e-6)
+    keys = tgt.data.shape_keys.key_blocks
+    co = np.empty(len(b.positions) * 3, np.float32)
+    keys["overtone_detail"].data.foreach_get("co", co)
+    np.testing.assert_allclose(co.reshape(-1, 3), pair.detail(), atol=2e-5)
+    assert entry["result"]["mode"] == pair.correspondence.mode
+    # the open file on disk was not touched
+    bpy.ops.wm.open_mainfile(filepath=str(blend))
+    assert bpy.data.objects["LOD1"].data.shape_keys is None
 
 
 def test_save_logic_once_a_pair_succeeds(batch, pair, tmp_path, monkeypatch):

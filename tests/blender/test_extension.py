@@ -85,7 +85,7 @@ def test_failed_download_is_a_clear_error(monkeypatch, tmp_path):
 def test_installed_and_registered(overtone):
     assert overtone.__name__ == MODULE
     assert MODULE in {a.module for a in bpy.context.preferences.addons}
-    for op in ("transfer_attributes", "transfer_detail", "refresh_signals", "clear_cache"):
+    for op in ("transfer_attributes", "transfer_detail", "preview_carry", "refresh_signals", "clear_cache"):
         assert hasattr(bpy.ops.overtone, op)
         assert getattr(bpy.ops.overtone, op).get_rna_type() is not None
     for panel in ("OVERTONE_PT_main", "OVERTONE_PT_matching", "OVERTONE_PT_detail",
@@ -148,23 +148,11 @@ def test_refresh_signals_lists_the_source(overtone, scene):
     assert scene.overtone.signals_source == "src"
 
 
-def test_transfer_operators_report_the_missing_engine(overtone, scene):
-    from .conftest import make_grid
-    source, target = make_grid("src"), make_grid("dst")
-    source.vertex_groups.new(name="arm")
-    _select(source, target)
-    bpy.ops.overtone.refresh_signals()
-    # An ERROR report makes the bpy.ops caller raise (PLATFORM.md).
-    with pytest.raises(RuntimeError, match="transfer engine not wired yet"):
-        bpy.ops.overtone.transfer_attributes()
-    assert scene.overtone.report_text == "transfer engine not wired yet"
-    assert not scene.overtone.report_ok
-    with pytest.raises(RuntimeError, match="transfer engine not wired yet"):
-        bpy.ops.overtone.transfer_detail()
-
-
 def test_transfer_operator_needs_a_pair(overtone, scene):
     from .conftest import make_grid
     target = make_grid("dst")
     _select(target, target)
-    assert not bpy.ops.overtone.transfer_attributes.poll()
+    with pytest.raises(RuntimeError, match="only 'dst' is selected: also select the source mesh"):
+        bpy.ops.overtone.transfer_attributes()
+    assert scene.overtone.report_text.startswith("only 'dst' is selected")
+    assert not scene.overtone.report_ok
