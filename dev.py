@@ -150,8 +150,12 @@ def cmd_test(extra: list[str]) -> int:
 
 
 def cmd_demo(extra: list[str]) -> int:
-    python = env_python(".venv")
-    return subprocess.run([str(python), "-m", "engine", "demo", *extra], cwd=ROOT).returncode
+    """The main job in real Blender: build the demo scene, carry colours,
+    weights and detail, save the .blend and render before/after pictures."""
+    python = env_python(".venv-blender")
+    env = blender_sandbox_env()
+    args = extra or ["--output", "demo_output"]
+    return subprocess.run([str(python), "scripts/demo_scene.py", *args], cwd=ROOT, env=env).returncode
 
 
 def cmd_bench(extra: list[str]) -> int:

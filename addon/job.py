@@ -37,7 +37,7 @@ import numpy as np
 
 from .engine import pipeline
 from .engine.cache import Cache as DiskCache
-from .engine.closest_point import SurfaceLocator
+from .engine.corners import vertex_average
 from .engine.preview import approximate_signals
 from .engine.shape import Shape
 from .engine.signals import Signal as EngineSignal
@@ -179,81 +179,6 @@ def _engine_settings(inp: JobInput, landmarks: tuple[tuple[int, int], ...]) -> A
         raise ValueError(f"bad settings: {error}") from None
 
 
-# --------------------------------------------------------------------------- corners
-
-
-def _vertex_average(values: NDArray[Any], corner_verts: NDArray[np.int64], n: int) -> NDArray[np.float64]:
-    flat = np.asarray(values, dtype=np.float64).reshape(len(corner_verts), -1)
-    sums = np.zeros((n, flat.shape[1]))
-    np.add.at(sums, corner_verts, flat)
-    counts = np.bincount(corner_verts, minlength=n).astype(np.float64)
-    out: NDArray[np.float64] = sums / np.maximum(counts, 1.0)[:, None]
-    return out
-
-
-def _seam_vertices(values: NDArray[Any], corner_verts: NDArray[np.int64], n: int) -> NDArray[np.bool_]:
-    """(n,) bool: vertices whose corners do not all carry the same value."""
-    rows = np.ascontiguousarray(np.asarray(values).reshape(len(corner_verts), -1))
-    first = np.full(n, -1, dtype=np.int64)
-    order = np.arange(len(corner_verts))[::-1]
-    first[corner_verts[order]] = order  # lowest corner index of each vertex
-    reference = rows[first[corner_verts]]
-    differs = np.any(rows != reference, axis=1)
-    seam = np.zeros(n, dtype=bool)
-    seam[corner_verts[differs]] = True
-    return seam
-
-
-def _corner_faces(sizes: NDArray[np.int64]) -> NDArray[np.int64]:
-    return np.repeat(np.arange(len(sizes), dtype=np.int64), sizes)
-
-
-def _carry_corners(pair: Any, inp: JobInput, sig: SignalInput, basis: str) -> tuple[NDArray[Any], float]:
-    """A corner-domain colour to the target's corners (module docstring)."""
-    assert inp.target is not None
-    src, tgt = inp.source, inp.target
-    S, T = pair.source, pair.target
-    values = np.asarray(sig.values, dtype=np.float64)
-    point = _vertex_average(values, src.corner_verts, S.n_original)
-    result = pair.carry({sig.name: (point, sig.kind)}, basis=basis)[sig.name]
-    out = np.asarray(result.values, dtype=np.float64)[tgt.corner_verts]
-    seam = _seam_vertices(values, src.corner_verts, S.n_original)
-    if not seam.any():
-        return out, float(result.source_error)
-    to_clean = np.asarray(S.prepared.to_clean)
-    seam_clean = np.zeros(S.n_vertices, dtype=bool)
-    seam_clean[to_clean[seam & (to_clean >= 0)]] = True
-    corr = pair.correspondence
-    near = T.restore(seam_clean[S.faces[corr.triangle]].any(axis=1))
-    chosen = np.flatnonzero(near[tgt.corner_verts])
-    if chosen.size == 0:
-        return out, float(result.source_error)
-    # target corners, a little inside their faces, mapped into the source
-    mapped = T.restore(corr.points())
-    faces = _corner_faces(tgt.face_sizes)
-    centroids = np.zeros((len(tgt.face_sizes), 3))
-    np.add.at(centroids, faces, mapped[tgt.corner_verts])
-    centroids /= tgt.face_sizes[:, None]
-    at = mapped[tgt.corner_verts[chosen]]
-    query = at + CORNER_INSET * (centroids[faces[chosen]] - at)
-    hit = SurfaceLocator(S.vertices, S.faces).closest(query)
-    # the source corner behind each (triangle, slot): same polygon, same vertex
-    n_clean = S.n_vertices
-    s_faces = _corner_faces(src.face_sizes)
-    corner_clean = to_clean[src.corner_verts]
-    keys = s_faces * n_clean + corner_clean
-    order = np.argsort(keys, kind="stable")
-    tri_poly = np.asarray(S.prepared.tri_polygon)[hit.triangle]
-    slot_keys = tri_poly[:, None] * n_clean + S.faces[hit.triangle]
-    pos = np.clip(np.searchsorted(keys[order], slot_keys), 0, len(keys) - 1)
-    slot_corner = order[pos]
-    if not np.array_equal(keys[slot_corner], slot_keys):
-        raise ValueError(f"corner colour {sig.name!r}: source triangles do not match their polygons")
-    carried = np.einsum("qj,qjc->qc", hit.barycentric, values[slot_corner])
-    out[chosen] = np.clip(carried, 0.0, 1.0)
-    return out, float(result.source_error)
-
-
 # --------------------------------------------------------------------------- jobs
 
 
@@ -316,7 +241,10 @@ def _transfer(inp: JobInput, progress: Progress) -> JobOutput:
         errors: dict[str, float] = {}
         for sig in inp.signals:
             if sig.domain == "CORNER":
-                values[sig.name], errors[sig.name] = _carry_corners(pair, inp, sig, basis)
+                carried = pair.carry_corners(sig.name, sig.values, sig.kind, inp.source.corner_verts,
+                                             inp.source.face_sizes, inp.target.corner_verts,
+                                             inp.target.face_sizes, basis=basis, inset=CORNER_INSET)
+                values[sig.name], errors[sig.name] = carried.values, carried.source_error
             else:
                 values[sig.name] = results[sig.name].values
         report = pair.report(results)
@@ -342,17 +270,13 @@ def _preview(inp: JobInput, progress: Progress) -> JobOutput:
     shape = _shape(inp.source, inp.cache_folder)
     signals = {}
     for sig in inp.signals:
-        raw = (_vertex_average(sig.values, inp.source.corner_verts, shape.n_original)
+        raw = (vertex_average(sig.values, inp.source.corner_verts, shape.n_original)
                if sig.domain == "CORNER" else sig.values)
         checked = check_signal(sig.name, raw, shape.n_original, sig.kind)
         signals[sig.name] = EngineSignal(sig.name, sig.kind, checked, checked.dtype)
     progress(0.3, "building the basis")
     k = settings.k if settings.basis == "laplacian" else settings.K
-    try:
-        preview = approximate_signals(shape, signals, basis=settings.basis, k=k, order=settings.order)
-    except AttributeError as error:  # an engine module still in transition (see the report)
-        raise ValueError(f"the preview through the {settings.basis} basis failed in the engine "
-                         f"({error}); try another basis") from None
+    preview = approximate_signals(shape, signals, basis=settings.basis, k=k, order=settings.order)
     values: dict[str, NDArray[Any]] = {}
     for sig in inp.signals:
         v = np.asarray(preview.values[sig.name])

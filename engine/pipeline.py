@@ -88,7 +88,7 @@ class Settings:
 
     def map_key(self) -> dict:
         """The settings the correspondence depends on."""
-        return {"match": self.match, "landmarks": [list(p) for p in self.landmarks],
+        return {"match": self.match, "landmarks": json.dumps([list(p) for p in self.landmarks]),
                 "version": CORRESPONDENCE_VERSION}
 
 
@@ -180,6 +180,14 @@ class Pair:
         out = {name: transfer.transfer(values, kind=kind, name=name) for name, (values, kind) in checked.items()}
         self.timings["signals"] = round(time.perf_counter() - t0 - self.timings["bases"], 4)
         return out
+
+    def carry_corners(self, name: str, values, kind: str, source_corner_verts, source_face_sizes,
+                      target_corner_verts, target_face_sizes, *, basis: str | None = None,
+                      inset: float = 0.25):
+        """Carry one per-corner signal, keeping its seams (``engine.corners.carry_corners``)."""
+        from .corners import carry_corners
+        return carry_corners(self, name, values, kind, source_corner_verts, source_face_sizes,
+                             target_corner_verts, target_face_sizes, basis=basis, inset=inset)
 
     # ----------------------------------------------------------------- detail
     def detail(self, *, strength: float | None = None, size: float | None = None) -> np.ndarray:

@@ -93,3 +93,19 @@ def test_transfer_job_writes_every_property_with_its_type(tmp_path, aligned_pair
     assert conf.dtype == np.float32 and conf.min() >= 0 and conf.max() <= 1
     assert json.loads((tmp_path / "r.json").read_text())["mode"] == report["mode"] == "aligned"
     np.testing.assert_array_equal(out.vertices, tgt.vertices)
+
+
+def test_correspondence_is_cached_on_disk(tmp_path):
+    # A second session on the same pair (new Shape objects, same cache folder)
+    # loads the map instead of recomputing it, and carries identical values.
+    from engine.cache import Cache
+    src, tgt = creature(30, 16), creature(36, 18, twist_offset=True)
+    values = creature_signals(src.uv)["tint"]
+    runs = []
+    for _ in range(2):
+        S = Shape(src.vertices, src.faces, cache=Cache(tmp_path))
+        T = Shape(tgt.vertices, tgt.faces, cache=Cache(tmp_path))
+        pair = Pair(S, T, Settings(match="aligned", landmarks=((0, 0),)))
+        runs.append((pair.cache_hits["correspondence"], pair.carry({"t": (values, "color")})["t"].values))
+    assert [r[0] for r in runs] == ["computed", "disk"]
+    np.testing.assert_array_equal(runs[0][1], runs[1][1])

@@ -1,0 +1,139 @@
+"""Corner-domain signals (per face corner, e.g. colours with seams).
+
+A corner signal holds one value per face corner, so a vertex on a seam has
+different values in the faces on each side. It is carried in two steps:
+
+1. The per-vertex average goes through the pair's correspondence like any
+   point signal; away from seams this is already exact, because every corner
+   of a vertex holds the same value.
+2. Target corners whose mapped point lands on a source triangle touching a
+   seam are mapped individually: each such corner is moved a little into its
+   own face (``inset`` of the way to the face centre, after mapping to the
+   source), its closest source triangle is found, and the value is
+   interpolated from that triangle's own corners. Each side of a seam then
+   reads the source faces on its side.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from .closest_point import SurfaceLocator
+from .signals import check_signal
+
+__all__ = ["CornerResult", "carry_corners", "vertex_average", "seam_vertices"]
+
+
+@dataclass(frozen=True)
+class CornerResult:
+    """Values per target corner and the point transfer's source error."""
+
+    values: np.ndarray
+    source_error: float
+
+
+def vertex_average(values, corner_verts, n: int) -> np.ndarray:
+    """Per-vertex mean of per-corner values, (n, c)."""
+    cv = np.asarray(corner_verts, dtype=np.int64)
+    flat = np.asarray(values, dtype=np.float64).reshape(len(cv), -1)
+    sums = np.zeros((n, flat.shape[1]))
+    np.add.at(sums, cv, flat)
+    counts = np.bincount(cv, minlength=n).astype(np.float64)
+    return sums / np.maximum(counts, 1.0)[:, None]
+
+
+def seam_vertices(values, corner_verts, n: int) -> np.ndarray:
+    """(n,) bool: vertices whose corners do not all carry the same value."""
+    cv = np.asarray(corner_verts, dtype=np.int64)
+    rows = np.ascontiguousarray(np.asarray(values).reshape(len(cv), -1))
+    first = np.full(n, -1, dtype=np.int64)
+    order = np.arange(len(cv))[::-1]
+    first[cv[order]] = order  # lowest corner index of each vertex
+    differs = np.any(rows != rows[first[cv]], axis=1)
+    seam = np.zeros(n, dtype=bool)
+    seam[cv[differs]] = True
+    return seam
+
+
+def _corner_faces(sizes: np.ndarray) -> np.ndarray:
+    return np.repeat(np.arange(len(sizes), dtype=np.int64), sizes)
+
+
+def carry_corners(pair, name: str, values, kind: str, source_corner_verts, source_face_sizes,
+                  target_corner_verts, target_face_sizes, *, basis: str | None = None,
+                  inset: float = 0.25) -> CornerResult:
+    """Carry one corner signal from ``pair.source`` to ``pair.target``.
+
+    Parameters
+    ----------
+    pair : engine.pipeline.Pair
+        Its shapes must have been built from the same polygons (corner lists
+        and face sizes) as given here.
+    name : str
+    values : (c_source, channels) float array, one row per source corner
+    kind : {"color", "weight", "float", "vector"}
+    source_corner_verts, source_face_sizes : int arrays, the source polygons
+    target_corner_verts, target_face_sizes : int arrays, the target polygons
+    basis : str, optional
+        Basis for the point part (default: the pair's).
+    inset : float
+        How far into its face a target corner is moved before it is mapped.
+
+    Returns
+    -------
+    CornerResult
+        ``values`` (c_target, channels).
+    """
+    S, T = pair.source, pair.target
+    s_cv = np.asarray(source_corner_verts, dtype=np.int64)
+    s_sizes = np.asarray(source_face_sizes, dtype=np.int64)
+    t_cv = np.asarray(target_corner_verts, dtype=np.int64)
+    t_sizes = np.asarray(target_face_sizes, dtype=np.int64)
+    if s_sizes.sum() != len(s_cv) or t_sizes.sum() != len(t_cv):
+        raise ValueError("face sizes do not add up to the corner counts")
+    if kind in ("label", "mask"):
+        raise ValueError(f"corner signal {name!r}: labels and masks are carried per vertex, not per corner")
+    vals = check_signal(name, values, len(s_cv), kind).reshape(len(s_cv), -1)
+    if not 0.0 <= inset < 1.0:
+        raise ValueError(f"inset must be in [0, 1), got {inset}")
+    point = vertex_average(vals, s_cv, S.n_original)
+    result = pair.carry({name: (point, kind)}, basis=basis)[name]
+    out = np.asarray(result.values, dtype=np.float64).reshape(T.n_original, -1)[t_cv]
+    seam = seam_vertices(vals, s_cv, S.n_original)
+    if not seam.any():
+        return CornerResult(out, float(result.source_error))
+    to_clean = np.asarray(S.prepared.to_clean)
+    seam_clean = np.zeros(S.n_vertices, dtype=bool)
+    seam_clean[to_clean[seam & (to_clean >= 0)]] = True
+    corr = pair.correspondence
+    near = T.restore(seam_clean[S.faces[corr.triangle]].any(axis=1))
+    chosen = np.flatnonzero(near[t_cv])
+    if chosen.size == 0:
+        return CornerResult(out, float(result.source_error))
+    # target corners, a little inside their faces, mapped into the source
+    mapped = T.restore(corr.points())
+    faces = _corner_faces(t_sizes)
+    centroids = np.zeros((len(t_sizes), 3))
+    np.add.at(centroids, faces, mapped[t_cv])
+    centroids /= t_sizes[:, None]
+    at = mapped[t_cv[chosen]]
+    hit = SurfaceLocator(S.vertices, S.faces).closest(at + inset * (centroids[faces[chosen]] - at))
+    # the source corner behind each (triangle, slot): same polygon, same vertex
+    n_clean = S.n_vertices
+    keys = _corner_faces(s_sizes) * n_clean + to_clean[s_cv]
+    order = np.argsort(keys, kind="stable")
+    tri_poly = np.asarray(S.prepared.tri_polygon)[hit.triangle]
+    slot_keys = tri_poly[:, None] * n_clean + S.faces[hit.triangle]
+    pos = np.clip(np.searchsorted(keys[order], slot_keys), 0, len(keys) - 1)
+    slot_corner = order[pos]
+    if not np.array_equal(keys[slot_corner], slot_keys):
+        raise ValueError(f"corner signal {name!r}: source triangles do not match their polygons")
+    carried = np.einsum("qj,qjc->qc", hit.barycentric, vals[slot_corner])
+    if kind in ("color", "weight"):
+        carried = np.clip(carried, 0.0, 1.0)
+    else:
+        carried = np.clip(carried, vals.min(axis=0), vals.max(axis=0))
+    out[chosen] = carried
+    return CornerResult(out, float(result.source_error))
