@@ -16,16 +16,17 @@ __all__ = ["OvertoneSignalItem", "OvertoneSignalReport", "OvertoneSettings", "MA
 
 MATCH_MODES = [
     ("AUTO", "Auto", "Decide from how well the two surfaces overlap in space"),
-    ("ALIGNED", "Aligned", "The surfaces overlap in space: refine the closest-point match"),
+    ("ALIGNED", "Aligned", "The surfaces overlap in space: match by closest points on the source surface"),
     ("INTRINSIC", "Intrinsic",
      "Different pose or proportions: match the surfaces by their intrinsic shape"),
 ]
 BASES = [
+    ("POINTWISE", "Point to Point",
+     "Interpolate values through the point correspondence, unfiltered (most accurate on our measurements)"),
     ("ORTHOPRODUCTS", "Orthogonalised Products",
-     "Eigenfunctions and their products, made mass-orthonormal: sharp edges survive"),
-    ("LAPLACIAN", "Eigenfunctions", "Laplace-Beltrami eigenfunctions only: smooth signals"),
-    ("PRODUCTS", "Raw Products", "Eigenfunctions and their products, fitted by least squares"),
-    ("POINTWISE", "Point to Point", "Copy values through the point correspondence, no basis"),
+     "Filter through eigenfunctions and their mass-orthonormal products, then carry"),
+    ("LAPLACIAN", "Eigenfunctions", "Filter through Laplace-Beltrami eigenfunctions only: smooth signals"),
+    ("PRODUCTS", "Raw Products", "Filter through raw eigenfunction products fitted by least squares"),
 ]
 
 
@@ -54,12 +55,12 @@ class OvertoneSettings(bpy.types.PropertyGroup):
     match_mode: EnumProperty(name="Matching", items=MATCH_MODES,  # type: ignore[valid-type]
                              default="AUTO")
     basis: EnumProperty(name="Basis", items=BASES,  # type: ignore[valid-type]
-                        default="ORTHOPRODUCTS")
+                        default="POINTWISE")
     eigenfunctions: IntProperty(  # type: ignore[valid-type]
         name="Eigenfunctions", default=60, min=4, soft_max=300, max=1000,
         description="How many Laplace-Beltrami eigenfunctions describe each surface")
     product_order: IntProperty(  # type: ignore[valid-type]
-        name="Product Order", default=2, min=1, max=4,
+        name="Product Order", default=2, min=1, max=5,
         description="Highest number of eigenfunctions multiplied together in the basis")
     detail_strength: FloatProperty(  # type: ignore[valid-type]
         name="Strength", default=1.0, min=0.0, soft_max=2.0, max=10.0,

@@ -55,7 +55,7 @@ class PairRequest:
     signals: tuple[str, ...] = ()
     detail: bool = False
     match_mode: str = "AUTO"
-    basis: str = "ORTHOPRODUCTS"
+    basis: str = "POINTWISE"
     eigenfunctions: int = 60
     product_order: int = 2
     detail_strength: float = 1.0

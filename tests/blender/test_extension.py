@@ -93,7 +93,7 @@ def test_installed_and_registered(overtone):
         cls = getattr(bpy.types, panel)
         assert cls.bl_space_type == 'VIEW_3D' and cls.bl_region_type == 'UI'
     settings = bpy.context.scene.overtone
-    assert settings.match_mode == "AUTO" and settings.basis == "ORTHOPRODUCTS"
+    assert settings.match_mode == "AUTO" and settings.basis == "POINTWISE"
     prefs = bpy.context.preferences.addons[MODULE].preferences
     expected = bpy.utils.extension_path_user(MODULE, path="cache")
     assert Path(prefs.cache_folder) == Path(expected) and Path(expected).is_dir()

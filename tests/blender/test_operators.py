@@ -57,7 +57,7 @@ def engine_pair(mod, src, tgt, **settings):
     pipeline = engine_module("pipeline")
     shape = engine_module("shape").Shape
     a, b = mod.bridge.read_mesh(src), mod.bridge.read_mesh(tgt)
-    options = {"match": "auto", "basis": "orthoproducts", "k": 60, "order": 2, **settings}
+    options = {"match": "auto", "basis": "pointwise", "k": 60, "order": 2, **settings}
     return pipeline.Pair(shape(a.positions, corners=a.corner_verts, sizes=a.face_sizes),
                          shape(b.positions, corners=b.corner_verts, sizes=b.face_sizes),
                          pipeline.Settings(**options))
