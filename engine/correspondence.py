@@ -218,11 +218,14 @@ def correspond(source: Shape, target: Shape, *, match: str = "auto", landmarks=N
     t0 = time.perf_counter()
     loc_s = SurfaceLocator(source.vertices, source.faces)
     loc_t = SurfaceLocator(target.vertices, target.faces)
-    cp_t = loc_s.closest(target.vertices)           # target vertices -> source surface
-    cp_s = loc_t.closest(source.vertices)           # source vertices -> target surface
     h = max(source.mean_edge, target.mean_edge)
-    frac_t = float(np.mean(cp_t.distance < overlap_radius * h))
-    frac_s = float(np.mean(cp_s.distance < overlap_radius * h))
+    # The overlap is a fraction: a fixed random sample of each side measures it
+    # to about +-1% (binomial, 4,000 points), so the closest points of every
+    # vertex are only computed when the aligned mode needs them.
+    sample_t = _overlap_sample(target.n_vertices)
+    sample_s = _overlap_sample(source.n_vertices)
+    frac_t = float(np.mean(loc_s.closest(target.vertices[sample_t]).distance < overlap_radius * h))
+    frac_s = float(np.mean(loc_t.closest(source.vertices[sample_s]).distance < overlap_radius * h))
     overlap = min(frac_t, frac_s)
     timings["overlap"] = time.perf_counter() - t0
     if match == "auto":
@@ -238,6 +241,8 @@ def correspond(source: Shape, target: Shape, *, match: str = "auto", landmarks=N
 
     t0 = time.perf_counter()
     if mode == "aligned":
+        cp_t = loc_s.closest(target.vertices)       # target vertices -> source surface
+        cp_s = loc_t.closest(source.vertices)       # source vertices -> target surface
         tri, bary = cp_t.triangle, cp_t.barycentric
         vertex = source.faces[tri, np.argmax(bary, axis=1)]
         k_map = max(K, 20)
@@ -330,6 +335,16 @@ def correspond(source: Shape, target: Shape, *, match: str = "auto", landmarks=N
 
 
 # ---------------------------------------------------------------- pieces
+OVERLAP_SAMPLE = 4000
+
+
+def _overlap_sample(n: int) -> np.ndarray:
+    """Vertex indices used to measure overlap: all of them, or a fixed random sample."""
+    if n <= OVERLAP_SAMPLE:
+        return np.arange(n)
+    return np.sort(np.random.default_rng(0).choice(n, OVERLAP_SAMPLE, replace=False))
+
+
 def _check_landmarks(landmarks, source, target):
     if landmarks is None or len(landmarks) == 0:
         return None
