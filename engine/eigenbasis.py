@@ -25,10 +25,14 @@ sparse
     (SuperLU, on a nested-dissection ordering computed here from the graph),
     and the factor is re-packed into dense blocks so that a block of right-hand
     sides is solved with matrix-matrix products (BLAS-3) instead of one sparse
-    triangular sweep per column. Random starting blocks wider than any
-    eigenvalue cluster, extra pairs beyond ``k``, and a residual test on all of
-    them, keep every member of a degenerate cluster (ARPACK's shift-invert mode
-    can drop one, see PLATFORM.md).
+    triangular sweep per column. Convergence is checked after every block from
+    the small projected matrices alone, then confirmed on the residuals the
+    caller sees, so the iteration stops at the first block that suffices.
+    Starting blocks wider than any eigenvalue cluster (the width grows as
+    ``sqrt(k)``, like the multiplicities on a sphere), extra pairs beyond
+    ``k``, and a residual test on all of them, keep every member of a
+    degenerate cluster (ARPACK's shift-invert mode can drop one, see
+    PLATFORM.md).
 
 Cluster at the cut: ``k`` is never changed. When eigenvalue ``k`` (0-based,
 the first one not returned) lies within a relative ``cluster_gap`` of
@@ -58,7 +62,32 @@ __all__ = ["Eigenbasis", "eigenbasis"]
 # and immune to cluster trouble, but its O(n^3) cost overtakes the sparse
 # solver's set-up well below 2,000 vertices, so the cut is at 1,000.
 _DENSE_MAX = 1000
-_LEAF = 64  # nested-dissection leaf size (vertices)
+# Nested-dissection leaf size (vertices). 128 against 64 at 100k vertices:
+# factor 2.7 s against 3.0 s, a solve of 24 right-hand sides 263 ms against
+# 284 ms (fewer blocks, less Python per block; 192 was slower again).
+_LEAF = 128
+# Lanczos block size: ceil(_BLOCK_SQRT * sqrt(p)) within [_BLOCK_MIN, _BLOCK_MAX]. A block
+# at least as wide as the largest eigenvalue cluster lets every member of the
+# cluster into the first Krylov block; on the unit sphere the cluster around
+# eigenvalue j has 2l + 1 ~ 2 sqrt(j) members, hence the square root. Narrow
+# blocks need fewer solves in all (40k vertices, 120 pairs: 420 solves at
+# width 20, 456 at 24, 585 at 39, 826 at 59), wide ones make each solve
+# cheaper per column; 2.2 sqrt(p) was the best of these at 40k.
+_BLOCK_MIN, _BLOCK_SQRT, _BLOCK_MAX = 16, 2.2, 96
+_BASIS_FACTOR = 3.0  # Lanczos basis holds up to this many times the wanted pairs
+_FINAL_PASSES = 1
+# Below this tol the Lanczos basis gets a second Gram-Schmidt pass (CGS2),
+# and it gets one as well after a check that found the true residuals worse
+# than the estimate. With one pass the attainable residual floors where the
+# lost orthogonality mixes neighbouring Ritz vectors: near 1e-9 on the
+# 2,562-vertex noisy sphere (30 pairs; 3.3e-11 with two passes), near 1.7e-7
+# at 40k vertices (120 pairs). Above it one pass reaches the same residuals
+# with the same number of solves and takes half the orthogonalisation time
+# (40k vertices, 120 pairs at tol 1e-5: 1.9 s against 3.2 s).
+_CGS2_BELOW = 1e-6
+# While the estimated residual is above _SKIP_ABOVE * tol, every other check is
+# skipped (each is an eigen-decomposition of H, up to 357 x 357 at 120 pairs).
+_SKIP_ABOVE = 1e4
 
 
 @dataclasses.dataclass(frozen=True, eq=False)
@@ -141,7 +170,7 @@ class Eigenbasis:
                           self.mass, self.residuals[:k].copy(), info)
 
 
-def eigenbasis(stiffness, mass, k: int, *, seed: int = 0, tol: float = 1e-8, method: str = "auto",
+def eigenbasis(stiffness, mass, k: int, *, seed: int = 0, tol: float = 1e-5, method: str = "auto",
                cluster_gap: float = 1e-6) -> Eigenbasis:
     """The ``k`` eigenpairs of smallest eigenvalue of ``L phi = lambda M phi``.
 
@@ -160,11 +189,17 @@ def eigenbasis(stiffness, mass, k: int, *, seed: int = 0, tol: float = 1e-8, met
     tol : float
         Target relative residual ``||L phi - lambda M phi|| / (lambda ||M phi||)``
         of every returned non-zero pair (sparse solver). The eigenvalue error is
-        then of order ``tol**2`` relative for a well separated eigenvalue and
-        the eigenvector error of order ``tol / relative gap``. The dense solver
-        is exact to rounding and ignores it. Values below about 1e-11 may not be
-        reachable; the solver stops when it stops improving and reports the
-        residuals reached in ``residuals`` and ``info["converged"]``.
+        then of order ``tol**2`` relative for a well separated eigenvalue (and
+        the spans of eigenvalue clusters are as accurate), the eigenvector
+        error of order ``tol / relative gap``. The default 1e-5 keeps every
+        residual a decade below 1e-4 and eigenvalues good to about 1e-10
+        relative, far below the discretisation error of any mesh (1e-3 on a
+        10k-vertex sphere, PLATFORM.md); asking 1e-8 instead costs about a
+        third more solves (40k vertices, 120 pairs: 585 against 456 at equal
+        block size). The dense solver is exact to rounding and ignores it.
+        Values below about 1e-11 may not be reachable; the solver stops when
+        it stops improving and reports the residuals reached in
+        ``residuals`` and ``info["converged"]``.
     method : {"auto", "dense", "sparse"}
         ``"auto"`` uses the dense solver up to 1,000 vertices.
     cluster_gap : float
@@ -518,12 +553,29 @@ def _orthonormal(W, drop=1e-10):
     return la.solve_triangular(C, W.T, trans="T").T
 
 
+def _purified(Q, Y, mu, F, lo, want):
+    """Ritz vectors purified by one more application of T:
+    ``T x = mu x + F y_last`` (scaled variable)."""
+    X = Q @ Y[:, :want]
+    X *= mu[None, :want]
+    X += F @ Y[lo:, :want]
+    return X
+
+
 def _sparse(L, m, p, Z, *, seed, tol, k_needed):
     """Thick-restarted block Lanczos for the largest eigenvalues of
     ``T = M^(1/2) (L + sM)^(-1) M^(1/2)`` (symmetric), deflated against the
     constants; Rayleigh-Ritz with ``L`` itself (Saad, Numerical Methods for
-    Large Eigenvalue Problems, 2011, ch. 4 and 6; Wu and Simon 2000 for the
-    thick restart)."""
+    Large Eigenvalue Problems, 2011, ch. 4 and 6; Stewart 2001 and Wu and
+    Simon 2000 for the Krylov-Schur thick restart).
+
+    The basis ``Q`` lives in one preallocated buffer. After every block the
+    Ritz values of ``H = Q^T T Q`` and the norms of their residuals
+    ``||T x - mu x|| = ||F y_last||`` are read off ``H`` and the small Gram
+    matrix ``F^T F`` of the remainder, without forming any Ritz vector, so the
+    iteration stops at the first block where every needed pair meets ``tol``;
+    a thick restart happens only when the buffer is full.
+    """
     stats: dict = {}
     t = time.perf_counter()
     n = m.shape[0]
@@ -532,8 +584,6 @@ def _sparse(L, m, p, Z, *, seed, tol, k_needed):
     if want <= 0:
         return np.zeros(p), Z[:, :p].copy(), {"converged": True, "solves": 0}
     r = np.sqrt(m)
-    Lt = sp.diags(1.0 / r) @ L @ sp.diags(1.0 / r)  # M^-1/2 L M^-1/2
-    Lt = Lt.tocsr()
     Zt = Z * r[:, None]  # orthonormal in the scaled variable
     shift = float(L.diagonal().mean() / m.sum())  # about 1/area: below lambda_1 for surfaces
     A = (L + shift * sp.diags(m)).tocsr()
@@ -545,98 +595,129 @@ def _sparse(L, m, p, Z, *, seed, tol, k_needed):
     stats["factor_nnz"] = fac.nnz
     stats["factor_stored"] = fac.stored
 
-    def op(V):  # T V in the scaled variable
-        return fac.solve(V * r[:, None]) * r[:, None]
+    def op(V):  # T V in the scaled variable, deflated against the constants
+        W = fac.solve(V * r[:, None]) * r[:, None]
+        return W - Zt @ (Zt.T @ W)
 
-    b = int(min(max(32, want // 3), 96))          # block size
     nfree = n - ncomp
+    b = int(min(max(_BLOCK_MIN, np.ceil(_BLOCK_SQRT * np.sqrt(p))), _BLOCK_MAX, nfree))
     keep = min(want + max(16, want // 4), nfree)  # Ritz vectors kept at a restart
-    mmax = min(keep + 4 * b, nfree)
-    rng = np.random.default_rng(seed)
-    V = rng.standard_normal((n, min(b, nfree)))
-    Q = _orthonormal(_orth_against(_orth_against(V, Zt), Zt))
-    H = np.zeros((0, 0))  # Q^T T Q, assembled from the Gram-Schmidt coefficients
-    pending = Q
+    mmax = min(max(int(_BASIS_FACTOR * want), keep + 2 * b), nfree)
     need = min(k_needed + 1, p) - ncomp  # pairs that must meet tol (k and the one after, for the cut)
-    solves = cycles = stall = 0
+    cgs2 = tol < _CGS2_BELOW
+    rng = np.random.default_rng(seed)
+    V = rng.standard_normal((n, b))
+    W = _orthonormal(_orth_against(_orth_against(V, Zt), Zt))
+    Qb = np.empty((n, mmax))
+    m0 = W.shape[1]
+    Qb[:, :m0] = W
+    H = np.zeros((mmax, mmax))
+    lo = 0  # first column of the block awaiting T
+    solves = cycles = checks = stall = retries = 0
+    inner = tol  # target of the cheap residual estimate
+    next_check = 0
+    X = None
     converged = False
-    best = worst = np.inf
+    best = np.inf
+    worst = np.inf
     t_solve = t_orth = t_rr = 0.0
-    Zc = None
     while True:
         t1 = time.perf_counter()
-        Tp = op(pending)
-        solves += Tp.shape[1]
+        Tp = op(Qb[:, lo:m0])
+        solves += m0 - lo
         t_solve += time.perf_counter() - t1
         t1 = time.perf_counter()
-        m0 = Q.shape[1]
-        Tp -= Zt @ (Zt.T @ Tp)
+        Q = Qb[:, :m0]
         C = Q.T @ Tp  # first Gram-Schmidt pass; also the new columns of H
-        F = Tp - Q @ C  # (I - Q Q^T) T Q_last: the Krylov-Schur remainder
-        bl = pending.shape[1]
-        Hn = np.zeros((m0, m0))
-        Hn[:H.shape[0], :H.shape[1]] = H
-        Hn[:, m0 - bl:] = C
-        Hn[m0 - bl:, :] = C.T
-        H = Hn
+        F = Tp
+        F -= Q @ C  # (I - Q Q^T) T Q_last: the Krylov-Schur remainder
+        H[:m0, lo:m0] = C
+        H[lo:m0, :m0] = C.T
         t_orth += time.perf_counter() - t1
-        if m0 >= mmax:
-            # Rayleigh-Ritz for T; T X = X diag(mu) + F Y_last exactly
-            cycles += 1
+        full = m0 + b > mmax or m0 >= nfree
+        if (m0 >= need + b and m0 >= next_check) or full:
+            # Ritz values and residual norms from H and F^T F alone
             t1 = time.perf_counter()
-            mu, Y = la.eigh((H + H.T) * 0.5)
-            mu, Y = mu[::-1][:keep], Y[:, ::-1][:, :keep]
-            X = Q @ Y
-            FY = F @ Y[m0 - bl:, :]
-            # purified Ritz vectors T x (one more application of T) and their
-            # residuals for the pencil (L, M) in the scaled variable
-            Zc = X[:, :want] * mu[None, :want] + FY[:, :want]
-            Zc /= np.linalg.norm(Zc, axis=0)
-            LZ = Lt @ Zc[:, :need]
-            th = np.einsum("ij,ij->j", Zc[:, :need], LZ)
-            res = np.linalg.norm(LZ - Zc[:, :need] * th, axis=0) / np.maximum(np.abs(th), 1e-300)
-            t_rr += time.perf_counter() - t1
+            checks += 1
+            mu, Y = la.eigh((H[:m0, :m0] + H[:m0, :m0].T) * 0.5)
+            mu, Y = mu[::-1], Y[:, ::-1]
+            Yl = Y[lo:, :need]
+            FtF = F.T @ F
+            fres = np.sqrt(np.maximum(np.einsum("ij,ij->j", Yl, FtF @ Yl), 0.0))
+            th = 1.0 / mu[:need] - shift
+            # pencil residual of the purified vector T x: ||f|| / (mu^2 theta)
+            res = fres / (mu[:need] ** 2 * np.maximum(th, 1e-300))
             worst = float(res.max())
-            if worst <= tol or m0 >= nfree:
-                converged = worst <= tol
-                break
-            stall = stall + 1 if worst > 0.5 * best else 0
-            best = min(best, worst)
-            if stall >= 3 or cycles >= 60:
-                break
-            Qprev = Q
-            Q, H = X, np.diag(mu)  # thick restart (Krylov-Schur)
-        else:
-            Qprev = Q
+            # far from the target, skip the next block's check (each is an
+            # eigen-decomposition of H)
+            next_check = m0 + (2 * b if worst > _SKIP_ABOVE * inner else b)
+            if worst <= inner or m0 >= nfree:
+                # The estimate lives in the mass-scaled variable; check the
+                # residual the caller sees on the purified Ritz vectors and
+                # tighten the estimate's target if it was optimistic.
+                X = _purified(Q, Y, mu, F, lo, want) / r[:, None]
+                MX = X[:, :need] * m[:, None]
+                rt = np.linalg.norm(L @ X[:, :need] - MX * th[None, :], axis=0)
+                rt /= np.linalg.norm(MX, axis=0) * np.maximum(th, 1e-300)
+                true_worst = float(rt.max())
+                t_rr += time.perf_counter() - t1
+                if true_worst <= tol or m0 >= nfree or retries >= 3:
+                    converged = true_worst <= tol
+                    worst = true_worst
+                    break
+                retries += 1
+                cgs2 = True  # an optimistic estimate may be lost orthogonality
+                inner = min(inner, worst) * min(0.5, 0.8 * tol / true_worst)
+                X = MX = None
+            else:
+                t_rr += time.perf_counter() - t1
+            if full:
+                cycles += 1
+                stall = stall + 1 if worst > 0.5 * best else 0
+                best = min(best, worst)
+                if stall >= 3 or cycles >= 60:
+                    break
+                # thick restart (Krylov-Schur): keep the best Ritz vectors
+                t1 = time.perf_counter()
+                Qb[:, :keep] = Q @ Y[:, :keep]
+                H[:] = 0.0
+                H[np.arange(keep), np.arange(keep)] = mu[:keep]
+                t_rr += time.perf_counter() - t1
+                m0 = lo = keep
+                next_check = 0
+                Q = Qb[:, :m0]
         t1 = time.perf_counter()
-        # Second classical Gram-Schmidt pass (CGS2; C above was the first).
-        # A single pass was tried: 25-40% less time here, but the lost
-        # orthogonality mixed neighbouring Ritz vectors (residual 1.4e-6
-        # instead of 1e-8 on the icosphere), so both passes stay.
-        W = _orthonormal(_orth_against(F, Qprev))
+        # Second classical Gram-Schmidt pass (CGS2; C above was the first,
+        # Giraud et al. 2005) for tight tolerances only, see _CGS2_BELOW.
+        W = _orthonormal(_orth_against(F, Q) if cgs2 else F)
         t_orth += time.perf_counter() - t1
         if W.shape[1] == 0:
             break
-        Q = np.hstack([Q, W])
-        pending = W
-    if Zc is None:  # pragma: no cover - the loop always ends after a Rayleigh-Ritz step
-        raise RuntimeError("no Rayleigh-Ritz step")
-    X = Zc
-    # Final Rayleigh-Ritz on the kept vectors, in the original variable, with
-    # exact M-orthonormalisation against the constants and among themselves.
-    Xs = X[:, :want] / r[:, None]
-    Xs = Xs - Z @ (Z.T @ (m[:, None] * Xs))
-    Xs = _m_orthonormalize(Xs, m)
-    H = Xs.T @ (L @ Xs)
-    th, Y = la.eigh((H + H.T) * 0.5)
-    Xs = Xs @ Y
-    Xs -= Z @ (Z.T @ (m[:, None] * Xs))
-    Xs = _m_orthonormalize(Xs, m)
-    H = Xs.T @ (L @ Xs)
-    th2, Y = la.eigh((H + H.T) * 0.5)
-    Xs = Xs @ Y
+        w = min(W.shape[1], mmax - m0)
+        lo = m0
+        Qb[:, m0:m0 + w] = W[:, :w]
+        m0 += w
+    t1 = time.perf_counter()
+    if X is None:  # stopped without the final check (stall, basis exhausted)
+        X = _purified(Q, Y, mu, F, lo, want) / r[:, None]
+    del Qb, Q, F, Tp
+    # Final Rayleigh-Ritz on these vectors in the original variable, with exact
+    # M-orthonormalisation against the constants and among themselves.
+    X -= Z @ (Z.T @ (m[:, None] * X))
+    X = _m_orthonormalize(X, m)
+    Hf = X.T @ (L @ X)
+    th2, Yf = la.eigh((Hf + Hf.T) * 0.5)
+    X = X @ Yf
+    if _FINAL_PASSES > 1:
+        X -= Z @ (Z.T @ (m[:, None] * X))
+        X = _m_orthonormalize(X, m)
+        Hf = X.T @ (L @ X)
+        th2, Yf = la.eigh((Hf + Hf.T) * 0.5)
+        X = X @ Yf
+    t_rr += time.perf_counter() - t1
     stats.update({"converged": bool(converged), "solves": int(solves), "cycles": int(cycles),
-                  "block": b, "basis_max": int(mmax), "shift": shift, "worst_residual_scaled": worst,
-                  "t_solve": t_solve, "t_orth": t_orth, "t_rayleigh_ritz": t_rr})
+                  "checks": int(checks), "block": b, "basis_max": int(mmax), "shift": shift,
+                  "worst_residual_estimate": worst, "retries": int(retries), "t_solve": t_solve, "t_orth": t_orth,
+                  "t_rayleigh_ritz": t_rr})
     lam = np.concatenate([np.zeros(ncomp), th2])
-    return lam, np.hstack([Z, Xs]), stats
+    return lam, np.hstack([Z, X]), stats
