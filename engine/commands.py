@@ -181,7 +181,7 @@ def run_transfer(args: argparse.Namespace) -> int:
     basis = report["settings"]["basis"]
     for name, info in report.get("signals", {}).items():
         if info["kind"] in ("label", "mask"):
-            print(f"  {name} ({info['kind']}): taken from the nearest source corner, never blended")
+            print(f"  {name} ({info['kind']}): majority of the source triangle's corners, never blended")
         elif basis == "pointwise":
             print(f"  {name} ({info['kind']}): interpolated on source triangles, unfiltered")
         else:

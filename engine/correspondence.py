@@ -124,8 +124,11 @@ class Correspondence:
         return self.target.restore((w * corners).sum(axis=1))
 
     def pull_labels(self, labels) -> np.ndarray:
-        """Labels or masks, never blended: each target vertex takes the label of
-        the corner with the largest barycentric weight.
+        """Labels or masks, never blended: each target vertex takes the label
+        that holds the most barycentric weight among the three corners of its
+        source triangle (a majority where several labels meet; two equal
+        corners outvote a single heavier one), ties going to the corner with
+        the largest weight.
 
         Parameters
         ----------
@@ -140,8 +143,15 @@ class Correspondence:
             raise ValueError(f"labels must have one row per source vertex ({self.source.n_original}), "
                              f"got shape {a.shape}")
         clean = self.source.to_cleaned(a)
-        corner = self.source.faces[self.triangle, np.argmax(self.barycentric, axis=1)]
-        return self.target.restore(clean[corner])
+        corners = self.source.faces[self.triangle]                     # (n_t, 3)
+        vals = clean[corners].reshape(len(corners), 3, -1)             # (n_t, 3, c)
+        w = self.barycentric
+        # weight of the label at corner i: sum of the weights of corners equal to it
+        same = np.all(vals[:, :, None, :] == vals[:, None, :, :], axis=3)   # (n_t, 3, 3)
+        votes = np.einsum("nij,nj->ni", same.astype(np.float64), w)
+        votes += 1e-9 * w  # ties: the heavier corner
+        pick = corners[np.arange(len(corners)), np.argmax(votes, axis=1)]
+        return self.target.restore(clean[pick])
 
     def report(self) -> dict:
         """JSON-able summary: mode and reason plus :attr:`stats`."""

@@ -22,7 +22,7 @@ own source error of 1.5-2.5% adds to the map's), so none earns its cost yet.
 
 Colours are linear and, like weights, clamped to [0, 1]; floats and vectors
 are clamped to the source's own per-channel range; labels and masks are never
-blended (largest barycentric weight).
+blended (the weighted majority of the source triangle's corners).
 """
 
 from __future__ import annotations

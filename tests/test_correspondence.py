@@ -111,3 +111,17 @@ def test_nearest_rows_matches_kdtree(dims):
     rng = np.random.default_rng(2)
     data, query = rng.normal(size=(700, dims)), rng.normal(size=(300, dims))
     np.testing.assert_array_equal(nearest_rows(data, query), cKDTree(data).query(query)[1])
+
+
+def test_labels_take_the_weighted_majority_of_the_corners():
+    # One source triangle with labels (7, 7, 9); a target point with weights
+    # (0.3, 0.3, 0.4): label 7 holds 0.6 of the weight and wins, although
+    # corner 9 alone is the heaviest. With (0.1, 0.2, 0.7), 9 wins.
+    from engine.correspondence import Correspondence
+    from engine.shape import Shape
+    v = np.array([[0, 0, 0], [1, 0, 0], [0, 1, 0.0]])
+    src = Shape(v, np.array([[0, 1, 2]]))
+    tgt = Shape(np.vstack([v, [[0.1, 0.1, 0.0]]]), np.array([[0, 1, 2], [0, 1, 3]]))
+    bary = np.array([[0.3, 0.3, 0.4], [0.1, 0.2, 0.7], [1, 0, 0], [0.3, 0.3, 0.4]])
+    corr = Correspondence(src, tgt, "aligned", "test", np.zeros(4, np.int64), bary, np.ones(4), np.eye(1))
+    assert corr.pull_labels(np.array([7, 7, 9])).tolist() == [7, 9, 7, 7]
