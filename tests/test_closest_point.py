@@ -6,7 +6,7 @@ import pytest
 from engine.closest_point import SurfaceLocator, closest_points_on_triangles
 from tests.meshes import icosphere, noisy_sphere
 
-igl = pytest.importorskip("igl")
+import igl  # noqa: E402  reference library, test environment only
 
 
 def test_one_triangle_by_hand():

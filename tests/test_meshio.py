@@ -436,7 +436,7 @@ def test_meshdata_is_frozen():
 
 @pytest.mark.refdata
 def test_raw_scan_bunny_binary_ply_matches_libigl():
-    igl = pytest.importorskip("igl")
+    import igl  # reference library, test environment only
     path = refdata.path("bunny_raw_scan")
     m = read_mesh(path)
     v, f = igl.read_triangle_mesh(str(path))
@@ -452,7 +452,7 @@ def test_cow_off_and_obj_share_faces(tmp_path):
     obj = read_mesh(refdata.path("cow_pymeshlab"))
     assert off.vertices.shape == obj.vertices.shape == (2904, 3)
     assert np.array_equal(off.corners, obj.corners) and np.array_equal(off.sizes, obj.sizes)
-    igl = pytest.importorskip("igl")
+    import igl  # reference library, test environment only
     v, f = igl.read_triangle_mesh(str(refdata.path("cow_pymeshlab")))
     assert np.array_equal(obj.vertices, v) and np.array_equal(obj.triangles(), f)
     # And through our own writer and reader, both encodings.
