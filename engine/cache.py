@@ -14,10 +14,11 @@ from __future__ import annotations
 
 import hashlib
 import os
-import tempfile
 import zipfile
 
 import numpy as np
+
+from ._atomic import atomic_write
 
 __all__ = ["geometry_key", "Cache", "cached_eigenbasis"]
 
@@ -173,19 +174,10 @@ class Cache:
             data[name] = a
         data[_META_KEY] = np.asarray(key)
         data[_META_VERSION] = np.asarray(_FORMAT)
-        fd, tmp = tempfile.mkstemp(prefix=".tmp-", suffix=".npz", dir=self.folder)
-        try:
-            with os.fdopen(fd, "wb") as fh:
-                np.savez(fh, **data)
-                fh.flush()
-                os.fsync(fh.fileno())
-            os.replace(tmp, path)
-        except BaseException:
-            try:
-                os.remove(tmp)
-            except OSError:
-                pass
-            raise
+        # ".tmp-*.npz": a temporary file a killed process left behind is an
+        # entry to _entries, so clear() and prune() remove it
+        with atomic_write(path, fsync=True, prefix=".tmp-", suffix=".npz") as fh:
+            np.savez(fh, **data)
         return path
 
     def _entries(self):

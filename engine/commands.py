@@ -10,11 +10,12 @@ from __future__ import annotations
 import argparse
 import json
 import os
-import tempfile
 import time
 from pathlib import Path
 
 import numpy as np
+
+from ._atomic import atomic_write
 
 BASES = ("laplacian", "products", "orthoproducts")
 
@@ -54,15 +55,8 @@ def save_npz(path: str | os.PathLike, arrays: dict) -> None:
     folder = target.parent if str(target.parent) else Path(".")
     if not folder.is_dir():
         raise OSError(f"output folder {str(folder)!r} does not exist")
-    fd, tmp = tempfile.mkstemp(dir=folder, prefix=".tmp-", suffix=".npz")
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            np.savez(fh, **arrays)
-        os.replace(tmp, target)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
+    with atomic_write(target, prefix=".tmp-", suffix=".npz") as fh:
+        np.savez(fh, **arrays)
 
 
 # -- basis ---------------------------------------------------------------------

@@ -20,14 +20,13 @@ lines, then face lines ``k i_1 .. i_k [colour]``; ``#`` starts a comment)
 
 from __future__ import annotations
 
-import os
 import struct
-import tempfile
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 
+from ._atomic import atomic_write
 from ._triangulate import triangulate
 from .mesh import _validate_polygons, _validate_vertices
 
@@ -730,7 +729,9 @@ def write_ply(path, vertices, *, corners=None, sizes=None, faces=None, propertie
         body = _binary_body(columns, c, s, count_type, index_type)
     else:
         body = _ascii_body(columns, c, s)
-    _atomic_write(Path(path), [head, *body])
+    with atomic_write(path, fsync=True) as fh:
+        for chunk in (head, *body):
+            fh.write(chunk)
 
 
 def _property_columns(name, value, n: int) -> list[tuple[str, np.ndarray]]:
@@ -801,19 +802,3 @@ def _ascii_body(columns, c, s) -> list[bytes]:
     return [o.encode("ascii") for o in out]
 
 
-def _atomic_write(path: Path, chunks: list[bytes]) -> None:
-    folder = path.parent if str(path.parent) else Path(".")
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=folder)
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            for chunk in chunks:
-                fh.write(chunk)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except FileNotFoundError:
-            pass
-        raise

@@ -24,6 +24,7 @@ from pathlib import Path
 
 import numpy as np
 
+from ._atomic import atomic_write
 from .correspondence import MATCHES, Correspondence, correspond
 from .detail import apply_detail, smooth_base, split_detail
 from .cache import Cache, geometry_key
@@ -333,6 +334,21 @@ def _read_shape(path, cache):
     return data, Shape(data.vertices, corners=data.corners, sizes=data.sizes, cache=cache)
 
 
+def _open_job(source_path, target_path, output_path, report_path, cache_dir):
+    """The start of a file job: check the outputs can be written, then read both meshes.
+
+    Returns
+    -------
+    (source MeshData, source Shape, target MeshData, target Shape)
+    """
+    for out in (output_path, report_path):
+        if out:
+            _check_output(out)
+    src_data, source = _read_shape(source_path, _cache(cache_dir))
+    tgt_data, target = _read_shape(target_path, _cache(cache_dir))
+    return src_data, source, tgt_data, target
+
+
 def _settings(landmarks_path, n_s, n_t, **options) -> Settings:
     landmarks = load_landmarks(landmarks_path, n_s, n_t) if landmarks_path else ()
     return Settings(landmarks=landmarks, **{k: v for k, v in options.items() if v is not None})
@@ -350,11 +366,8 @@ def run_transfer_job(source_path, target_path, output_path, *, attributes=None, 
     from .signals import signal_to_property, signals_from_properties
 
     t0 = time.perf_counter()
-    for out in (output_path, report_path):
-        if out:
-            _check_output(out)
-    src_data, source = _read_shape(source_path, _cache(cache_dir))
-    tgt_data, target = _read_shape(target_path, _cache(cache_dir))
+    src_data, source, tgt_data, target = _open_job(source_path, target_path, output_path, report_path,
+                                                   cache_dir)
     signals = signals_from_properties(src_data.properties, names=attributes)
     if not signals:
         raise ValueError(f"{source_path}: the source has no vertex properties to carry "
@@ -384,11 +397,7 @@ def run_detail_job(source_path, target_path, output_path, *, strength=None, size
     from .meshio import write_ply
 
     t0 = time.perf_counter()
-    for out in (output_path, report_path):
-        if out:
-            _check_output(out)
-    _, source = _read_shape(source_path, _cache(cache_dir))
-    tgt_data, target = _read_shape(target_path, _cache(cache_dir))
+    _, source, tgt_data, target = _open_job(source_path, target_path, output_path, report_path, cache_dir)
     settings = _settings(landmarks_path, source.n_original, target.n_original, match=match,
                          detail_strength=strength, detail_size=size)
     pair = Pair(source, target, settings)
@@ -413,7 +422,7 @@ def _cache(cache_dir):
 
 
 def _write_json(path, data) -> None:
-    target = Path(path)
-    tmp = target.with_name(f".{target.name}.tmp")
-    tmp.write_text(json.dumps(data, indent=2))
-    os.replace(tmp, target)
+    text = json.dumps(data, indent=2)
+    # permissions 0o666 less the umask, as Path.write_text gives a new file
+    with atomic_write(path, text=True, permissions=0o666) as fh:
+        fh.write(text)

@@ -418,7 +418,7 @@ def test_failed_write_is_atomic(tmp_path, monkeypatch):
     def broken(fd):
         raise OSError("disk full")
 
-    monkeypatch.setattr(meshio.os, "fsync", broken)
+    monkeypatch.setattr(os, "fsync", broken)  # the write goes through engine._atomic
     with pytest.raises(OSError, match="disk full"):
         write_ply(path, np.eye(3), faces=[[0, 1, 2]])
     assert path.read_bytes() == b"old content"

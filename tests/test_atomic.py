@@ -1,0 +1,191 @@
+"""Whole-file writes (engine._atomic) and the four writers built on them.
+
+What is checked is the contract of ``os.replace`` over a temporary file in the
+same folder: POSIX rename() replaces an existing target in one step
+(POSIX.1-2008, rename(), from memory), so the target holds either its old or
+its new content; the temporary file never outlives the write.
+"""
+
+import json
+import os
+import stat
+import sys
+
+import numpy as np
+import pytest
+
+from engine import _atomic
+from engine._atomic import atomic_write
+from engine.cache import Cache
+from engine.commands import save_npz
+from engine.meshio import read_mesh, write_ply
+from engine.pipeline import _write_json
+
+
+class Boom(Exception):
+    pass
+
+
+def test_success_replaces_the_old_content(tmp_path):
+    path = tmp_path / "out.bin"
+    path.write_bytes(b"old content")
+    with atomic_write(path) as fh:
+        fh.write(b"new ")
+        fh.write(b"content")
+        assert path.read_bytes() == b"old content"  # nothing visible until the rename
+    assert path.read_bytes() == b"new content"
+    assert os.listdir(tmp_path) == ["out.bin"]
+
+
+def test_success_creates_a_missing_file(tmp_path):
+    with atomic_write(tmp_path / "new.txt", text=True) as fh:
+        fh.write("line\n")
+    assert (tmp_path / "new.txt").read_text() == "line\n"
+    assert os.listdir(tmp_path) == ["new.txt"]
+
+
+@pytest.mark.parametrize("error", [Boom, KeyboardInterrupt])
+def test_exception_mid_write_keeps_the_old_file_and_no_temp(tmp_path, error):
+    path = tmp_path / "keep.bin"
+    path.write_bytes(b"old content")
+    with pytest.raises(error):
+        with atomic_write(path, fsync=True) as fh:
+            fh.write(b"half of the new")
+            fh.flush()
+            temps = [p for p in os.listdir(tmp_path) if p != "keep.bin"]
+            assert len(temps) == 1 and temps[0].startswith(".keep.bin.") and temps[0].endswith(".tmp")
+            assert (tmp_path / temps[0]).read_bytes() == b"half of the new"  # really mid-write
+            raise error()
+    assert path.read_bytes() == b"old content"
+    assert os.listdir(tmp_path) == ["keep.bin"]
+
+
+def test_failed_rename_removes_the_temp(tmp_path):
+    target = tmp_path / "a_folder"
+    target.mkdir()
+    (target / "inside").write_bytes(b"x")
+    with pytest.raises(OSError):  # a non-empty folder cannot be replaced by a file
+        with atomic_write(target) as fh:
+            fh.write(b"data")
+    assert sorted(os.listdir(tmp_path)) == ["a_folder"]
+    assert os.listdir(target) == ["inside"]
+
+
+def test_missing_folder_raises_and_creates_nothing(tmp_path):
+    with pytest.raises(FileNotFoundError):
+        with atomic_write(tmp_path / "no" / "such.bin") as fh:
+            fh.write(b"never")
+    assert os.listdir(tmp_path) == []
+
+
+def test_prefix_and_suffix_name_the_temp(tmp_path):
+    with atomic_write(tmp_path / "k.npz", prefix=".tmp-", suffix=".npz") as fh:
+        (temp,) = os.listdir(tmp_path)
+        fh.write(b"z")
+    assert temp.startswith(".tmp-") and temp.endswith(".npz") and temp != ".tmp-.npz"
+
+
+@pytest.mark.parametrize("wanted", [True, False])
+def test_fsync_only_when_asked_and_before_the_rename(tmp_path, monkeypatch, wanted):
+    path = tmp_path / "f.bin"
+    path.write_bytes(b"old")
+    seen = []
+    real = os.fsync
+
+    def spy(fd):
+        seen.append((os.fstat(fd).st_size, path.read_bytes()))
+        real(fd)
+
+    monkeypatch.setattr(os, "fsync", spy)
+    with atomic_write(path, fsync=wanted) as fh:
+        fh.write(b"12345")  # still in the buffer: fsync=True must flush first
+    assert path.read_bytes() == b"12345"
+    assert seen == ([(5, b"old")] if wanted else [])
+
+
+@pytest.mark.skipif(sys.platform == "win32", reason="POSIX permission bits")
+def test_permissions(tmp_path):
+    # open(2) creates a file with mode & ~umask (POSIX.1-2008, open(), from
+    # memory); tempfile.mkstemp uses mode 0o600 (Python documentation of
+    # tempfile.mkstemp: "readable and writable only by the creating user ID").
+    old = os.umask(0o027)
+    try:
+        with atomic_write(tmp_path / "private") as fh:
+            fh.write(b"a")
+        with atomic_write(tmp_path / "shared", permissions=0o666) as fh:
+            fh.write(b"b")
+        (tmp_path / "plain").write_text("c")  # what Path.write_text gives
+        _write_json(tmp_path / "report.json", {"a": 1})
+    finally:
+        os.umask(old)
+    mode = {p: stat.S_IMODE(os.stat(tmp_path / p).st_mode) for p in ("private", "shared", "plain", "report.json")}
+    assert mode == {"private": 0o600, "shared": 0o640, "plain": 0o640, "report.json": 0o640}
+
+
+def test_name_collisions_are_retried(tmp_path, monkeypatch):
+    names = iter(["aa", "aa", "bb"])
+    monkeypatch.setattr(_atomic.secrets, "token_hex", lambda n: next(names))
+    (tmp_path / ".x.aa.tmp").write_bytes(b"someone else's")
+    with atomic_write(tmp_path / "x", permissions=0o644) as fh:
+        fh.write(b"mine")
+    assert (tmp_path / "x").read_bytes() == b"mine"
+    assert (tmp_path / ".x.aa.tmp").read_bytes() == b"someone else's"  # never opened, never removed
+    assert sorted(os.listdir(tmp_path)) == [".x.aa.tmp", "x"]
+
+
+# ---------------------------------------------------------------- the four writers
+
+def _failing_savez(fh, **arrays):
+    fh.write(b"PK\x03\x04 half a zip")
+    raise Boom("disk full")
+
+
+def test_cache_save_failure_keeps_the_entry(tmp_path, monkeypatch):
+    c = Cache(tmp_path)
+    path = c.save("k", {"x": np.arange(3.0)})
+    before = open(path, "rb").read()
+    monkeypatch.setattr(np, "savez", _failing_savez)
+    with pytest.raises(Boom):
+        c.save("k", {"x": np.arange(4.0)})
+    assert open(path, "rb").read() == before
+    assert os.listdir(tmp_path) == ["k.npz"]
+
+
+def test_save_npz_failure_keeps_the_file(tmp_path, monkeypatch):
+    path = tmp_path / "basis.npz"
+    save_npz(path, {"x": np.arange(3.0)})
+    before = path.read_bytes()
+    monkeypatch.setattr(np, "savez", _failing_savez)
+    with pytest.raises(Boom):
+        save_npz(path, {"x": np.arange(4.0)})
+    assert path.read_bytes() == before
+    assert os.listdir(tmp_path) == ["basis.npz"]
+    with pytest.raises(OSError, match="output folder .* does not exist"):
+        save_npz(tmp_path / "missing" / "b.npz", {"x": np.arange(3.0)})
+
+
+def test_save_npz_round_trip(tmp_path):
+    save_npz(tmp_path / "b.npz", {"x": np.arange(3.0), "k": np.asarray(7)})
+    with np.load(tmp_path / "b.npz", allow_pickle=False) as z:
+        assert z["x"].tolist() == [0.0, 1.0, 2.0] and int(z["k"]) == 7
+    assert os.listdir(tmp_path) == ["b.npz"]
+
+
+def test_write_json_replaces_and_keeps_on_failure(tmp_path):
+    path = tmp_path / "r.json"
+    _write_json(path, {"mode": "aligned", "n": [1, 2]})
+    assert json.loads(path.read_text()) == {"mode": "aligned", "n": [1, 2]}
+    assert path.read_text() == json.dumps({"mode": "aligned", "n": [1, 2]}, indent=2)
+    with pytest.raises(TypeError):
+        _write_json(path, {"bad": object()})  # not JSON-serialisable
+    assert json.loads(path.read_text()) == {"mode": "aligned", "n": [1, 2]}
+    assert os.listdir(tmp_path) == ["r.json"]
+
+
+def test_write_ply_replaces_the_old_mesh(tmp_path):
+    path = tmp_path / "m.ply"
+    path.write_bytes(b"old content")
+    write_ply(path, np.eye(3), faces=[[0, 1, 2]])
+    m = read_mesh(path)
+    assert m.vertices.tolist() == np.eye(3).tolist() and m.sizes.tolist() == [3]
+    assert os.listdir(tmp_path) == ["m.ply"]
