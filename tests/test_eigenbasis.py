@@ -353,3 +353,66 @@ def test_bunny_two_resolutions():
     rel = np.abs(scaled[0][1:] / scaled[1][1:] - 1)
     assert rel.max() < 0.015, rel.max()
     assert np.median(rel) < 0.004, np.median(rel)
+
+
+# ------------------------------------------------------------ interior shift
+
+def test_interior_shift_inertia_matches_dense(noisy4):
+    # Sylvester's law of inertia: L - sigma M has as many negative pivots as
+    # the pencil (L, M) has eigenvalues below sigma (Golub and Van Loan,
+    # Matrix Computations, section 8.1, from memory). Reference: LAPACK's
+    # dense generalised eigensolver through scipy.linalg.eigh.
+    import scipy.linalg as la
+
+    L, m = noisy4
+    E = eigenbasis(L, m, 30, method="sparse")
+    sigma, below = E.info["interior_shift"], E.info["below_shift"]
+    lam = la.eigh(L.toarray(), np.diag(m), eigvals_only=True)
+    assert 0 < below < 30
+    assert below == int((lam < sigma).sum()) - 1  # minus the zero eigenvalue
+    assert int((E.eigenvalues[1:] < sigma).sum()) == below
+    np.testing.assert_allclose(E.eigenvalues, lam[:30], rtol=1e-8, atol=1e-12)
+
+
+def test_interior_shift_falls_back(noisy4, monkeypatch):
+    # A factor judged inaccurate sends the solver to the positive definite
+    # shift below lambda_1; the answer is the same (dense LAPACK reference).
+    import importlib
+
+    eb = importlib.import_module("engine.eigenbasis")
+    L, m = noisy4
+    monkeypatch.setattr(eb, "_BACKWARD_MAX", 0.0)
+    E = eigenbasis(L, m, 30, method="sparse")
+    assert "backward error" in E.info["interior_failed"] and "interior_shift" not in E.info
+    D = eigenbasis(L, m, 30, method="dense")
+    np.testing.assert_allclose(E.eigenvalues, D.eigenvalues, rtol=1e-8, atol=1e-12)
+
+
+def test_block_factor_solves_indefinite_system(noisy4):
+    # The block LDL^T of an indefinite shifted Laplacian against SuperLU
+    # (scipy.sparse.linalg.spsolve) on the same system.
+    import importlib
+
+    import scipy.sparse.linalg as sla
+
+    eb = importlib.import_module("engine.eigenbasis")
+    L, m = noisy4
+    L, m = eb._validate(L, m)
+    A = (L - 20.0 * sp.diags(m)).tocsr()  # between eigenvalues 12 and 20 of the unit sphere
+    perm, bounds = eb._nested_dissection(eb._pattern(L), m)
+    fac = eb._BlockFactor(A, perm, bounds, definite=False)
+    b = np.random.default_rng(1).standard_normal((len(m), 3))
+    x = fac.solve(b)
+    ref = sla.spsolve(A.tocsc(), b)
+    assert np.abs(x - ref).max() < 1e-8 * np.abs(ref).max()
+    assert fac.backward_error() < 1e-12  # the solver accepts up to 1e-10
+    lam = np.linalg.eigvalsh(L.toarray() / np.sqrt(m)[:, None] / np.sqrt(m)[None, :])
+    assert fac.negative == int((lam < 20.0).sum())
+    with pytest.raises(ValueError, match="not positive definite"):
+        eb._BlockFactor(A, perm, bounds, definite=True)
+
+
+def test_not_psd_on_the_sparse_path(noisy4):
+    L, m = noisy4
+    with pytest.raises(ValueError, match="not positive semidefinite"):
+        eigenbasis(-L, m, 10, method="sparse")
