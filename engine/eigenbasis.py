@@ -360,13 +360,19 @@ def _signs(X: np.ndarray) -> np.ndarray:
     return s
 
 
-def _residuals(LX, m, lam, X) -> np.ndarray:
-    """Relative residuals from ``X`` and ``L X``."""
-    MX = X * m[:, None]
-    R = LX - MX * lam[None, :]
-    num = np.linalg.norm(R, axis=0)
-    den = np.linalg.norm(MX, axis=0) * np.where(lam > 0, lam, 1.0)
-    return num / den
+def _residuals(LX, m, lam, X, rows: int = 8192) -> np.ndarray:
+    """Relative residuals from ``X`` and ``L X`` (the first ``lam.size``
+    columns), summed over row chunks so that no temporary of the size of
+    ``X`` is made (at 100k vertices and 120 pairs each one is 96 MB)."""
+    c = lam.size
+    num = np.zeros(c)
+    den = np.zeros(c)
+    for i in range(0, X.shape[0], rows):
+        MX = X[i:i + rows, :c] * m[i:i + rows, None]
+        R = LX[i:i + rows, :c] - MX * lam[None, :]
+        num += np.einsum("ij,ij->j", R, R)
+        den += np.einsum("ij,ij->j", MX, MX)
+    return np.sqrt(num) / (np.sqrt(den) * np.where(lam > 0, lam, 1.0))
 
 
 # ---------------------------------------------------------------------- dense
@@ -521,6 +527,7 @@ class _BlockFactor:
         owner = np.repeat(np.arange(nb), np.diff(bounds))  # block of each (permuted) row
         pending: list = [[] for _ in range(nb)]  # update matrices waiting for their block
         potrf, potri = la.get_lapack_funcs(("potrf", "potri"), (np.zeros(1),))
+        gemm = la.get_blas_funcs("gemm", (np.zeros(1),))
         self.blocks = []
         nnz = stored = negative = 0
         for j in range(nb):
@@ -557,8 +564,12 @@ class _BlockFactor:
                 negative += int((w < 0).sum())
                 Finv = (V / w[None, :]) @ V.T
             if r:
-                L21 = F[s:, :s] @ Finv
-                pending[owner[R[0]]].append((R, F[s:, s:] - L21 @ F[s:, :s].T))
+                # scipy's BLAS, like potrf/potri above: with numpy and scipy on
+                # two OpenBLAS thread pools, alternating between them in this
+                # loop made the factor 20x slower on a busy 2-core machine
+                F21 = F[s:, :s]
+                L21 = gemm(1.0, F21, Finv)
+                pending[owner[R[0]]].append((R, gemm(-1.0, L21, F21, 1.0, F[s:, s:], trans_b=1)))
             else:
                 L21 = np.zeros((0, s))
             nnz += s * (s + 1) // 2 + s * r
@@ -600,14 +611,17 @@ def _orth_against(W, Q):
 
 def _orthonormal(W, drop=1e-10):
     """Orthonormal basis of span(W) with near-dependent directions dropped
-    (eigen-decomposition of the Gram matrix, then one Cholesky-QR pass)."""
+    (eigen-decomposition of the Gram matrix, then one Cholesky-QR pass).
+
+    numpy's LAPACK throughout, like the products around it in the Lanczos
+    loop (see _BlockFactor on mixing numpy's and scipy's thread pools)."""
     G = W.T @ W
-    w, U = la.eigh((G + G.T) * 0.5)
+    w, U = np.linalg.eigh((G + G.T) * 0.5)
     keep = w > drop * max(w.max(), 1e-300)
     W = W @ (U[:, keep] / np.sqrt(w[keep]))
     G = W.T @ W
-    C = la.cholesky((G + G.T) * 0.5)
-    return W @ la.solve_triangular(C, np.eye(C.shape[0]))  # near-orthonormal W: C near I
+    C = np.linalg.cholesky((G + G.T) * 0.5)  # G = C C^T, C lower
+    return W @ np.linalg.inv(C).T  # W C^-T; near-orthonormal W: C near I
 
 
 def _purified(Q, Y, mu, F, lo, want):
@@ -615,7 +629,9 @@ def _purified(Q, Y, mu, F, lo, want):
     ``T x = mu x + F y_last`` (scaled variable)."""
     X = Q @ Y[:, :want]
     X *= mu[None, :want]
-    X += F @ Y[lo:, :want]
+    Yl = Y[lo:, :want]
+    for i in range(0, X.shape[0], 8192):  # no (n, want) temporary
+        X[i:i + 8192] += F[i:i + 8192] @ Yl
     return X
 
 
@@ -757,7 +773,7 @@ def _shift_invert(L, m, p, Z, fac, shift, below, stats, *, seed, tol, k_needed):
             # Ritz values and residual norms from H and F^T F alone
             t1 = time.perf_counter()
             checks += 1
-            mu, Y = la.eigh((H[:m0, :m0] + H[:m0, :m0].T) * 0.5)
+            mu, Y = np.linalg.eigh((H[:m0, :m0] + H[:m0, :m0].T) * 0.5)  # numpy's pool, as _orthonormal
             o = _ritz_order(mu, want)
             mu, Y = mu[o], Y[:, o]
             Yl = Y[lo:, :need]
@@ -774,11 +790,10 @@ def _shift_invert(L, m, p, Z, fac, shift, below, stats, *, seed, tol, k_needed):
                 # The estimate lives in the mass-scaled variable; check the
                 # residual the caller sees on the purified Ritz vectors and
                 # tighten the estimate's target if it was optimistic.
-                X = _purified(Q, Y, mu, F, lo, want) / r[:, None]
-                MX = X[:, :need] * m[:, None]
+                X = _purified(Q, Y, mu, F, lo, want)
+                X /= r[:, None]
                 LX = L @ X
-                rt = np.linalg.norm(LX[:, :need] - MX * th[None, :], axis=0)
-                rt /= np.linalg.norm(MX, axis=0) * np.maximum(th, 1e-300)
+                rt = _residuals(LX, m, np.maximum(th, 1e-300), X)
                 true_worst = float(rt.max())
                 t_rr += time.perf_counter() - t1
                 if true_worst <= tol or m0 >= nfree or retries >= 3:
@@ -788,7 +803,7 @@ def _shift_invert(L, m, p, Z, fac, shift, below, stats, *, seed, tol, k_needed):
                 retries += 1
                 cgs2 = True  # an optimistic estimate may be lost orthogonality
                 inner = min(inner, worst) * min(0.5, 0.8 * tol / true_worst)
-                X = MX = LX = None
+                X = LX = None
             else:
                 t_rr += time.perf_counter() - t1
             if full:
@@ -819,7 +834,8 @@ def _shift_invert(L, m, p, Z, fac, shift, below, stats, *, seed, tol, k_needed):
         m0 += w
     t1 = time.perf_counter()
     if X is None:  # stopped without the final check (stall, basis exhausted)
-        X = _purified(Q, Y, mu, F, lo, want) / r[:, None]
+        X = _purified(Q, Y, mu, F, lo, want)
+        X /= r[:, None]
         LX = L @ X
     del Qb, Q, F, Tp
     # Final Rayleigh-Ritz on these vectors in the original variable, deflated
