@@ -5,6 +5,11 @@ colours, mask error (fraction of target vertices wrong) and map error (mean
 distance of the mapped point from the true one, over sqrt(source area)).
 The closest-point baseline is measured in the same run; basis methods use one
 size (r columns) for the comparison: laplacian k = rank of the orthoproducts.
+
+Arguments: pair names to run (substrings; all by default); ``--refine=on`` or
+``--refine=off`` forces the product-embedding step of the spectral map
+(``correspond(refine=...)``) instead of its default. The closest-point
+baselines never use it.
 """
 
 import sys
@@ -29,7 +34,17 @@ def main():
     print(f"{'pair':22s} {'method':16s} {'mode':10s} {'colour RMSE':>11s} {'mask err':>9s} {'map err':>8s} {'src err':>8s}")
     makers = [pairs.creature_pose, pairs.creature_resolution, pairs.creature_proportion, pairs.creature_rigid,
               pairs.cow_rigid, pairs.elephant_resolution, pairs.elephant_bent, pairs.elephant_proportion]
-    only = sys.argv[1:]
+    args = sys.argv[1:]
+    flags = [a for a in args if a.startswith("--")]
+    only = [a for a in args if not a.startswith("--")]
+    opts = {}
+    for f in flags:
+        if f in ("--refine=on", "--refine"):
+            opts["refine"] = True
+        elif f == "--refine=off":
+            opts["refine"] = False
+        else:
+            raise SystemExit(f"unknown option {f}")
     for make in makers:
         p = make()
         if only and not any(o in p.name for o in only):
@@ -38,15 +53,15 @@ def main():
         sc = pairs.rest_scale(p)
         src, tru = pairs.colour(p.source_rest, sc), pairs.colour(p.target_rest, sc)
         msrc, mtru = pairs.mask(p.source_rest, sc), pairs.mask(p.target_rest, sc)
-        base = correspond(S, T, match="aligned")
+        base = correspond(S, T, match="aligned", refine=False)
         rows = [("closest-point", base, "pointwise")]
         if p.landmarks:
             S_w = Shape(pairs.landmark_warp(p), p.source_faces)
-            warped = correspond(S_w, T, match="aligned")
+            warped = correspond(S_w, T, match="aligned", refine=False)
             # same triangles and weights, read on the unwarped source
             rows.append(("warp+closest", type(warped)(S, T, "aligned", "landmark warp", warped.triangle,
                                                         warped.barycentric, warped.confidence, warped.fmap), "pointwise"))
-        c = correspond(S, T, landmarks=p.landmarks or None)
+        c = correspond(S, T, landmarks=p.landmarks or None, **opts)
         rank = S.products(10, 3).basis.shape[1]
         for b in ("pointwise", "laplacian", "products", "orthoproducts"):
             rows.append((b, c, b))
