@@ -25,7 +25,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-__all__ = ["Status", "Worker", "python_executable", "shared_worker", "stop_shared_worker"]
+__all__ = ["Status", "Worker", "child_environment", "python_executable", "shared_worker", "stop_shared_worker"]
 
 _PACKAGE = "_overtone_worker"
 
@@ -33,6 +33,28 @@ _PACKAGE = "_overtone_worker"
 def python_executable() -> str:
     """The Python that runs the worker: Blender's own (``sys.executable`` in 4.2+)."""
     return sys.executable
+
+
+# BLAS thread pools of the worker, unless the user set them: one thread each.
+# The engine's eigensolver runs thousands of small dense blocks; with two
+# OpenBLAS threads on a machine busy with other work each call waits for a
+# descheduled thread, and the factor of a 30k-vertex mesh took 6 s instead of
+# 0.2 s. On an idle 2-core machine two threads gained nothing over one (100k
+# vertices, 100 eigenpairs: 7.25 s against 7.34 s, benchmarks/eigenbasis_speed.py).
+_THREAD_VARIABLES = ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS", "VECLIB_MAXIMUM_THREADS")
+
+
+def child_environment() -> dict[str, str]:
+    """Environment of the worker process: this one's, with ``sys.path`` as
+    ``PYTHONPATH``, no user site-packages, and one BLAS thread unless the user
+    chose otherwise."""
+    env = dict(os.environ)
+    paths = [p for p in sys.path if p and os.path.isdir(p)]
+    env["PYTHONPATH"] = os.pathsep.join(paths)
+    env["PYTHONNOUSERSITE"] = "1"
+    for name in _THREAD_VARIABLES:
+        env.setdefault(name, "1")
+    return env
 
 
 @dataclass(frozen=True)
@@ -64,10 +86,7 @@ class Worker:
         return self.process is not None and self.process.poll() is None
 
     def _start(self) -> subprocess.Popen[str]:
-        env = dict(os.environ)
-        paths = [p for p in sys.path if p and os.path.isdir(p)]
-        env["PYTHONPATH"] = os.pathsep.join(paths)
-        env["PYTHONNOUSERSITE"] = "1"
+        env = child_environment()
         handle, log = tempfile.mkstemp(prefix="overtone-worker-", suffix=".log")
         self.log = Path(log)
         try:

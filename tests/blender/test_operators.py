@@ -400,6 +400,21 @@ def test_worker_errors_come_back_as_one_message(mod, scene, tmp_path):
         mod.job.run_job(bad.inputs)
 
 
+def test_worker_gets_one_blas_thread_unless_the_user_chose(mod, scene, monkeypatch):
+    for name in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS"):
+        monkeypatch.delenv(name, raising=False)
+    mod.worker.stop_shared_worker()  # the next run starts a process with this environment
+    src, tgt = painted_pair(scene)
+    run = mod.transfer.BackgroundRun(mod.operators.plan_from_context(bpy.context, "transfer"))
+    assert run.worker.wait(timeout=300).state == "done"
+    # the live process's own environment (Linux /proc), not just what we meant to pass
+    environ = open(f"/proc/{run.worker.process.pid}/environ", "rb").read().split(b"\0")
+    assert b"OPENBLAS_NUM_THREADS=1" in environ and b"OMP_NUM_THREADS=1" in environ
+    monkeypatch.setenv("OPENBLAS_NUM_THREADS", "3")
+    env = mod.worker.child_environment()
+    assert env["OPENBLAS_NUM_THREADS"] == "3" and env["MKL_NUM_THREADS"] == "1"
+
+
 # ----------------------------------------------------------------------------- cache
 
 
