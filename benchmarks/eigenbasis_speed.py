@@ -14,6 +14,11 @@ Usage::
 
     python benchmarks/eigenbasis_speed.py [--n 100000] [--k 100] [--threads 1] [--tol TOL] [--repeat 2]
 
+At the end the same script times the orthogonalised products of the first 20
+of these eigenfunctions up to order 3 against the least-squares route
+(benchmarks/products_speed.py on the engine's eigenvectors; ``--no-products``
+skips it).
+
 ``--tol`` is passed to the engine (its default when omitted); the baseline
 keeps ``tol=0`` (ARPACK with a looser tol returned wrong eigenvalues on a
 sphere, PLATFORM.md).
@@ -72,7 +77,7 @@ def _residuals(L, m, lam, X):
     return np.linalg.norm(R, axis=0) / (np.linalg.norm(MX, axis=0) * np.where(lam > 0, lam, 1.0))
 
 
-def child(side: str, n: int, k: int, threads: int, tol, out: str) -> None:
+def child(side: str, n: int, k: int, threads: int, tol, out: str, functions: str | None = None) -> None:
     from threadpoolctl import threadpool_limits
 
     import scipy.sparse as sp
@@ -101,6 +106,8 @@ def child(side: str, n: int, k: int, threads: int, tol, out: str) -> None:
             lam, X = lam[o], X[:, o]
             extra = {}
         seconds = time.perf_counter() - t
+        if functions and side == "engine":  # for the products comparison, outside the timing
+            np.savez(functions, vertices=v, mass=E.mass, functions=X[:, :20])
         res = _residuals(L, m, np.maximum(lam, 0), X)
     nonzero = lam > 1e-8 * max(lam.max(), 1.0)
     json.dump({"seconds": seconds, "worst_residual": float(res[nonzero].max()),
@@ -117,25 +124,38 @@ def main() -> None:
     ap.add_argument("--repeat", type=int, default=2,
                     help="runs per side, alternating; the fastest of each side is compared")
     ap.add_argument("--child", choices=["engine", "baseline"])
+    ap.add_argument("--functions", help=argparse.SUPPRESS)
+    ap.add_argument("--no-products", action="store_true",
+                    help="skip the orthogonalised products against least squares at the end")
     ap.add_argument("--out")
     a = ap.parse_args()
     if a.child:
-        child(a.child, a.n, a.k, a.threads, a.tol, a.out)
+        child(a.child, a.n, a.k, a.threads, a.tol, a.out, a.functions)
         return
+    import shutil
     import tempfile
 
+    tmp = tempfile.mkdtemp(prefix="eigenbasis-speed-")
+    try:
+        _compare(a, tmp)
+    finally:
+        shutil.rmtree(tmp, ignore_errors=True)
+
+
+def _compare(a, tmp: str) -> None:
     load_before = os.getloadavg()
     runs: dict = {"baseline": [], "engine": []}
-    with tempfile.TemporaryDirectory() as tmp:
-        for i in range(max(1, a.repeat)):
-            for side in ("baseline", "engine"):
-                out = os.path.join(tmp, f"{side}{i}.json")
-                cmd = [sys.executable, __file__, "--child", side, "--n", str(a.n), "--k", str(a.k),
-                       "--threads", str(a.threads), "--out", out]
-                if a.tol is not None:
-                    cmd += ["--tol", str(a.tol)]
-                subprocess.run(cmd, check=True)
-                runs[side].append(json.load(open(out)))
+    for i in range(max(1, a.repeat)):
+        for side in ("baseline", "engine"):
+            out = os.path.join(tmp, f"{side}{i}.json")
+            cmd = [sys.executable, __file__, "--child", side, "--n", str(a.n), "--k", str(a.k),
+                   "--threads", str(a.threads), "--out", out]
+            if a.tol is not None:
+                cmd += ["--tol", str(a.tol)]
+            if side == "engine" and i == 0 and not a.no_products:
+                cmd += ["--functions", os.path.join(tmp, "eigenfunctions.npz")]
+            subprocess.run(cmd, check=True)
+            runs[side].append(json.load(open(out)))
     b, e = (min(runs[side], key=lambda r: r["seconds"]) for side in ("baseline", "engine"))
     diff = np.abs(np.array(b["eigenvalues"]) - np.array(e["eigenvalues"]))
     scale = max(abs(b["eigenvalues"][-1]), 1.0)
@@ -153,6 +173,13 @@ def main() -> None:
     ratio = b["seconds"] / e["seconds"]
     print(f"speed ratio baseline/engine: {ratio:.2f}x (goal >= 3x with residuals < 1e-4: "
           f"{'met' if ratio >= 3 and max(b['worst_residual'], e['worst_residual']) < 1e-4 else 'not met'})")
+
+    if not a.no_products:
+        print()
+        sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
+        import products_speed
+
+        products_speed.run(a.n, 20, 3, functions=os.path.join(tmp, "eigenfunctions.npz"))
 
 
 if __name__ == "__main__":

@@ -22,7 +22,10 @@ functions ``cos(w . x + b)`` with ``|w| <= 3``, mass-orthonormalised. Their
 products have no exact algebraic dependencies (beyond those of the constant),
 which is the expensive case.
 
-Usage: ``python benchmarks/products_speed.py [--n 100000] [--K 20] [--order 3]``.
+Usage: ``python benchmarks/products_speed.py [--n 100000] [--K 20] [--order 3]
+[--functions F.npz]``; with ``--functions`` the given functions (for example
+the true eigenfunctions written by benchmarks/eigenbasis_speed.py, which runs
+this comparison at its end) replace the random ones.
 """
 
 from __future__ import annotations
@@ -63,9 +66,23 @@ def build_data(n_vertices: int, K: int, *, seed: int = 0, n_signals: int = 4):
     q, _ = np.linalg.qr(sw[:, None] * F)
     phi = q / sw[:, None]
     phi *= np.sign(phi[np.argmax(np.abs(phi), axis=0), np.arange(K)])
-    signals = np.column_stack([np.exp(v[:, 0]) * np.cos(2 * v[:, 1]), (v[:, 2] > 0.3).astype(float),
-                               np.sin(4 * v[:, 0] * v[:, 1]), v[:, 1] ** 3][:n_signals])
-    return v, faces, m, phi, signals
+    return v, faces, m, phi, _signals(v, n_signals)
+
+
+def _signals(v, n_signals: int = 4):
+    return np.column_stack([np.exp(v[:, 0]) * np.cos(2 * v[:, 1]), (v[:, 2] > 0.3).astype(float),
+                            np.sin(4 * v[:, 0] * v[:, 1]), v[:, 1] ** 3][:n_signals])
+
+
+def load_data(path: str, K: int):
+    """Vertices, mass and the first ``K`` functions saved by another script
+    (``vertices``, ``mass``, ``functions`` in an ``.npz``), e.g. the true
+    eigenfunctions that benchmarks/eigenbasis_speed.py computed."""
+    with np.load(path, allow_pickle=False) as z:
+        v, m, phi = z["vertices"], z["mass"], z["functions"][:, :K]
+    if phi.shape[1] < K:
+        raise ValueError(f"{path} holds {phi.shape[1]} functions, K={K} asked")
+    return v, None, m, np.ascontiguousarray(phi), _signals(v)
 
 
 def _peak_kib() -> int:
@@ -88,10 +105,10 @@ def _reset_peak() -> bool:
         return False
 
 
-def _child(method: str, n: int, K: int, order: int) -> dict:
+def _child(method: str, n: int, K: int, order: int, functions: str | None = None) -> dict:
     from engine.products import orthogonal_products, raw_products, product_exponents
 
-    v, faces, m, phi, signals = build_data(n, K)
+    v, faces, m, phi, signals = build_data(n, K) if functions is None else load_data(functions, K)
     del v, faces
     data_kib = _peak_kib()
     reset = _reset_peak()
@@ -117,16 +134,18 @@ def _child(method: str, n: int, K: int, order: int) -> dict:
 
 
 def run(n_vertices: int = 100_000, K: int = 20, order: int = 3, *,
-        methods: tuple[str, ...] = ("orthogonal", "lstsq")) -> dict:
+        methods: tuple[str, ...] = ("orthogonal", "lstsq"), functions: str | None = None) -> dict:
     """Time both routes in child processes; print and return their figures and the ratios."""
     import math
 
+    what = ("smooth random functions (not eigenvectors)" if functions is None
+            else f"the first {K} eigenfunctions from {os.path.basename(functions)}")
     print(f"products_speed: {n_vertices} vertices, K={K}, order={order} "
-          f"({math.comb(K + order, order)} products), smooth random functions (not eigenvectors)")
+          f"({math.comb(K + order, order)} products), {what}")
     results = {}
     for method in methods:
         cmd = [sys.executable, os.path.abspath(__file__), "--child", method, "--n", str(n_vertices),
-               "--K", str(K), "--order", str(order)]
+               "--K", str(K), "--order", str(order)] + ([] if functions is None else ["--functions", functions])
         out = subprocess.run(cmd, capture_output=True, text=True, check=True)
         res = json.loads(out.stdout.strip().splitlines()[-1])
         results[method] = res
@@ -152,11 +171,13 @@ def main(argv=None) -> int:
     ap.add_argument("--order", type=int, default=3)
     ap.add_argument("--child", default=None, help=argparse.SUPPRESS)
     ap.add_argument("--methods", default="orthogonal,lstsq")
+    ap.add_argument("--functions", default=None,
+                    help="an .npz with vertices, mass, functions (n, >=K) to use instead of random ones")
     a = ap.parse_args(argv)
     if a.child:
-        print(json.dumps(_child(a.child, a.n, a.K, a.order)))
+        print(json.dumps(_child(a.child, a.n, a.K, a.order, a.functions)))
         return 0
-    run(a.n, a.K, a.order, methods=tuple(a.methods.split(",")))
+    run(a.n, a.K, a.order, methods=tuple(a.methods.split(",")), functions=a.functions)
     return 0
 
 
