@@ -555,9 +555,9 @@ def _align_refine(source, target, tri, bary, steps, lm=None, rows=None, *, itera
     affine fit of the spectral map; ``map_solves`` solves at the first
     smoothing length fit the spectral map's pairs (``tri, bary`` for target
     vertices ``rows``; one factorisation, the rotations refitted between
-    solves), then ``iterations`` solves per smoothing length, each with pairs
-    from the last deformed source (pairs from a cheap closest-point search,
-    :func:`_near_closest`; the final map uses the full search).
+    solves), then ``iterations`` solves per smoothing length, each with the
+    pairs of the last deformed source (found by a cheap closest-point
+    search, :func:`_near_closest`; the final map uses the full search).
 
     Measured on the ground-truth pairs of benchmarks/transfer_accuracy.py,
     colour RMSE / mask error / map error for creature-pose,
@@ -635,11 +635,11 @@ def _align_refine(source, target, tri, bary, steps, lm=None, rows=None, *, itera
     lam = steps[0] * steps[0] * A_t
     PtW = Pi.T.multiply(w[None, :]).tocsr()
     H = (PtW @ Pi + lam * L + sp.diags(lm_w)).tocsc()
-    H = H + sp.diags(np.full(n_s, 1e-9 * H.diagonal().mean()))
-    solve = _spd_factor(H).solve
+    eps = 1e-9 * H.diagonal().mean()      # a tiny pull toward the current X keeps H definite, unbiased
+    solve = _spd_factor(H + sp.diags(np.full(n_s, eps))).solve
     b = PtW @ y + lm_y
     for _ in range(map_solves):
-        X = solve(np.asarray(b + lam * arap.rhs(X)))
+        X = solve(np.asarray(b + lam * arap.rhs(X) + eps * X))
     for r in steps:
         lam = r * r * A_t
         for _ in range(iterations):
@@ -659,9 +659,9 @@ def _align_refine(source, target, tri, bary, steps, lm=None, rows=None, *, itera
                 back_w, back_q = np.zeros(n_s), np.zeros((n_s, 3))
             PtW = Pi.T.multiply(w[None, :]).tocsr()
             H = (PtW @ Pi + lam * L + sp.diags(back_w + lm_w)).tocsc()
-            H = H + sp.diags(np.full(n_s, 1e-9 * H.diagonal().mean()))
-            rhs = PtW @ Y + back_w[:, None] * back_q + lm_y + lam * arap.rhs(X)
-            X = _spd_factor(H).solve(np.asarray(rhs))
+            eps = 1e-9 * H.diagonal().mean()
+            rhs = PtW @ Y + back_w[:, None] * back_q + lm_y + lam * arap.rhs(X) + eps * X
+            X = _spd_factor(H + sp.diags(np.full(n_s, eps))).solve(np.asarray(rhs))
     cp = SurfaceLocator(X, source.faces).closest(Y)
     return cp.triangle, cp.barycentric, X
 
