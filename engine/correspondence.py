@@ -23,8 +23,8 @@ intrinsic
     isometry prior serves.
 
 The optional product refinement (``refine=True``, off by default: on the
-ground-truth pairs of benchmarks/transfer_accuracy.py it helps creature-pose
-slightly and hurts elephant-bent) matches target vertices to source points in
+ground-truth pairs of benchmarks/transfer_accuracy.py it ties on creature-pose
+and hurts the elephant pairs) matches target vertices to source points in
 the embedding of orthogonalised eigenfunction products: target products
 ``Q_t = P_t R^-1`` from the target's own first ``K`` eigenfunctions; on the
 source, those eigenfunctions transported through the current map (mass-weighted
@@ -198,8 +198,9 @@ def correspond(source: Shape, target: Shape, *, match: str = "auto", landmarks=N
         transported to the source by least squares through the current map,
         same kept products and coefficients, search within 3 mean edge
         lengths of the current point). Off by default: measured on the
-        ground-truth pairs it ties or slightly improves creature-pose (map
-        error 0.0226 -> 0.0221) but worsens elephant-bent (0.0109 -> 0.014).
+        ground-truth pairs it ties on creature-pose (map error 0.0157) and
+        worsens creature-proportion (0.0280 -> 0.0286), elephant-bent
+        (0.0079 -> 0.0122) and elephant-proportion (0.0092 -> 0.0157).
     product_K, product_order : int
         Eigenfunctions and order of the product embedding; ``product_K`` by
         default from the vertex count (12 below 20k target vertices, else 10).
