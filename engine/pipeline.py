@@ -35,7 +35,7 @@ from .transfer import BASES, Transfer, TransferResult
 __all__ = ["Settings", "Pair", "weighted_centre_vertex", "load_landmarks", "run_transfer_job",
            "run_detail_job"]
 
-CORRESPONDENCE_VERSION = 2   # 2: product-embedding step in the intrinsic map
+CORRESPONDENCE_VERSION = 3   # 2: product-embedding step in the intrinsic map; 3: and in aligned mode where the surfaces differ
 
 
 @dataclass(frozen=True)
