@@ -7,9 +7,10 @@ The closest-point baseline is measured in the same run; basis methods use one
 size (r columns) for the comparison: laplacian k = rank of the orthoproducts.
 
 Arguments: pair names to run (substrings; all by default); ``--refine=on`` or
-``--refine=off`` forces the product-embedding step of the spectral map
-(``correspond(refine=...)``) instead of its default. The closest-point
-baselines never use it.
+``--refine=off`` forces the product-embedding step of the map
+(``correspond(refine=...)``) instead of its default; ``--match=aligned`` or
+``--match=intrinsic`` forces the mode instead of the overlap test. The
+closest-point baselines never use either.
 """
 
 import sys
@@ -33,7 +34,9 @@ def map_error(p, c):
 def main():
     print(f"{'pair':22s} {'method':16s} {'mode':10s} {'colour RMSE':>11s} {'mask err':>9s} {'map err':>8s} {'src err':>8s}")
     makers = [pairs.creature_pose, pairs.creature_resolution, pairs.creature_proportion, pairs.creature_rigid,
-              pairs.cow_rigid, pairs.elephant_resolution, pairs.elephant_bent, pairs.elephant_proportion]
+              pairs.creature_thicker, pairs.creature_reposed, pairs.creature_pinched,
+              pairs.cow_rigid, pairs.elephant_resolution, pairs.elephant_bent, pairs.elephant_proportion,
+              pairs.elephant_deformed]
     args = sys.argv[1:]
     flags = [a for a in args if a.startswith("--")]
     only = [a for a in args if not a.startswith("--")]
@@ -43,6 +46,8 @@ def main():
             opts["refine"] = True
         elif f == "--refine=off":
             opts["refine"] = False
+        elif f in ("--match=aligned", "--match=intrinsic"):
+            opts["match"] = f.split("=")[1]
         else:
             raise SystemExit(f"unknown option {f}")
     for make in makers:

@@ -5,8 +5,8 @@ barycentric weights. Two ways there:
 
 aligned
     The meshes overlap in space: closest points on the source triangles
-    (:mod:`engine.closest_point`); the product refinement (below) only on
-    request.
+    (:mod:`engine.closest_point`), kept as they are where the two surfaces
+    coincide and checked in the product embedding (below) where they differ.
 intrinsic
     Pose, placement and scale differ: area-normalised eigenbases, heat and
     wave kernel signatures plus each landmark's heat-kernel rows give a
@@ -32,7 +32,7 @@ orthogonalised with the same ``R``, so both embeddings are the same functions
 seen from the two sides (a point map commutes with pointwise products). The
 columns are weighted by how well each survives the transport, and the
 embedding is augmented with the position in the frame the map was found in
-(the deformed source), scaled so that moving a match by 0.1 edge lengths costs
+(the deformed source), scaled so that moving a match by 0.05 edge lengths costs
 as much as the median embedding residual: the embedding arbitrates locally
 instead of replacing the match. Each target vertex takes its nearest source
 vertex in that augmented embedding within 3 mean edge lengths of its current
@@ -41,7 +41,68 @@ match, then the best point on that vertex's triangles by a least-squares fit
 (pointwise colour RMSE / mask error / map error over sqrt(area), without ->
 with):
 
-====================  ========================  =================
+====================  ========================  ========================
+pair                  without                   with (default)
+====================  ========================  ========================
+creature-pose         0.0328 / 0.0137 / 0.0157  0.0326 / 0.0120 / 0.0157
+creature-proportion   0.0507 / 0.0234 / 0.0280  0.0507 / 0.0234 / 0.0280
+creature-rigid        0 / 0 / 0                 0 / 0 / 0
+cow-rigid             0 / 0 / 0                 0 / 0 / 0
+elephant-bent         0.0182 / 0.0025 / 0.0079  0.0181 / 0.0029 / 0.0079
+elephant-proportion   0.0199 / 0.0086 / 0.0092  0.0198 / 0.0086 / 0.0092
+====================  ========================  ========================
+
+and over all 13 non-rigid intrinsic pairs of benchmarks/product_refinement.py
+(these and nine variants: other seeds, bend angles, resolutions and
+proportions) colour RMSE and map error got worse on none, mean changes
+colour -0.40%, mask -1.55%, map -0.16%; the mask is one vertex worse on three
+pairs (elephant-bent above). With the spatial term at 0.1 edge lengths the mask
+got worse on average (+1.76%; creature-pose 0.0137 -> 0.0172); without it 7 of
+the 13 got worse in map error. The gains are small because the map after the
+alignment step is already within a fraction of an edge length of the truth
+and the embedding, transported through that map, mostly agrees with it.
+
+In aligned mode the closest points are the map where the surfaces coincide:
+if 99% of the closest-point distances, both ways, are below a quarter of the
+mean edge length (:data:`ALIGNED_COINCIDE`), nothing else is done and the
+report says why. Two meshings of one surface stay below it (0.11 to 0.19 on
+the four such pairs of benchmarks/aligned_refinement.py), and there the
+closest point is the true partner by construction, so any move is an error:
+the intrinsic mode's step, forced on elephant-resolution, took it from
+0.0018 / 0.0055 / 0.0006 to 0.0033 / 0.0061 / 0.0011. Where the surfaces
+differ, each closest point at least a quarter edge from the source whose
+product-embedding residual is an outlier is searched for within a distance
+that grows with the gap between the surfaces there, and moved only if that
+lowers its cost clearly (:func:`_refine_aligned`). The embedding is carried
+through the closest-point map itself, so it agrees with any smooth error of
+that map (a surface sliding along itself, as bending or a smooth deformation
+makes it) and can only catch matches that disagree with the rest of the map:
+closest points on the wrong part across a narrow gap. Measured with
+benchmarks/aligned_refinement.py (the same three metrics; gap: 99th
+percentile of the closest-point distances over ``h``):
+
+====================  =====  ========================  ========================
+pair                  gap    closest points            default
+====================  =====  ========================  ========================
+creature-resolution   0.117  0.0039 / 0.0127 / 0.0010  same (closest points)
+elephant-resolution   0.186  0.0018 / 0.0055 / 0.0006  same (closest points)
+creature-thicker      0.334  0.0058 / 0.0183 / 0.0025  same (nothing moved)
+creature-reposed      0.561  0.0314 / 0.0151 / 0.0173  same (nothing moved)
+creature-pinched      2.286  0.1041 / 0.0714 / 0.0686  0.0455 / 0.0277 / 0.0193
+elephant-deformed     2.843  0.0989 / 0.0289 / 0.0379  0.0976 / 0.0293 / 0.0375
+====================  =====  ========================  ========================
+
+Over the 13 pairs that differ (those four at two or three strengths each) the
+default changed colour RMSE by -7.8% on average, mask error by -7.1%, map error
+by -9.6%; the one metric it made worse is elephant-deformed's mask (+1.6%, 21
+of 44,460 vertices). The smooth sliding is what the intrinsic mode recovers:
+``match="intrinsic"`` takes elephant-deformed to 0.0094 / 0.0060 / 0.0043,
+creature-reposed to 0.0197 / 0.0055 / 0.0097 and creature-pinched to
+0.0260 / 0.0277 / 0.0171, but creature-thicker, whose closest points are right
+(a change of thickness moves the surface along its normal), to
+0.0342 / 0.0326 / 0.0184 (benchmarks/transfer_accuracy.py --match=intrinsic),
+so aligned mode does not switch to it by itself.
+
 ``mode="auto"`` measures the overlap: the fraction of target vertices within
 ``3`` mean edge lengths of the source surface and of source vertices within
 as much of the target; both above 0.9 picks aligned.
@@ -201,10 +262,12 @@ def correspond(source: Shape, target: Shape, *, match: str = "auto", landmarks=N
     step : int
         ZoomOut step.
     refine : bool, optional
-        Final point map by nearest neighbours in the product embedding
-        augmented with the position in the map's frame (module docstring).
-        ``None`` (default): in intrinsic mode only; ``True``: in both modes;
-        ``False``: never.
+        Intrinsic mode: final point map by nearest neighbours in the product
+        embedding augmented with the position in the map's frame. Aligned
+        mode: the closest points checked in that embedding
+        (:func:`_refine_aligned`). ``None`` (default): always in intrinsic
+        mode, in aligned mode where the surfaces differ
+        (:data:`ALIGNED_COINCIDE`); ``True``: always; ``False``: never.
     product_K, product_order : int
         Eigenfunctions and order of the product embedding; ``product_K`` by
         default :data:`PRODUCT_K`.
@@ -266,12 +329,13 @@ def correspond(source: Shape, target: Shape, *, match: str = "auto", landmarks=N
         cp_t = loc_s.closest(target.vertices)       # target vertices -> source surface
         cp_s = loc_t.closest(source.vertices)       # source vertices -> target surface
         tri, bary = cp_t.triangle, cp_t.barycentric
+        gap = float(max(np.quantile(cp_t.distance, ALIGNED_QUANTILE),
+                        np.quantile(cp_s.distance, ALIGNED_QUANTILE)) / h)    # ALIGNED_COINCIDE
         vertex = source.faces[tri, np.argmax(bary, axis=1)]
         k_map = max(K, 20)
         C = None
         rev = ("closest", cp_s)
         extra_s = extra_t = None
-        window = 2.0 * h
     else:
         kk = int(min(k, source.n_vertices - 1, target.n_vertices - 1))
         ls, ps = source.normalised_basis(kk)
@@ -318,9 +382,28 @@ def correspond(source: Shape, target: Shape, *, match: str = "auto", landmarks=N
         timings["align_refine"] = time.perf_counter() - t0
 
     ranks = {}
-    if (mode == "intrinsic") if refine is None else refine:
+    if mode == "aligned":
+        differ = gap >= ALIGNED_COINCIDE
+        run = differ if refine is None else bool(refine)
+        where = (f"{ALIGNED_QUANTILE:.0%} of closest-point distances within {gap:.2f} mean edge lengths "
+                 f"({'>=' if differ else '<'} {ALIGNED_COINCIDE:g}: the surfaces {'differ' if differ else 'coincide'})")
+        checked = {"closest_distance_over_h": gap, "coincide_below": ALIGNED_COINCIDE, "ran": run}
+        if run:
+            t0 = time.perf_counter()
+            tri, bary, vertex, ranks, counts = _refine_aligned(source, target, tri, bary, cp_t.distance, K,
+                                                               product_order, h=h)
+            timings["aligned_refine"] = time.perf_counter() - t0
+            checked.update(counts)
+            why = (f"{where}; {'requested: ' if refine else ''}product-embedding check moved "
+                   f"{counts['moved']} of {target.n_vertices} closest points")
+        else:
+            why = f"{where}; closest points kept" + (" (refine=False)" if refine is False else "")
+        checked["why"] = why
+        stats["aligned_refine"] = checked
+        reason = f"{reason}; {why}"
+    elif refine is None or refine:
         t0 = time.perf_counter()
-        frame = X if mode == "intrinsic" and align_steps else None
+        frame = X if align_steps else None
         tri, bary, vertex, ranks = _refine_products(source, target, tri, bary, vertex, K, product_order,
                                                     window=window, h=h, frame=frame)
         timings["product_refine"] = time.perf_counter() - t0
@@ -430,6 +513,66 @@ Before that alignment existed, 0.07 and 0.1 made no pair worse; without the
 spatial term 7 of the 13 got worse in map error."""
 
 
+ALIGNED_QUANTILE = 0.99
+"""Quantile of the closest-point distances (target vertices to the source
+surface and source vertices to the target, the larger) that decides whether
+aligned surfaces coincide: "everywhere" short of a few stray vertices."""
+
+ALIGNED_COINCIDE = 0.25
+"""Distance, in mean edge lengths ``h`` (the coarser mesh's), below which
+aligned surfaces coincide: if the :data:`ALIGNED_QUANTILE` of the
+closest-point distances is below it the check of :func:`_refine_aligned` is
+skipped (``refine=None``), and per vertex a closest point nearer than this is
+never moved. Two meshings of one surface stay below it: a chord of length
+``h`` deviates from a surface of curvature radius ``R`` by about
+``h^2 / 8R``, a quarter edge only where ``R`` is under half an edge, detail
+the coarser mesh does not carry. Measured with
+benchmarks/aligned_refinement.py: 0.117 creature-resolution, 0.186
+elephant-resolution (its fine mesh is a smoothed subdivision, so it deviates
+most), 0.113 and 0.150 on two smaller creatures; the pairs that differ 0.133
+to 2.843. The three of those below 0.25 (the creature's radius changed by up
+to 3% and 6%: 0.133, 0.193; bent by 0.1 rad: 0.199) have nothing moved by the
+check either when it is forced. Without the per-vertex floor the forced check
+moved 19 vertices of elephant-resolution (colour RMSE +0.28%) and made
+creature-pinched-0.1's colour 0.60% worse instead of 0.08% better."""
+
+ALIGNED_MARGIN = 16.0
+"""A closest point is moved only if that lowers its cost in the product
+embedding by more than this many median residuals (so only vertices whose
+own residual exceeds it are searched). Measured with
+benchmarks/aligned_refinement.py, colour / mask / map error change against
+closest points: at 8, creature-pinched -57.3 / -62.7 / -72.7% but
+elephant-deformed at 0.25 and 0.5 edge lengths +1.28% and +0.41% in colour
+(on the former 258 vertices moved, 185 of them further from the truth); at
+16, -56.3 / -61.2 / -71.8%, those two unchanged, elephant-deformed -1.23 /
++1.64 / -1.09%; at 32, -55.6 / -61.2 / -71.2% and -0.69 / +0.39 / -0.54%."""
+
+ALIGNED_SPATIAL = 2.0
+"""Spatial scale of the aligned check, as a multiple of the distance ``d_i``
+between the surfaces at target vertex ``i`` (at least
+:data:`PRODUCT_SPATIAL` ``h``): where the surfaces are ``d`` apart the closest
+point is only known to about ``d``. Measured on creature-pinched /
+elephant-deformed, colour change: 1: -55.8% / -1.08%; 2: -56.3% / -1.23%;
+4: -56.9% / -1.16% (mask of elephant-deformed +1.87, +1.64, +1.95%)."""
+
+ALIGNED_WINDOW = 8.0
+"""Search radius of the aligned check, as a multiple of ``d_i`` (at least
+``2 h``): on creature-pinched a wrong-arm match lies 2 to 3 edge lengths
+away from the right one, at ``d_i`` of 0.5 to 2 edges. Colour change there:
+6: -48.8%; 8 and 12: -56.3%."""
+
+ALIGNED_NEIGHBOURS = 256
+"""Candidate source vertices per searched target vertex (the nearest, then
+cut to the window): 128 gave creature-pinched -42.8% in colour, 256 and 512
+the same -56.3%."""
+
+ALIGNED_PASSES = 3
+"""Passes of the aligned check, each carrying the embedding through the map
+the last one left, so that a fixed match stops pulling its neighbours' back:
+colour change on creature-pinched / elephant-deformed 1: -52.6% / -0.96%; 3:
+-56.3% / -1.23%; 5: -57.1% / -1.29%."""
+
+
 def _refine_products(source, target, tri, bary, vertex, K, order, *, window, h, frame=None,
                      spatial=PRODUCT_SPATIAL, neighbours=32, tol=0.3, floor=0.01):
     """Point map in the product embedding, searched near the current match.
@@ -469,6 +612,35 @@ def _refine_products(source, target, tri, bary, vertex, K, order, *, window, h, 
     ``1 / tol``): at the library default (1e-3) the source embedding's error
     was amplified enough to triple the map error on creature-pose.
     """
+    Qt, Qs, F, here, info = _product_embedding(source, target, tri, bary, K, order, h=h, frame=frame,
+                                                tol=tol, floor=floor)
+    if window is None:
+        window = 3.0 * h
+    Qt_a = np.hstack([Qt, here / (spatial * h)])
+    Qs_a = np.hstack([Qs, F / (spatial * h)])
+    tree = cKDTree(F)
+    inc = _incident_triangles(source.faces, source.n_vertices)
+    dist, cand = tree.query(here, k=min(neighbours, source.n_vertices))
+    cost = np.where(dist <= window, _row_distances(Qt_a, Qs_a, cand), np.inf)
+    cost[:, 0] = np.minimum(cost[:, 0], _row_distances(Qt_a, Qs_a, cand[:, :1])[:, 0])
+    best = cand[np.arange(len(cand)), np.argmin(cost, axis=1)]
+    tri2, bary2 = _best_on_triangles(Qt_a, Qs_a, source.faces, inc, best)
+    moved = np.linalg.norm(np.einsum("ij,ijk->ik", bary2, F[source.faces[tri2]]) - here, axis=1)
+    return tri2, bary2, best, {**info, "product_spatial": float(spatial),
+                               "product_median_move_over_h": float(np.median(moved) / h)}
+
+
+def _product_embedding(source, target, tri, bary, K, order, *, h, frame=None, tol=0.3, floor=0.01):
+    """Both sides of the product embedding through the current map (:func:`_refine_products`).
+
+    Returns
+    -------
+    Qt : (n_t, r) target rows, column-weighted and divided by the residual scale ``s``
+    Qs : (n_s, r) source rows, the same
+    F : (n_s, 3) the frame (source vertices by default)
+    here : (n_t, 3) the current points in that frame
+    info : dict of sizes
+    """
     import scipy.sparse as sp
     K = int(min(K, source.n_vertices - 2, target.n_vertices - 2))
     pb = target.products(K, order, tol=tol)
@@ -482,8 +654,6 @@ def _refine_products(source, target, tri, bary, vertex, K, order, *, window, h, 
     pt = target.eigenbasis(K).eigenvectors[:, :K]
     sw = np.sqrt(target.mass)[:, None]
     F = source.vertices if frame is None else np.asarray(frame, dtype=np.float64)
-    if window is None:
-        window = 3.0 * h
     n_t = len(tri)
     Pi = sp.csr_matrix((bary.ravel(), (np.repeat(np.arange(n_t), 3), source.faces[tri].ravel())),
                        shape=(n_t, source.n_vertices))
@@ -505,32 +675,95 @@ def _refine_products(source, target, tri, bary, vertex, K, order, *, window, h, 
     g2 = float(np.median(dq[ok] / dx[ok])) if ok.any() else 0.0
     s = np.sqrt(max(s2, g2 * (floor * h) ** 2, 1e-300))
     here = np.einsum("ij,ijk->ik", bary, F[source.faces[tri]])
-    Qt_a = np.hstack([Qt / s, here / (spatial * h)])
-    Qs_a = np.hstack([Qs / s, F / (spatial * h)])
-    tree = cKDTree(F)
-    inc = _incident_triangles(source.faces, source.n_vertices)
-    dist, cand = tree.query(here, k=min(neighbours, source.n_vertices))
-    cost = np.where(dist <= window, _row_distances(Qt_a, Qs_a, cand), np.inf)
-    cost[:, 0] = np.minimum(cost[:, 0], _row_distances(Qt_a, Qs_a, cand[:, :1])[:, 0])
-    best = cand[np.arange(len(cand)), np.argmin(cost, axis=1)]
-    tri2, bary2 = _best_on_triangles(Qt_a, Qs_a, source.faces, inc, best)
-    moved = np.linalg.norm(np.einsum("ij,ijk->ik", bary2, F[source.faces[tri2]]) - here, axis=1)
-    return tri2, bary2, best, {"product_K": K, "product_order": order, "product_columns": int(len(pb.exponents)),
-                               "product_rank": int(len(kept)), "product_spatial": float(spatial),
-                               "product_median_move_over_h": float(np.median(moved) / h)}
+    return Qt / s, Qs / s, F, here, {"product_K": K, "product_order": order,
+                                     "product_columns": int(len(pb.exponents)), "product_rank": int(len(kept))}
 
 
-def _row_distances(Qt, Qs, cand, chunk=4000):
+def _refine_aligned(source, target, tri, bary, distance, K, order, *, h, margin=None, spatial=None,
+                    window=None, neighbours=None, passes=None, tol=0.3, floor=0.01):
+    """Aligned mode: move a closest point only where the product embedding rejects it.
+
+    The embedding of :func:`_product_embedding` is carried through the
+    closest-point map itself, so where that map is smooth the two sides agree
+    with it by construction; what it can see is a match that disagrees with
+    the rest of the map (a target vertex whose closest point lies on the
+    wrong part across a narrow gap). Target vertex ``i``, at ``d_i`` from the
+    source, is searched within ``max(2 h, window d_i)`` of its current point
+    with the cost of :func:`_refine_products` and a spatial scale of
+    ``max(PRODUCT_SPATIAL h, spatial d_i)`` (a closest point is only known to
+    about the distance between the surfaces), and it moves only if that
+    lowers its cost by more than ``margin`` median residuals. Its cost where
+    it stands is its own residual, so only vertices whose residual exceeds
+    ``margin`` are searched. Up to ``passes`` passes, each through the map the
+    last one left (fewer if nothing moves).
+
+    Returns
+    -------
+    triangle, barycentric, nearest source vertex, sizes (dict), counts (dict)
+    """
+    margin = ALIGNED_MARGIN if margin is None else margin
+    spatial = ALIGNED_SPATIAL if spatial is None else spatial
+    window = ALIGNED_WINDOW if window is None else window
+    neighbours = ALIGNED_NEIGHBOURS if neighbours is None else neighbours
+    passes = ALIGNED_PASSES if passes is None else passes
+    faces = source.faces
+    tri, bary = tri.copy(), bary.copy()
+    start = np.einsum("ij,ijk->ik", bary, source.vertices[faces[tri]])
+    searched, info = [], {}
+    inc = tree = None
+    for _ in range(passes):
+        Qt, Qs, F, here, info = _product_embedding(source, target, tri, bary, K, order, h=h, tol=tol, floor=floor)
+        diff = np.einsum("ij,ijk->ik", bary, Qs[faces[tri]]) - Qt
+        current = np.einsum("ij,ij->i", diff, diff)              # cost where each vertex stands
+        rows = np.flatnonzero((current > margin) & (distance >= ALIGNED_COINCIDE * h))
+        searched.append(int(len(rows)))
+        if not len(rows):
+            break
+        d = distance[rows]
+        rs = 1.0 / np.maximum(PRODUCT_SPATIAL, spatial * d / h)    # 1 / spatial scale, in 1 / h
+        win = np.maximum(2.0 * h, window * d)
+        Qt_a = np.hstack([Qt[rows], here[rows] / h])
+        Qs_a = np.hstack([Qs, F / h])
+        k_n = min(neighbours, source.n_vertices)
+        if tree is None:
+            tree, inc = cKDTree(F), _incident_triangles(faces, source.n_vertices)
+        dist, cand = tree.query(here[rows], k=k_n)
+        chunk = int(max(64, min(4000, 2e7 // (k_n * Qt_a.shape[1]))))   # at most ~160 MB of differences
+        cost = np.where(dist <= win[:, None], _row_distances(Qt_a, Qs_a, cand, chunk=chunk, row_scale=rs), np.inf)
+        cost[:, 0] = np.minimum(cost[:, 0], _row_distances(Qt_a, Qs_a, cand[:, :1], row_scale=rs)[:, 0])
+        best = cand[np.arange(len(cand)), np.argmin(cost, axis=1)]
+        t2, b2 = _best_on_triangles(Qt_a, Qs_a, faces, inc, best, row_scale=rs)
+        dn = np.einsum("ij,ijk->ik", b2, Qs_a[faces[t2]]) - Qt_a
+        dn[:, -3:] *= rs[:, None]
+        go = np.einsum("ij,ij->i", dn, dn) < current[rows] - margin
+        if not go.any():
+            break
+        tri[rows[go]], bary[rows[go]] = t2[go], b2[go]
+    shift = np.linalg.norm(np.einsum("ij,ijk->ik", bary, source.vertices[faces[tri]]) - start, axis=1)
+    moved = shift > 0
+    vertex = faces[tri, np.argmax(bary, axis=1)]
+    return tri, bary, vertex, info, {
+        "passes": len(searched), "searched": searched, "moved": int(moved.sum()),
+        "median_move_over_h": float(np.median(shift[moved]) / h) if moved.any() else 0.0}
+
+
+def _row_distances(Qt, Qs, cand, chunk=4000, row_scale=None):
+    """Squared distances from each row of ``Qt`` to its candidate rows of ``Qs``;
+    with ``row_scale`` the differences in the last three columns of row ``i``
+    are multiplied by ``row_scale[i]`` first."""
     out = np.empty(cand.shape)
     for s in range(0, len(cand), chunk):
         c = cand[s:s + chunk]
         diff = Qs[c] - Qt[s:s + chunk, None, :]
+        if row_scale is not None:
+            diff[..., -3:] *= row_scale[s:s + chunk, None, None]
         out[s:s + chunk] = np.einsum("ijk,ijk->ij", diff, diff)
     return out
 
 
-def _best_on_triangles(Qt, Qs, faces, inc, best, chunk=4000):
-    """Best point on the triangles around ``best`` for each target row, by least squares on the simplex."""
+def _best_on_triangles(Qt, Qs, faces, inc, best, chunk=4000, row_scale=None):
+    """Best point on the triangles around ``best`` for each target row, by least squares on the simplex
+    (``row_scale`` as in :func:`_row_distances`)."""
     n = len(best)
     tri_out = np.empty(n, np.int64)
     w_out = np.empty((n, 3))
@@ -542,6 +775,10 @@ def _best_on_triangles(Qt, Qs, faces, inc, best, chunk=4000):
         T = np.where(valid, T, T[:, :1])
         F = faces[T]                                 # (c, d, 3)
         P = Qs[F]                                    # (c, d, 3, r)
+        if row_scale is not None:
+            q = q.copy()
+            q[:, -3:] *= row_scale[s:s + chunk, None]
+            P[..., -3:] *= row_scale[s:s + chunk, None, None, None]
         Gm = np.einsum("cdir,cdjr->cdij", P, P)      # corner Gram
         sv = np.einsum("cdir,cr->cdi", P, q)
         w, val = _simplex_qp(Gm, sv)

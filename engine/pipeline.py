@@ -35,7 +35,8 @@ from .transfer import BASES, Transfer, TransferResult
 __all__ = ["Settings", "Pair", "weighted_centre_vertex", "load_landmarks", "run_transfer_job",
            "run_detail_job"]
 
-CORRESPONDENCE_VERSION = 3   # 2: product-embedding step in the intrinsic map; 3: non-rigid ICP alignment
+CORRESPONDENCE_VERSION = 4   # 2: product-embedding step in the intrinsic map; 3: non-rigid ICP
+                             # alignment; 4: spectral check in aligned mode where the surfaces differ
 
 
 @dataclass(frozen=True)

@@ -25,7 +25,7 @@ class Pair:
     source_rest: np.ndarray
     target_rest: np.ndarray
     landmarks: list = field(default_factory=list)
-    kind: str = "pose"   # pose | resolution | rigid | proportion
+    kind: str = "pose"   # pose | resolution | rigid | proportion | overlap (aligned, not the same surface)
 
 
 # ---------------------------------------------------------------- signals
@@ -182,6 +182,78 @@ def creature_proportion(*, source=(40, 24), target=(34, 22), landmarks=7, seed=5
     return p
 
 
+def creature_thicker(*, source=(40, 24), target=(52, 30), thicken=0.12, seed=15) -> Pair:
+    """Creature vs a variant in the same place with a thinner tail and a thicker
+    head (radius times ``1 - thicken`` at the tail to ``1 + thicken`` at the
+    head), other resolution and triangulation: the surfaces overlap (aligned)
+    but are not the same surface."""
+    vs, fs, _ = creature(*source, seed=0)
+    vt, ft, par = creature(*target, offset=0.3, jitter=0.5, seed=1)
+    rs, rt = vs.copy(), vt.copy()
+    g = 1.0 + thicken * (2.0 * par[:, 0] - 1.0)
+    vt = np.column_stack([vt[:, 0], vt[:, 1] * g, vt[:, 2] * g])
+    vt, ft, rt = _shuffle(vt, ft, rt, seed)
+    return Pair("creature-thicker", vs, fs, vt, ft, rs, rt, kind="overlap")
+
+
+def creature_reposed(*, source=(40, 24), target=(34, 22), angle=0.3, turn=0.4, seed=16) -> Pair:
+    """Creature vs a slightly bent (``angle`` radians over its length) and
+    twisted (``turn``) variant in the same place, other resolution and
+    triangulation: the surfaces overlap (aligned) but are not the same surface."""
+    vs, fs, _ = creature(*source, seed=0)
+    vt, ft, _ = creature(*target, offset=0.2, jitter=0.5, seed=1)
+    rs, rt = vs.copy(), vt.copy()
+    vt = bend(twist(vt, turn), angle) + np.array([1.5, 0.0, 0.0])   # bend() centres x on 0
+    vt, ft, rt = _shuffle(vt, ft, rt, seed)
+    return Pair("creature-reposed", vs, fs, vt, ft, rs, rt, kind="overlap")
+
+
+def hairpin(points: np.ndarray, pinch: float, *, tail_pinch: float | None = None, radius: float = 0.45,
+            length: float = 3.0) -> np.ndarray:
+    """Fold along x (``0 .. length``) into a hairpin in the x-y plane: a half
+    circle of ``radius`` in the middle and two straight arms, each pushed
+    toward the other by ``pinch`` over the first half of its length (a
+    smoothstep, so the centre line stays smooth) and parallel to the other
+    beyond; the tail arm (small x) by ``tail_pinch`` if given."""
+    s, yl, z = points[:, 0], points[:, 1], points[:, 2]
+    s0, s1 = length / 2 - np.pi * radius / 2, length / 2 + np.pi * radius / 2
+
+    def push(t, amount):
+        x = np.clip(t / (0.5 * s0), 0.0, 1.0)
+        return amount * x * x * (3.0 - 2.0 * x)
+
+    out = np.empty_like(points)
+    phi = np.clip((s - s0) / radius, 0.0, np.pi)
+    mid = (s >= s0) & (s <= s1)
+    cx, cy = radius * np.sin(phi), radius - radius * np.cos(phi)
+    out[mid, 0] = cx[mid] - yl[mid] * np.sin(phi[mid])
+    out[mid, 1] = cy[mid] + yl[mid] * np.cos(phi[mid])
+    tail, head = s < s0, s > s1
+    t = s0 - s[tail]
+    out[tail, 0] = -t
+    out[tail, 1] = yl[tail] + push(t, pinch if tail_pinch is None else tail_pinch)
+    t = s[head] - s1
+    out[head, 0] = -t
+    out[head, 1] = 2 * radius - yl[head] - push(t, pinch)
+    out[:, 2] = z
+    return out
+
+
+def creature_pinched(*, source=(48, 28), target=(40, 24), thin=0.6, pinch=0.16, more=0.2, seed=18) -> Pair:
+    """A thinner creature folded into a hairpin whose arms nearly touch, against
+    the same fold with one arm pressed ``more`` closer to the other, other
+    resolution and triangulation, in the same place: across the narrow gap
+    between the arms the closest point of one arm can lie on the other."""
+    vs, fs, _ = creature(*source, seed=0)
+    vt, ft, _ = creature(*target, offset=0.35, jitter=0.5, seed=1)
+    rs, rt = vs.copy(), vt.copy()
+    sq = np.array([1.0, thin, thin])
+    vs = hairpin(vs * sq, pinch)
+    vt = hairpin(vt * sq, pinch, tail_pinch=pinch + more)
+    vt, ft, rt = _shuffle(vt, ft, rt, seed)
+    return Pair("creature-pinched", vs, fs, vt, ft, rs, rt, kind="overlap")
+
+
 def creature_rigid(*, size=(30, 20)) -> Pair:
     """The same mesh under a rotation and uniform scale, shuffled: identity map expected."""
     v, f, _ = creature(*size, seed=0)
@@ -220,6 +292,23 @@ def elephant_resolution() -> Pair:
     vt, ft = _read("refined_elephant")
     vt, ft, rt = _shuffle(vt, ft, vt.copy(), 12)
     return Pair("elephant-resolution", vs, fs, vt, ft, vs.copy(), rt, kind="resolution")
+
+
+def elephant_deformed(*, amplitude=2.0) -> Pair:
+    """CGAL elephant (2.8k) against refined_elephant (44k) under a smooth
+    displacement, each coordinate by up to ``amplitude`` mean edge lengths of
+    the coarse mesh (about one wave across the model; at 2, up to 3.2 edge
+    lengths in all and edge lengths changed by -8% to +11% at the 1st and 99th
+    percentiles), in the same place: aligned, not the same surface."""
+    vs, fs = _read("elephant")
+    vt, ft = _read("refined_elephant")
+    rt = vt.copy()
+    a = amplitude * np.linalg.norm(vs[fs] - vs[np.roll(fs, 1, axis=1)], axis=2).mean()
+    x, y, z = vt.T
+    vt = vt + a * np.column_stack([np.sin(2.3 * y + 1.1 * z + 0.4), np.sin(2.9 * z - 1.7 * x + 1.3),
+                                   np.sin(2.1 * x + 2.6 * y - 0.8)])
+    vt, ft, rt = _shuffle(vt, ft, rt, 17)
+    return Pair("elephant-deformed", vs, fs, vt, ft, vs.copy(), rt, kind="overlap")
 
 
 def elephant_bent(*, landmarks=7) -> Pair:

@@ -185,15 +185,28 @@ def test_product_embedding_step_runs_by_default_and_is_no_worse_on_a_posed_pair(
     assert map1 <= 1.001 * map0
 
 
-def test_product_embedding_step_is_off_in_aligned_mode_unless_asked():
-    # aligned pairs: the true partner is the closest point, so by default the
-    # step is skipped; refine=True forces it (it must still give valid weights)
+def test_aligned_gate_keeps_closest_points_where_the_surfaces_coincide():
+    # Two meshings of one parametric surface (tests/pairs.py): the closest point
+    # is the true partner up to the chords' deviation from the surface (about
+    # h^2 / 8R for curvature radius R, common practice), so the gate must skip
+    # the check and return the closest points themselves. Measured with
+    # benchmarks/aligned_refinement.py on this pair: 99% of the closest-point
+    # distances within 0.150 mean edge lengths (threshold 0.25).
+    from engine.closest_point import SurfaceLocator
     p = pairs.creature_resolution(source=(20, 12), target=(26, 16))
     S, T = _shapes(p)
     c0 = correspond(S, T)
+    assert c0.mode == "aligned"
+    st = c0.stats["aligned_refine"]
+    assert st["ran"] is False and st["closest_distance_over_h"] < st["coincide_below"]
+    assert "coincide" in c0.reason and "closest points kept" in c0.reason
+    assert "aligned_refine" not in c0.stats["timings"] and "product_refine" not in c0.stats["timings"]
+    cp = SurfaceLocator(S.vertices, S.faces).closest(T.vertices)
+    np.testing.assert_array_equal(c0.triangle, cp.triangle)
+    np.testing.assert_array_equal(c0.barycentric, cp.barycentric)
+    # refine=True forces the check; it must still give valid weights and stay close
     c1 = correspond(S, T, refine=True)
-    assert c0.mode == c1.mode == "aligned"
-    assert "product_refine" not in c0.stats["timings"] and "product_refine" in c1.stats["timings"]
+    assert c1.stats["aligned_refine"]["ran"] is True and "aligned_refine" in c1.stats["timings"]
     assert (c1.barycentric >= -1e-12).all()
     np.testing.assert_allclose(c1.barycentric.sum(axis=1), 1.0, atol=1e-9)
     assert _map_error(p, c1).mean() < 0.01
@@ -235,3 +248,76 @@ def test_cheap_closest_points_agree_with_the_full_search():
     assert (d >= full.distance - 1e-12).all()
     assert np.mean(d <= full.distance + 1e-12) > 0.99
     assert (d - full.distance).max() < 0.05 * S.mean_edge   # measured: 99.93% exact, worst 0.004 edge
+
+
+@pytest.mark.refdata
+def test_aligned_gate_skips_on_the_remeshed_elephant():
+    # CGAL's elephant and refined_elephant: the same object remeshed (the fine one a
+    # smoothed subdivision, so it deviates most of the same-surface pairs: 99% of
+    # the closest-point distances within 0.186 mean edge lengths, measured with
+    # benchmarks/aligned_refinement.py). The default must be the closest points.
+    p = pairs.elephant_resolution()
+    S, T = _shapes(p)
+    c = correspond(S, T)
+    base = correspond(S, T, refine=False)
+    assert c.mode == "aligned" and c.stats["aligned_refine"]["ran"] is False
+    np.testing.assert_array_equal(c.triangle, base.triangle)
+    np.testing.assert_array_equal(c.barycentric, base.barycentric)
+
+
+def test_aligned_check_beats_closest_points_across_a_narrow_gap():
+    # Ground truth: the rest positions of tests/pairs.py (both meshes sampled from
+    # one parametric creature). The source hairpin's arms are at least 2.65 mean
+    # edge lengths apart; on the target one arm is pressed 2.4 edge lengths toward
+    # the other (leaving 0.4), so 95 of its 938 closest points lie on the wrong
+    # arm (more than 3 edge lengths from the truth). Measured with
+    # benchmarks/aligned_refinement.py: colour RMSE 0.1041 -> 0.0455, mask error
+    # 0.0714 -> 0.0277, map error 0.0686 -> 0.0193.
+    p = pairs.creature_pinched()
+    S, T = _shapes(p)
+    c0 = correspond(S, T, refine=False)
+    c1 = correspond(S, T)
+    assert c0.mode == c1.mode == "aligned"
+    st = c1.stats["aligned_refine"]
+    assert st["ran"] is True and st["closest_distance_over_h"] >= st["coincide_below"]
+    assert "differ" in c1.reason and st["moved"] > 0
+    assert (c1.barycentric >= -1e-12).all()
+    np.testing.assert_allclose(c1.barycentric.sum(axis=1), 1.0, atol=1e-9)
+    colour1, mask1, map1 = _errors(p, c1)
+    colour0, mask0, map0 = _errors(p, c0)
+    assert colour1 < 0.7 * colour0 and mask1 < 0.7 * mask0 and map1 < 0.5 * map0
+    # fewer wrong-arm matches (more than 3 edge lengths from the truth; measured 95 -> 53)
+    h = max(S.mean_edge, T.mean_edge) / np.sqrt(S.area)
+    assert (_map_error(p, c1) > 3 * h).sum() < 0.75 * (_map_error(p, c0) > 3 * h).sum()
+
+
+def test_aligned_check_leaves_a_smoothly_offset_surface_alone():
+    # A thicker/thinner variant moves the surface along its normal, where the
+    # closest point is already right (measured with benchmarks/aligned_refinement.py:
+    # colour RMSE 0.0058, map error 0.0025 with and without the check, nothing
+    # moved): the surfaces differ, so the check runs, but it must not make it worse.
+    p = pairs.creature_thicker()
+    S, T = _shapes(p)
+    c0 = correspond(S, T, refine=False)
+    c1 = correspond(S, T)
+    assert c1.mode == "aligned" and c1.stats["aligned_refine"]["ran"] is True
+    assert c1.stats["aligned_refine"]["moved"] <= 0.01 * T.n_vertices
+    for with_check, without in zip(_errors(p, c1), _errors(p, c0)):
+        assert with_check <= without * 1.01 + 1e-12
+
+
+def test_row_scale_weights_the_last_three_columns():
+    # _row_distances with row_scale must equal plain squared distances after
+    # scaling the last three columns of both sides by that row's factor.
+    from engine.correspondence import _row_distances
+    rng = np.random.default_rng(5)
+    Qt, Qs = rng.normal(size=(7, 6)), rng.normal(size=(20, 6))
+    cand = rng.integers(0, 20, size=(7, 4))
+    scale = rng.uniform(0.5, 3.0, size=7)
+    got = _row_distances(Qt, Qs, cand, row_scale=scale)
+    want = np.empty_like(got)
+    for i in range(7):
+        w = np.r_[np.ones(3), np.full(3, scale[i])]
+        want[i] = (((Qs[cand[i]] - Qt[i]) * w) ** 2).sum(axis=1)
+    np.testing.assert_allclose(got, want, rtol=1e-12)
+    np.testing.assert_array_equal(_row_distances(Qt, Qs, cand, row_scale=np.ones(7)), _row_distances(Qt, Qs, cand))
