@@ -673,7 +673,7 @@ def _sparse(L, m, p, Z, *, seed, tol, k_needed):
     fac = None
     for _ in range(3):
         try:
-            fac = _BlockFactor((L - sigma * sp.diags(m)).tocsr(), None, bounds, definite=False)
+            fac = _BlockFactor(_scaled(L, m, -sigma), None, bounds, definite=False)
         except _ShiftFailed as e:
             stats["interior_failed"] = str(e)
             fac = None
@@ -701,10 +701,20 @@ def _sparse(L, m, p, Z, *, seed, tol, k_needed):
             stats["interior_failed"] = str(e)
     t = time.perf_counter()
     shift = float(L.diagonal().mean() / m.sum())  # about 1/area: below lambda_1 for surfaces
-    fac = _BlockFactor((L + shift * sp.diags(m)).tocsr(), None, bounds, definite=True)
+    fac = _BlockFactor(_scaled(L, m, shift), None, bounds, definite=True)
     stats["t_factor"] = stats["t_factor"] + time.perf_counter() - t
     lam, X, stats, LX = _shift_invert(L, m, p, Z, fac, shift, None, stats, seed=seed, tol=tol, k_needed=k_needed)
     return lam, X[inv], stats, LX[inv]
+
+
+def _scaled(L, m, shift):
+    """``M^(-1/2) (L + shift M) M^(-1/2)``: its inverse is the Lanczos operator
+    ``T`` itself, so a solve needs no scaling of its right-hand sides; it is
+    congruent to ``L + shift M``, so it has the same inertia."""
+    d = 1.0 / np.sqrt(m)
+    A = L.tocoo()
+    return sp.csr_matrix((A.data * d[A.row] * d[A.col], (A.row, A.col)), shape=A.shape) + sp.diags(
+        np.full(m.shape[0], shift), format="csr")
 
 
 def _ritz_order(mu, want):
@@ -721,7 +731,7 @@ def _shift_invert(L, m, p, Z, fac, shift, below, stats, *, seed, tol, k_needed):
     the constants; Rayleigh-Ritz with ``L`` itself (Saad, Numerical Methods
     for Large Eigenvalue Problems, 2011, ch. 4 and 6; Stewart 2001 and Wu and
     Simon 2000 for the Krylov-Schur thick restart). ``fac`` factors
-    ``L + shift M``; ``below`` (None for a shift below ``lambda_1``) is the
+    ``M^(-1/2) (L + shift M) M^(-1/2)`` (:func:`_scaled`); ``below`` (None for a shift below ``lambda_1``) is the
     number of non-zero eigenvalues below ``-shift`` that the result must hold.
 
     The basis ``Q`` lives in one preallocated buffer. After every block the
@@ -740,7 +750,7 @@ def _shift_invert(L, m, p, Z, fac, shift, below, stats, *, seed, tol, k_needed):
     stats["factor_stored"] = fac.stored
 
     def op(V):  # T V in the scaled variable, deflated against the constants
-        W = fac.solve(V * r[:, None]) * r[:, None]
+        W = fac.solve(V)
         return W - Zt @ (Zt.T @ W)
 
     nfree = n - ncomp
@@ -800,7 +810,7 @@ def _shift_invert(L, m, p, Z, fac, shift, below, stats, *, seed, tol, k_needed):
                 # The estimate lives in the mass-scaled variable; check the
                 # residual the caller sees on the purified Ritz vectors and
                 # tighten the estimate's target if it was optimistic.
-                X = _purified(Q, Y, mu, F, lo, want)
+                X = _purified(Q, Y, mu, F, lo, need)
                 X /= r[:, None]
                 LX = L @ X
                 rt = _residuals(LX, m, np.maximum(th, 1e-300), X)
@@ -844,7 +854,7 @@ def _shift_invert(L, m, p, Z, fac, shift, below, stats, *, seed, tol, k_needed):
         m0 += w
     t1 = time.perf_counter()
     if X is None:  # stopped without the final check (stall, basis exhausted)
-        X = _purified(Q, Y, mu, F, lo, want)
+        X = _purified(Q, Y, mu, F, lo, need)
         X /= r[:, None]
         LX = L @ X
     del Qb, Q, F, Tp
@@ -865,6 +875,11 @@ def _shift_invert(L, m, p, Z, fac, shift, below, stats, *, seed, tol, k_needed):
                   "checks": int(checks), "block": b, "basis_max": int(mmax), "shift": shift,
                   "worst_residual_estimate": worst, "retries": int(retries), "t_solve": t_solve, "t_orth": t_orth,
                   "t_rayleigh_ritz": t_rr})
+    # The pairs beyond the needed ones (kept only for the cluster check at the
+    # cut) are reported by their Ritz values, without vectors: purifying and
+    # Rayleigh-Ritz on them cost 0.2 s of 7 at 100k vertices, 120 pairs.
+    extra = np.sort(1.0 / mu[need:want] - shift)
+    th2 = np.concatenate([th2, np.maximum(extra, th2[-1])])
     if below is not None and int((th2 < -shift).sum()) != below:
         raise _ShiftFailed(f"{int((th2 < -shift).sum())} eigenvalues found below the shift, "
                            f"the inertia says {below}")
