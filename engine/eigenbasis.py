@@ -628,13 +628,21 @@ def _orthonormal(W, drop=1e-10):
 
 def _purified(Q, Y, mu, F, lo, want):
     """Ritz vectors purified by one more application of T:
-    ``T x = mu x + F y_last`` (scaled variable)."""
-    X = Q @ Y[:, :want]
+    ``T x = mu x + F y_last`` (scaled variable), column-major."""
+    X = _tall(Q, Y[:, :want])
     X *= mu[None, :want]
     Yl = Y[lo:, :want]
-    for i in range(0, X.shape[0], 8192):  # no (n, want) temporary
-        X[i:i + 8192] += F[i:i + 8192] @ Yl
+    for j in range(0, X.shape[1], 32):  # no (n, want) temporary
+        X[:, j:j + 32] += _tall(F, Yl[:, j:j + 32])
     return X
+
+
+def _tall(A, B):
+    """``A @ B`` for tall ``A`` (n rows) and small ``B``, column-major: written
+    as ``(B^T A^T)^T`` OpenBLAS runs it about 1.5-1.9x faster than ``A @ B``
+    at n = 100k (100k x 350 by 350 x 100: 203 against 311 ms; 100k x 120 by
+    120 x 120: 83 against 142 ms, one thread)."""
+    return (B.T @ A.T).T
 
 
 def _sparse(L, m, p, Z, *, seed, tol, k_needed):
@@ -784,7 +792,7 @@ def _shift_invert(L, m, p, Z, fac, shift, below, stats, *, seed, tol, k_needed):
         Q = Qb[:, :m0]
         C = Q.T @ Tp  # first Gram-Schmidt pass; also the new columns of H
         F = Tp
-        F -= Q @ C  # (I - Q Q^T) T Q_last: the Krylov-Schur remainder
+        F -= _tall(Q, C)  # (I - Q Q^T) T Q_last: the Krylov-Schur remainder
         H[:m0, lo:m0] = C
         H[lo:m0, :m0] = C.T
         t_orth += time.perf_counter() - t1
@@ -868,8 +876,8 @@ def _shift_invert(L, m, p, Z, fac, shift, below, stats, *, seed, tol, k_needed):
     G = X.T @ (m[:, None] * X)
     Hf = X.T @ LX
     th2, Yf = la.eigh((Hf + Hf.T) * 0.5, (G + G.T) * 0.5)
-    X = X @ Yf
-    LX = LX @ Yf
+    X = _tall(X, Yf)
+    LX = _tall(LX, Yf)
     t_rr += time.perf_counter() - t1
     stats.update({"converged": bool(converged), "solves": int(solves), "cycles": int(cycles),
                   "checks": int(checks), "block": b, "basis_max": int(mmax), "shift": shift,
