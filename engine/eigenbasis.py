@@ -620,10 +620,10 @@ def _orthonormal(W, drop=1e-10):
     G = W.T @ W
     w, U = np.linalg.eigh((G + G.T) * 0.5)
     keep = w > drop * max(w.max(), 1e-300)
-    W = W @ (U[:, keep] / np.sqrt(w[keep]))
+    W = _tall(W, U[:, keep] / np.sqrt(w[keep]))
     G = W.T @ W
     C = np.linalg.cholesky((G + G.T) * 0.5)  # G = C C^T, C lower
-    return W @ np.linalg.inv(C).T  # W C^-T; near-orthonormal W: C near I
+    return _tall(W, np.linalg.inv(C).T)  # W C^-T; near-orthonormal W: C near I
 
 
 def _purified(Q, Y, mu, F, lo, want):
@@ -757,9 +757,12 @@ def _shift_invert(L, m, p, Z, fac, shift, below, stats, *, seed, tol, k_needed):
     stats["factor_nnz"] = fac.nnz
     stats["factor_stored"] = fac.stored
 
+    ZtT = np.ascontiguousarray(Zt.T)
+
     def op(V):  # T V in the scaled variable, deflated against the constants
         W = fac.solve(V)
-        return W - Zt @ (Zt.T @ W)
+        W -= _tall(Zt, ZtT @ W)
+        return W
 
     nfree = n - ncomp
     b = int(min(max(_BLOCK_MIN, np.ceil(_BLOCK_SQRT * np.sqrt(p))), _BLOCK_MAX, nfree))
