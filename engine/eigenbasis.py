@@ -704,7 +704,7 @@ def _sparse(L, m, p, Z, *, seed, tol, k_needed):
         try:
             lam, X, stats, LX = _shift_invert(L, m, p, Z, fac, -sigma, below, stats, seed=seed, tol=tol,
                                               k_needed=k_needed)
-            return lam, X[inv], stats, LX[inv]
+            return lam, _unpermute(X, inv), stats, _unpermute(LX, inv)
         except _ShiftFailed as e:
             stats["interior_failed"] = str(e)
     t = time.perf_counter()
@@ -712,7 +712,13 @@ def _sparse(L, m, p, Z, *, seed, tol, k_needed):
     fac = _BlockFactor(_scaled(L, m, shift), None, bounds, definite=True)
     stats["t_factor"] = stats["t_factor"] + time.perf_counter() - t
     lam, X, stats, LX = _shift_invert(L, m, p, Z, fac, shift, None, stats, seed=seed, tol=tol, k_needed=k_needed)
-    return lam, X[inv], stats, LX[inv]
+    return lam, _unpermute(X, inv), stats, _unpermute(LX, inv)
+
+
+def _unpermute(X, inv):
+    """Rows of X back in the original order, C-contiguous (np.take: 33-56 ms
+    at 100k x 121 against 95-122 ms for X[inv])."""
+    return np.take(X, inv, axis=0)
 
 
 def _scaled(L, m, shift):
