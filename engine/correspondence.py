@@ -124,6 +124,7 @@ from scipy.spatial import cKDTree
 
 from .products import product_exponents, raw_products
 from .closest_point import SurfaceLocator, _incident_triangles, closest_points_on_triangles
+from .detail import _vertex_normals
 from .functional_map import fmap_from_descriptors, nearest_rows, orientation_operator, zoomout
 from .shape import Shape
 
@@ -1001,16 +1002,6 @@ def _barycentric_matrix(faces, tri, bary, n):
     import scipy.sparse as sp
     n_q = len(tri)
     return sp.csr_matrix((bary.ravel(), (np.repeat(np.arange(n_q), 3), faces[tri].ravel())), shape=(n_q, n))
-
-
-def _vertex_normals(vertices, faces):
-    """Unit area-weighted vertex normals."""
-    fn = np.cross(vertices[faces[:, 1]] - vertices[faces[:, 0]], vertices[faces[:, 2]] - vertices[faces[:, 0]])
-    out = np.zeros_like(vertices)
-    for c in range(3):
-        for d in range(3):
-            out[:, d] += np.bincount(faces[:, c], weights=fn[:, d], minlength=len(vertices))
-    return out / np.maximum(np.linalg.norm(out, axis=1, keepdims=True), 1e-300)
 
 
 class _SimilarityFit:

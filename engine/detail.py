@@ -53,10 +53,17 @@ class DetailLayer:
 def vertex_normals(vertices, faces) -> np.ndarray:
     """Area-weighted unit vertex normals, (n, 3). Isolated vertices get +z."""
     v, f = validate_mesh(vertices, faces)
+    return _vertex_normals(v, f)
+
+
+def _vertex_normals(v: np.ndarray, f: np.ndarray) -> np.ndarray:
+    """:func:`vertex_normals` of an already validated mesh (the alignment
+    loop of engine.correspondence calls it on every step)."""
     fn = np.cross(v[f[:, 1]] - v[f[:, 0]], v[f[:, 2]] - v[f[:, 0]])  # length = 2 * area
     n = np.zeros_like(v)
     for c in range(3):
-        np.add.at(n, f[:, c], fn)
+        for d in range(3):
+            n[:, d] += np.bincount(f[:, c], weights=fn[:, d], minlength=len(v))
     return _unit(n, fallback=np.array([0.0, 0.0, 1.0]))
 
 
