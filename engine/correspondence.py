@@ -169,11 +169,7 @@ class Correspondence:
 
     def matrix(self):
         """The pull-back as a sparse ``(n_t_clean, n_s_clean)`` matrix of barycentric weights."""
-        import scipy.sparse as sp
-        n_t = len(self.triangle)
-        cols = self.source.faces[self.triangle]
-        return sp.csr_matrix((self.barycentric.ravel(), (np.repeat(np.arange(n_t), 3), cols.ravel())),
-                             shape=(n_t, self.source.n_vertices))
+        return _barycentric_matrix(self.source.faces, self.triangle, self.barycentric, self.source.n_vertices)
 
     def points(self) -> np.ndarray:
         """(n_t, 3) mapped points on the source surface (source coordinates)."""
@@ -642,7 +638,6 @@ def _product_embedding(source, target, tri, bary, K, order, *, h, frame=None, to
     here : (n_t, 3) the current points in that frame
     info : dict of sizes
     """
-    import scipy.sparse as sp
     K = int(min(K, source.n_vertices - 2, target.n_vertices - 2))
     pb = target.products(K, order, tol=tol)
     a_t = target.area
@@ -655,9 +650,7 @@ def _product_embedding(source, target, tri, bary, K, order, *, h, frame=None, to
     pt = target.eigenbasis(K).eigenvectors[:, :K]
     sw = np.sqrt(target.mass)[:, None]
     F = source.vertices if frame is None else np.asarray(frame, dtype=np.float64)
-    n_t = len(tri)
-    Pi = sp.csr_matrix((bary.ravel(), (np.repeat(np.arange(n_t), 3), source.faces[tri].ravel())),
-                       shape=(n_t, source.n_vertices))
+    Pi = _barycentric_matrix(source.faces, tri, bary, source.n_vertices)
     A = np.linalg.lstsq(sw * (Pi @ ps), sw * pt, rcond=None)[0]           # (kk, K)
     G = ps @ A                                                              # target eigenfunctions on the source
     Qs = raw_products(G, ex) @ Rinv * np.sqrt(a_t)
@@ -999,6 +992,8 @@ def _spd_factor(H):
 
 
 def _barycentric_matrix(faces, tri, bary, n):
+    """Sparse ``(len(tri), n)`` matrix taking vertex values to the points
+    ``bary`` on triangles ``tri``."""
     import scipy.sparse as sp
     n_q = len(tri)
     return sp.csr_matrix((bary.ravel(), (np.repeat(np.arange(n_q), 3), faces[tri].ravel())), shape=(n_q, n))
