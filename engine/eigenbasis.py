@@ -67,6 +67,11 @@ __all__ = ["Eigenbasis", "eigenbasis"]
 # and immune to cluster trouble, but its O(n^3) cost overtakes the sparse
 # solver's set-up well below 2,000 vertices, so the cut is at 1,000.
 _DENSE_MAX = 1000
+# Row chunk of the in-place updates of (n, k) arrays. Fresh memory is costly
+# on the virtual machines this was measured on: the first touch of a new
+# 80 MB array took 120-210 ms, against 16 ms for memory the process had
+# freed just before, so the final stage updates its arrays in place.
+_ROWS = 8192
 # Nested-dissection leaf size (vertices). 128 against 64 at 100k vertices:
 # factor 2.7 s against 3.0 s, a solve of 24 right-hand sides 263 ms against
 # 284 ms (fewer blocks, less Python per block; 192 was slower again).
@@ -364,7 +369,7 @@ def _signs(X: np.ndarray) -> np.ndarray:
     return s
 
 
-def _residuals(LX, m, lam, X, rows: int = 8192) -> np.ndarray:
+def _residuals(LX, m, lam, X, rows: int = _ROWS) -> np.ndarray:
     """Relative residuals from ``X`` and ``L X`` (the first ``lam.size``
     columns), summed over row chunks so that no temporary of the size of
     ``X`` is made (at 100k vertices and 120 pairs each one is 96 MB)."""
@@ -528,6 +533,23 @@ class _BlockFactor:
         ip, ix, dt = Ap.indptr, Ap.indices, Ap.data
         nb = len(bounds) - 1
         owner = np.repeat(np.arange(nb), np.diff(bounds))  # block of each (permuted) row
+        # Symbolic pass: the rows R below each block, so that the whole factor
+        # goes into one buffer (one allocation, returned to the system when the
+        # factor is dropped; thousands of small arrays would stay in the heap).
+        below_rows: list = [[] for _ in range(nb)]
+        structure = []
+        for j in range(nb):
+            a, b = int(bounds[j]), int(bounds[j + 1])
+            rows = ix[ip[a]:ip[b]]
+            R = np.unique(np.concatenate([rows[rows >= b]] + [Rc[Rc >= b] for Rc in below_rows[j]]))
+            below_rows[j] = None
+            if R.size:
+                below_rows[owner[R[0]]].append(R)
+            structure.append(R)
+        sizes = np.diff(bounds)
+        counts = np.array([R.size for R in structure])
+        ends = np.cumsum(sizes * sizes + counts * sizes)
+        self.buffer = np.empty(int(ends[-1]) if nb else 0)
         pending: list = [[] for _ in range(nb)]  # update matrices waiting for their block
         potrf, potri = la.get_lapack_funcs(("potrf", "potri"), (np.zeros(1),))
         gemm = la.get_blas_funcs("gemm", (np.zeros(1),))
@@ -544,7 +566,7 @@ class _BlockFactor:
             inside = (rows >= a) & ~below
             kids = pending[j]
             pending[j] = None
-            R = np.unique(np.concatenate([rows[below]] + [Rc[Rc >= b] for Rc, _ in kids]))
+            R = structure[j]
             r = R.size
             F = np.zeros((s + r, s + r))
             F[rows[inside] - a, cols[inside]] = vals[inside]
@@ -582,7 +604,12 @@ class _BlockFactor:
                 L21 = np.zeros((0, s))
             nnz += s * (s + 1) // 2 + s * r
             stored += s * s + r * s
-            self.blocks.append((a, b, R, np.ascontiguousarray(Finv), np.ascontiguousarray(L21)))
+            start = int(ends[j]) - s * s - r * s
+            Fv = self.buffer[start:start + s * s].reshape(s, s)
+            Fv[...] = Finv
+            Lv = self.buffer[start + s * s:start + s * s + r * s].reshape(r, s)
+            Lv[...] = L21
+            self.blocks.append((a, b, R, Fv, Lv))
         self.nnz = int(nnz)
         self.stored = int(stored)
         self.negative = int(negative)
@@ -668,12 +695,13 @@ def _orthonormal(W, drop=1e-10):
 
 def _purified(Q, Y, mu, F, lo, want):
     """Ritz vectors purified by one more application of T:
-    ``T x = mu x + F y_last`` (scaled variable), column-major."""
-    X = _tall(Q, Y[:, :want])
-    X *= mu[None, :want]
+    ``T x = mu x + F y_last`` (scaled variable), C-ordered (what ``L @ X``
+    and the row gathers after it read), with no other ``(n, want)`` array."""
+    X = np.empty((Q.shape[0], want))
+    np.matmul(Q, Y[:, :want] * mu[None, :want], out=X)
     Yl = Y[lo:, :want]
-    for j in range(0, X.shape[1], 32):  # no (n, want) temporary
-        X[:, j:j + 32] += _tall(F, Yl[:, j:j + 32])
+    for i in range(0, X.shape[0], _ROWS):
+        X[i:i + _ROWS] += F[i:i + _ROWS] @ Yl
     return X
 
 
@@ -741,17 +769,21 @@ def _sparse(L, m, p, Z, *, seed, tol, k_needed):
     stats["t_factor"] = time.perf_counter() - t
     if fac is not None:
         stats.update({"interior_shift": float(sigma), "below_shift": int(below)})
+        held, fac = [fac], None  # _shift_invert holds the only reference (see there)
         try:
-            lam, X, stats, res = _shift_invert(L, m, p, Z, fac, -sigma, below, stats, seed=seed, tol=tol,
-                                               k_needed=k_needed)
+            lam, X, stats, res = _shift_invert(
+                L, m, p, Z, held, -sigma, below, stats, seed=seed, tol=tol, k_needed=k_needed,
+                remake=lambda: _BlockFactor(_scaled(L, m, -sigma), None, bounds, definite=False))
             return lam, _assemble(Z, X, inv, k_needed), stats, res
         except _ShiftFailed as e:
             stats["interior_failed"] = str(e)
     t = time.perf_counter()
     shift = float(L.diagonal().mean() / m.sum())  # about 1/area: below lambda_1 for surfaces
-    fac = _BlockFactor(_scaled(L, m, shift), None, bounds, definite=True)
+    held = [_BlockFactor(_scaled(L, m, shift), None, bounds, definite=True)]
     stats["t_factor"] = stats["t_factor"] + time.perf_counter() - t
-    lam, X, stats, res = _shift_invert(L, m, p, Z, fac, shift, None, stats, seed=seed, tol=tol, k_needed=k_needed)
+    lam, X, stats, res = _shift_invert(
+        L, m, p, Z, held, shift, None, stats, seed=seed, tol=tol, k_needed=k_needed,
+        remake=lambda: _BlockFactor(_scaled(L, m, shift), None, bounds, definite=True))
     return lam, _assemble(Z, X, inv, k_needed), stats, res
 
 
@@ -763,8 +795,9 @@ def _assemble(Z, X, inv, k):
     ncomp = Z.shape[1]
     out = np.empty((X.shape[0], k))
     out[:, :ncomp] = np.take(Z, inv, axis=0)[:, :k]
-    if k > ncomp:
-        out[:, ncomp:] = np.take(X[:, :k - ncomp], inv, axis=0)
+    for i in range(0, X.shape[0], _ROWS):  # no second (n, k) array
+        if k > ncomp:
+            out[i:i + _ROWS, ncomp:] = np.take(X, inv[i:i + _ROWS], axis=0)[:, :k - ncomp]
     return out
 
 
@@ -786,14 +819,16 @@ def _ritz_order(mu, want):
     return np.concatenate([sel[np.argsort(1.0 / mu[sel], kind="stable")], o[want:]])
 
 
-def _shift_invert(L, m, p, Z, fac, shift, below, stats, *, seed, tol, k_needed):
+def _shift_invert(L, m, p, Z, held, shift, below, stats, *, seed, tol, k_needed, remake):
     """Thick-restarted block Lanczos for the eigenvalues of largest magnitude
     of ``T = M^(1/2) (L + shift M)^(-1) M^(1/2)`` (symmetric), deflated against
     the constants; Rayleigh-Ritz with ``L`` itself (Saad, Numerical Methods
     for Large Eigenvalue Problems, 2011, ch. 4 and 6; Stewart 2001 and Wu and
-    Simon 2000 for the Krylov-Schur thick restart). ``fac`` factors
-    ``M^(-1/2) (L + shift M) M^(-1/2)`` (:func:`_scaled`); ``below`` (None for a shift below ``lambda_1``) is the
-    number of non-zero eigenvalues below ``-shift`` that the result must hold.
+    Simon 2000 for the Krylov-Schur thick restart). ``held`` is a list
+    holding the only reference to the factor of ``M^(-1/2) (L + shift M)
+    M^(-1/2)`` (:func:`_scaled`), which ``remake()`` computes again; ``below``
+    (None for a shift below ``lambda_1``) is the number of non-zero
+    eigenvalues below ``-shift`` that the result must hold.
 
     The basis ``Q`` lives in one preallocated buffer. After every block the
     Ritz values of ``H = Q^T T Q`` and the norms of their residuals
@@ -807,6 +842,10 @@ def _shift_invert(L, m, p, Z, fac, shift, below, stats, *, seed, tol, k_needed):
     want = p - ncomp
     r = np.sqrt(m)
     Zt = Z * r[:, None]  # orthonormal in the scaled variable
+    # The factor is dropped before the final Rayleigh-Ritz, whose arrays then
+    # take its memory (125 MB at 100k vertices) instead of fresh memory; a
+    # check that fails and needs more solves has ``remake()`` factor again.
+    fac = held.pop()
     stats["factor_nnz"] = fac.nnz
     stats["factor_stored"] = fac.stored
 
@@ -875,6 +914,7 @@ def _shift_invert(L, m, p, Z, fac, shift, below, stats, *, seed, tol, k_needed):
                 # The estimate lives in the mass-scaled variable; check the
                 # residual the caller sees on the purified Ritz vectors and
                 # tighten the estimate's target if it was optimistic.
+                fac = None
                 th2, X, rt = _final_ritz(L, m, Zt, _purified(Q, Y, mu, F, lo, need))
                 true_worst = float(rt.max())
                 t_rr += time.perf_counter() - t1
@@ -886,6 +926,7 @@ def _shift_invert(L, m, p, Z, fac, shift, below, stats, *, seed, tol, k_needed):
                 cgs2 = True  # an optimistic estimate may be lost orthogonality
                 inner = min(inner, worst) * min(0.5, 0.8 * tol / true_worst)
                 X = None
+                fac = remake()
             else:
                 t_rr += time.perf_counter() - t1
             if full:
@@ -951,13 +992,16 @@ def _final_ritz(L, m, Zt, Xs):
     saves one tall product but, inside eigenvalue clusters, left eigenvalue
     errors of 3e-10 relative at tol 1e-9, first order in the vectors'
     non-orthogonality.)"""
-    Xs -= _tall(Zt, Zt.T @ Xs)
+    c = Zt.T @ Xs
+    for i in range(0, Xs.shape[0], _ROWS):  # in place, in row chunks: no (n, k) temporaries
+        Xs[i:i + _ROWS] -= Zt[i:i + _ROWS] @ c
     G = Xs.T @ Xs
     X = Xs
     X /= np.sqrt(m)[:, None]
     LX = L @ X
     Hf = X.T @ LX
     th, Yf = la.eigh((Hf + Hf.T) * 0.5, (G + G.T) * 0.5)
-    X = X @ Yf  # C-ordered for the row gathers that follow
-    LX = LX @ Yf
+    for i in range(0, X.shape[0], _ROWS):
+        X[i:i + _ROWS] = X[i:i + _ROWS] @ Yf
+        LX[i:i + _ROWS] = LX[i:i + _ROWS] @ Yf
     return th, X, _residuals(LX, m, np.maximum(th, 1e-300), X)
