@@ -35,8 +35,9 @@ from .transfer import BASES, Transfer, TransferResult
 __all__ = ["Settings", "Pair", "weighted_centre_vertex", "load_landmarks", "run_transfer_job",
            "run_detail_job"]
 
-CORRESPONDENCE_VERSION = 4   # 2: product-embedding step in the intrinsic map; 3: non-rigid ICP
-                             # alignment; 4: spectral check in aligned mode where the surfaces differ
+CORRESPONDENCE_VERSION = 5   # 2: product-embedding step in the intrinsic map; 3: non-rigid ICP
+                             # alignment; 4: spectral check in aligned mode where the surfaces differ;
+                             # 5: nearest embedding rows from one fused product (near-ties may differ)
 
 
 @dataclass(frozen=True)
