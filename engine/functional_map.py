@@ -91,17 +91,15 @@ def orientation_operator(vertices, faces, phi, mass, f):
     e = [v2 - v1, v0 - v2, v1 - v0]
     gh = [np.cross(n, ei) / dbl[:, None] for ei in e]
 
-    def grad(x):  # x: (n,) or (n, k) -> (m, 3) or (m, 3, k)
-        xs = [x[faces[:, i]] for i in range(3)]
-        if x.ndim == 1:
-            return sum(g * s[:, None] for g, s in zip(gh, xs))
-        return sum(g[:, :, None] * s[:, None, :] for g, s in zip(gh, xs))
-
-    gf = grad(np.asarray(f, float))
-    gphi = grad(phi)
+    f = np.asarray(f, float)
+    gf = sum(g * f[faces[:, i], None] for i, g in enumerate(gh))  # (m, 3)
     nf = np.cross(n, gf)  # n . (gf x gg) = (n x gf) . gg
-    h = np.einsum("mc,mck->mk", nf, gphi)          # per face, per basis function
-    phi_face = phi[faces].mean(axis=1)             # (m, k)
+    # n . (gf x grad phi_k) = sum_i (nf . gh_i) phi_k(corner i): per face and
+    # corner a scalar, so no (m, 3, k) gradient array of the basis is formed
+    # (a third of the descriptor stage's time on a 30k-vertex pair)
+    corners = [phi[faces[:, i]] for i in range(3)]           # (m, k) each
+    h = sum(np.einsum("mc,mc->m", nf, g)[:, None] * c for g, c in zip(gh, corners))
+    phi_face = (corners[0] + corners[1] + corners[2]) / 3.0  # (m, k)
     return phi_face.T @ (area[:, None] * h)
 
 
