@@ -67,30 +67,26 @@ def closest_points_on_triangles(query, a, b, c):
     va = d3 * d6 - d5 * d4
     vb = d5 * d2 - d1 * d6
     vc = d1 * d4 - d3 * d2
-    q = len(p)
-    w = np.zeros((q, 3))
-    done = np.zeros(q, bool)
-
-    def put(mask, u, v, t):
-        m = mask & ~done
-        w[m, 0], w[m, 1], w[m, 2] = u[m] if np.ndim(u) else u, v[m] if np.ndim(v) else v, t[m] if np.ndim(t) else t
-        done[m] = True
-
-    one, zero = np.ones(q), np.zeros(q)
+    # The Voronoi regions of the triangle in Ericson's order (Real-Time
+    # Collision Detection, 5.1.5): the first region that holds the query wins,
+    # which is what np.select does.
     with np.errstate(divide="ignore", invalid="ignore"):
-        put((d1 <= 0) & (d2 <= 0), one, zero, zero)                      # vertex a
-        put((d3 >= 0) & (d4 <= d3), zero, one, zero)                     # vertex b
-        t = d1 / (d1 - d3)
-        put((vc <= 0) & (d1 >= 0) & (d3 <= 0), 1 - t, t, zero)           # edge ab
-        put((d6 >= 0) & (d5 <= d6), zero, zero, one)                     # vertex c
-        t = d2 / (d2 - d6)
-        put((vb <= 0) & (d2 >= 0) & (d6 <= 0), 1 - t, zero, t)           # edge ac
-        t = (d4 - d3) / ((d4 - d3) + (d5 - d6))
-        put((va <= 0) & ((d4 - d3) >= 0) & ((d5 - d6) >= 0), zero, 1 - t, t)  # edge bc
+        t_ab = d1 / (d1 - d3)
+        t_ac = d2 / (d2 - d6)
+        t_bc = (d4 - d3) / ((d4 - d3) + (d5 - d6))
         den = va + vb + vc
         v_ = vb / den
         w_ = vc / den
-        put(np.ones(q, bool), 1 - v_ - w_, v_, w_)                      # interior
+    regions = [(d1 <= 0) & (d2 <= 0),                                   # vertex a
+               (d3 >= 0) & (d4 <= d3),                                  # vertex b
+               (vc <= 0) & (d1 >= 0) & (d3 <= 0),                       # edge ab
+               (d6 >= 0) & (d5 <= d6),                                  # vertex c
+               (vb <= 0) & (d2 >= 0) & (d6 <= 0),                       # edge ac
+               (va <= 0) & ((d4 - d3) >= 0) & ((d5 - d6) >= 0)]         # edge bc
+    w = np.empty((len(p), 3))                                           # else: interior
+    w[:, 0] = np.select(regions, [1.0, 0.0, 1 - t_ab, 0.0, 1 - t_ac, 0.0], 1 - v_ - w_)
+    w[:, 1] = np.select(regions, [0.0, 1.0, t_ab, 0.0, 0.0, 1 - t_bc], v_)
+    w[:, 2] = np.select(regions, [0.0, 0.0, 0.0, 1.0, t_ac, t_bc], w_)
     # degenerate triangles can leave NaN: fall back to the nearest corner
     bad = ~np.isfinite(w).all(axis=1)
     if bad.any():
