@@ -132,9 +132,9 @@ def cmd_test(extra: list[str]) -> int:
         for key, value in counts.items():
             totals[key] = totals.get(key, 0) + value
     if any((ROOT / "addon").glob("*.py")):
-        print("\n=== mypy over addon/ against the Blender stubs ===", flush=True)
+        print("\n=== mypy over engine/ and addon/ (addon against the Blender stubs) ===", flush=True)
         mypy = subprocess.run([str(typing_py), "-m", "mypy", "--config-file", "pyproject.toml",
-                               "addon"], cwd=ROOT)
+                               "engine", "addon"], cwd=ROOT)
         if mypy.returncode != 0:
             failures += 1
             totals["failed"] = totals.get("failed", 0) + 1

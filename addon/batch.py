@@ -37,7 +37,7 @@ import bpy
 
 from . import bridge
 from .properties import BASES, MATCH_MODES
-from .transfer import PairRequest, check_pair, transfer_pair
+from .runs import PairRequest, check_pair, transfer_pair
 
 __all__ = ["COMMAND", "JobError", "Job", "PairJob", "load_job", "main", "register", "unregister"]
 

@@ -35,13 +35,13 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from .engine import pipeline
-from .engine.cache import Cache as DiskCache
-from .engine.corners import vertex_average
-from .engine.preview import approximate_signals
-from .engine.shape import Shape
-from .engine.signals import Signal as EngineSignal
-from .engine.signals import check_signal
+from .engine.jobs.pair import Pair, Settings, weighted_centre_vertex
+from .engine.common.cache import Cache as DiskCache
+from .engine.carrying.corners import vertex_average
+from .engine.carrying.preview import approximate_signals
+from .engine.spectra.shape import Shape
+from .engine.carrying.signals import Signal as EngineSignal
+from .engine.carrying.signals import check_signal
 
 if TYPE_CHECKING:
     from numpy.typing import NDArray
@@ -98,7 +98,7 @@ class JobInput:
     signals : tuple of SignalInput
     landmark_groups : dict name -> (source weights (n_s,), target weights (n_t,))
     settings : dict
-        Keyword arguments of ``engine.pipeline.Settings`` (without landmarks).
+        Keyword arguments of ``engine.jobs.pair.Settings`` (without landmarks).
     cache_folder : str or None
     cache_limit_bytes : int
     """
@@ -152,7 +152,7 @@ def _pair(inp: JobInput, settings: Any, progress: Progress) -> tuple[Any, str]:
     source = _shape(inp.source, inp.cache_folder)
     target = _shape(inp.target, inp.cache_folder)
     progress(0.2, "matching the surfaces")
-    pair = pipeline.Pair(source, target, settings)
+    pair = Pair(source, target, settings)
     _pairs[key] = pair
     while len(_pairs) > _PAIRS_KEPT:
         _pairs.popitem(last=False)
@@ -166,15 +166,15 @@ def _landmarks(inp: JobInput) -> tuple[tuple[tuple[int, int], ...], list[str], l
         if not (np.asarray(ws).sum() > 0 and np.asarray(wt).sum() > 0):
             skipped.append(name)
             continue
-        pairs.append((pipeline.weighted_centre_vertex(inp.source.positions, ws),
-                      pipeline.weighted_centre_vertex(inp.target.positions, wt)))
+        pairs.append((weighted_centre_vertex(inp.source.positions, ws),
+                      weighted_centre_vertex(inp.target.positions, wt)))
         used.append(name)
     return tuple(pairs), used, skipped
 
 
 def _engine_settings(inp: JobInput, landmarks: tuple[tuple[int, int], ...]) -> Any:
     try:
-        return pipeline.Settings(landmarks=landmarks, **inp.settings)
+        return Settings(landmarks=landmarks, **inp.settings)
     except (TypeError, ValueError) as error:
         raise ValueError(f"bad settings: {error}") from None
 

@@ -3,7 +3,7 @@
 The three job operators (carry signals, carry detail, preview) share one shape:
 
 - ``execute`` (background mode, scripts, batch, redo) makes the plan and runs
-  it in this process (:func:`.transfer.run_plan`);
+  it in this process (:func:`.runs.run_plan`);
 - ``invoke`` (a click in the UI) makes the plan, hands it to the worker
   process and returns ``RUNNING_MODAL``; a timer calls :func:`step_run`, which
   shows progress and writes the results once the worker is done; Esc calls
@@ -24,8 +24,8 @@ import bpy
 
 from . import bridge, preferences, properties
 from .job import forget_pairs
-from .engine.cache import Cache
-from .transfer import BackgroundRun, PairRequest, Plan, make_plan, pick_pair, run_plan, selected_pair
+from .engine.common.cache import Cache
+from .runs import BackgroundRun, PairRequest, Plan, make_plan, pick_pair, run_plan, selected_pair
 from .worker import stop_shared_worker
 
 if TYPE_CHECKING:

@@ -7,7 +7,7 @@ from typing import TYPE_CHECKING
 import bpy
 
 from . import properties
-from .transfer import selected_pair
+from .runs import selected_pair
 
 __all__ = ["OVERTONE_UL_signals", "OVERTONE_PT_main", "OVERTONE_PT_matching",
            "OVERTONE_PT_detail", "OVERTONE_PT_report", "register", "unregister"]

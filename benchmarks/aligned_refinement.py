@@ -11,7 +11,7 @@ of the two the gate picks. Prints the gate statistic (the 99th percentile of
 the closest-point distances both ways, in mean edge lengths), pointwise colour
 RMSE, mask error and map error (over sqrt(source area)) both ways, how many
 target vertices the check moved, and the mean relative change of the default
-over the pairs that differ. The figures of ``engine.correspondence`` come
+over the pairs that differ. The figures of ``engine.matching.correspondence`` come
 from this script.
 
 Arguments: pair names to run (substrings; all by default).
@@ -24,8 +24,8 @@ from pathlib import Path
 import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
-from engine.correspondence import correspond  # noqa: E402
-from engine.shape import Shape  # noqa: E402
+from engine.matching.correspondence import correspond  # noqa: E402
+from engine.spectra.shape import Shape  # noqa: E402
 from tests import pairs  # noqa: E402
 from benchmarks.product_refinement import measure, named  # noqa: E402
 

@@ -21,7 +21,7 @@ skips it).
 
 ``--tol`` is passed to the engine (its default when omitted); the baseline
 keeps ``tol=0`` (ARPACK with a looser tol returned wrong eigenvalues on a
-sphere, PLATFORM.md).
+sphere, docs/platform.md).
 
 Each side runs ``--repeat`` times (default 2), alternating, and the fastest
 run of each is compared: on a shared machine the fastest run is the one least
@@ -83,8 +83,8 @@ def child(side: str, n: int, k: int, threads: int, tol, out: str, functions: str
     import scipy.sparse as sp
     import scipy.sparse.linalg as sla
 
-    from engine.eigenbasis import eigenbasis
-    from engine.laplacian import cotangent_laplacian, mass_matrix
+    from engine.spectra.eigensolver import eigenbasis
+    from engine.spectra.laplacian import cotangent_laplacian, mass_matrix
 
     with threadpool_limits(limits=threads):
         v, f = bumpy_mesh(n)

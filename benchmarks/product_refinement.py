@@ -5,7 +5,7 @@ The intrinsic pairs of benchmarks/transfer_accuracy.py plus nine variants
 as tests/pairs.py builds its pairs), each mapped with ``refine=False`` and
 with the default. Prints pointwise colour RMSE, mask error and map error
 (over sqrt(source area)) both ways, and the mean relative change over the
-pairs. The figures of ``engine.correspondence`` come from this script.
+pairs. The figures of ``engine.matching.correspondence`` come from this script.
 
 Arguments: pair names to run (substrings; all by default).
 """
@@ -16,9 +16,9 @@ from pathlib import Path
 import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
-from engine.correspondence import correspond  # noqa: E402
-from engine.shape import Shape  # noqa: E402
-from engine.transfer import Transfer  # noqa: E402
+from engine.matching.correspondence import correspond  # noqa: E402
+from engine.spectra.shape import Shape  # noqa: E402
+from engine.carrying.transfer import Transfer  # noqa: E402
 from tests import pairs  # noqa: E402
 from tests.pairs import Pair, _along_y, _read, _shuffle, bend, landmarks_by_rest, rigid, twist  # noqa: E402
 from benchmarks.transfer_accuracy import map_error  # noqa: E402

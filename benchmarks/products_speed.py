@@ -3,10 +3,10 @@
 Both routes answer the same question: the best mass-weighted fit of a few
 signals by the products of degree <= ``order`` of ``K`` smooth functions.
 
-* ``orthogonal``: :func:`engine.products.orthogonal_products` (blocked CGS2,
+* ``orthogonal``: :func:`engine.spectra.products.orthogonal_products` (blocked CGS2,
   pivoted Gram split, default tolerance), then ``project`` / ``reconstruct``.
 * ``lstsq``: the literature route, all raw products at once
-  (:func:`engine.products.raw_products`), weighted by ``sqrt(M)`` and solved by
+  (:func:`engine.spectra.products.raw_products`), weighted by ``sqrt(M)`` and solved by
   ``numpy.linalg.lstsq`` (LAPACK ``gelsd``, an SVD) against the signals.
 
 Each route runs in its own child process so that its peak resident memory
@@ -49,7 +49,7 @@ def build_data(n_vertices: int, K: int, *, seed: int = 0, n_signals: int = 4):
     """Irregular bumpy sphere, its lumped mass, K smooth mass-orthonormal functions, signals."""
     from scipy.spatial import ConvexHull
 
-    from engine.laplacian import mass_matrix
+    from engine.spectra.laplacian import mass_matrix
 
     rng = np.random.default_rng(seed)
     p = rng.standard_normal((n_vertices, 3))
@@ -106,7 +106,7 @@ def _reset_peak() -> bool:
 
 
 def _child(method: str, n: int, K: int, order: int, functions: str | None = None) -> dict:
-    from engine.products import orthogonal_products, raw_products, product_exponents
+    from engine.spectra.products import orthogonal_products, raw_products, product_exponents
 
     v, faces, m, phi, signals = build_data(n, K) if functions is None else load_data(functions, K)
     del v, faces

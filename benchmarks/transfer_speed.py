@@ -13,10 +13,10 @@ from pathlib import Path
 import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
-from engine.closest_point import SurfaceLocator  # noqa: E402
-from engine.correspondence import correspond  # noqa: E402
-from engine.shape import Shape  # noqa: E402
-from engine.transfer import Transfer  # noqa: E402
+from engine.matching.closest_point import SurfaceLocator  # noqa: E402
+from engine.matching.correspondence import correspond  # noqa: E402
+from engine.spectra.shape import Shape  # noqa: E402
+from engine.carrying.transfer import Transfer  # noqa: E402
 from tests import pairs  # noqa: E402
 
 

@@ -37,7 +37,7 @@ Shapes, correspondence and transfer
     SurfaceLocator        closest points on a triangle mesh
 
 Operators
-    operators             stiffness and mass, robust variant when the mesh needs it (Operators)
+    mesh_operators        stiffness and mass, robust variant when the mesh needs it (Operators)
     robust_laplacian      non-manifold Laplacian: tufted cover, mollification, intrinsic Delaunay
     mesh_defects          what makes a mesh need the robust variant (MeshDefects)
     cotangent_laplacian   positive semidefinite cotangent stiffness matrix
@@ -46,22 +46,22 @@ Operators
     intrinsic_laplacian   the same operators from edge lengths alone
 """
 
-from .closest_point import SurfaceLocator, SurfacePoints
-from .correspondence import Correspondence, correspond
-from .pipeline import Pair, Settings, run_detail_job, run_transfer_job
-from .shape import Shape
-from .transfer import Transfer, TransferResult
-from .operators import MeshDefects, Operators, mesh_defects, operators
-from .robust import robust_laplacian
-from .eigenbasis import Eigenbasis, eigenbasis
-from .cache import Cache, geometry_key
-from .laplacian import cotangent_laplacian, face_areas, intrinsic_laplacian, mass_matrix
-from .approximation import Approximation, Basis, LaplacianBasis, approximate, relative_error
-from .descriptors import heat_kernel_rows, heat_kernel_signature, heat_times, wave_energies, wave_kernel_signature
-from .products import (DEFAULT_PRODUCT_TOLERANCE, LeastSquaresProducts, ProductBasis, least_squares_products,
+from .matching.closest_point import SurfaceLocator, SurfacePoints
+from .matching.correspondence import Correspondence, correspond
+from .jobs.pair import Pair, Settings, run_detail_job, run_transfer_job
+from .spectra.shape import Shape
+from .carrying.transfer import Transfer, TransferResult
+from .spectra.discretization import MeshDefects, Operators, mesh_defects, mesh_operators
+from .spectra.robust import robust_laplacian
+from .spectra.eigensolver import Eigenbasis, eigenbasis
+from .common.cache import Cache, geometry_key
+from .spectra.laplacian import cotangent_laplacian, face_areas, intrinsic_laplacian, mass_matrix
+from .spectra.approximation import Approximation, Basis, LaplacianBasis, approximate, relative_error
+from .spectra.descriptors import heat_kernel_rows, heat_kernel_signature, heat_times, wave_energies, wave_kernel_signature
+from .spectra.products import (DEFAULT_PRODUCT_TOLERANCE, LeastSquaresProducts, ProductBasis, least_squares_products,
                        orthogonal_products, product_budget, product_exponents, raw_products)
-from .mesh import PreparedMesh, prepare_mesh, validate_mesh
-from .meshio import MeshData, read_mesh, write_ply
+from .intake.preparation import PreparedMesh, prepare_mesh, validate_mesh
+from .intake.files import MeshData, read_mesh, write_ply
 
 __all__ = [
     "Shape",
@@ -99,7 +99,7 @@ __all__ = [
     "heat_kernel_rows",
     "wave_energies",
     "wave_kernel_signature",
-    "operators",
+    "mesh_operators",
     "Operators",
     "mesh_defects",
     "MeshDefects",

@@ -1,5 +1,5 @@
 import sys
 
-from .cli import main
+from .jobs.cli import main
 
 sys.exit(main())

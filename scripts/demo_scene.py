@@ -163,7 +163,7 @@ def main(argv: list[str]) -> int:
         bpy.ops.wm.read_factory_settings(use_empty=True)
         bpy.ops.extensions.package_install_files(filepath=str(zip_path), repo='user_default',
                                                  enable_on_install=True)
-        demo = importlib.import_module(MODULE + ".engine.demo")
+        demo = importlib.import_module(MODULE + ".engine.jobs.demo")
         scene = bpy.context.scene
 
         rings = args.rings

@@ -264,7 +264,7 @@ def creature_rigid(*, size=(30, 20)) -> Pair:
 
 # ---------------------------------------------------------------- open data (tests/refdata.py)
 def _read(name):
-    from engine.meshio import read_mesh
+    from engine.intake.files import read_mesh
     from tests import refdata
     m = read_mesh(refdata.path(name))
     return m.vertices, m.triangles()
@@ -279,7 +279,7 @@ def _along_y(fn, v, *args, **kw):
 
 def cow_rigid() -> Pair:
     """pymeshlab's cow.obj against CGAL's cow.off: the same faces, vertices under a
-    rotation and uniform scale (PLATFORM.md). Every vertex must map to itself."""
+    rotation and uniform scale (docs/platform.md). Every vertex must map to itself."""
     vs, fs = _read("cow_cgal")
     vt, ft = _read("cow_pymeshlab")
     vt, ft, rt = _shuffle(vt, ft, vs.copy(), 11)

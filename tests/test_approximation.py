@@ -5,8 +5,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from engine.approximation import Approximation, Basis, LaplacianBasis, approximate, relative_error
-from engine.products import least_squares_products, orthogonal_products
+from engine.spectra.approximation import Approximation, Basis, LaplacianBasis, approximate, relative_error
+from engine.spectra.products import least_squares_products, orthogonal_products
 from tests.test_products import _eigenpairs
 
 

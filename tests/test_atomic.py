@@ -1,4 +1,4 @@
-"""Whole-file writes (engine._atomic) and the four writers built on them.
+"""Whole-file writes (engine.common.atomic) and the four writers built on them.
 
 What is checked is the contract of ``os.replace`` over a temporary file in the
 same folder: POSIX rename() replaces an existing target in one step
@@ -14,12 +14,12 @@ import sys
 import numpy as np
 import pytest
 
-from engine import _atomic
-from engine._atomic import atomic_write
-from engine.cache import Cache
-from engine.commands import save_npz
-from engine.meshio import read_mesh, write_ply
-from engine.pipeline import _write_json
+from engine.common import atomic as _atomic
+from engine.common.atomic import atomic_write
+from engine.common.cache import Cache
+from engine.jobs.commands import save_npz
+from engine.intake.files import read_mesh, write_ply
+from engine.jobs.pair import _write_json
 
 
 class Boom(Exception):

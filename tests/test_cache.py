@@ -1,4 +1,4 @@
-"""Tests of engine.cache: keys, validated loads, atomic saves, pruning."""
+"""Tests of engine.common.cache: keys, validated loads, atomic saves, pruning."""
 
 from __future__ import annotations
 
@@ -9,8 +9,8 @@ import sys
 import numpy as np
 import pytest
 
-from engine.cache import Cache, cached_eigenbasis, geometry_key
-from engine.laplacian import cotangent_laplacian, mass_matrix
+from engine.common.cache import Cache, cached_eigenbasis, geometry_key
+from engine.spectra.laplacian import cotangent_laplacian, mass_matrix
 from tests.meshes import icosphere
 
 
@@ -33,7 +33,7 @@ def test_key_stable_and_sensitive(ops):
     assert k1 != geometry_key(w, f, k=10, kind="cot")
     assert geometry_key(L) == geometry_key(L.tocoo())  # sparse by content
     # stable across processes (no hash randomisation, no id())
-    code = ("import numpy as np; from engine.cache import geometry_key; "
+    code = ("import numpy as np; from engine.common.cache import geometry_key; "
             "print(geometry_key(np.arange(6.0).reshape(2, 3), a=1, b='x'))")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True,
                          cwd=os.path.dirname(os.path.dirname(__file__)))

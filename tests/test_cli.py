@@ -8,9 +8,9 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from engine.color import encode_bytes
-from engine.demo import creature, creature_signals
-from engine.meshio import read_mesh, write_ply
+from engine.carrying.color import encode_bytes
+from engine.jobs.demo import creature, creature_signals
+from engine.intake.files import read_mesh, write_ply
 
 ROOT = Path(__file__).resolve().parents[1]
 

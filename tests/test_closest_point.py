@@ -3,7 +3,7 @@
 import numpy as np
 import pytest
 
-from engine.closest_point import SurfaceLocator, closest_points_on_triangles
+from engine.matching.closest_point import SurfaceLocator, closest_points_on_triangles
 from tests.meshes import icosphere, noisy_sphere
 
 import igl  # noqa: E402  reference library, test environment only

@@ -3,11 +3,11 @@
 import numpy as np
 import pytest
 
-from engine.color import decode_bytes, encode_bytes, linear_to_srgb, srgb_to_linear
+from engine.carrying.color import decode_bytes, encode_bytes, linear_to_srgb, srgb_to_linear
 
 
 def test_blender_byte_colour_value():
-    # PLATFORM.md (measured in bpy 5.0.1): writing linear 0.5 to a BYTE_COLOR
+    # docs/platform.md (measured in bpy 5.0.1): writing linear 0.5 to a BYTE_COLOR
     # attribute stores 188/255; alpha is not converted.
     assert encode_bytes([[0.5, 0.5, 0.5, 0.5]]).tolist() == [[188, 188, 188, 128]]
 

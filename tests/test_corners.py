@@ -3,9 +3,9 @@
 import numpy as np
 import pytest
 
-from engine.corners import carry_corners, seam_vertices, vertex_average
-from engine.pipeline import Pair, Settings
-from engine.shape import Shape
+from engine.carrying.corners import carry_corners, seam_vertices, vertex_average
+from engine.jobs.pair import Pair, Settings
+from engine.spectra.shape import Shape
 from tests import meshes
 
 

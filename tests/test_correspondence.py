@@ -3,8 +3,8 @@
 import numpy as np
 import pytest
 
-from engine.correspondence import correspond
-from engine.shape import Shape
+from engine.matching.correspondence import correspond
+from engine.spectra.shape import Shape
 from tests import pairs
 
 
@@ -77,7 +77,7 @@ def test_pull_and_labels_shapes_and_errors():
 
 @pytest.mark.refdata
 def test_cow_obj_against_cow_off_is_the_identity():
-    # pymeshlab cow.obj and CGAL cow.off: same faces, vertices under rotation + scale (PLATFORM.md)
+    # pymeshlab cow.obj and CGAL cow.off: same faces, vertices under rotation + scale (docs/platform.md)
     p = pairs.cow_rigid()
     S, T = _shapes(p)
     c = correspond(S, T)
@@ -132,7 +132,7 @@ def test_elephant_with_other_proportions_clearly_beats_the_landmark_warp():
 @pytest.mark.parametrize("dims", [3, 40])
 def test_nearest_rows_matches_kdtree(dims):
     from scipy.spatial import cKDTree
-    from engine.functional_map import nearest_rows
+    from engine.matching.functional_map import nearest_rows
     rng = np.random.default_rng(2)
     data, query = rng.normal(size=(700, dims)), rng.normal(size=(300, dims))
     np.testing.assert_array_equal(nearest_rows(data, query), cKDTree(data).query(query)[1])
@@ -142,8 +142,8 @@ def test_labels_take_the_weighted_majority_of_the_corners():
     # One source triangle with labels (7, 7, 9); a target point with weights
     # (0.3, 0.3, 0.4): label 7 holds 0.6 of the weight and wins, although
     # corner 9 alone is the heaviest. With (0.1, 0.2, 0.7), 9 wins.
-    from engine.correspondence import Correspondence
-    from engine.shape import Shape
+    from engine.matching.correspondence import Correspondence
+    from engine.spectra.shape import Shape
     v = np.array([[0, 0, 0], [1, 0, 0], [0, 1, 0.0]])
     src = Shape(v, np.array([[0, 1, 2]]))
     tgt = Shape(np.vstack([v, [[0.1, 0.1, 0.0]]]), np.array([[0, 1, 2], [0, 1, 3]]))
@@ -192,7 +192,7 @@ def test_aligned_gate_keeps_closest_points_where_the_surfaces_coincide():
     # the check and return the closest points themselves. Measured with
     # benchmarks/aligned_refinement.py on this pair: 99% of the closest-point
     # distances within 0.150 mean edge lengths (threshold 0.25).
-    from engine.closest_point import SurfaceLocator
+    from engine.matching.closest_point import SurfaceLocator
     p = pairs.creature_resolution(source=(20, 12), target=(26, 16))
     S, T = _shapes(p)
     c0 = correspond(S, T)
@@ -218,7 +218,7 @@ def test_similarity_fit_leaves_a_similar_copy_unchanged():
     scale are exact and the energy is zero, so the global step's right-hand
     side equals L X (analytic: the gradient of a zero-energy minimum vanishes).
     Without the scale the same copy is not a minimum."""
-    from engine.correspondence import _SimilarityFit
+    from engine.matching.correspondence import _SimilarityFit
     p = pairs.creature_rigid(size=(20, 14))
     S = Shape(p.source_vertices, p.source_faces)
     L = S.stiffness.tocsr()
@@ -235,14 +235,14 @@ def test_cheap_closest_points_agree_with_the_full_search():
     """_near_closest (used between alignment solves) against SurfaceLocator,
     itself checked against brute force and libigl in test_closest_point.py,
     on the CGAL elephant with queries up to an edge length off the surface."""
-    from engine.closest_point import SurfaceLocator, _incident_triangles
-    from engine.correspondence import _near_closest
+    from engine.matching.closest_point import SurfaceLocator, incident_triangles
+    from engine.matching.correspondence import _near_closest
     p = pairs.elephant_bent()
     S = Shape(p.source_vertices, p.source_faces)
     rng = np.random.default_rng(1)
     q = S.vertices + S.mean_edge * rng.uniform(-1, 1, S.vertices.shape)
     full = SurfaceLocator(S.vertices, S.faces).closest(q)
-    tri, w, pts = _near_closest(S.vertices, S.faces, _incident_triangles(S.faces, S.n_vertices), q)
+    tri, w, pts = _near_closest(S.vertices, S.faces, incident_triangles(S.faces, S.n_vertices), q)
     np.testing.assert_allclose(np.einsum("ij,ijk->ik", w, S.vertices[S.faces[tri]]), pts, atol=1e-12)
     d = np.linalg.norm(pts - q, axis=1)
     assert (d >= full.distance - 1e-12).all()
@@ -309,7 +309,7 @@ def test_aligned_check_leaves_a_smoothly_offset_surface_alone():
 def test_row_scale_weights_the_last_three_columns():
     # _row_distances with row_scale must equal plain squared distances after
     # scaling the last three columns of both sides by that row's factor.
-    from engine.correspondence import _row_distances
+    from engine.matching.correspondence import _row_distances
     rng = np.random.default_rng(5)
     Qt, Qs = rng.normal(size=(7, 6)), rng.normal(size=(20, 6))
     cand = rng.integers(0, 20, size=(7, 4))

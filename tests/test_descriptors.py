@@ -4,7 +4,7 @@ Unit sphere: eigenvalues l(l+1), multiplicity 2l+1; by the spherical harmonic
 addition theorem the heat kernel is
 k_t(x, y) = sum_l (2l+1)/(4 pi) P_l(cos angle(x, y)) exp(-l(l+1) t), so the
 heat kernel signature is sum_l (2l+1)/(4 pi) exp(-l(l+1) t) at every point
-(Sun, Ovsjanikov and Guibas, SGP 2009, for the signature; PLATFORM.md: with
+(Sun, Ovsjanikov and Guibas, SGP 2009, for the signature; docs/platform.md: with
 36 eigenpairs at 10k vertices within 5e-4 relative at t = 0.5).
 """
 
@@ -16,7 +16,7 @@ import numpy as np
 import pytest
 from scipy.special import eval_legendre
 
-from engine.descriptors import (
+from engine.spectra.descriptors import (
     heat_kernel_rows,
     heat_kernel_signature,
     heat_times,
@@ -50,7 +50,7 @@ def test_hks_matches_the_sphere_series(sphere36):
     hks = heat_kernel_signature(lam, phi, t)
     assert hks.shape == (len(m), 3)
     rel = np.abs(hks / _sphere_hks(t) - 1).max(axis=0)
-    assert rel[1] < 5e-4  # PLATFORM.md's figure at t = 0.5 (measured here 4.8e-4)
+    assert rel[1] < 5e-4  # docs/platform.md's figure at t = 0.5 (measured here 4.8e-4)
     assert rel[2] < 5e-4  # measured 3.3e-4
     # at t = 0.1 the missing degrees >= 6 matter (2.6%): compare with the series cut at degree 5
     rel_cut = np.abs(hks[:, 0] / _sphere_hks(0.1, lmax=5)[0] - 1).max()

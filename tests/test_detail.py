@@ -6,8 +6,8 @@ import scipy.sparse as sp
 import scipy.sparse.linalg as sla
 
 from engine import cotangent_laplacian, mass_matrix
-from engine.demo import creature
-from engine.detail import apply_detail, smooth_base, split_detail, tangent_frames, vertex_gradients, vertex_normals
+from engine.jobs.demo import creature
+from engine.carrying.detail import apply_detail, smooth_base, split_detail, tangent_frames, vertex_gradients, vertex_normals
 from tests import meshes
 
 

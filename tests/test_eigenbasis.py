@@ -1,4 +1,4 @@
-"""Tests of engine.eigenbasis against analytic spectra and invariants."""
+"""Tests of engine.spectra.eigensolver against analytic spectra and invariants."""
 
 from __future__ import annotations
 
@@ -6,8 +6,8 @@ import numpy as np
 import pytest
 import scipy.sparse as sp
 
-from engine.eigenbasis import Eigenbasis, eigenbasis
-from engine.laplacian import cotangent_laplacian, intrinsic_laplacian, mass_matrix
+from engine.spectra.eigensolver import Eigenbasis, eigenbasis
+from engine.spectra.laplacian import cotangent_laplacian, intrinsic_laplacian, mass_matrix
 from tests.meshes import grid, icosphere, noisy_sphere
 
 
@@ -59,7 +59,7 @@ def sphere4():
 
 def test_unit_sphere_spectrum(sphere4):
     # Unit sphere: l(l+1) with multiplicity 2l+1 (Chavel, Eigenvalues in
-    # Riemannian Geometry, 1984 (from memory)). PLATFORM.md measured 1.7e-3
+    # Riemannian Geometry, 1984 (from memory)). docs/platform.md measured 1.7e-3
     # over the first 24 non-zero at 10,242 vertices with an O(h^2) rate (4x
     # per subdivision), so about 7e-3 at 2,562; over l <= 5 (35 non-zero) we
     # measured 1.19e-2 here, and allow 1.5e-2.
@@ -78,7 +78,7 @@ def test_unit_sphere_spectrum(sphere4):
 
 @pytest.mark.parametrize("seed", [0, 1, 2, 3, 4])
 def test_sphere_clusters_complete_over_seeds(sphere4, seed):
-    # The hazard of PLATFORM.md: ARPACK shift-invert can drop a member of a
+    # The hazard of docs/platform.md: ARPACK shift-invert can drop a member of a
     # degenerate cluster. Every cluster l <= 5 must be complete: eigenvalue i
     # must be nearest to the l(l+1) of its own degree, and the cluster's
     # spread must be far below the gap to the next degree.
@@ -108,7 +108,7 @@ def test_sphere_cut_inside_cluster_is_reported(sphere4):
 def test_neumann_rectangle():
     # Neumann Laplacian on a x b: pi^2 (m^2/a^2 + n^2/b^2) (separation of
     # variables; e.g. Courant and Hilbert, Methods of Mathematical Physics I
-    # (from memory)). PLATFORM.md: 1.2e-3 over 19 on a 160x80 grid; on 60x30
+    # (from memory)). docs/platform.md: 1.2e-3 over 19 on a 160x80 grid; on 60x30
     # we measured 8.2e-3 over the first 19 non-zero and allow 1e-2.
     a, b = 2.0, 1.0
     v, f = grid(60, 30, a, b)
@@ -139,7 +139,7 @@ def _flat_torus(nx, ny, a, b):
 
 def test_flat_torus():
     # Flat torus a x b: 4 pi^2 (m^2/a^2 + n^2/b^2), m, n any integers
-    # (Fourier series). PLATFORM.md: 1.2e-3 over the first 19 on 160x80; on
+    # (Fourier series). docs/platform.md: 1.2e-3 over the first 19 on 160x80; on
     # 60x30 we measured 8.2e-3 and allow 1e-2.
     a, b = 2.0, 1.0
     L, m = _flat_torus(60, 30, a, b)
@@ -331,12 +331,12 @@ def test_bad_signal_shapes(small):
 
 def test_bunny_two_resolutions():
     # The pymeshlab bunny (28k vertices) and the CGAL bunny00 (38k) are the
-    # same scan (PLATFORM.md); lambda_i * area is invariant to scale and
+    # same scan (docs/platform.md); lambda_i * area is invariant to scale and
     # should agree within discretisation error: within 1.5% for i <= 30
-    # (PLATFORM.md, measured elsewhere: median 0.2%, worst 1%; here median
+    # (docs/platform.md, measured elsewhere: median 0.2%, worst 1%; here median
     # 0.11%, worst 0.97%). tol=1e-6 bounds the eigenvalue error near 1e-12.
-    from engine.mesh import prepare_mesh
-    from engine.meshio import read_mesh
+    from engine.intake.preparation import prepare_mesh
+    from engine.intake.files import read_mesh
     from tests import refdata
 
     scaled = []
@@ -379,7 +379,7 @@ def test_interior_shift_falls_back(noisy4, monkeypatch):
     # shift below lambda_1; the answer is the same (dense LAPACK reference).
     import importlib
 
-    eb = importlib.import_module("engine.eigenbasis")
+    eb = importlib.import_module("engine.spectra.eigensolver")
     L, m = noisy4
     monkeypatch.setattr(eb, "_BACKWARD_MAX", 0.0)
     E = eigenbasis(L, m, 30, method="sparse")
@@ -395,7 +395,7 @@ def test_block_factor_solves_indefinite_system(noisy4):
 
     import scipy.sparse.linalg as sla
 
-    eb = importlib.import_module("engine.eigenbasis")
+    eb = importlib.import_module("engine.spectra.eigensolver")
     L, m = noisy4
     L, m = eb._validate(L, m)
     A = (L - 20.0 * sp.diags(m)).tocsr()  # between eigenvalues 12 and 20 of the unit sphere
@@ -425,7 +425,7 @@ def test_indefinite_block_inverse_and_inertia():
     # section 8.1, from memory).
     import importlib
 
-    eb = importlib.import_module("engine.eigenbasis")
+    eb = importlib.import_module("engine.spectra.eigensolver")
     rng = np.random.default_rng(3)
     for s in (1, 2, 7, 40, 130):
         Q, _ = np.linalg.qr(rng.standard_normal((s, s)))
@@ -448,7 +448,7 @@ def test_failed_final_check_factors_again(noisy4, monkeypatch):
     # still match the dense LAPACK solution.
     import importlib
 
-    eb = importlib.import_module("engine.eigenbasis")
+    eb = importlib.import_module("engine.spectra.eigensolver")
     L, m = noisy4
     real = eb._final_ritz
     calls = []
@@ -497,7 +497,7 @@ def test_sign_ties_go_to_the_lowest_index():
     # is positive, the lowest index deciding between +a and -a.
     import importlib
 
-    eb = importlib.import_module("engine.eigenbasis")
+    eb = importlib.import_module("engine.spectra.eigensolver")
     X = np.array([[0.5, -1.0, 1.0, 0.0],
                   [-1.0, 1.0, -0.2, 0.0],
                   [1.0, 0.3, -1.0, 0.0]])

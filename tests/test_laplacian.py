@@ -41,7 +41,7 @@ def test_invariants(mesh, kind):
 
 @pytest.mark.parametrize("mesh", ["icosphere", "grid", "noisy_sphere"])
 def test_agrees_with_libigl(mesh):
-    # Reference: libigl cotmatrix is negative semidefinite (PLATFORM.md), so ours = -cotmatrix.
+    # Reference: libigl cotmatrix is negative semidefinite (docs/platform.md), so ours = -cotmatrix.
     import igl  # reference library, test environment only
     v, f = meshes.by_name(mesh)
     L = cotangent_laplacian(v, f)
@@ -61,7 +61,7 @@ def test_unknown_mass_kind():
 @pytest.mark.parametrize("mesh", ["icosphere", "noisy_sphere"])
 def test_intrinsic_matches_embedded(mesh):
     # The cotangent formula depends only on edge lengths (common practice).
-    from engine.laplacian import intrinsic_laplacian
+    from engine.spectra.laplacian import intrinsic_laplacian
     v, f = meshes.by_name(mesh)
     lengths = np.stack([np.linalg.norm(v[f[:, (c + 1) % 3]] - v[f[:, (c + 2) % 3]], axis=1) for c in range(3)], axis=1)
     L, m = intrinsic_laplacian(lengths, f, len(v))

@@ -3,8 +3,8 @@
 import numpy as np
 import pytest
 
-from engine._triangulate import triangulate
-from engine.mesh import prepare_mesh, validate_mesh
+from engine.intake.triangulation import triangulate
+from engine.intake.preparation import prepare_mesh, validate_mesh
 from tests import meshes
 
 

@@ -11,8 +11,8 @@ import os
 import numpy as np
 import pytest
 
-from engine import meshio
-from engine.meshio import MeshData, read_mesh, write_ply
+from engine.intake import files as meshio
+from engine.intake.files import MeshData, read_mesh, write_ply
 from tests import refdata
 
 # The numpy dtypes PLY has a type for, and the PLY name each is written as (Turk, from memory).
@@ -418,7 +418,7 @@ def test_failed_write_is_atomic(tmp_path, monkeypatch):
     def broken(fd):
         raise OSError("disk full")
 
-    monkeypatch.setattr(os, "fsync", broken)  # the write goes through engine._atomic
+    monkeypatch.setattr(os, "fsync", broken)  # the write goes through engine.common.atomic
     with pytest.raises(OSError, match="disk full"):
         write_ply(path, np.eye(3), faces=[[0, 1, 2]])
     assert path.read_bytes() == b"old content"
@@ -447,7 +447,7 @@ def test_raw_scan_bunny_binary_ply_matches_libigl():
 
 @pytest.mark.refdata
 def test_cow_off_and_obj_share_faces(tmp_path):
-    # PLATFORM.md: the CGAL cow.off and pymeshlab's cow.obj have the same faces.
+    # docs/platform.md: the CGAL cow.off and pymeshlab's cow.obj have the same faces.
     off = read_mesh(refdata.path("cow_cgal"))
     obj = read_mesh(refdata.path("cow_pymeshlab"))
     assert off.vertices.shape == obj.vertices.shape == (2904, 3)

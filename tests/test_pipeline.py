@@ -5,10 +5,10 @@ import json
 import numpy as np
 import pytest
 
-from engine.demo import creature, creature_signals
-from engine.meshio import read_mesh, write_ply
-from engine.pipeline import Pair, Settings, load_landmarks, run_transfer_job, weighted_centre_vertex
-from engine.shape import Shape
+from engine.jobs.demo import creature, creature_signals
+from engine.intake.files import read_mesh, write_ply
+from engine.jobs.pair import Pair, Settings, load_landmarks, run_transfer_job, weighted_centre_vertex
+from engine.spectra.shape import Shape
 
 
 @pytest.fixture(scope="module")
@@ -77,7 +77,7 @@ def test_settings_errors():
 def test_transfer_job_writes_every_property_with_its_type(tmp_path, aligned_pair):
     src, tgt, _ = aligned_pair
     s = creature_signals(src.uv)
-    from engine.color import encode_bytes
+    from engine.carrying.color import encode_bytes
     write_ply(tmp_path / "s.ply", src.vertices, faces=src.faces,
               properties={"color": encode_bytes(s["tint"]), "dirt": s["dirt"].astype(np.float32),
                           "stripe_id": s["stripe_id"].astype(np.int32)})
@@ -98,7 +98,7 @@ def test_transfer_job_writes_every_property_with_its_type(tmp_path, aligned_pair
 def test_correspondence_is_cached_on_disk(tmp_path):
     # A second session on the same pair (new Shape objects, same cache folder)
     # loads the map instead of recomputing it, and carries identical values.
-    from engine.cache import Cache
+    from engine.common.cache import Cache
     src, tgt = creature(30, 16), creature(36, 18, twist_offset=True)
     values = creature_signals(src.uv)["tint"]
     runs = []

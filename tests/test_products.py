@@ -1,6 +1,6 @@
 """Eigenfunction products: counts, exact small cases, orthonormality, sphere identities.
 
-Sphere facts (PLATFORM.md, analytic): eigenvalues of the unit sphere are
+Sphere facts (docs/platform.md, analytic): eigenvalues of the unit sphere are
 l(l+1) with multiplicity 2l+1; products of spherical harmonics expand with
 Gaunt coefficients (sympy.physics.wigner.gaunt), so products of degree-1
 harmonics lie in degrees 0 and 2 only and x^2 + y^2 + z^2 = 1.
@@ -17,8 +17,8 @@ import scipy.sparse as sp
 from scipy.sparse.linalg import eigsh
 from threadpoolctl import threadpool_limits
 
-from engine.laplacian import cotangent_laplacian, mass_matrix
-from engine.products import (
+from engine.spectra.laplacian import cotangent_laplacian, mass_matrix
+from engine.spectra.products import (
     DEFAULT_PRODUCT_TOLERANCE,
     LeastSquaresProducts,
     ProductBasis,
@@ -35,7 +35,7 @@ from tests import meshes
 def _eigenpairs(mesh: str, k: int):
     """Mass-orthonormal eigenpairs by shift-invert ARPACK, with extra pairs asked for.
 
-    PLATFORM.md: shift-invert can drop a member of a degenerate cluster, so
+    docs/platform.md: shift-invert can drop a member of a degenerate cluster, so
     ask for more than needed, seed the start vector and keep the first k.
     Stands in for engine/eigenbasis.py until that lands.
     """
@@ -45,7 +45,7 @@ def _eigenpairs(mesh: str, k: int):
     m = mass_matrix(v, f)
     extra = k + max(8, k // 3)
     v0 = np.random.default_rng(0).standard_normal(len(m))
-    # numpy's and scipy's OpenBLAS pools fight over two cores (PLATFORM.md): 3 s instead of 25 s here
+    # numpy's and scipy's OpenBLAS pools fight over two cores (docs/platform.md): 3 s instead of 25 s here
     with threadpool_limits(limits=1):
         lam, phi = eigsh(L, extra, M=sp.diags(m), sigma=-1e-8, v0=v0)
     order = np.argsort(lam)[:k]
@@ -276,7 +276,7 @@ def _gaunt_split_of_z_squared():
 
 def test_x_squared_splits_five_ninths_four_ninths(sphere10k):
     f0, f2, five_ninths, four_ninths = _gaunt_split_of_z_squared()
-    assert (f0, f2) == (five_ninths, four_ninths)  # sympy agrees with PLATFORM.md's 5/9 : 4/9
+    assert (f0, f2) == (five_ninths, four_ninths)  # sympy agrees with docs/platform.md's 5/9 : 4/9
     v, _, lam, phi, m = sphere10k
     deg = _sphere_degree(lam)
     for axis in range(3):  # rotation invariance: the same split for x^2, y^2, z^2

@@ -1,4 +1,4 @@
-"""Robust Laplacian (tufted cover, mollification, intrinsic Delaunay) and operators().
+"""Robust Laplacian (tufted cover, mollification, intrinsic Delaunay) and mesh_operators().
 
 Sources: Sharp and Crane, "A Laplacian for Nonmanifold Triangle Meshes", SGP
 2020 (the construction); the reference library robust-laplacian
@@ -19,10 +19,10 @@ import pytest
 import scipy.sparse as sp
 import scipy.sparse.linalg as sla
 
-from engine.laplacian import cotangent_laplacian, mass_matrix
-from engine.meshio import read_mesh
-from engine.operators import Operators, mesh_defects, operators
-from engine.robust import intrinsic_delaunay, mollify_lengths, robust_laplacian, tufted_cover
+from engine.spectra.laplacian import cotangent_laplacian, mass_matrix
+from engine.intake.files import read_mesh
+from engine.spectra.discretization import Operators, mesh_defects, mesh_operators
+from engine.spectra.robust import intrinsic_delaunay, mollify_lengths, robust_laplacian, tufted_cover
 from tests import meshes, refdata
 
 
@@ -246,7 +246,7 @@ def test_agrees_with_reference_on_nonmanifold_handmade(name):
 
 def _low_eigenpairs(L, m, k):
     # Shift-invert just below 0 with a seeded start vector; two extra pairs,
-    # of which the first k are kept (PLATFORM.md: ARPACK can drop a member of
+    # of which the first k are kept (docs/platform.md: ARPACK can drop a member of
     # a cluster).
     x0 = np.random.default_rng(0).standard_normal(L.shape[0])
     sigma = -1e-6 * L.diagonal().mean() / m.mean()
@@ -261,7 +261,7 @@ def test_agrees_with_reference_on_reference_meshes(name):
     v, f = _ref_mesh(name)
     L, m = robust_laplacian(v, f, mollify_factor=1e-5)
     Lr, mr = _reference(v, f)
-    # PLATFORM.md: on sliver meshes the reference L differs from the plain
+    # docs/platform.md: on sliver meshes the reference L differs from the plain
     # cotangent matrix by 16-98% (Frobenius); ours matches the reference.
     assert _rel_fro(cotangent_laplacian(v, f), Lr) > 0.1
     assert _rel_fro(L, Lr) < L_TOL
@@ -316,16 +316,16 @@ def test_flips_reach_delaunay_and_keep_the_area():
     np.testing.assert_array_equal(out.lengths.ravel()[out.twin], out.lengths.ravel())
 
 
-# ---------------------------------------------------------------- operators()
+# ---------------------------------------------------------------- mesh_operators()
 
 @pytest.mark.parametrize("mass", ["barycentric", "voronoi"])
 def test_operators_plain_on_icosphere(mass):
     v, f = meshes.icosphere(3)
-    ops = operators(v, f, mass=mass)
+    ops = mesh_operators(v, f, mass=mass)
     assert isinstance(ops, Operators) and ops.robust is False and ops.reason == ""
     assert _rel_fro(ops.stiffness, cotangent_laplacian(v, f)) == 0
     np.testing.assert_array_equal(ops.mass, mass_matrix(v, f, kind=mass))
-    forced = operators(v, f, robust=True, mass=mass)
+    forced = mesh_operators(v, f, robust=True, mass=mass)
     assert forced.robust and forced.reason == "requested"
     assert _rel_fro(forced.stiffness, ops.stiffness) < 1e-13
     with pytest.raises(AttributeError):
@@ -339,12 +339,12 @@ def test_operators_plain_on_icosphere(mass):
 ])
 def test_operators_auto_robust_on_nonmanifold_handmade(name, pattern):
     v, f = HANDMADE[name]()
-    ops = operators(v, f)
+    ops = mesh_operators(v, f)
     assert ops.robust
     assert re.match(pattern, ops.reason), ops.reason
     L, m = robust_laplacian(v, f)
     assert _rel_fro(ops.stiffness, L) == 0
-    plain = operators(v, f, robust=False)
+    plain = mesh_operators(v, f, robust=False)
     assert not plain.robust and plain.reason == "plain requested despite " + ops.reason
 
 
@@ -353,14 +353,14 @@ def test_operators_auto_robust_on_nonmanifold_handmade(name, pattern):
     # CGAL hand: 16% of its interior edges have negative weight, one angle of 0.69 deg (measured)
     ("hand", r"^1 triangle with an angle below 1 degree \(smallest 0\.69 degrees\); "
              r"16% of interior edges have a negative cotangent weight$"),
-    # glmark2 bunny: slivers down to 0.01 degrees (PLATFORM.md), 2% negative weights (below 10%)
+    # glmark2 bunny: slivers down to 0.01 degrees (docs/platform.md), 2% negative weights (below 10%)
     ("bunny_glmark2", r"^5 triangles with an angle below 1 degree \(smallest 0\.0068 degrees\)$"),
-    # pymeshfix raw scan: 132 non-manifold edges (PLATFORM.md)
+    # pymeshfix raw scan: 132 non-manifold edges (docs/platform.md)
     ("bunny_raw_scan", r"^132 non-manifold edges; "),
 ])
 def test_operators_auto_robust_on_reference_meshes(name, pattern):
     v, f = _ref_mesh(name)
-    ops = operators(v, f)
+    ops = mesh_operators(v, f)
     assert ops.robust and re.match(pattern, ops.reason), ops.reason
     assert _offdiag(ops.stiffness).max() <= 1e-8
 
@@ -384,15 +384,15 @@ def test_mesh_defects_counts():
 def test_errors():
     v, f = meshes.icosphere(1)
     with pytest.raises(ValueError, match=r"robust must be 'auto', True or False, got 'yes'"):
-        operators(v, f, robust="yes")
+        mesh_operators(v, f, robust="yes")
     with pytest.raises(ValueError, match=r"robust must be 'auto', True or False, got 1"):
-        operators(v, f, robust=1)
+        mesh_operators(v, f, robust=1)
     with pytest.raises(ValueError, match=r"unknown mass kind 'lumpy'"):
-        operators(v, f, mass="lumpy")
+        mesh_operators(v, f, mass="lumpy")
     with pytest.raises(ValueError, match=r"unknown mass kind 'lumpy'"):
         robust_laplacian(v, f, mass="lumpy")
     with pytest.raises(ValueError, match=r"mollify_factor must be finite and non-negative, got -1"):
-        operators(v, f, mollify_factor=-1)
+        mesh_operators(v, f, mollify_factor=-1)
     with pytest.raises(ValueError, match=r"mollify_factor must be finite and non-negative, got nan"):
         robust_laplacian(v, f, mollify_factor=float("nan"))
     with pytest.raises(ValueError, match=r"faces index 99 out of range for 42 vertices"):

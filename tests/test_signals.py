@@ -3,7 +3,7 @@
 import numpy as np
 import pytest
 
-from engine.signals import check_signal, signal_to_property, signals_from_properties
+from engine.carrying.signals import check_signal, signal_to_property, signals_from_properties
 
 
 def test_kinds_from_property_types():

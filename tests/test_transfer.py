@@ -3,9 +3,9 @@
 import numpy as np
 import pytest
 
-from engine.correspondence import correspond
-from engine.shape import Shape
-from engine.transfer import Transfer
+from engine.matching.correspondence import correspond
+from engine.spectra.shape import Shape
+from engine.carrying.transfer import Transfer
 from tests import pairs
 
 

@@ -37,7 +37,7 @@ EXTENSIONS_SITE = (SANDBOX / "blender_user_extensions" / ".local" / "lib"
 
 
 def blender_ext_script() -> Path:
-    """Blender's packaging script inside the bpy wheel (PLATFORM.md)."""
+    """Blender's packaging script inside the bpy wheel (docs/platform.md)."""
     wheel = Path(sysconfig.get_paths()["purelib"]) / "bpy"
     found = sorted(wheel.glob("*/scripts/addons_core/bl_pkg/cli/blender_ext.py"))
     assert found, "bpy wheel without bl_pkg/cli/blender_ext.py"
@@ -162,7 +162,7 @@ def engine_module(name):
 
 
 def select(source, target):
-    """Select both; the target is active (PLATFORM.md: selection and active object are honoured)."""
+    """Select both; the target is active (docs/platform.md: selection and active object are honoured)."""
     for obj in bpy.context.scene.objects:
         obj.select_set(obj in (source, target))
     bpy.context.view_layer.objects.active = target

@@ -131,7 +131,7 @@ def test_batch_carries_and_saves(batch, scene, tmp_path):
     """Generated creature pairs in a saved .blend; the job saves a copy; reopened, the
     results equal the engine's own Pair on the same arrays."""
     from .conftest import engine_module, make_mesh
-    demo = engine_module("demo")
+    demo = engine_module("jobs.demo")
     s, t = demo.creature(30, 16, bumps=0.02), demo.creature(26, 18, twist_offset=True, bumps=0.0)
     src, tgt = make_mesh("Scan", s.vertices, s.faces), make_mesh("LOD1", t.vertices, t.faces)
     tint = np.column_stack([demo.creature_signals(s.uv)["tint"], np.ones(len(s.vertices))])
@@ -150,7 +150,7 @@ def test_batch_carries_and_saves(batch, scene, tmp_path):
     assert entry["result"]["written"] == {"tint": "tint", "overtone_confidence": "overtone_confidence",
                                           "overtone_detail": "overtone_detail"}
     bridge = importlib.import_module(MODULE + ".bridge")
-    pipeline, shape = engine_module("pipeline"), engine_module("shape").Shape
+    pipeline, shape = engine_module("jobs.pair"), engine_module("spectra.shape").Shape
     bpy.ops.wm.open_mainfile(filepath=str(tmp_path / "out" / "result.blend"))
     src, tgt = bpy.data.objects["Scan"], bpy.data.objects["LOD1"]
     a, b = bridge.read_mesh(src), bridge.read_mesh(tgt)

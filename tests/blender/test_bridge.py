@@ -1,7 +1,7 @@
 """addon/bridge.py in real Blender: reading, writing, naming, all-or-nothing, save/reload.
 
 Expected values come from the generated meshes themselves, from numpy, and
-from the sRGB transfer function (IEC 61966-2-1), as PLATFORM.md measured it in
+from the sRGB transfer function (IEC 61966-2-1), as docs/platform.md measured it in
 Blender: linear 0.5 written to a BYTE_COLOR attribute is stored as 188/255.
 """
 
@@ -139,7 +139,7 @@ def test_colour_round_trip(bridge, sphere, data_type, domain):
     if data_type == "FLOAT_COLOR":
         np.testing.assert_array_equal(back, values)  # stored linear, exactly
     else:
-        # 8-bit sRGB: linear 0.5 -> 188/255 (PLATFORM.md); alpha stored as it is (51/255)
+        # 8-bit sRGB: linear 0.5 -> 188/255 (docs/platform.md); alpha stored as it is (51/255)
         assert round(float(srgb[0, 0]) * 255) == 188
         assert abs(float(srgb[0, 3]) - 51 / 255) < 1e-6
         np.testing.assert_allclose(srgb[:, :3] * 255, np.round(srgb[:, :3] * 255), atol=1e-3)
@@ -257,7 +257,7 @@ def test_names_suffix_or_replace(bridge, grid):
 
 
 def test_name_clash_with_vertex_group(bridge, grid):
-    # attributes.new returns None when a vertex group has the name (PLATFORM.md)
+    # attributes.new returns None when a vertex group has the name (docs/platform.md)
     grid.vertex_groups.new(name="mask")
     assert grid.data.attributes.new("mask", 'FLOAT', 'POINT') is None
     sig = bridge.Signal("mask", "float", "POINT", "FLOAT")

@@ -23,7 +23,7 @@ def test_blender_validator_accepts_the_zip(extension_zip):
 
 
 def test_blender_validator_rejects_a_long_tagline(tmp_path, extension_zip):
-    # The validator itself must be able to fail (PLATFORM.md: tagline <= 64 characters).
+    # The validator itself must be able to fail (docs/platform.md: tagline <= 64 characters).
     bad = tmp_path / "bad.zip"
     with zipfile.ZipFile(extension_zip) as src, zipfile.ZipFile(bad, "w") as dst:
         text = src.read("blender_manifest.toml").decode()

@@ -1,5 +1,5 @@
 """The job operators end to end in real bpy, checked against the engine's own
-result computed directly with engine.pipeline on the same arrays.
+result computed directly with engine.jobs.pair on the same arrays.
 
 Meshes are the engine's generated creature (engine/demo.py): a source and a
 differently triangulated target in the same place. Colours, weights and
@@ -21,7 +21,7 @@ from .test_bridge import snapshot
 
 @pytest.fixture
 def mod(overtone):
-    names = ("bridge", "job", "transfer", "operators", "worker")
+    names = ("bridge", "job", "runs", "operators", "worker")
     return type("M", (), {n: importlib.import_module(f"{MODULE}.{n}") for n in names})
 
 
@@ -32,7 +32,7 @@ def srgb_encode(x):
 
 
 def painted_pair(scene, *, rings=(30, 26), segments=(16, 18)):
-    demo = engine_module("demo")
+    demo = engine_module("jobs.demo")
     s = demo.creature(rings[0], segments[0])
     t = demo.creature(rings[1], segments[1], twist_offset=True, shuffle_seed=3)
     src, tgt = make_mesh("Painted", s.vertices, s.faces), make_mesh("Plain", t.vertices, t.faces)
@@ -54,8 +54,8 @@ def painted_pair(scene, *, rings=(30, 26), segments=(16, 18)):
 
 def engine_pair(mod, src, tgt, **settings):
     """The engine's own Pair on the arrays the bridge reads (the add-on's defaults)."""
-    pipeline = engine_module("pipeline")
-    shape = engine_module("shape").Shape
+    pipeline = engine_module("jobs.pair")
+    shape = engine_module("spectra.shape").Shape
     a, b = mod.bridge.read_mesh(src), mod.bridge.read_mesh(tgt)
     options = {"match": "auto", "basis": "pointwise", "k": 60, "order": 2, **settings}
     return pipeline.Pair(shape(a.positions, corners=a.corner_verts, sizes=a.face_sizes),
@@ -128,7 +128,7 @@ def test_names_follow_the_policy_and_replace_only_when_asked(mod, scene):
 
 
 def test_corner_colour_keeps_its_seams(mod, scene):
-    demo = engine_module("demo")
+    demo = engine_module("jobs.demo")
     s = demo.creature(24, 12)
     src, same = make_mesh("Seamed", s.vertices, s.faces), make_mesh("Copy", s.vertices, s.faces)
     # two colours split by the plane y = 0: the corners of a face take its side's colour
@@ -161,7 +161,7 @@ def test_corner_colour_keeps_its_seams(mod, scene):
 
 
 def test_detail_becomes_a_shape_key_in_object_space(mod, scene):
-    demo = engine_module("demo")
+    demo = engine_module("jobs.demo")
     s = demo.creature(30, 16, bumps=0.03)
     t = demo.creature(28, 18, bumps=0.0, twist_offset=True)
     src = make_mesh("Bumpy", s.vertices, s.faces)
@@ -196,9 +196,9 @@ def test_preview_adds_carried_layers_to_the_source_only(mod, scene):
         assert after["attributes"][name] == value  # existing layers unchanged
     assert set(after["attributes"]) - set(before["attributes"]) == {"tint_carried", "tint_bytes_carried"}
     assert set(after["groups"]) - set(before["groups"]) == {"head_carried"}
-    preview = engine_module("preview")
-    signals = engine_module("signals")
-    shape = engine_module("shape").Shape
+    preview = engine_module("carrying.preview")
+    signals = engine_module("carrying.signals")
+    shape = engine_module("spectra.shape").Shape
     a = mod.bridge.read_mesh(src)
     tint = read(mod, src, "tint").astype(np.float64)
     direct = preview.approximate_signals(
@@ -219,7 +219,7 @@ def test_preview_needs_a_basis(mod, scene):
 
 def test_same_named_vertex_groups_are_landmarks(mod, scene):
     src, tgt = painted_pair(scene)
-    pipeline = engine_module("pipeline")
+    pipeline = engine_module("jobs.pair")
     for obj, name in ((src, "snout"), (tgt, "snout")):
         positions = mod.bridge.read_mesh(obj).positions
         group = obj.vertex_groups.new(name=name)
@@ -325,7 +325,7 @@ def test_bad_input_is_one_error_and_the_scene_is_unchanged(mod, scene, setup, op
 def test_background_run_matches_the_run_in_process(mod, scene):
     src, tgt = painted_pair(scene)
     plan = mod.operators.plan_from_context(bpy.context, "transfer")
-    run = mod.transfer.BackgroundRun(plan)
+    run = mod.runs.BackgroundRun(plan)
     messages = []
     assert run.worker.wait(timeout=300).state == "done"
     assert mod.operators.step_run(run, scene.overtone, lambda k, m: messages.append((k, m))) == {'FINISHED'}
@@ -337,7 +337,7 @@ def test_background_run_matches_the_run_in_process(mod, scene):
         np.testing.assert_allclose(read(mod, tgt, name), values, atol=1e-6)
     # again in the worker: the pair is in the worker's memory (the carried "head"
     # group on the target is a result, not a landmark: the plan is the same)
-    run = mod.transfer.BackgroundRun(mod.operators.plan_from_context(bpy.context, "transfer"))
+    run = mod.runs.BackgroundRun(mod.operators.plan_from_context(bpy.context, "transfer"))
     run.worker.wait(timeout=300)
     assert mod.operators.step_run(run, scene.overtone, lambda k, m: None) == {'FINISHED'}
     assert scene.overtone.report_cache.startswith("pair memory")
@@ -346,7 +346,7 @@ def test_background_run_matches_the_run_in_process(mod, scene):
 def test_step_run_reports_progress_while_running(mod, scene):
     src, tgt = painted_pair(scene, rings=(70, 60), segments=(36, 40))
     before = _scene_state()
-    run = mod.transfer.BackgroundRun(mod.operators.plan_from_context(bpy.context, "transfer"))
+    run = mod.runs.BackgroundRun(mod.operators.plan_from_context(bpy.context, "transfer"))
     seen = []
     while True:
         result = mod.operators.step_run(run, scene.overtone, lambda k, m: seen.append(m))
@@ -362,7 +362,7 @@ def test_step_run_reports_progress_while_running(mod, scene):
 def test_cancel_stops_the_worker_and_writes_nothing(mod, scene):
     src, tgt = painted_pair(scene, rings=(70, 60), segments=(36, 40))
     before = _scene_state()
-    run = mod.transfer.BackgroundRun(mod.operators.plan_from_context(bpy.context, "transfer"))
+    run = mod.runs.BackgroundRun(mod.operators.plan_from_context(bpy.context, "transfer"))
     process = run.worker.process
     time.sleep(0.3)
     messages = []
@@ -375,7 +375,7 @@ def test_cancel_stops_the_worker_and_writes_nothing(mod, scene):
 
 def test_a_target_changed_while_working_is_not_written(mod, scene):
     src, tgt = painted_pair(scene)
-    run = mod.transfer.BackgroundRun(mod.operators.plan_from_context(bpy.context, "transfer"))
+    run = mod.runs.BackgroundRun(mod.operators.plan_from_context(bpy.context, "transfer"))
     run.worker.wait(timeout=300)
     tgt.data.vertices[0].co.x += 0.25
     before = _scene_state()
@@ -388,9 +388,9 @@ def test_a_target_changed_while_working_is_not_written(mod, scene):
 def test_worker_errors_come_back_as_one_message(mod, scene, tmp_path):
     src, tgt = painted_pair(scene)
     plan = mod.operators.plan_from_context(bpy.context, "transfer")
-    bad = mod.transfer.Plan(plan.kind, plan.source, plan.target, plan.request,
+    bad = mod.runs.Plan(plan.kind, plan.source, plan.target, plan.request,
                             mod.job.JobInput(**{**plan.inputs.__dict__, "settings": {"basis": "wavelets"}}))
-    run = mod.transfer.BackgroundRun(bad)
+    run = mod.runs.BackgroundRun(bad)
     assert run.worker.wait(timeout=60).state == "failed"
     messages = []
     assert mod.operators.step_run(run, scene.overtone, lambda k, m: messages.append(m)) == {'CANCELLED'}
@@ -405,7 +405,7 @@ def test_worker_gets_one_blas_thread_unless_the_user_chose(mod, scene, monkeypat
         monkeypatch.delenv(name, raising=False)
     mod.worker.stop_shared_worker()  # the next run starts a process with this environment
     src, tgt = painted_pair(scene)
-    run = mod.transfer.BackgroundRun(mod.operators.plan_from_context(bpy.context, "transfer"))
+    run = mod.runs.BackgroundRun(mod.operators.plan_from_context(bpy.context, "transfer"))
     assert run.worker.wait(timeout=300).state == "done"
     # the live process's own environment (Linux /proc), not just what we meant to pass
     environ = open(f"/proc/{run.worker.process.pid}/environ", "rb").read().split(b"\0")

@@ -18,7 +18,7 @@ def test_changed_bake_reuses_the_pair(overtone, scene):
     import importlib
     from .conftest import MODULE
     bridge = importlib.import_module(MODULE + ".bridge")
-    demo = engine_module("demo")
+    demo = engine_module("jobs.demo")
     s = demo.creature(250, 120)                       # 30,002 vertices
     t = demo.creature(230, 130, twist_offset=True)    # 29,902 vertices, other triangulation
     src, tgt = make_mesh("Scan", s.vertices, s.faces), make_mesh("Game", t.vertices, t.faces)
@@ -43,7 +43,7 @@ def test_changed_bake_reuses_the_pair(overtone, scene):
           f"warm after a new bake {warm:.3f} s; report: {settings.report_cache}")
     # the engine's own Pair on the same arrays, its bases and map read from the
     # add-on's disk cache (so this check does not cost another cold solve)
-    pipeline, shape = engine_module("pipeline"), engine_module("shape").Shape
+    pipeline, shape = engine_module("jobs.pair"), engine_module("spectra.shape").Shape
     folder = bpy.context.preferences.addons[MODULE].preferences.cache_folder
     a, b = bridge.read_mesh(src), bridge.read_mesh(tgt)
     pair = pipeline.Pair(shape(a.positions, corners=a.corner_verts, sizes=a.face_sizes, cache=folder),

@@ -13,8 +13,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .approximation import LaplacianBasis, relative_error
-from .products import least_squares_products, product_budget
+from ..spectra.approximation import LaplacianBasis, relative_error
+from ..spectra.products import least_squares_products, product_budget
 from .signals import BLENDED, Signal, signal_to_property, signals_from_properties
 
 __all__ = ["BASIS_NAMES", "Preview", "basis_for", "approximate_properties", "approximate_signals"]

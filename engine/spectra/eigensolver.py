@@ -38,7 +38,7 @@ sparse
     ``sqrt(k)``, like the multiplicities on a sphere), extra pairs beyond
     ``k``, and a residual test on all of them, keep every member of a
     degenerate cluster (ARPACK's shift-invert mode can drop one, see
-    PLATFORM.md).
+    docs/platform.md).
 
 Cluster at the cut: ``k`` is never changed. When eigenvalue ``k`` (0-based,
 the first one not returned) lies within a relative ``cluster_gap`` of
@@ -212,7 +212,7 @@ def eigenbasis(stiffness, mass, k: int, *, seed: int = 0, tol: float = 1e-5, met
         error of order ``tol / relative gap``. The default 1e-5 keeps every
         residual a decade below 1e-4 and eigenvalues good to about 1e-10
         relative, far below the discretisation error of any mesh (1e-3 on a
-        10k-vertex sphere, PLATFORM.md); asking 1e-8 instead costs about a
+        10k-vertex sphere, docs/platform.md); asking 1e-8 instead costs about a
         third more solves (40k vertices, 120 pairs: 585 against 456 at equal
         block size). The dense solver is exact to rounding and ignores it.
         Values below about 1e-11 may not be reachable; the solver stops when

@@ -45,7 +45,7 @@ import numpy as np
 import scipy.sparse as sp
 
 from .laplacian import intrinsic_laplacian
-from .mesh import validate_mesh
+from ..intake.preparation import validate_mesh
 
 __all__ = ["robust_laplacian", "tufted_cover", "mollify_lengths", "intrinsic_delaunay", "IntrinsicTriangulation"]
 
@@ -422,10 +422,10 @@ def robust_laplacian(vertices, faces, *, mollify_factor: float = 1e-5,
         Sums to the surface area (plus the small mollification increase).
         Vertices in no face get 0.
     """
-    return _robust(vertices, faces, mollify_factor=mollify_factor, mass=mass)[:2]
+    return robust_operators(vertices, faces, mollify_factor=mollify_factor, mass=mass)[:2]
 
 
-def _robust(vertices, faces, *, mollify_factor: float, mass: str):
+def robust_operators(vertices, faces, *, mollify_factor: float, mass: str):
     v, f = validate_mesh(vertices, faces)
     if mass not in ("barycentric", "voronoi"):
         raise ValueError(f"unknown mass kind {mass!r}; expected 'barycentric' or 'voronoi'")

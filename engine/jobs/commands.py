@@ -15,7 +15,7 @@ from pathlib import Path
 
 import numpy as np
 
-from ._atomic import atomic_write
+from ..common.atomic import atomic_write
 
 BASES = ("laplacian", "products", "orthoproducts")
 
@@ -39,9 +39,9 @@ def _order(text: str) -> int:
 
 
 def _load_shape(path: str, *, cache_dir: str | None = None):
-    from .cache import Cache
-    from .meshio import read_mesh
-    from .shape import Shape
+    from ..common.cache import Cache
+    from ..intake.files import read_mesh
+    from ..spectra.shape import Shape
 
     data = read_mesh(path)
     cache = Cache(cache_dir) if cache_dir else None
@@ -112,8 +112,8 @@ def add_approximate(p: argparse.ArgumentParser) -> None:
 
 
 def run_approximate(args: argparse.Namespace) -> int:
-    from .preview import approximate_properties
-    from .meshio import write_ply
+    from ..carrying.preview import approximate_properties
+    from ..intake.files import write_ply
 
     data, shape = _load_shape(args.mesh, cache_dir=args.cache)
     names = _split_names(args.attributes)
@@ -140,7 +140,7 @@ def _split_names(text: str | None) -> list[str] | None:
 # -- transfer and detail --------------------------------------------------------
 
 def _add_pair_arguments(p: argparse.ArgumentParser) -> None:
-    from .correspondence import MATCHES
+    from ..matching.correspondence import MATCHES
 
     p.add_argument("source", help="source mesh file (.ply, .obj, .off)")
     p.add_argument("target", help="target mesh file (.ply, .obj, .off)")
@@ -154,7 +154,7 @@ def _add_pair_arguments(p: argparse.ArgumentParser) -> None:
 
 
 def add_transfer(p: argparse.ArgumentParser) -> None:
-    from .transfer import BASES as TRANSFER_BASES
+    from ..carrying.transfer import BASES as TRANSFER_BASES
 
     _add_pair_arguments(p)
     p.add_argument("--attributes", help="comma-separated source vertex properties (default: all but "
@@ -166,7 +166,7 @@ def add_transfer(p: argparse.ArgumentParser) -> None:
 
 
 def run_transfer(args: argparse.Namespace) -> int:
-    from .pipeline import run_transfer_job
+    from .pair import run_transfer_job
 
     report = run_transfer_job(args.source, args.target, args.output, attributes=_split_names(args.attributes),
                               basis=args.basis, match=args.match, landmarks_path=args.landmarks, k=args.k,
@@ -193,7 +193,7 @@ def add_detail(p: argparse.ArgumentParser) -> None:
 
 
 def run_detail(args: argparse.Namespace) -> int:
-    from .pipeline import run_detail_job
+    from .pair import run_detail_job
 
     report = run_detail_job(args.source, args.target, args.output, strength=args.strength, size=args.size,
                             match=args.match, landmarks_path=args.landmarks, report_path=args.report,
@@ -226,15 +226,15 @@ def add_demo(p: argparse.ArgumentParser) -> None:
 
 def run_demo(args: argparse.Namespace) -> int:
     from .demo import creature, creature_signals
-    from .meshio import write_ply
-    from .preview import approximate_properties
-    from .shape import Shape
+    from ..intake.files import write_ply
+    from ..carrying.preview import approximate_properties
+    from ..spectra.shape import Shape
 
     out = Path(args.output)
     out.mkdir(parents=True, exist_ok=True)
     c = creature(120, 48)
     signals = creature_signals(c.uv)
-    from .color import encode_bytes
+    from ..carrying.color import encode_bytes
     props = {"color": encode_bytes(signals["tint"]), "dirt": signals["dirt"].astype(np.float32),
              "head": signals["head"].astype(np.float32), "stripe_id": signals["stripe_id"].astype(np.int32)}
     path = out / "creature.ply"

@@ -15,7 +15,7 @@ import math
 
 import numpy as np
 
-from .products import _as_float_2d, _numeric
+from ..common.arrays import float_matrix, numeric_array
 
 __all__ = ["heat_kernel_rows", "heat_kernel_signature", "heat_times", "wave_energies",
            "wave_kernel_signature"]
@@ -197,7 +197,7 @@ def wave_kernel_signature(eigenvalues, eigenvectors, energies=None, *, n_energie
 
 
 def _check_eigenvalues(eigenvalues) -> np.ndarray:
-    lam = _numeric(eigenvalues, "eigenvalues")
+    lam = numeric_array(eigenvalues, "eigenvalues")
     if lam.ndim != 1 or lam.size == 0:
         raise ValueError(f"eigenvalues must have shape (k,) with k >= 1, got {lam.shape}")
     lam = lam.astype(np.float64)
@@ -218,7 +218,7 @@ def _nonzero(lam: np.ndarray) -> np.ndarray:
 
 def _check_pairs(eigenvalues, eigenvectors) -> tuple[np.ndarray, np.ndarray]:
     lam = _check_eigenvalues(eigenvalues)
-    phi = _as_float_2d(eigenvectors, "eigenvectors")
+    phi = float_matrix(eigenvectors, "eigenvectors")
     if phi.shape[1] != lam.size:
         raise ValueError(f"{lam.size} eigenvalues but {phi.shape[1]} eigenvectors")
     return lam, phi

@@ -16,7 +16,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.spatial import cKDTree
 
-from .mesh import validate_mesh
+from ..intake.preparation import validate_mesh
 
 __all__ = ["closest_points_on_triangles", "SurfaceLocator", "SurfacePoints"]
 
@@ -117,7 +117,7 @@ class SurfaceLocator:
         self.centroid_tree = cKDTree(self.vertices[self.faces].mean(axis=1))
         self.vertex_candidates = int(min(vertex_candidates, len(self.vertices)))
         self.centroid_candidates = int(min(centroid_candidates, len(self.faces)))
-        self.incident = _incident_triangles(self.faces, len(self.vertices))
+        self.incident = incident_triangles(self.faces, len(self.vertices))
 
     def candidates(self, query) -> np.ndarray:
         """Candidate triangles per query, (q, c) int array padded with repeats."""
@@ -167,7 +167,7 @@ class SurfaceLocator:
         return cand[np.arange(nq), best], w[flat], p[flat]
 
 
-def _incident_triangles(faces: np.ndarray, n: int, cap: int = 16) -> np.ndarray:
+def incident_triangles(faces: np.ndarray, n: int, cap: int = 16) -> np.ndarray:
     """(n, d) triangles around each vertex, padded with -1 (at most ``cap``)."""
     v = faces.ravel()
     t = np.repeat(np.arange(len(faces)), 3)

@@ -13,10 +13,10 @@ from __future__ import annotations
 
 import numpy as np
 
-from .cache import Cache, geometry_key
-from .eigenbasis import Eigenbasis, eigenbasis
-from .mesh import prepare_mesh
-from .operators import operators
+from ..common.cache import Cache, geometry_key
+from .eigensolver import Eigenbasis, eigenbasis
+from ..intake.preparation import prepare_mesh
+from .discretization import mesh_operators
 from .descriptors import heat_kernel_rows, heat_kernel_signature, wave_kernel_signature
 from .products import ProductBasis, default_product_tolerance, orthogonal_products
 
@@ -73,7 +73,7 @@ class Shape:
     def operators(self):
         """Stiffness and mass, robust (intrinsic) variant when the mesh needs it (``engine.operators``)."""
         if self._operators is None:
-            self._operators = operators(self.vertices, self.faces, robust="auto")
+            self._operators = mesh_operators(self.vertices, self.faces, robust="auto")
         return self._operators
 
     @property

@@ -1,6 +1,6 @@
 """The Laplace-Beltrami operators of a mesh: plain cotangent, or robust when the mesh needs it.
 
-:func:`operators` returns the stiffness matrix and the lumped mass, choosing
+:func:`mesh_operators` returns the stiffness matrix and the lumped mass, choosing
 between the plain cotangent Laplacian (:mod:`laplacian`) and the robust one of
 Sharp and Crane (2020) (:mod:`robust`), and says which it chose and why.
 
@@ -44,11 +44,11 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.sparse as sp
 
-from .laplacian import _cotangents, _stiffness_from_cotangents, mass_matrix
-from .mesh import _topology, validate_mesh
-from .robust import _robust
+from .laplacian import cotangents, stiffness_from_cotangents, mass_matrix
+from ..intake.preparation import mesh_topology, validate_mesh
+from .robust import robust_operators
 
-__all__ = ["Operators", "operators", "MeshDefects", "mesh_defects"]
+__all__ = ["Operators", "mesh_operators", "MeshDefects", "mesh_defects"]
 
 _SLIVER_DEGREES = 1.0
 _NEGATIVE_FRACTION = 0.10
@@ -89,7 +89,7 @@ class MeshDefects:
     interior_edges: int
 
     def reasons(self) -> list[str]:
-        """One phrase per criterion of :func:`operators` that holds."""
+        """One phrase per criterion of :func:`mesh_operators` that holds."""
         out = []
         if self.nonmanifold_edges:
             out.append(f"{self.nonmanifold_edges} non-manifold edge{'s' * (self.nonmanifold_edges != 1)}")
@@ -124,13 +124,13 @@ def mesh_defects(vertices, faces) -> MeshDefects:
         cotangent weight ``cot a + cot b``.
     """
     v, f = validate_mesh(vertices, faces)
-    cot = _cotangents(v, f)
+    cot = cotangents(v, f)
     return _defects(v, f, cot)
 
 
 def _defects(v: np.ndarray, f: np.ndarray, cot: np.ndarray) -> MeshDefects:
     n = v.shape[0]
-    _, nonmanifold_edges, nonmanifold_vertices = _topology(f, n)
+    _, nonmanifold_edges, nonmanifold_vertices = mesh_topology(f, n)
     # Interior (two-face) edges and their cotangent weights; face-edge 3t + c
     # lies opposite corner c, from corner c+1 to corner c+2.
     p, q = f[:, [1, 2, 0]].ravel(), f[:, [2, 0, 1]].ravel()
@@ -154,7 +154,7 @@ def _defects(v: np.ndarray, f: np.ndarray, cot: np.ndarray) -> MeshDefects:
                        float(smallest.min()), negative, int(x.size))
 
 
-def operators(vertices, faces, *, robust: bool | str = "auto", mass: str = "barycentric",
+def mesh_operators(vertices, faces, *, robust: bool | str = "auto", mass: str = "barycentric",
               mollify_factor: float = 1e-5) -> Operators:
     """Stiffness matrix and lumped mass of a triangle mesh, plain or robust.
 
@@ -189,12 +189,12 @@ def operators(vertices, faces, *, robust: bool | str = "auto", mass: str = "bary
     if not (np.isfinite(mollify_factor) and mollify_factor >= 0):
         raise ValueError(f"mollify_factor must be finite and non-negative, got {mollify_factor!r}")
     v, f = validate_mesh(vertices, faces)
-    cot = _cotangents(v, f)
+    cot = cotangents(v, f)
     found = "; ".join(_defects(v, f, cot).reasons())
     use = bool(found) if robust == "auto" else bool(robust)
     if use:
-        L, M = _robust(v, f, mollify_factor=mollify_factor, mass=mass)[:2]
+        L, M = robust_operators(v, f, mollify_factor=mollify_factor, mass=mass)[:2]
         return Operators(L, M, True, found or "requested")
-    L = _stiffness_from_cotangents(v.shape[0], f, cot)
+    L = stiffness_from_cotangents(v.shape[0], f, cot)
     M = mass_matrix(v, f, kind=mass)
     return Operators(L, M, False, f"plain requested despite {found}" if found else "")

@@ -21,6 +21,8 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
+
+from ..common.arrays import check_coefficients, check_eigenvectors_mass, check_vertex_signal, float_matrix
 import scipy.linalg as sla
 
 __all__ = [
@@ -156,7 +158,7 @@ def raw_products(eigenvectors, exponents) -> np.ndarray:
         :func:`product_exponents`, degree ``d`` is built from degree ``d - 1``
         columns times one eigenfunction, one vectorised step per degree.
     """
-    phi = _as_float_2d(eigenvectors, "eigenvectors")
+    phi = float_matrix(eigenvectors, "eigenvectors")
     exps = _check_exponents(exponents, phi.shape[1])
     n, r = phi.shape[0], exps.shape[0]
     out = np.empty((n, r))
@@ -229,12 +231,12 @@ class ProductBasis:
 
     def project(self, signal) -> np.ndarray:
         """Coefficients ``basis^T M f``: (rank,) or (rank, c) for an (n,) or (n, c) signal."""
-        f = _check_signal(signal, self.basis.shape[0])
+        f = check_vertex_signal(signal, self.basis.shape[0])
         return self.basis.T @ (self.mass[:, None] * f if f.ndim == 2 else self.mass * f)
 
     def reconstruct(self, coeffs) -> np.ndarray:
         """Signal ``basis @ coeffs``: (n,) or (n, c)."""
-        c = _check_coeffs(coeffs, self.rank)
+        c = check_coefficients(coeffs, self.rank)
         return self.basis @ c
 
 
@@ -290,7 +292,7 @@ def orthogonal_products(eigenvectors, mass, order: int, *, K: int | None = None,
     -------
     ProductBasis
     """
-    phi, m = _check_eigenvectors_mass(eigenvectors, mass)
+    phi, m = check_eigenvectors_mass(eigenvectors, mass)
     K = _resolve_K(K, order, phi)
     if tol is None:
         tol = default_product_tolerance(phi.shape[0])
@@ -488,7 +490,7 @@ class LeastSquaresProducts:
 
     def project(self, signal) -> np.ndarray:
         """Least-squares coefficients: (r,) or (r, c)."""
-        f = _check_signal(signal, self.products.shape[0])
+        f = check_vertex_signal(signal, self.products.shape[0])
         sw = np.sqrt(self.mass)
         A = sw[:, None] * self.products
         b = sw[:, None] * f if f.ndim == 2 else sw * f
@@ -497,7 +499,7 @@ class LeastSquaresProducts:
 
     def reconstruct(self, coeffs) -> np.ndarray:
         """Signal ``P @ coeffs``: (n,) or (n, c)."""
-        c = _check_coeffs(coeffs, self.rank)
+        c = check_coefficients(coeffs, self.rank)
         return self.products @ c
 
 
@@ -520,7 +522,7 @@ def least_squares_products(eigenvectors, mass, order: int, *, K: int | None = No
     -------
     LeastSquaresProducts
     """
-    phi, m = _check_eigenvectors_mass(eigenvectors, mass)
+    phi, m = check_eigenvectors_mass(eigenvectors, mass)
     K = _resolve_K(K, order, phi)
     if rcond is not None and not (isinstance(rcond, (int, float)) and 0.0 <= rcond < 1.0):
         raise ValueError(f"rcond must be None or in [0, 1), got {rcond!r}")
@@ -570,42 +572,6 @@ def product_budget(n_vertices: int, K: int, order: int) -> tuple[int, int]:
 
 # --- validation shared with approximation.py and descriptors.py ---------------------------------
 
-def _numeric(a, name: str, *, allow_bool: bool = False) -> np.ndarray:
-    x = np.asarray(a)
-    ok = np.issubdtype(x.dtype, np.floating) or np.issubdtype(x.dtype, np.integer) or (
-        allow_bool and x.dtype == bool)
-    if x.dtype == object or not ok:
-        raise ValueError(f"{name} must be a numeric array, got dtype {x.dtype}")
-    return x
-
-
-def _as_float_2d(a, name: str) -> np.ndarray:
-    x = _numeric(a, name)
-    if x.ndim != 2 or x.shape[0] == 0 or x.shape[1] == 0:
-        raise ValueError(f"{name} must have shape (n, k) with n, k >= 1, got {x.shape}")
-    x = np.ascontiguousarray(x, dtype=np.float64)
-    if not np.isfinite(x).all():
-        raise ValueError(f"{name} has {int((~np.isfinite(x)).sum())} non-finite entries")
-    return x
-
-
-def _check_mass(mass, n: int) -> np.ndarray:
-    m = _numeric(mass, "mass")
-    if m.shape != (n,):
-        raise ValueError(f"mass must have shape ({n},) (one value per vertex), got {m.shape}")
-    m = np.ascontiguousarray(m, dtype=np.float64)
-    if not np.isfinite(m).all() or (m < 0).any():
-        raise ValueError("mass must be finite and non-negative")
-    if not m.sum() > 0:
-        raise ValueError("mass must have a positive total (the surface area)")
-    return m
-
-
-def _check_eigenvectors_mass(eigenvectors, mass) -> tuple[np.ndarray, np.ndarray]:
-    phi = _as_float_2d(eigenvectors, "eigenvectors")
-    return phi, _check_mass(mass, phi.shape[0])
-
-
 def _check_K_order(K, order) -> tuple[int, int]:
     if not isinstance(order, (int, np.integer)) or isinstance(order, bool) or not 1 <= order <= MAX_ORDER:
         raise ValueError(f"order must be an integer from 1 to {MAX_ORDER}, got {order!r}")
@@ -636,18 +602,3 @@ def _check_exponents(exponents, k: int) -> np.ndarray:
     return e.astype(np.int64)
 
 
-def _check_signal(signal, n: int) -> np.ndarray:
-    f = _numeric(signal, "signal", allow_bool=True)
-    if f.ndim not in (1, 2) or f.shape[0] != n:
-        raise ValueError(f"signal must have shape ({n},) or ({n}, c), got {f.shape}")
-    f = np.asarray(f, dtype=np.float64)
-    if not np.isfinite(f).all():
-        raise ValueError(f"signal has {int((~np.isfinite(f)).sum())} non-finite values")
-    return f
-
-
-def _check_coeffs(coeffs, r: int) -> np.ndarray:
-    c = np.asarray(coeffs, dtype=np.float64)
-    if c.ndim not in (1, 2) or c.shape[0] != r:
-        raise ValueError(f"coefficients must have shape ({r},) or ({r}, c), got {c.shape}")
-    return c

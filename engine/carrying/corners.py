@@ -20,7 +20,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .closest_point import SurfaceLocator
+from ..matching.closest_point import SurfaceLocator
 from .signals import check_signal
 
 __all__ = ["CornerResult", "carry_corners", "vertex_average", "seam_vertices"]

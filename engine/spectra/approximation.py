@@ -17,7 +17,7 @@ from typing import Protocol, runtime_checkable
 
 import numpy as np
 
-from .products import _check_coeffs, _check_eigenvectors_mass, _check_mass, _check_signal
+from ..common.arrays import check_coefficients, check_eigenvectors_mass, check_mass, check_vertex_signal
 
 __all__ = ["Approximation", "Basis", "LaplacianBasis", "approximate", "relative_error"]
 
@@ -50,7 +50,7 @@ class LaplacianBasis:
     mass: np.ndarray
 
     def __post_init__(self) -> None:
-        phi, m = _check_eigenvectors_mass(self.eigenvectors, self.mass)
+        phi, m = check_eigenvectors_mass(self.eigenvectors, self.mass)
         object.__setattr__(self, "eigenvectors", phi)
         object.__setattr__(self, "mass", m)
 
@@ -60,12 +60,12 @@ class LaplacianBasis:
 
     def project(self, signal) -> np.ndarray:
         """Coefficients ``phi^T M f``: (k,) or (k, c)."""
-        f = _check_signal(signal, self.eigenvectors.shape[0])
+        f = check_vertex_signal(signal, self.eigenvectors.shape[0])
         return self.eigenvectors.T @ (self.mass[:, None] * f if f.ndim == 2 else self.mass * f)
 
     def reconstruct(self, coeffs) -> np.ndarray:
         """Signal ``phi @ coeffs``: (n,) or (n, c)."""
-        return self.eigenvectors @ _check_coeffs(coeffs, self.rank)
+        return self.eigenvectors @ check_coefficients(coeffs, self.rank)
 
 
 @dataclass(frozen=True, eq=False)
@@ -110,8 +110,8 @@ def approximate(signal, basis: Basis, mass, *, clamp: tuple[float, float] | None
     -------
     Approximation
     """
-    m = _check_mass(mass, _length(mass, "mass"))
-    f = _check_signal(signal, m.shape[0])
+    m = check_mass(mass, _length(mass, "mass"))
+    f = check_vertex_signal(signal, m.shape[0])
     if not isinstance(basis, Basis):
         raise ValueError(f"basis must have project() and reconstruct(), got {type(basis).__name__}")
     lo_hi = _check_clamp(clamp)
@@ -142,9 +142,9 @@ def relative_error(approx, exact, mass, *, per_channel: bool = False):
         ``exact`` with a non-zero ``approx`` has error ``inf`` (no relative
         scale exists). Never NaN.
     """
-    m = _check_mass(mass, _length(mass, "mass"))
-    f = _check_signal(exact, m.shape[0])
-    g = _check_signal(approx, m.shape[0])
+    m = check_mass(mass, _length(mass, "mass"))
+    f = check_vertex_signal(exact, m.shape[0])
+    g = check_vertex_signal(approx, m.shape[0])
     if g.shape != f.shape:
         raise ValueError(f"approx and exact must have the same shape, got {g.shape} and {f.shape}")
     d2 = f.reshape(f.shape[0], -1)

@@ -155,7 +155,7 @@ def nearest_rows(data, query, *, block: int = 256):
     """Index of the nearest row of ``data`` for each row of ``query``.
 
     A ``cKDTree`` up to 24 dimensions; above that a blocked brute force by
-    matrix products, which is faster there (PLATFORM.md measured kd-trees
+    matrix products, which is faster there (docs/platform.md measured kd-trees
     losing to brute force at a few hundred dimensions): the nearest ``x``
     maximises ``q . x - |x|^2 / 2``, and with the norm term as one more
     column the whole score comes out of one product per block, so only

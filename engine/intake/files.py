@@ -26,9 +26,9 @@ from pathlib import Path
 
 import numpy as np
 
-from ._atomic import atomic_write
-from ._triangulate import triangulate
-from .mesh import _validate_polygons, _validate_vertices
+from ..common.atomic import atomic_write
+from .triangulation import triangulate
+from .preparation import validate_polygons, validate_vertices
 
 __all__ = ["MeshData", "read_mesh", "write_ply"]
 
@@ -692,7 +692,7 @@ def write_ply(path, vertices, *, corners=None, sizes=None, faces=None, propertie
         For invalid vertices, polygons or properties (a wrong length, a dtype
         PLY has no type for, a non-finite value), before anything is written.
     """
-    v = _validate_vertices(vertices)
+    v = validate_vertices(vertices)
     n = len(v)
     if faces is not None and (corners is not None or sizes is not None):
         raise ValueError("give either faces or corners and sizes, not both")
@@ -700,11 +700,11 @@ def write_ply(path, vertices, *, corners=None, sizes=None, faces=None, propertie
         f = np.asarray(faces)
         if f.ndim != 2 or f.shape[1] != 3:
             raise ValueError(f"faces must have shape (m, 3) (triangles), got {f.shape}")
-        c, s = _validate_polygons(f.reshape(-1), np.full(len(f), 3), n)
+        c, s = validate_polygons(f.reshape(-1), np.full(len(f), 3), n)
     elif corners is not None or sizes is not None:
         if corners is None or sizes is None:
             raise ValueError("polygons need both corners and sizes")
-        c, s = _validate_polygons(corners, sizes, n)
+        c, s = validate_polygons(corners, sizes, n)
     else:
         c, s = np.zeros(0, np.int64), np.zeros(0, np.int64)
 

@@ -122,11 +122,11 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy.spatial import cKDTree
 
-from .products import product_exponents, raw_products
-from .closest_point import SurfaceLocator, _incident_triangles, closest_points_on_triangles
-from .detail import _vertex_normals
+from ..spectra.products import product_exponents, raw_products
+from .closest_point import SurfaceLocator, incident_triangles, closest_points_on_triangles
+from ..carrying.detail import vertex_normals_unchecked
 from .functional_map import fmap_from_descriptors, nearest_rows, orientation_operator, zoomout
-from .shape import Shape
+from ..spectra.shape import Shape
 
 __all__ = ["Correspondence", "correspond"]
 
@@ -482,7 +482,7 @@ def _landmark_columns(source, target, k, lm, weight):
 
 def _vertex_as_point(shape, vertex):
     """A vertex map as (triangle, barycentric): weight 1 at that corner of one incident triangle."""
-    inc = _incident_triangles(shape.faces, shape.n_vertices, cap=1)[:, 0]
+    inc = incident_triangles(shape.faces, shape.n_vertices, cap=1)[:, 0]
     tri = inc[vertex]
     corner = np.argmax(shape.faces[tri] == vertex[:, None], axis=1)
     return tri, np.eye(3)[corner]
@@ -616,7 +616,7 @@ def _refine_products(source, target, tri, bary, vertex, K, order, *, window, h, 
     Qt_a = np.hstack([Qt, here / (spatial * h)])
     Qs_a = np.hstack([Qs, F / (spatial * h)])
     tree = cKDTree(F)
-    inc = _incident_triangles(source.faces, source.n_vertices)
+    inc = incident_triangles(source.faces, source.n_vertices)
     dist, cand = tree.query(here, k=min(neighbours, source.n_vertices))
     cost = np.where(dist <= window, _row_distances(Qt_a, Qs_a, cand), np.inf)
     cost[:, 0] = np.minimum(cost[:, 0], _row_distances(Qt_a, Qs_a, cand[:, :1])[:, 0])
@@ -720,7 +720,7 @@ def _refine_aligned(source, target, tri, bary, distance, K, order, *, h, margin=
         Qs_a = np.hstack([Qs, F / h])
         k_n = min(neighbours, source.n_vertices)
         if tree is None:
-            tree, inc = cKDTree(F), _incident_triangles(faces, source.n_vertices)
+            tree, inc = cKDTree(F), incident_triangles(faces, source.n_vertices)
         dist, cand = tree.query(here[rows], k=k_n)
         chunk = int(max(64, min(4000, 2e7 // (k_n * Qt_a.shape[1]))))   # at most ~160 MB of differences
         cost = np.where(dist <= win[:, None], _row_distances(Qt_a, Qs_a, cand, chunk=chunk, row_scale=rs), np.inf)
@@ -917,8 +917,8 @@ def _align_refine(source, target, tri, bary, steps, lm=None, rows=None, *, itera
     arap = _SimilarityFit(L, source.vertices, scale=similar)
     m_s = source.mass * (A_t / source.area)
     tree_t = cKDTree(Y)
-    inc_s = _incident_triangles(source.faces, n_s)
-    n_t_all = _vertex_normals(Y, target.faces)
+    inc_s = incident_triangles(source.faces, n_s)
+    n_t_all = vertex_normals_unchecked(Y, target.faces)
     lm_w = np.zeros(n_s)
     lm_y = np.zeros((n_s, 3))
     if lm is not None:
@@ -939,7 +939,7 @@ def _align_refine(source, target, tri, bary, steps, lm=None, rows=None, *, itera
         for _ in range(iterations):
             # forward pairs: every target vertex onto the deformed source
             f_tri, f_bary, _ = _near_closest(X, source.faces, inc_s, Y)
-            n_x = _vertex_normals(X, source.faces)
+            n_x = vertex_normals_unchecked(X, source.faces)
             ns = np.einsum("ij,ijk->ik", f_bary, n_x[source.faces[f_tri]])
             w = m_t * (np.einsum("ij,ij->i", ns, n_t_all) >= normal_min * np.linalg.norm(ns, axis=1))
             Pi = _barycentric_matrix(source.faces, f_tri, f_bary, n_s)

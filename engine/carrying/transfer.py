@@ -32,8 +32,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .products import product_exponents, raw_products
-from .correspondence import Correspondence
+from ..spectra.products import product_exponents, raw_products
+from ..matching.correspondence import Correspondence
 from .signals import KINDS, check_signal
 
 __all__ = ["Transfer", "TransferResult"]

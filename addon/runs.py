@@ -72,7 +72,7 @@ class PairRequest:
         return cls(signals=tuple(signals), detail=detail, **values)
 
     def engine_settings(self) -> dict[str, Any]:
-        """Keyword arguments of ``engine.pipeline.Settings``."""
+        """Keyword arguments of ``engine.jobs.pair.Settings``."""
         return {"match": self.match_mode.lower(), "basis": self.basis.lower(),
                 "k": int(self.eigenfunctions), "order": int(self.product_order),
                 "detail_strength": float(self.detail_strength), "detail_size": float(self.detail_size)}

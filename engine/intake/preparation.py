@@ -17,7 +17,7 @@ import scipy.sparse as sp
 from scipy.sparse.csgraph import connected_components
 from scipy.spatial import cKDTree
 
-from ._triangulate import triangulate
+from .triangulation import triangulate
 
 __all__ = ["validate_mesh", "prepare_mesh", "PreparedMesh"]
 
@@ -52,7 +52,7 @@ def validate_mesh(vertices, faces) -> tuple[np.ndarray, np.ndarray]:
         With a message naming the problem: no vertices, no faces, a wrong
         shape or dtype, an index out of range, a non-finite coordinate.
     """
-    v = _validate_vertices(vertices)
+    v = validate_vertices(vertices)
     f = np.asarray(faces)
     if f.dtype == object or not np.issubdtype(f.dtype, np.integer):
         if f.size == 0:
@@ -72,7 +72,7 @@ def validate_mesh(vertices, faces) -> tuple[np.ndarray, np.ndarray]:
     return v, np.ascontiguousarray(f, dtype=np.int64)
 
 
-def _validate_vertices(vertices) -> np.ndarray:
+def validate_vertices(vertices) -> np.ndarray:
     """The vertex half of :func:`validate_mesh`: (n, 3) finite numbers, as float64."""
     v = np.asarray(vertices)
     if v.dtype == object or not (np.issubdtype(v.dtype, np.floating) or np.issubdtype(v.dtype, np.integer)):
@@ -90,7 +90,7 @@ def _validate_vertices(vertices) -> np.ndarray:
     return v
 
 
-def _validate_polygons(corners, sizes, n: int) -> tuple[np.ndarray, np.ndarray]:
+def validate_polygons(corners, sizes, n: int) -> tuple[np.ndarray, np.ndarray]:
     """Check polygons given as a flat corner list and per-polygon sizes.
 
     Parameters
@@ -275,8 +275,8 @@ def prepare_mesh(vertices, faces=None, *, corners=None, sizes=None, weld: bool =
         v, tris = validate_mesh(vertices, faces)
         tri_polygon = np.arange(len(tris), dtype=np.int64)
     elif corners is not None and sizes is not None:
-        v = _validate_vertices(vertices)
-        c, s = _validate_polygons(corners, sizes, len(v))
+        v = validate_vertices(vertices)
+        c, s = validate_polygons(corners, sizes, len(v))
         tris, tri_polygon = triangulate(v, c, s)
     else:
         raise ValueError("no faces given: pass faces, or corners and sizes")
@@ -338,7 +338,7 @@ def prepare_mesh(vertices, faces=None, *, corners=None, sizes=None, weld: bool =
     n_components, component = connected_components(adjacency, directed=False)
     if n_components > 1:
         notes.append(f"{n_components} connected components")
-    loops, nm_edges, nm_vertices = _topology(faces_c, nv)
+    loops, nm_edges, nm_vertices = mesh_topology(faces_c, nv)
     if nm_edges:
         notes.append(f"{nm_edges} non-manifold edges")
     if nm_vertices:
@@ -351,7 +351,7 @@ def prepare_mesh(vertices, faces=None, *, corners=None, sizes=None, weld: bool =
         notes=tuple(notes))
 
 
-def _topology(faces: np.ndarray, nv: int) -> tuple[int, int, int]:
+def mesh_topology(faces: np.ndarray, nv: int) -> tuple[int, int, int]:
     """Boundary loops, non-manifold edges and non-manifold vertices of a triangle mesh.
 
     Half-edge ``t*3 + k`` runs from corner ``k`` to corner ``k + 1`` of triangle

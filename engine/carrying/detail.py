@@ -25,7 +25,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .mesh import validate_mesh
+from ..intake.preparation import validate_mesh
 
 __all__ = ["DetailLayer", "vertex_normals", "vertex_gradients", "tangent_frames",
            "smooth_base", "split_detail", "apply_detail"]
@@ -53,10 +53,10 @@ class DetailLayer:
 def vertex_normals(vertices, faces) -> np.ndarray:
     """Area-weighted unit vertex normals, (n, 3). Isolated vertices get +z."""
     v, f = validate_mesh(vertices, faces)
-    return _vertex_normals(v, f)
+    return vertex_normals_unchecked(v, f)
 
 
-def _vertex_normals(v: np.ndarray, f: np.ndarray) -> np.ndarray:
+def vertex_normals_unchecked(v: np.ndarray, f: np.ndarray) -> np.ndarray:
     """:func:`vertex_normals` of an already validated mesh (the alignment
     loop of engine.correspondence calls it on every step)."""
     fn = np.cross(v[f[:, 1]] - v[f[:, 0]], v[f[:, 2]] - v[f[:, 0]])  # length = 2 * area

@@ -18,7 +18,7 @@ import zipfile
 
 import numpy as np
 
-from ._atomic import atomic_write
+from .atomic import atomic_write
 
 __all__ = ["geometry_key", "Cache", "cached_eigenbasis"]
 
@@ -253,7 +253,7 @@ def cached_eigenbasis(stiffness, mass, k: int, *, cache: Cache | None = None, ve
     Eigenbasis
         ``info["cache"]`` is ``"hit"``, ``"miss"`` or ``"off"``.
     """
-    from .eigenbasis import Eigenbasis, eigenbasis
+    from ..spectra.eigensolver import Eigenbasis, eigenbasis
 
     if cache is None:
         basis = eigenbasis(stiffness, mass, k, seed=seed, tol=tol, method=method)

@@ -24,13 +24,13 @@ from pathlib import Path
 
 import numpy as np
 
-from ._atomic import atomic_write
-from .correspondence import MATCHES, Correspondence, correspond
-from .detail import apply_detail, smooth_base, split_detail
-from .cache import Cache, geometry_key
-from .shape import Shape
-from .signals import check_signal
-from .transfer import BASES, Transfer, TransferResult
+from ..common.atomic import atomic_write
+from ..matching.correspondence import MATCHES, Correspondence, correspond
+from ..carrying.detail import apply_detail, smooth_base, split_detail
+from ..common.cache import Cache, geometry_key
+from ..spectra.shape import Shape
+from ..carrying.signals import check_signal
+from ..carrying.transfer import BASES, Transfer, TransferResult
 
 __all__ = ["Settings", "Pair", "weighted_centre_vertex", "load_landmarks", "run_transfer_job",
            "run_detail_job"]
@@ -188,7 +188,7 @@ class Pair:
                       target_corner_verts, target_face_sizes, *, basis: str | None = None,
                       inset: float = 0.25):
         """Carry one per-corner signal, keeping its seams (``engine.corners.carry_corners``)."""
-        from .corners import carry_corners
+        from ..carrying.corners import carry_corners
         return carry_corners(self, name, values, kind, source_corner_verts, source_face_sizes,
                              target_corner_verts, target_face_sizes, basis=basis, inset=inset)
 
@@ -331,7 +331,7 @@ def _check_output(path) -> None:
 
 
 def _read_shape(path, cache):
-    from .meshio import read_mesh
+    from ..intake.files import read_mesh
     data = read_mesh(path)
     return data, Shape(data.vertices, corners=data.corners, sizes=data.sizes, cache=cache)
 
@@ -364,8 +364,8 @@ def run_transfer_job(source_path, target_path, output_path, *, attributes=None, 
     property under its source name and type, and a float ``confidence``.
     Nothing is written unless every step succeeded.
     """
-    from .meshio import write_ply
-    from .signals import signal_to_property, signals_from_properties
+    from ..intake.files import write_ply
+    from ..carrying.signals import signal_to_property, signals_from_properties
 
     t0 = time.perf_counter()
     src_data, source, tgt_data, target = _open_job(source_path, target_path, output_path, report_path,
@@ -396,7 +396,7 @@ def run_transfer_job(source_path, target_path, output_path, *, attributes=None, 
 def run_detail_job(source_path, target_path, output_path, *, strength=None, size=None, match=None,
                    landmarks_path=None, report_path=None, cache_dir=None) -> dict:
     """Carry a source file's surface detail to a target file; write the target with new coordinates."""
-    from .meshio import write_ply
+    from ..intake.files import write_ply
 
     t0 = time.perf_counter()
     _, source, tgt_data, target = _open_job(source_path, target_path, output_path, report_path, cache_dir)

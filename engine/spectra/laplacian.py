@@ -12,7 +12,7 @@ from __future__ import annotations
 import numpy as np
 import scipy.sparse as sp
 
-from .mesh import validate_mesh
+from ..intake.preparation import validate_mesh
 
 __all__ = ["cotangent_laplacian", "intrinsic_laplacian", "mass_matrix", "face_areas", "corner_cotangents"]
 
@@ -49,10 +49,10 @@ def corner_cotangents(vertices, faces) -> np.ndarray:
         opposite the edge (c+1, c+2). Zero-area triangles get cotangent 0.
     """
     v, f = validate_mesh(vertices, faces)
-    return _cotangents(v, f)
+    return cotangents(v, f)
 
 
-def _cotangents(v: np.ndarray, f: np.ndarray) -> np.ndarray:
+def cotangents(v: np.ndarray, f: np.ndarray) -> np.ndarray:
     cot = np.empty(f.shape, dtype=np.float64)
     for c in range(3):
         a = v[f[:, (c + 1) % 3]] - v[f[:, c]]
@@ -79,10 +79,10 @@ def cotangent_laplacian(vertices, faces) -> sp.csr_matrix:
         obtuse-angle pathologies (and always for intrinsic Delaunay meshes).
     """
     v, f = validate_mesh(vertices, faces)
-    return _stiffness_from_cotangents(v.shape[0], f, _cotangents(v, f))
+    return stiffness_from_cotangents(v.shape[0], f, cotangents(v, f))
 
 
-def _stiffness_from_cotangents(n: int, f: np.ndarray, cot: np.ndarray) -> sp.csr_matrix:
+def stiffness_from_cotangents(n: int, f: np.ndarray, cot: np.ndarray) -> sp.csr_matrix:
     # corner c's cotangent weights the opposite edge (c+1, c+2)
     i = np.concatenate([f[:, 1], f[:, 2], f[:, 0]])
     j = np.concatenate([f[:, 2], f[:, 0], f[:, 1]])
@@ -127,7 +127,7 @@ def mass_matrix(vertices, faces, *, kind: str = "barycentric") -> np.ndarray:
 
 
 def _mixed_voronoi(v: np.ndarray, f: np.ndarray, area: np.ndarray) -> np.ndarray:
-    cot = _cotangents(v, f)
+    cot = cotangents(v, f)
     sq = np.empty(f.shape)
     for c in range(3):
         # squared length of the edge opposite corner c
@@ -185,6 +185,6 @@ def intrinsic_laplacian(lengths, faces, n_vertices: int) -> tuple[sp.csr_matrix,
         cot[:, 0] = np.where(area > 0, (b * b + c * c - a * a) / denom, 0.0)
         cot[:, 1] = np.where(area > 0, (c * c + a * a - b * b) / denom, 0.0)
         cot[:, 2] = np.where(area > 0, (a * a + b * b - c * c) / denom, 0.0)
-    L = _stiffness_from_cotangents(n_vertices, f, cot)
+    L = stiffness_from_cotangents(n_vertices, f, cot)
     mass = np.bincount(f.ravel(), weights=np.repeat(area / 3.0, 3), minlength=n_vertices)
     return L, mass

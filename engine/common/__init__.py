@@ -1,0 +1,1 @@
+"""Small shared helpers: atomic file writes and the on-disk cache."""

@@ -1,0 +1,65 @@
+"""Array checks shared by the spectral modules: numeric dtype, shapes, finiteness, mass."""
+
+from __future__ import annotations
+
+import numpy as np
+
+__all__ = ['check_coefficients', 'check_eigenvectors_mass', 'check_mass', 'check_vertex_signal', 'float_matrix', 'numeric_array']
+
+
+def numeric_array(a, name: str, *, allow_bool: bool = False) -> np.ndarray:
+    x = np.asarray(a)
+    ok = np.issubdtype(x.dtype, np.floating) or np.issubdtype(x.dtype, np.integer) or (
+        allow_bool and x.dtype == bool)
+    if x.dtype == object or not ok:
+        raise ValueError(f"{name} must be a numeric array, got dtype {x.dtype}")
+    return x
+
+
+
+def float_matrix(a, name: str) -> np.ndarray:
+    x = numeric_array(a, name)
+    if x.ndim != 2 or x.shape[0] == 0 or x.shape[1] == 0:
+        raise ValueError(f"{name} must have shape (n, k) with n, k >= 1, got {x.shape}")
+    x = np.ascontiguousarray(x, dtype=np.float64)
+    if not np.isfinite(x).all():
+        raise ValueError(f"{name} has {int((~np.isfinite(x)).sum())} non-finite entries")
+    return x
+
+
+
+def check_mass(mass, n: int) -> np.ndarray:
+    m = numeric_array(mass, "mass")
+    if m.shape != (n,):
+        raise ValueError(f"mass must have shape ({n},) (one value per vertex), got {m.shape}")
+    m = np.ascontiguousarray(m, dtype=np.float64)
+    if not np.isfinite(m).all() or (m < 0).any():
+        raise ValueError("mass must be finite and non-negative")
+    if not m.sum() > 0:
+        raise ValueError("mass must have a positive total (the surface area)")
+    return m
+
+
+
+def check_eigenvectors_mass(eigenvectors, mass) -> tuple[np.ndarray, np.ndarray]:
+    phi = float_matrix(eigenvectors, "eigenvectors")
+    return phi, check_mass(mass, phi.shape[0])
+
+
+
+def check_vertex_signal(signal, n: int) -> np.ndarray:
+    f = numeric_array(signal, "signal", allow_bool=True)
+    if f.ndim not in (1, 2) or f.shape[0] != n:
+        raise ValueError(f"signal must have shape ({n},) or ({n}, c), got {f.shape}")
+    f = np.asarray(f, dtype=np.float64)
+    if not np.isfinite(f).all():
+        raise ValueError(f"signal has {int((~np.isfinite(f)).sum())} non-finite values")
+    return f
+
+
+
+def check_coefficients(coeffs, r: int) -> np.ndarray:
+    c = np.asarray(coeffs, dtype=np.float64)
+    if c.ndim not in (1, 2) or c.shape[0] != r:
+        raise ValueError(f"coefficients must have shape ({r},) or ({r}, c), got {c.shape}")
+    return c
