@@ -85,15 +85,16 @@ def cache_words(report: dict[str, Any]) -> str:
     hits = report.get("cache_hits", {})
     if report.get("pair") == "memory":
         return "Reused the match of the last run on these meshes (kept in memory)."
-    parts = []
+    found: dict[str, list[str]] = {}
     if isinstance(hits.get("correspondence"), str):
-        parts.append(f"Match {_WHERE.get(hits['correspondence'], hits['correspondence'])}")
+        found.setdefault(hits["correspondence"], []).append("the match")
     for role in ("source", "target"):
         counts = hits.get(role)
         if isinstance(counts, dict) and any(counts.values()):
             where = next(w for w in ("computed", "disk", "memory") if counts.get(w))
-            parts.append(f"{role} surface {_WHERE[where]}")
-    return "; ".join(parts) + "." if parts else ""
+            found.setdefault(where, []).append(f"the {role} surface")
+    return " ".join(f"{_WHERE[where].capitalize()}: {', '.join(found[where])}."
+                    for where in _WHERE if where in found)
 
 
 def skipped_lines(report: dict[str, Any]) -> list[str]:
@@ -119,7 +120,9 @@ def store_report(settings: Any, report: dict[str, Any]) -> None:
     settings.report_mode = "" if preview else _MODE_WORDS.get(str(report.get("mode")), "")
     reason = str(report.get("reason") or "")
     if preview:
-        reason = f"Shown: what {report.get('description', 'smoothing')} keeps of each layer."
+        shown = {key.lower(): label for key, label, _ in properties.BASES}.get(
+            str(report.get("basis")), str(report.get("description", "smoothing")))
+        reason = f"Shown: what {shown} keeps of each layer."
         if settings.basis == "POINTWISE":
             reason = ("Direct values arrive as they are. " + reason
                       + " Choose it under Method to carry that way.")

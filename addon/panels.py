@@ -17,6 +17,7 @@ from .runs import selected_pair
 
 __all__ = ["OVERTONE_UL_layers", "OVERTONE_PT_main", "OVERTONE_PT_detail", "OVERTONE_PT_method",
            "OVERTONE_PT_report", "SELECT_UNCERTAIN", "KIND_WORDS", "DOMAIN_WORDS", "wrap_width",
+           "duration_words", "percent_words",
            "register", "unregister"]
 
 if TYPE_CHECKING:
@@ -174,18 +175,19 @@ class OVERTONE_PT_report(_Sidebar):
         if not settings.report_ok:
             return
         if settings.report_mode:
-            _wrapped(layout.box(), context, settings.report_mode + (
-                f": {settings.report_reason}" if settings.report_reason else ""), icon='VIEWZOOM')
-        elif settings.report_reason:
-            _wrapped(layout, context, settings.report_reason)
+            layout.label(text=settings.report_mode, icon='VIEWZOOM')
         _draw_certainty(layout, settings)
+        if settings.report_reason:
+            why = layout.column()
+            why.active = False  # the detail behind the first lines, greyed
+            _wrapped(why, context, settings.report_reason)
         if settings.report_skipped:
             box = layout.box()
             box.label(text="Not carried", icon='INFO')
             for line in settings.report_skipped.splitlines():
                 _wrapped(box, context, line)
         col = layout.column(align=True)
-        col.label(text=f"Took {_seconds(settings.report_seconds)}", icon='TIME')
+        col.label(text=f"Took {duration_words(settings.report_seconds)}", icon='TIME')
         if settings.report_cache:
             _wrapped(col, context, settings.report_cache)
         if settings.report_smoothed and len(settings.report_signals):
@@ -202,7 +204,7 @@ def _draw_certainty(layout: bpy.types.UILayout, settings: Any) -> None:
     col.prop(settings, "report_confidence", emboss=False)
     if settings.report_uncertain_below >= 0.0:
         share = settings.report_uncertain
-        col.label(text=f"{share:.0%} of vertices uncertain (confidence under "
+        col.label(text=f"{percent_words(share)} of vertices uncertain (confidence under "
                        f"{settings.report_uncertain_below:.2f})",
                   icon='ERROR' if share > 0.0 else 'CHECKMARK')
         if share > 0.0 and _is_registered(SELECT_UNCERTAIN):
@@ -210,8 +212,18 @@ def _draw_certainty(layout: bpy.types.UILayout, settings: Any) -> None:
     col.prop(settings, "report_coverage", emboss=False)
 
 
-def _seconds(value: float) -> str:
-    return f"{value:.2f} s" if value < 60 else f"{int(value // 60)} min {value % 60:.0f} s"
+def duration_words(value: float) -> str:
+    """Seconds as an artist reads them: "40 ms", "2.5 s", "1 min 5 s"."""
+    if value < 1.0:
+        return f"{value * 1000:.0f} ms"
+    return f"{value:.1f} s" if value < 60 else f"{int(value // 60)} min {value % 60:.0f} s"
+
+
+def percent_words(share: float) -> str:
+    """A share as a percentage; under 1% with one decimal, so a few vertices never read as 0%."""
+    if 0.0 < share < 0.01:
+        return f"{max(share, 0.001):.1%}"
+    return f"{share:.0%}"
 
 
 _CLASSES = (OVERTONE_UL_layers, OVERTONE_PT_main, OVERTONE_PT_detail, OVERTONE_PT_method,

@@ -52,7 +52,8 @@ def test_preview_works_with_the_default_settings(mod, scene):
         k=engine_settings.K, order=2)
     np.testing.assert_allclose(read(mod, src, "tint_carried"), direct.values["tint"], atol=1e-6)
     assert settings.report_ok and settings.report_smoothed
-    assert settings.report_reason.startswith("Direct values arrive as they are. Shown: what ")
+    assert settings.report_reason == ("Direct values arrive as they are. Shown: what Smoothed, Keep Detail "
+                                      "keeps of each layer. Choose it under Method to carry that way.")
     errors = {i.name: i.source_error for i in settings.report_signals}
     assert errors["tint"] == pytest.approx(direct.errors["tint"], rel=1e-5) and errors["tint"] > 0
     assert settings.basis == "POINTWISE"  # the choice itself is left alone

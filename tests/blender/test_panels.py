@@ -179,10 +179,13 @@ def test_after_a_carry_the_report_says_what_to_act_on(ui, scene):
     assert "carried 3 layers from 'Painted' to 'Plain'" in joined
     assert "Matched by position" in joined
     share = report["uncertain_share"]
-    assert f"{share:.0%} of vertices uncertain (confidence under {report['uncertain_below']:.2f})" in words
+    assert f"{ui.percent_words(share)} of vertices uncertain (confidence under " \
+           f"{report['uncertain_below']:.2f})" in words
     assert "snout: vertex group on both meshes, used to line them up" in joined
-    assert f"Took {report['timings']['wall']:.2f} s" in words
-    assert "Match computed now" in joined
+    assert f"Took {ui.duration_words(report['timings']['wall'])}" in words
+    first = {"computed": "Computed now", "disk": "Read from the cache folder"}[
+        report["cache_hits"]["correspondence"]]
+    assert f"{first}: the match" in joined and "Reused" not in joined
     # direct values (the default): nothing is smoothed, so no "lost" figures
     assert "Lost by smoothing (on the source)" not in words
     # the same carry again: the match comes from memory, the time is this run's
@@ -191,8 +194,8 @@ def test_after_a_carry_the_report_says_what_to_act_on(ui, scene):
     assert again["pair"] == "memory"
     words = texts(draw_all())
     assert "Reused the match of the last run on these meshes (kept in memory)." in " ".join(words)
-    assert "Match computed now" not in " ".join(words)
-    assert f"Took {again['timings']['wall']:.2f} s" in words
+    assert "the match," not in " ".join(words)
+    assert f"Took {ui.duration_words(again['timings']['wall'])}" in words
     assert scene.overtone.report_seconds == pytest.approx(again["timings"]["wall"], abs=1e-6)
 
 
@@ -259,3 +262,11 @@ def test_select_uncertain_is_drawn_when_registered(ui, scene):
         assert ui.SELECT_UNCERTAIN in draw_all()["OVERTONE_PT_report"].operators()
     finally:
         bpy.utils.unregister_class(OVERTONE_OT_select_uncertain)
+
+
+def test_durations_and_shares_in_words(ui):
+    assert [ui.duration_words(v) for v in (0.0213, 2.54, 24.6, 65.2)] == ["21 ms", "2.5 s", "24.6 s",
+                                                                          "1 min 5 s"]
+    # a handful of uncertain vertices never reads as 0%
+    assert [ui.percent_words(v) for v in (0.0, 0.0004, 0.004, 0.25, 1.0)] == ["0%", "0.1%", "0.4%",
+                                                                             "25%", "100%"]
