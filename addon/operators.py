@@ -290,7 +290,7 @@ class _JobOperator:
 
 
 class OVERTONE_OT_transfer_attributes(_JobOperator, bpy.types.Operator):
-    """Carry the ticked attributes and vertex groups (nothing ticked: every colour attribute and vertex group) from the selected mesh to the active mesh"""
+    """Carry colour attributes and vertex groups (or the layers ticked in the list) from the selected mesh to the active mesh"""
 
     bl_idname = "overtone.transfer_attributes"
     bl_label = "Carry Attributes"

@@ -176,7 +176,7 @@ class OVERTONE_PT_report(_Sidebar):
             return
         if settings.report_mode:
             layout.label(text=settings.report_mode, icon='VIEWZOOM')
-        _draw_certainty(layout, settings)
+        _draw_certainty(layout, context, settings)
         if settings.report_reason:
             why = layout.column()
             why.active = False  # the detail behind the first lines, greyed
@@ -197,16 +197,15 @@ class OVERTONE_PT_report(_Sidebar):
                 box.prop(item, "source_error", text=item.name, emboss=False)
 
 
-def _draw_certainty(layout: bpy.types.UILayout, settings: Any) -> None:
+def _draw_certainty(layout: bpy.types.UILayout, context: bpy.types.Context, settings: Any) -> None:
     if settings.report_mode == "":
         return  # a preview: nothing was matched
     col = layout.column(align=True)
     col.prop(settings, "report_confidence", emboss=False)
     if settings.report_uncertain_below >= 0.0:
         share = settings.report_uncertain
-        col.label(text=f"{percent_words(share)} of vertices uncertain (confidence under "
-                       f"{settings.report_uncertain_below:.2f})",
-                  icon='ERROR' if share > 0.0 else 'CHECKMARK')
+        _wrapped(col, context, f"{percent_words(share)} of vertices uncertain (confidence under "
+                 f"{settings.report_uncertain_below:.2f})", icon='ERROR' if share > 0.0 else 'CHECKMARK')
         if share > 0.0 and _is_registered(SELECT_UNCERTAIN):
             col.operator(SELECT_UNCERTAIN, icon='RESTRICT_SELECT_OFF')
     col.prop(settings, "report_coverage", emboss=False)

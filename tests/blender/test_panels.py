@@ -124,6 +124,9 @@ def test_a_pair_selected_and_its_layers_read(ui, scene):
                        ("head", "vertex group")):
         assert words[words.index(name) + 1] == kind
     assert main.props().count(("OvertoneSignalItem", "use")) == len(scene.overtone.signals) == 5
+    # every registered list is drawn by some panel
+    lists = {b["listtype_name"] for layout in drawn.values() for f, b in layout.log if f == "template_list"}
+    assert lists == {c.__name__ for c in registered(bpy.types.UIList)}
 
 
 def test_the_main_flow_speaks_of_attributes_not_methods(ui, scene):
@@ -180,7 +183,10 @@ def test_after_a_carry_the_report_says_what_to_act_on(ui, scene):
     assert "Matched by position" in joined
     share = report["uncertain_share"]
     assert f"{ui.percent_words(share)} of vertices uncertain (confidence under " \
-           f"{report['uncertain_below']:.2f})" in words
+           f"{report['uncertain_below']:.2f})" in joined
+    # every line of the report fits the sidebar
+    assert all(len(line) <= ui.wrap_width(Context(region=None)) for line in
+               draw_all()["OVERTONE_PT_report"].texts())
     assert "snout: vertex group on both meshes, used to line them up" in joined
     assert f"Took {ui.duration_words(report['timings']['wall'])}" in words
     first = {"computed": "Computed now", "disk": "Read from the cache folder"}[

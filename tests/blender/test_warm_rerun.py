@@ -29,6 +29,7 @@ def test_changed_bake_reuses_the_pair(overtone, scene):
     settings = scene.overtone
     settings.basis = "ORTHOPRODUCTS"
     bpy.ops.overtone.refresh_signals()
+    settings.signals["ao"].use = True  # a number attribute: carried when ticked
     started = time.perf_counter()
     assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
     cold = time.perf_counter() - started
