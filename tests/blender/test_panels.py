@@ -15,11 +15,12 @@ import json
 import textwrap
 
 import bpy
+import numpy as np
 import pytest
 
-from .conftest import MODULE, make_grid, select
+from .conftest import MODULE, engine_module, make_grid, make_mesh, select
 from .standins import Context, Layout, Region, StandIn
-from .test_operators import painted_pair
+from .test_operators import painted_pair, read
 
 
 def registered(base):
@@ -276,3 +277,28 @@ def test_durations_and_shares_in_words(ui):
     # a handful of uncertain vertices never reads as 0%
     assert [ui.percent_words(v) for v in (0.0, 0.0004, 0.004, 0.25, 1.0)] == ["0%", "0.1%", "0.4%",
                                                                              "25%", "100%"]
+
+
+def test_a_partial_source_reports_its_uncertain_vertices(ui, scene):
+    # the source is the front part of the target's body only: target vertices beyond
+    # it have nothing under them, and their round trip through the maps misses
+    demo = engine_module("jobs.demo")
+    body = demo.creature(30, 16)
+    front = body.vertices[body.faces].mean(axis=1)[:, 0] < np.median(body.vertices[:, 0])
+    used, faces = np.unique(body.faces[front], return_inverse=True)
+    src = make_mesh("Front", body.vertices[used], faces.reshape(-1, 3))
+    src.data.color_attributes.new("tint", 'FLOAT_COLOR', 'POINT')
+    t = demo.creature(28, 18, twist_offset=True)
+    tgt = make_mesh("Whole", t.vertices, t.faces)
+    select(src, tgt)
+    scene.overtone.match_mode = "ALIGNED"
+    assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
+    report = json.loads(scene.overtone.report_json)
+    bridge = importlib.import_module(MODULE + ".bridge")
+    confidence = read(type("M", (), {"bridge": bridge}), tgt, "overtone_confidence")[:, 1]
+    share = float(np.mean(confidence < report["uncertain_below"]))
+    assert report["uncertain_share"] == pytest.approx(share, abs=1.5 / len(confidence))
+    assert 0.1 < share < 0.9  # the back half, roughly
+    assert scene.overtone.report_uncertain == pytest.approx(share, abs=1.5 / len(confidence))
+    words = " ".join(draw_all()["OVERTONE_PT_report"].texts())
+    assert f"{ui.percent_words(scene.overtone.report_uncertain)} of vertices uncertain" in words
