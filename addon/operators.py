@@ -17,8 +17,8 @@ functions the tests call directly.
 from __future__ import annotations
 
 import json
-from dataclasses import replace
 from collections.abc import Callable
+from dataclasses import replace
 from typing import TYPE_CHECKING, Any
 
 import bpy
