@@ -17,6 +17,8 @@ JOB.json (version 1)::
       "save": "none" | "overwrite" | {"as": "out.blend"}              # optional, default "none"
     }
 
+``"signals": "all"`` (the default) carries what the UI carries when nothing is
+ticked: every colour attribute and vertex group (:func:`.runs.default_signals`).
 Relative paths are relative to the job file. Everything is checked (objects exist,
 are meshes, carry the named signals) before the first pair runs. Exit codes: 0 every
 pair done; 1 some pair failed (the report says which and why; the others are kept);
@@ -35,9 +37,8 @@ from typing import Any
 
 import bpy
 
-from . import bridge
 from .properties import BASES, MATCH_MODES
-from .runs import PairRequest, check_pair, transfer_pair
+from .runs import PairRequest, check_pair, default_signals, transfer_pair
 
 __all__ = ["COMMAND", "JobError", "Job", "PairJob", "load_job", "main", "register", "unregister"]
 
@@ -181,10 +182,7 @@ def check_job(job: Job) -> Job:
         request = pair.request
         if request.signals == ("*",):
             if objs[0].type == 'MESH' and objs[1].type == 'MESH':
-                # every signal, except vertex groups the target also has: those pair up as landmarks
-                shared = {vg.name for vg in objs[1].vertex_groups}
-                listed = [s.name for s in bridge.list_signals(objs[0], evaluated=request.as_shown)
-                          if not (s.data_type == "VERTEX_GROUP" and s.name in shared)]
+                listed = list(default_signals(objs[0], objs[1], evaluated=request.as_shown))
             else:
                 listed = []
             if not listed and request.detail:

@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import json
 from collections.abc import Callable
+from dataclasses import replace
 from typing import TYPE_CHECKING, Any
 
 import bpy
@@ -25,7 +26,8 @@ import bpy
 from . import bridge, preferences, properties
 from .job import forget_pairs
 from .engine.common.cache import Cache
-from .runs import BackgroundRun, PairRequest, Plan, make_plan, pick_pair, run_plan, selected_pair
+from .runs import (BackgroundRun, PairRequest, Plan, default_signals, make_plan, pick_pair, run_plan,
+                   selected_pair)
 from .worker import stop_shared_worker
 
 if TYPE_CHECKING:
@@ -34,9 +36,18 @@ if TYPE_CHECKING:
 __all__ = ["OVERTONE_OT_transfer_attributes", "OVERTONE_OT_transfer_detail",
            "OVERTONE_OT_preview_carry", "OVERTONE_OT_refresh_signals", "OVERTONE_OT_clear_cache",
            "plan_from_context", "store_report", "store_error", "step_run", "cancel_run",
+           "runs_modal", "cache_words", "skipped_lines", "PREVIEW_BASIS",
            "register", "unregister"]
 
 Reporter = Callable[[set[str], str], Any]
+
+
+PREVIEW_BASIS = "ORTHOPRODUCTS"
+"""What Preview on Source shows when values are carried directly (the default):
+direct values arrive as they are, so the preview shows what smoothing would keep."""
+
+_MODE_WORDS = {"aligned": "Matched by position", "intrinsic": "Matched by shape"}
+_WHERE = {"memory": "kept in memory", "disk": "read from the cache folder", "computed": "computed now"}
 
 
 def plan_from_context(context: bpy.types.Context, kind: str) -> Plan:
@@ -61,29 +72,71 @@ def plan_from_context(context: bpy.types.Context, kind: str) -> Plan:
     ticked: list[str] = []
     if kind != "detail" and settings.signals_source == source.name:
         ticked = [item.name for item in settings.signals if item.use]
+        if not ticked and len(settings.signals):
+            raise ValueError(f"nothing ticked in the list of {source.name!r}: tick the layers to carry")
     request = PairRequest.from_settings(settings, signals=ticked, detail=kind == "detail")
+    if kind == "preview" and request.basis == "POINTWISE":
+        request = replace(request, basis=PREVIEW_BASIS)
     return make_plan(kind, source, target, request)
 
 
-def store_report(settings: Any, report: dict[str, Any]) -> None:
-    """Copy the numbers of a run's report onto the settings, for the panel."""
-    settings.report_ok = True
-    settings.report_text = str(report.get("summary", "done"))
-    settings.report_mode = str(report.get("mode") or ("preview" if "description" in report else ""))
-    settings.report_reason = str(report.get("reason") or report.get("description") or "")
-    settings.report_confidence = float(report.get("mean_confidence") or 0.0)
-    settings.report_coverage = float(report.get("coverage_of_source_area") or 0.0)
-    timings = report.get("timings", {})
-    settings.report_seconds = float(timings.get("wall", timings.get("total", 0.0)))
+def cache_words(report: dict[str, Any]) -> str:
+    """What a run reused, in words (empty when the run used no cache)."""
     hits = report.get("cache_hits", {})
-    parts = [f"pair {report['pair']}"] if "pair" in report else []
+    if report.get("pair") == "memory":
+        return "Reused the match of the last run on these meshes (kept in memory)."
+    found: dict[str, list[str]] = {}
     if isinstance(hits.get("correspondence"), str):
-        parts.append(f"map {hits['correspondence']}")
+        found.setdefault(hits["correspondence"], []).append("the match")
     for role in ("source", "target"):
         counts = hits.get(role)
-        if isinstance(counts, dict):
-            parts.append(f"{role} " + "/".join(f"{counts.get(k, 0)}" for k in ("memory", "disk", "computed")))
-    settings.report_cache = ", ".join(parts) + (" (memory/disk/computed)" if hits else "")
+        if isinstance(counts, dict) and any(counts.values()):
+            where = next(w for w in ("computed", "disk", "memory") if counts.get(w))
+            found.setdefault(where, []).append(f"the {role} surface")
+    return " ".join(f"{_WHERE[where].capitalize()}: {', '.join(found[where])}."
+                    for where in _WHERE if where in found)
+
+
+def skipped_lines(report: dict[str, Any]) -> list[str]:
+    """What was not carried and why, one line each."""
+    lines = []
+    landmarks = report.get("landmarks", {})
+    for name in landmarks.get("groups", ()):
+        lines.append(f"{name}: vertex group on both meshes, used to line them up")
+    for name in landmarks.get("skipped_empty", ()):
+        lines.append(f"{name}: vertex group empty on one mesh, ignored")
+    skipped = report.get("skipped", {})
+    items = skipped.items() if isinstance(skipped, dict) else (
+        (entry.get("name"), entry.get("reason")) for entry in skipped if isinstance(entry, dict))
+    lines.extend(f"{name}: {reason}" for name, reason in items)
+    return lines
+
+
+def store_report(settings: Any, report: dict[str, Any]) -> None:
+    """Copy what an artist can act on from a run's report onto the settings, for the panel."""
+    preview = "description" in report
+    settings.report_ok = True
+    settings.report_text = str(report.get("summary", "done"))
+    settings.report_mode = "" if preview else _MODE_WORDS.get(str(report.get("mode")), "")
+    reason = str(report.get("reason") or "")
+    if preview:
+        shown = {key.lower(): label for key, label, _ in properties.BASES}.get(
+            str(report.get("basis")), str(report.get("description", "smoothing")))
+        reason = f"Shown: what {shown} keeps of each layer."
+        if settings.basis == "POINTWISE":
+            reason = ("Direct values arrive as they are. " + reason
+                      + " Choose it under Method to carry that way.")
+    settings.report_reason = reason
+    settings.report_confidence = float(report.get("mean_confidence") or 0.0)
+    settings.report_coverage = float(report.get("coverage_of_source_area") or 0.0)
+    below = report.get("uncertain_below")
+    settings.report_uncertain_below = float(below) if isinstance(below, (int, float)) else -1.0
+    settings.report_uncertain = float(report.get("uncertain_share") or 0.0)
+    timings = report.get("timings", {})
+    settings.report_seconds = float(timings.get("wall", timings.get("total", 0.0)))
+    settings.report_cache = cache_words(report)
+    settings.report_skipped = "\n".join(skipped_lines(report))
+    settings.report_smoothed = str(report.get("basis", "pointwise")) != "pointwise"
     written = report.get("written", {})
     settings.report_written = len(written)
     settings.report_signals.clear()
@@ -99,6 +152,8 @@ def store_error(settings: Any, message: str) -> None:
     settings.report_ok = False
     settings.report_text = message
     settings.report_signals.clear()
+    settings.report_skipped = ""
+    settings.report_cache = ""
     settings.report_json = ""
 
 
@@ -147,6 +202,12 @@ def cancel_run(run: BackgroundRun, settings: Any, report: Reporter,
     return {'CANCELLED'}
 
 
+def runs_modal(context: bpy.types.Context) -> bool:
+    """Whether a click runs in the worker with progress: a window delivers timer
+    events (never in background mode, where ``invoke`` runs ``execute``)."""
+    return not bpy.app.background and context.window is not None and context.window_manager is not None
+
+
 class _JobOperator:
     """Shared by the three job operators (module docstring)."""
 
@@ -177,7 +238,7 @@ class _JobOperator:
         return {'FINISHED'}
 
     def invoke(self, context: bpy.types.Context, event: bpy.types.Event) -> set[OperatorReturnItems]:
-        if bpy.app.background or context.window is None or context.window_manager is None:
+        if not runs_modal(context):
             return self.execute(context)
         settings = properties.settings_of(context)
         if settings.running:
@@ -190,6 +251,7 @@ class _JobOperator:
         settings.progress = 0.0
         settings.progress_text = "starting"
         wm = context.window_manager
+        assert wm is not None  # runs_modal checked it
         wm.progress_begin(0, 100)
         self._timer = wm.event_timer_add(0.1, window=context.window)
         wm.modal_handler_add(self)  # type: ignore[arg-type]
@@ -210,24 +272,34 @@ class _JobOperator:
         else:
             return {'PASS_THROUGH'}
         if result != {'RUNNING_MODAL'}:
-            if self._timer is not None and context.window_manager is not None:
-                context.window_manager.event_timer_remove(self._timer)
-            self._timer = None
-            self._run = None
+            self._stop_timer(context)
         return result  # type: ignore[return-value]
+
+    def cancel(self, context: bpy.types.Context) -> None:
+        """Blender ends the modal run (the window closes, a file is loaded): stop the worker."""
+        run = self._run
+        if run is not None:
+            cancel_run(run, properties.settings_of(context), self._reporter(), context)
+        self._stop_timer(context)
+
+    def _stop_timer(self, context: bpy.types.Context) -> None:
+        if self._timer is not None and context.window_manager is not None:
+            context.window_manager.event_timer_remove(self._timer)
+        self._timer = None
+        self._run = None
 
 
 class OVERTONE_OT_transfer_attributes(_JobOperator, bpy.types.Operator):
-    """Carry the ticked signals (or every colour and vertex group) from the selected mesh to the active mesh"""
+    """Carry colour attributes and vertex groups (or the layers ticked in the list) from the selected mesh to the active mesh"""
 
     bl_idname = "overtone.transfer_attributes"
-    bl_label = "Carry Signals"
+    bl_label = "Carry Attributes"
     bl_options = {'REGISTER', 'UNDO'}
     kind = "transfer"
 
 
 class OVERTONE_OT_transfer_detail(_JobOperator, bpy.types.Operator):
-    """Carry the surface detail of the selected mesh to the active mesh as a new shape key"""
+    """Carry the small bumps and creases of the selected mesh onto the active mesh, as a shape key"""
 
     bl_idname = "overtone.transfer_detail"
     bl_label = "Carry Detail"
@@ -236,7 +308,7 @@ class OVERTONE_OT_transfer_detail(_JobOperator, bpy.types.Operator):
 
 
 class OVERTONE_OT_preview_carry(_JobOperator, bpy.types.Operator):
-    """Write onto the source, as new layers named <name>_carried, how much of each signal the basis carries"""
+    """See on the source what smoothing keeps of each layer: writes copies named <name>_carried, never carried on by default"""
 
     bl_idname = "overtone.preview_carry"
     bl_label = "Preview on Source"
@@ -245,10 +317,10 @@ class OVERTONE_OT_preview_carry(_JobOperator, bpy.types.Operator):
 
 
 class OVERTONE_OT_refresh_signals(bpy.types.Operator):
-    """List the signals the selected source carries"""
+    """List the source's attributes and vertex groups to choose what to carry; the colour attributes and vertex groups carried by default come ticked"""
 
     bl_idname = "overtone.refresh_signals"
-    bl_label = "Read Source Signals"
+    bl_label = "Read Source Layers"
     bl_options = {'REGISTER', 'UNDO'}
 
     def execute(self, context: bpy.types.Context) -> set[OperatorReturnItems]:
@@ -260,7 +332,10 @@ class OVERTONE_OT_refresh_signals(bpy.types.Operator):
         if source is None:
             self.report({'ERROR'}, "Overtone: select the source mesh")
             return {'CANCELLED'}
-        ticks = {item.name: item.use for item in settings.signals}
+        same = settings.signals_source == source.name
+        ticks = {item.name: item.use for item in settings.signals} if same else {}
+        target = _target if _target is not None and _target != source else None
+        ticked = set(default_signals(source, target, evaluated=settings.as_shown))
         settings.signals.clear()
         for signal in bridge.list_signals(source, evaluated=settings.as_shown):
             item = settings.signals.add()
@@ -268,9 +343,10 @@ class OVERTONE_OT_refresh_signals(bpy.types.Operator):
             item.kind = signal.kind
             item.domain = signal.domain
             item.data_type = signal.data_type
-            item.use = ticks.get(signal.name, True)
+            item.use = ticks.get(signal.name, signal.name in ticked)
         settings.signals_source = source.name
-        self.report({'INFO'}, f"Overtone: {len(settings.signals)} signals on {source.name!r}")
+        self.report({'INFO'}, f"Overtone: {len(settings.signals)} layers on {source.name!r}, "
+                              f"{sum(item.use for item in settings.signals)} ticked")
         return {'FINISHED'}
 
 

@@ -15,77 +15,107 @@ __all__ = ["OvertoneSignalItem", "OvertoneSignalReport", "OvertoneSettings", "MA
            "register", "unregister"]
 
 MATCH_MODES = [
-    ("AUTO", "Auto", "Decide from how well the two surfaces overlap in space"),
-    ("ALIGNED", "Aligned", "The surfaces overlap in space: match by closest points on the source surface"),
-    ("INTRINSIC", "Intrinsic",
-     "Different pose or proportions: match the surfaces by their intrinsic shape"),
+    ("AUTO", "Automatic",
+     "Look at how closely the two meshes sit on top of each other and choose one of the two ways below"),
+    ("ALIGNED", "Same Place",
+     "The meshes sit on top of each other (a scan and its retopology, two levels of detail): each "
+     "target vertex takes what lies closest to it on the source"),
+    ("INTRINSIC", "Same Shape, Any Pose",
+     "The meshes are the same character in another pose, place or size: they are matched by the "
+     "shape of the surface itself, wherever each one is"),
 ]
 BASES = [
-    ("POINTWISE", "Point to Point",
-     "Interpolate values through the point correspondence, unfiltered (most accurate on our measurements)"),
-    ("ORTHOPRODUCTS", "Orthogonalised Products",
-     "Filter through eigenfunctions and their mass-orthonormal products, then carry"),
-    ("LAPLACIAN", "Eigenfunctions", "Filter through Laplace-Beltrami eigenfunctions only: smooth signals"),
-    ("PRODUCTS", "Raw Products", "Filter through raw eigenfunction products fitted by least squares"),
+    ("POINTWISE", "Direct",
+     "Each target vertex takes the source's value where it lands: sharp paint edges, fine detail "
+     "and any noise arrive as they are"),
+    ("ORTHOPRODUCTS", "Smoothed, Keep Detail",
+     "Rebuild each value from the source surface's own wave patterns and their combinations before "
+     "carrying: noise and stray values soften, medium-size detail stays, sharp edges blur a little"),
+    ("LAPLACIAN", "Smoothed",
+     "Rebuild each value from the source surface's broad wave patterns only: gradients and large "
+     "masks come out clean, small detail and sharp edges blur"),
+    ("PRODUCTS", "Smoothed, Keep Detail (Unbalanced)",
+     "Like Smoothed, Keep Detail, without balancing the combined patterns against each other: "
+     "can ripple next to sharp edges"),
 ]
 
 
 class OvertoneSignalItem(bpy.types.PropertyGroup):
-    """One signal on the source, with a tick box."""
+    """One layer of the source (attribute or vertex group), with a tick box."""
 
     use: BoolProperty(name="Carry", default=True,  # type: ignore[valid-type]
-                      description="Carry this signal to the target")
+                      description="Carry this layer to the target")
     kind: StringProperty(name="Kind")  # type: ignore[valid-type]
     domain: StringProperty(name="Domain")  # type: ignore[valid-type]
     data_type: StringProperty(name="Data Type")  # type: ignore[valid-type]
 
 
 class OvertoneSignalReport(bpy.types.PropertyGroup):
-    """One carried signal in the last run's report."""
+    """One carried layer in the last run's report."""
 
     source_error: FloatProperty(  # type: ignore[valid-type]
-        name="Source Error", min=0.0, precision=4,
-        description="Relative error of the basis reconstruction of the signal on the source")
+        name="Lost by Smoothing", min=0.0, precision=4,
+        description="How much of this layer the smoothing removes, measured on the source "
+                    "(0: nothing lost, 1: all of it)")
     written_as: StringProperty(name="Written As")  # type: ignore[valid-type]
 
 
 class OvertoneSettings(bpy.types.PropertyGroup):
     """What to carry and how; the last run's report."""
 
-    match_mode: EnumProperty(name="Matching", items=MATCH_MODES,  # type: ignore[valid-type]
-                             default="AUTO")
-    basis: EnumProperty(name="Basis", items=BASES,  # type: ignore[valid-type]
-                        default="POINTWISE")
+    match_mode: EnumProperty(  # type: ignore[valid-type]
+        name="Match", items=MATCH_MODES, default="AUTO",
+        description="How each target vertex finds its place on the source")
+    basis: EnumProperty(  # type: ignore[valid-type]
+        name="Values", items=BASES, default="POINTWISE",
+        description="Whether values arrive as they are or smoothed on the way")
     eigenfunctions: IntProperty(  # type: ignore[valid-type]
-        name="Eigenfunctions", default=60, min=4, soft_max=300, max=1000,
-        description="How many Laplace-Beltrami eigenfunctions describe each surface")
+        name="Wave Patterns", default=60, min=4, soft_max=300, max=1000,
+        description="How many of the surface's wave patterns (Laplace-Beltrami eigenfunctions) "
+                    "describe each mesh. More: the smoothed values keep finer variation and a "
+                    "shape match tells more parts apart; fewer: smoother values, faster first run")
     product_order: IntProperty(  # type: ignore[valid-type]
-        name="Product Order", default=2, min=1, max=5,
-        description="Highest number of eigenfunctions multiplied together in the basis")
+        name="Pattern Combinations", default=2, min=1, max=5,
+        description="With Smoothed, Keep Detail: how many wave patterns may be multiplied together. "
+                    "Higher keeps sharper features; the first run takes longer")
     detail_strength: FloatProperty(  # type: ignore[valid-type]
         name="Strength", default=1.0, min=0.0, soft_max=2.0, max=10.0,
         description="Scale of the carried surface detail")
     detail_size: FloatProperty(  # type: ignore[valid-type]
         name="Detail Size", default=0.05, min=0.001, max=1.0, soft_max=0.3, precision=3,
-        description="Features smaller than this fraction of the source's size count as detail; "
-                    "larger ones belong to the overall shape, which stays the target's")
+        description="Bumps smaller than this fraction of the source's size are carried as detail; "
+                    "larger forms belong to the overall shape, which stays the target's")
     as_shown: BoolProperty(  # type: ignore[valid-type]
-        name="As Shown", default=False,
-        description="Use the source as shown in the viewport, with its modifiers applied")
+        name="Source With Modifiers", default=False,
+        description="Read the source as the viewport shows it, its modifiers applied "
+                    "(off: its mesh as edited)")
     replace_existing: BoolProperty(  # type: ignore[valid-type]
         name="Replace Existing", default=False,
-        description="Overwrite a target layer of the same name instead of adding a new one")
+        description="Overwrite a target attribute or vertex group of the same name "
+                    "(off: write a new one with a numbered name)")
     signals: CollectionProperty(type=OvertoneSignalItem)  # type: ignore[valid-type]
     signals_index: IntProperty(default=0)  # type: ignore[valid-type]
     signals_source: StringProperty(  # type: ignore[valid-type]
-        name="Listed From", description="Object the signal list was read from")
+        name="Listed From", description="Object the list of layers was read from")
     report_text: StringProperty(name="Report")  # type: ignore[valid-type]
-    report_mode: StringProperty(name="Matching")  # type: ignore[valid-type]
+    report_mode: StringProperty(name="Matched")  # type: ignore[valid-type]
     report_reason: StringProperty(name="Why")  # type: ignore[valid-type]
     report_coverage: FloatProperty(  # type: ignore[valid-type]
         name="Source Covered", min=0.0, max=1.0, subtype='FACTOR',
-        description="Fraction of the source's area the target's points land near")
-    report_cache: StringProperty(name="Cache")  # type: ignore[valid-type]
+        description="Share of the source's surface that target vertices land near")
+    report_cache: StringProperty(  # type: ignore[valid-type]
+        name="Reused", description="What this run could reuse from earlier runs, in words")
+    report_uncertain: FloatProperty(  # type: ignore[valid-type]
+        name="Uncertain", min=0.0, max=1.0, subtype='FACTOR',
+        description="Share of target vertices whose match is uncertain")
+    report_uncertain_below: FloatProperty(  # type: ignore[valid-type]
+        name="Uncertain Below", min=-1.0, max=1.0, default=-1.0,
+        description="Confidence under which a vertex counts as uncertain (negative: not reported)")
+    report_skipped: StringProperty(  # type: ignore[valid-type]
+        name="Skipped", description="What was not carried and why, one entry per line")
+    report_smoothed: BoolProperty(  # type: ignore[valid-type]
+        name="Smoothed", default=False,
+        description="The values were smoothed, so the loss per layer means something")
     report_signals: CollectionProperty(type=OvertoneSignalReport)  # type: ignore[valid-type]
     report_json: StringProperty(name="Full Report")  # type: ignore[valid-type]
     running: BoolProperty(default=False)  # type: ignore[valid-type]
@@ -93,10 +123,13 @@ class OvertoneSettings(bpy.types.PropertyGroup):
         name="Progress", min=0.0, max=1.0, subtype='FACTOR')
     progress_text: StringProperty(name="Working On")  # type: ignore[valid-type]
     report_ok: BoolProperty(default=False)  # type: ignore[valid-type]
-    report_seconds: FloatProperty(name="Time", unit='TIME_ABSOLUTE')  # type: ignore[valid-type]
+    report_seconds: FloatProperty(  # type: ignore[valid-type]
+        name="Took", unit='TIME_ABSOLUTE', description="How long this run took, start to finish")
     report_confidence: FloatProperty(  # type: ignore[valid-type]
-        name="Mean Confidence", min=0.0, max=1.0, subtype='FACTOR')
-    report_written: IntProperty(name="Layers Written")  # type: ignore[valid-type]
+        name="Confidence", min=0.0, max=1.0, subtype='FACTOR',
+        description="Mean confidence of the match over the target's vertices (1: sure)")
+    report_written: IntProperty(  # type: ignore[valid-type]
+        name="Layers Written", description="Attributes, vertex groups and shape keys written")
 
 
 def settings_of(context: bpy.types.Context) -> OvertoneSettings:

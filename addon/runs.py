@@ -36,11 +36,18 @@ from .worker import Status, shared_worker
 
 __all__ = ["PairRequest", "Plan", "BackgroundRun", "selected_pair", "pick_pair", "check_pair",
            "default_signals", "make_plan", "run_plan", "finish", "transfer_pair",
-           "CONFIDENCE_NAME", "DETAIL_NAME", "PREVIEW_SUFFIX", "RESULTS_PROPERTY"]
+           "CONFIDENCE_NAME", "DETAIL_NAME", "PREVIEW_SUFFIX", "RESULTS_PROPERTY", "UNCERTAIN_BELOW"]
 
 CONFIDENCE_NAME = "overtone_confidence"
 DETAIL_NAME = "overtone_detail"
 PREVIEW_SUFFIX = "_carried"
+UNCERTAIN_BELOW = 0.5
+"""Match confidence under which a target vertex counts as uncertain in the report.
+
+The engine's confidence is exp(-(d / 4e)^2), d the distance a vertex's round
+trip through the forward and reverse maps ends from where it began, e the
+target's mean edge length: under 0.5 means the round trip misses by more than
+4 sqrt(ln 2) ~ 3.3 edge lengths, several faces away."""
 
 
 @dataclass(frozen=True)
@@ -146,14 +153,22 @@ def _shared_groups(source: bpy.types.Object, target: bpy.types.Object) -> list[s
     return [vg.name for vg in source.vertex_groups if vg.name in names]
 
 
-def default_signals(source: bpy.types.Object, target: bpy.types.Object, *,
+def default_signals(source: bpy.types.Object, target: bpy.types.Object | None = None, *,
                     evaluated: bool = False) -> tuple[str, ...]:
-    """What is carried when nothing is ticked: every colour attribute and vertex
-    group of the source, except groups the target also has (those are landmarks,
-    unless Overtone wrote them: see :data:`RESULTS_PROPERTY`)."""
-    shared = set(_shared_groups(source, target))
-    return tuple(s.name for s in bridge.list_signals(source, evaluated=evaluated)
-                 if s.kind == "color" or (s.data_type == "VERTEX_GROUP" and s.name not in shared))
+    """What is carried when nothing is chosen (the UI, batch ``"all"``, the preview):
+    every colour attribute and vertex group of the source, except
+
+    - groups the target also has (those are landmarks, unless Overtone wrote
+      them: see :data:`RESULTS_PROPERTY`);
+    - preview layers ``<name>_carried`` next to their ``<name>``.
+
+    Other attributes (numbers, vectors, integers, on/off) are carried only when named."""
+    shared = set(_shared_groups(source, target)) if target is not None else set()
+    listed = bridge.list_signals(source, evaluated=evaluated)
+    names = {s.name for s in listed}
+    return tuple(s.name for s in listed
+                 if (s.kind == "color" or (s.data_type == "VERTEX_GROUP" and s.name not in shared))
+                 and not (s.name.endswith(PREVIEW_SUFFIX) and s.name[:-len(PREVIEW_SUFFIX)] in names))
 
 
 def check_pair(source: bpy.types.Object | None, target: bpy.types.Object | None,
@@ -218,8 +233,7 @@ def make_plan(kind: str, source: bpy.types.Object | None, target: bpy.types.Obje
             raise ValueError("select the source mesh to preview")
         _check_object("source", source)
         listed = {s.name: s for s in bridge.list_signals(source, evaluated=request.as_shown)}
-        names = request.signals or tuple(n for n, s in listed.items()
-                                         if s.kind == "color" or s.data_type == "VERTEX_GROUP")
+        names = request.signals or default_signals(source, evaluated=request.as_shown)
         missing = [n for n in names if n not in listed]
         if missing:
             raise ValueError(f"source {source.name!r} has no signal {', '.join(map(repr, missing))}"
@@ -294,12 +308,15 @@ def finish(plan: Plan, out: job.JobOutput) -> dict[str, Any]:
                          "nothing written, run again")
     if evaluated and len(cast(bpy.types.Mesh, obj.data).vertices) != len(expected.positions):
         raise ValueError(f"source {plan.source!r} as shown has a different vertex count than its "
-                         "mesh: turn off As Shown to preview onto it")
+                         "mesh: turn off Source With Modifiers to preview onto it")
     written = bridge.write_outputs(obj, _outputs(plan, out), replace=plan.request.replace_existing)
     if plan.kind != "preview":
         ours = set(cast(Any, obj.get(RESULTS_PROPERTY, ()))) | set(written.values())
         obj[RESULTS_PROPERTY] = sorted(ours)
     report = dict(out.report)
+    if out.confidence is not None and len(out.confidence):
+        report.setdefault("uncertain_below", UNCERTAIN_BELOW)
+        report.setdefault("uncertain_share", float(np.mean(out.confidence < report["uncertain_below"])))
     report["written"] = written
     report["object"] = plan.written_on
     report["summary"] = _summary(plan, report)
@@ -312,7 +329,7 @@ def _summary(plan: Plan, report: dict[str, Any]) -> str:
         return f"previewed on {plan.source!r} ({report.get('description', '')}): error {errors}"
     conf = report.get("mean_confidence")
     conf_text = f"{conf:.2f}" if isinstance(conf, float) else "?"
-    what = "detail" if plan.kind == "detail" else f"{len(plan.inputs.signals)} signals"
+    what = "detail" if plan.kind == "detail" else f"{len(plan.inputs.signals)} layers"
     return (f"carried {what} from {plan.source!r} to {plan.target!r} "
             f"({report.get('mode')}, mean confidence {conf_text})")
 

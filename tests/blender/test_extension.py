@@ -88,7 +88,7 @@ def test_installed_and_registered(overtone):
     for op in ("transfer_attributes", "transfer_detail", "preview_carry", "refresh_signals", "clear_cache"):
         assert hasattr(bpy.ops.overtone, op)
         assert getattr(bpy.ops.overtone, op).get_rna_type() is not None
-    for panel in ("OVERTONE_PT_main", "OVERTONE_PT_matching", "OVERTONE_PT_detail",
+    for panel in ("OVERTONE_PT_main", "OVERTONE_PT_method", "OVERTONE_PT_detail",
                   "OVERTONE_PT_report"):
         cls = getattr(bpy.types, panel)
         assert cls.bl_space_type == 'VIEW_3D' and cls.bl_region_type == 'UI'

@@ -8,6 +8,7 @@ detail expected here come from ``Pair`` itself; the bridge's own conventions
 """
 
 import importlib
+import json
 import time
 
 import bpy
@@ -92,7 +93,9 @@ def test_carry_signals_default_set_matches_the_engine(mod, scene):
     conf = read(mod, tgt, "overtone_confidence")
     np.testing.assert_allclose(conf[:, 1], pair.confidence, atol=1e-6)
     settings = scene.overtone
-    assert settings.report_ok and settings.report_mode == pair.correspondence.mode
+    assert json.loads(settings.report_json)["mode"] == pair.correspondence.mode
+    assert settings.report_ok and settings.report_mode == {"aligned": "Matched by position",
+                                                           "intrinsic": "Matched by shape"}[pair.correspondence.mode]
     assert settings.report_confidence == pytest.approx(float(pair.confidence.mean()), abs=1e-6)
     assert {i.name for i in settings.report_signals} == {"tint", "tint_bytes", "head"}
 
@@ -210,13 +213,6 @@ def test_preview_adds_carried_layers_to_the_source_only(mod, scene):
     assert len(mod.bridge.list_signals(tgt)) == 0
 
 
-def test_preview_needs_a_basis(mod, scene):
-    painted_pair(scene)
-    scene.overtone.basis = "POINTWISE"
-    with pytest.raises(RuntimeError, match="point to point carries every signal as it is"):
-        bpy.ops.overtone.preview_carry()
-
-
 def test_same_named_vertex_groups_are_landmarks(mod, scene):
     src, tgt = painted_pair(scene)
     pipeline = engine_module("jobs.pair")
@@ -225,7 +221,6 @@ def test_same_named_vertex_groups_are_landmarks(mod, scene):
         group = obj.vertex_groups.new(name=name)
         group.add(np.flatnonzero(positions[:, 0] < 0.1).tolist(), 1.0, 'REPLACE')
     assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
-    import json
     report = json.loads(scene.overtone.report_json)
     w_s = mod.bridge.read_vertex_groups(src, ["snout"])["snout"]
     w_t = mod.bridge.read_vertex_groups(tgt, ["snout"])["snout"]
@@ -290,6 +285,7 @@ def _bad_no_faces(scene):
 def _bad_missing_signal(scene):
     src, tgt = painted_pair(scene)
     bpy.ops.overtone.refresh_signals()
+    scene.overtone.signals["dirt"].use = True  # numbers are carried only when ticked
     src.data.attributes.remove(src.data.attributes["dirt"])
     return r"source 'Painted' has no signal 'dirt' \(it has 'tint', 'tint_bytes', 'flow', 'head'\)"
 
@@ -329,7 +325,7 @@ def test_background_run_matches_the_run_in_process(mod, scene):
     messages = []
     assert run.worker.wait(timeout=300).state == "done"
     assert mod.operators.step_run(run, scene.overtone, lambda k, m: messages.append((k, m))) == {'FINISHED'}
-    assert messages[0][0] == {'INFO'} and "carried 3 signals" in messages[0][1]
+    assert messages[0][0] == {'INFO'} and "carried 3 layers" in messages[0][1]
     in_worker = {n: read(mod, tgt, n) for n in ("tint", "tint_bytes", "head")}
     scene.overtone.replace_existing = True
     assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
@@ -340,7 +336,7 @@ def test_background_run_matches_the_run_in_process(mod, scene):
     run = mod.runs.BackgroundRun(mod.operators.plan_from_context(bpy.context, "transfer"))
     run.worker.wait(timeout=300)
     assert mod.operators.step_run(run, scene.overtone, lambda k, m: None) == {'FINISHED'}
-    assert scene.overtone.report_cache.startswith("pair memory")
+    assert scene.overtone.report_cache == "Reused the match of the last run on these meshes (kept in memory)."
 
 
 def test_step_run_reports_progress_while_running(mod, scene):

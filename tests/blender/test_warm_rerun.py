@@ -5,6 +5,7 @@ asserts what the report says was reused, and that the warm result is the
 engine's result for the new bake.
 """
 
+import json
 import time
 
 import bpy
@@ -28,17 +29,19 @@ def test_changed_bake_reuses_the_pair(overtone, scene):
     settings = scene.overtone
     settings.basis = "ORTHOPRODUCTS"
     bpy.ops.overtone.refresh_signals()
+    settings.signals["ao"].use = True  # a number attribute: carried when ticked
     started = time.perf_counter()
     assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
     cold = time.perf_counter() - started
-    assert settings.report_cache.startswith("pair new")
+    assert json.loads(settings.report_json)["pair"] == "new"
+    assert not settings.report_cache.startswith("Reused")
     # the artist re-bakes: new values, same meshes
     new = (1.0 - demo.creature_signals(s.uv)["dirt"]).astype(np.float32)
     src.data.attributes["ao"].data.foreach_set("value", new)
     started = time.perf_counter()
     assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
     warm = time.perf_counter() - started
-    assert settings.report_cache.startswith("pair memory")
+    assert settings.report_cache.startswith("Reused the match of the last run")
     print(f"\n30k pair ({len(s.vertices)} -> {len(t.vertices)}): cold {cold:.2f} s, "
           f"warm after a new bake {warm:.3f} s; report: {settings.report_cache}")
     # the engine's own Pair on the same arrays, its bases and map read from the
