@@ -7,6 +7,7 @@ import pytest
 import scipy.sparse as sp
 
 from engine.spectra.eigensolver import Eigenbasis, eigenbasis
+from engine.spectra.eigensolver import factor, final, inputs, iteration, ordering, shifted
 from engine.spectra.laplacian import cotangent_laplacian, intrinsic_laplacian, mass_matrix
 from tests.meshes import grid, icosphere, noisy_sphere
 
@@ -377,11 +378,8 @@ def test_interior_shift_inertia_matches_dense(noisy4):
 def test_interior_shift_falls_back(noisy4, monkeypatch):
     # A factor judged inaccurate sends the solver to the positive definite
     # shift below lambda_1; the answer is the same (dense LAPACK reference).
-    import importlib
-
-    eb = importlib.import_module("engine.spectra.eigensolver")
     L, m = noisy4
-    monkeypatch.setattr(eb, "_BACKWARD_MAX", 0.0)
+    monkeypatch.setattr(shifted, "BACKWARD_MAX", 0.0)
     E = eigenbasis(L, m, 30, method="sparse")
     assert "backward error" in E.info["interior_failed"] and "interior_shift" not in E.info
     D = eigenbasis(L, m, 30, method="dense")
@@ -391,16 +389,13 @@ def test_interior_shift_falls_back(noisy4, monkeypatch):
 def test_block_factor_solves_indefinite_system(noisy4):
     # The block LDL^T of an indefinite shifted Laplacian against SuperLU
     # (scipy.sparse.linalg.spsolve) on the same system.
-    import importlib
-
     import scipy.sparse.linalg as sla
 
-    eb = importlib.import_module("engine.spectra.eigensolver")
     L, m = noisy4
-    L, m = eb._validate(L, m)
+    L, m = inputs.validate_problem(L, m)
     A = (L - 20.0 * sp.diags(m)).tocsr()  # between eigenvalues 12 and 20 of the unit sphere
-    perm, bounds = eb._nested_dissection(eb._pattern(L), m)
-    fac = eb._BlockFactor(A, perm, bounds, definite=False)
+    perm, bounds = ordering.nested_dissection(ordering.graph_pattern(L), m)
+    fac = factor.BlockFactor(A, perm, bounds, definite=False)
     b = np.random.default_rng(1).standard_normal((len(m), 3))
     x = fac.solve(b)
     ref = sla.spsolve(A.tocsc(), b)
@@ -409,7 +404,7 @@ def test_block_factor_solves_indefinite_system(noisy4):
     lam = np.linalg.eigvalsh(L.toarray() / np.sqrt(m)[:, None] / np.sqrt(m)[None, :])
     assert fac.negative == int((lam < 20.0).sum())
     with pytest.raises(ValueError, match="not positive definite"):
-        eb._BlockFactor(A, perm, bounds, definite=True)
+        factor.BlockFactor(A, perm, bounds, definite=True)
 
 
 def test_not_psd_on_the_sparse_path(noisy4):
@@ -423,22 +418,19 @@ def test_indefinite_block_inverse_and_inertia():
     # numpy.linalg.inv, and the negative count against the eigenvalues
     # (Sylvester's law of inertia, Golub and Van Loan, Matrix Computations,
     # section 8.1, from memory).
-    import importlib
-
-    eb = importlib.import_module("engine.spectra.eigensolver")
     rng = np.random.default_rng(3)
     for s in (1, 2, 7, 40, 130):
         Q, _ = np.linalg.qr(rng.standard_normal((s, s)))
         w = rng.uniform(0.5, 2.0, s) * rng.choice([-1.0, 1.0], s)
         F = (Q * w[None, :]) @ Q.T
         F = (F + F.T) * 0.5
-        Finv, neg = eb._indefinite_inverse(F)
+        Finv, neg = factor.indefinite_inverse(F)
         assert neg == int((w < 0).sum())
         np.testing.assert_allclose(Finv, np.linalg.inv(F), rtol=0, atol=1e-10 * np.abs(Finv).max())
         assert np.array_equal(Finv, Finv.T)
     S = np.diag([1.0, -2.0, 0.0])  # exactly singular
-    with pytest.raises(eb._ShiftFailed, match="singular"):
-        eb._indefinite_inverse(S)
+    with pytest.raises(factor.ShiftFailed, match="singular"):
+        factor.indefinite_inverse(S)
 
 
 def test_failed_final_check_factors_again(noisy4, monkeypatch):
@@ -446,11 +438,8 @@ def test_failed_final_check_factors_again(noisy4, monkeypatch):
     # residuals found there miss tol, it must factor again and go on. Forced
     # here by reporting the first final check as failed; the answer must
     # still match the dense LAPACK solution.
-    import importlib
-
-    eb = importlib.import_module("engine.spectra.eigensolver")
     L, m = noisy4
-    real = eb._final_ritz
+    real = iteration.final_ritz
     calls = []
 
     def first_fails(*args):
@@ -459,15 +448,15 @@ def test_failed_final_check_factors_again(noisy4, monkeypatch):
         return (th, X, res * 1e3) if len(calls) == 1 else (th, X, res)
 
     remade = []
-    real_factor = eb._BlockFactor
+    real_factor = shifted.BlockFactor
 
     class Counting(real_factor):
         def __init__(self, *a, **k):
             remade.append(1)
             super().__init__(*a, **k)
 
-    monkeypatch.setattr(eb, "_final_ritz", first_fails)
-    monkeypatch.setattr(eb, "_BlockFactor", Counting)
+    monkeypatch.setattr(iteration, "final_ritz", first_fails)
+    monkeypatch.setattr(shifted, "BlockFactor", Counting)
     E = eigenbasis(L, m, 30, method="sparse")
     assert E.info["retries"] == 1 and len(calls) == 2
     assert len(remade) == 2  # the first factor, and the one after the failed check
@@ -495,10 +484,7 @@ def test_symmetric_values_on_an_asymmetric_pattern(noisy4):
 def test_sign_ties_go_to_the_lowest_index():
     # The sign convention (module docstring): the entry of largest magnitude
     # is positive, the lowest index deciding between +a and -a.
-    import importlib
-
-    eb = importlib.import_module("engine.spectra.eigensolver")
     X = np.array([[0.5, -1.0, 1.0, 0.0],
                   [-1.0, 1.0, -0.2, 0.0],
                   [1.0, 0.3, -1.0, 0.0]])
-    np.testing.assert_array_equal(eb._signs(X), [-1.0, -1.0, 1.0, 1.0])
+    np.testing.assert_array_equal(final.signs(X), [-1.0, -1.0, 1.0, 1.0])
