@@ -488,3 +488,107 @@ def test_sign_ties_go_to_the_lowest_index():
                   [-1.0, 1.0, -0.2, 0.0],
                   [1.0, 0.3, -1.0, 0.0]])
     np.testing.assert_array_equal(final.signs(X), [-1.0, -1.0, 1.0, 1.0])
+
+
+# ------------------------------------------------------------ fallback to eigsh
+
+def _never_converges(monkeypatch):
+    # The own solver's final check sees residuals 1e3 times too large and
+    # gives up at once: a genuine "did not converge" result.
+    real = iteration.final_ritz
+
+    def inflated(*args):
+        th, X, res = real(*args)
+        return th, X, res * 1e3
+
+    monkeypatch.setattr(iteration, "final_ritz", inflated)
+    monkeypatch.setattr(iteration, "MAX_RETRIES", 0)
+
+
+def test_fallback_on_non_convergence_sphere(sphere4, monkeypatch):
+    # Same analytic check as test_unit_sphere_spectrum (l(l+1), multiplicity
+    # 2l+1; Chavel 1984, from memory), now answered by scipy's eigsh after the
+    # own solver reports no convergence.
+    _never_converges(monkeypatch)
+    L, m = sphere4
+    l, exact = _sphere_degrees(5)
+    E = eigenbasis(L, m, 36)
+    assert "did not converge" in E.info["fallback"] and E.info["fallback_method"] == "eigsh"
+    assert E.info["converged"] and E.info["own_solver"]["retries"] == 0
+    assert E.eigenvalues[0] == 0.0
+    rel = np.abs(E.eigenvalues[1:] / exact[1:] - 1)
+    assert rel.max() < 1.5e-2, rel.max()
+    assert rel[:24].max() < 8e-3, rel[:24].max()
+    candidates = np.arange(7) * (np.arange(7) + 1.0)
+    nearest = np.argmin(np.abs(E.eigenvalues[:, None] - candidates[None, :]), axis=1)
+    np.testing.assert_array_equal(nearest, l)  # no cluster member dropped
+    assert E.residuals.max() < 1e-5
+    G = E.eigenvectors.T @ (m[:, None] * E.eigenvectors)
+    assert np.abs(G - np.eye(36)).max() < 1e-10
+    idx = np.argmax(np.abs(E.eigenvectors), axis=0)
+    assert (E.eigenvectors[idx, np.arange(36)] > 0).all()
+
+
+def test_fallback_on_internal_failure_rectangle(monkeypatch):
+    # Neumann rectangle 2 x 1: pi^2 (m^2/a^2 + n^2/b^2) (separation of
+    # variables, from memory), as in test_neumann_rectangle, answered by eigsh
+    # after the own solver raised.
+    from engine.spectra.eigensolver import fallback
+
+    def broken(pb):
+        raise np.linalg.LinAlgError("Matrix is not positive definite")
+
+    monkeypatch.setattr(fallback, "solve_shift_invert", broken)
+    a, b = 2.0, 1.0
+    L, m = _ops(*grid(60, 30, a, b))
+    E = eigenbasis(L, m, 20)
+    assert "failed (LinAlgError" in E.info["fallback"] and E.info["fallback_method"] == "eigsh"
+    mm, nn = np.meshgrid(np.arange(12), np.arange(12))
+    exact = np.sort((np.pi ** 2 * (mm ** 2 / a ** 2 + nn ** 2 / b ** 2)).ravel())[:20]
+    rel = np.abs(E.eigenvalues[1:] / exact[1:] - 1)
+    assert rel.max() < 1e-2, rel.max()
+    assert E.eigenvalues[0] == 0.0 and E.residuals.max() < 1e-5
+
+
+def test_fallback_failures_are_clear_errors(noisy4, monkeypatch):
+    from engine.spectra.eigensolver import fallback
+
+    L, m = noisy4
+
+    def broken(pb):
+        raise np.linalg.LinAlgError("Matrix is not positive definite")
+
+    def singular(*args, **kwargs):
+        raise RuntimeError("Factor is exactly singular")
+
+    def odd(*args, **kwargs):
+        raise ZeroDivisionError("division by zero")
+
+    monkeypatch.setattr(fallback, "solve_shift_invert", broken)
+    monkeypatch.setattr(fallback.sla, "eigsh", singular)
+    with pytest.raises(RuntimeError, match=r"eigensolver failed: the block Lanczos solver failed .*"
+                                           r"eigsh\) failed: RuntimeError: Factor is exactly singular"):
+        eigenbasis(L, m, 10, method="sparse")
+    monkeypatch.setattr(fallback.sla, "eigsh", odd)
+    with pytest.raises(RuntimeError, match="eigsh\\) failed: ZeroDivisionError"):
+        eigenbasis(L, m, 10, method="sparse")
+    # the own solver's unconverged answer is kept when the fallback fails too
+    monkeypatch.setattr(fallback, "solve_shift_invert", shifted.solve_shift_invert)
+    _never_converges(monkeypatch)
+    E = eigenbasis(L, m, 10, method="sparse")
+    assert not E.info["converged"] and "ZeroDivisionError" in E.info["fallback_failed"]
+    assert E.eigenvalues.shape == (10,) and np.isfinite(E.eigenvectors).all()
+
+
+def test_fallback_on_too_few_vertices_for_arpack(small):
+    # ARPACK needs fewer than n - 1 pairs; there the fallback solves densely
+    # (scipy.linalg.eigh, the dense reference).
+    from engine.spectra.eigensolver import fallback
+
+    L, m = inputs.validate_problem(*small)
+    n = len(m)
+    Z = inputs.constant_modes(np.zeros(n, np.int64), 1, m)
+    sol = fallback.solve_with_eigsh(shifted.Problem(L=L, m=m, Z=Z, p=n, k=n - 1, seed=0, tol=1e-5))
+    assert sol.stats["fallback_method"] == "dense"
+    D = eigenbasis(L, m, n - 1, method="dense")
+    np.testing.assert_allclose(np.maximum(sol.eigenvalues[:n - 1], 0), D.eigenvalues, rtol=1e-10, atol=1e-10)

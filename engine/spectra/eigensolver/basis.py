@@ -68,7 +68,8 @@ class Eigenbasis:
         if not np.isfinite(f).all():
             raise ValueError("signal has non-finite values")
         w = f * self.mass if f.ndim == 1 else f * self.mass[:, None]
-        return self.eigenvectors.T @ w
+        out: Array = self.eigenvectors.T @ w
+        return out
 
     def reconstruct(self, coefficients: Any) -> Array:
         """Signal ``Phi c`` from coefficients.

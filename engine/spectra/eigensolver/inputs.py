@@ -84,16 +84,16 @@ def check_request(k: Any, n: int, method: str, tol: float) -> int:
     """``k`` as an int after checking it, ``method`` and ``tol`` (ValueError otherwise)."""
     if isinstance(k, bool) or not isinstance(k, (int, np.integer)):
         raise ValueError(f"k must be an integer, got {k!r}")
-    k = int(k)
-    if k < 1:
-        raise ValueError(f"k must be at least 1, got k={k}")
-    if k >= n:
-        raise ValueError(f"k={k} eigenpairs requested but the mesh has only n={n} vertices")
+    count = int(k)
+    if count < 1:
+        raise ValueError(f"k must be at least 1, got k={count}")
+    if count >= n:
+        raise ValueError(f"k={count} eigenpairs requested but the mesh has only n={n} vertices")
     if method not in METHODS:
         raise ValueError(f"unknown method {method!r}; expected 'auto', 'dense' or 'sparse'")
     if not (np.isfinite(tol) and tol > 0):
         raise ValueError(f"tol must be a positive number, got {tol!r}")
-    return k
+    return count
 
 
 def constant_modes(labels: Array, ncomp: int, m: Array) -> Array:
