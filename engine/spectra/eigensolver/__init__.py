@@ -64,7 +64,7 @@ from .shifted import Problem, Solution
 __all__ = ["DENSE_MAX", "SOLVER_VERSION", "Eigenbasis", "eigenbasis"]
 
 SOLVER_VERSION = 2  # 2: the package with the eigsh fallback
-# Up to this many vertices the dense LAPACK solver is used.
+# Up to this many vertices the dense LAPACK solver is used (docs/measurements.md).
 DENSE_MAX = 1000
 
 
