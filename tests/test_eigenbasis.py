@@ -529,20 +529,22 @@ def test_fallback_on_non_convergence_sphere(sphere4, monkeypatch):
     assert (E.eigenvectors[idx, np.arange(36)] > 0).all()
 
 
-def test_fallback_on_internal_failure_rectangle(monkeypatch):
+@pytest.mark.parametrize("error", [np.linalg.LinAlgError("Matrix is not positive definite"),
+                                   IndexError("index 7 is out of bounds")])
+def test_fallback_on_internal_failure_rectangle(monkeypatch, error):
     # Neumann rectangle 2 x 1: pi^2 (m^2/a^2 + n^2/b^2) (separation of
     # variables, from memory), as in test_neumann_rectangle, answered by eigsh
     # after the own solver raised.
     from engine.spectra.eigensolver import fallback
 
     def broken(pb):
-        raise np.linalg.LinAlgError("Matrix is not positive definite")
+        raise error
 
     monkeypatch.setattr(fallback, "solve_shift_invert", broken)
     a, b = 2.0, 1.0
     L, m = _ops(*grid(60, 30, a, b))
     E = eigenbasis(L, m, 20)
-    assert "failed (LinAlgError" in E.info["fallback"] and E.info["fallback_method"] == "eigsh"
+    assert f"failed ({type(error).__name__}" in E.info["fallback"] and E.info["fallback_method"] == "eigsh"
     mm, nn = np.meshgrid(np.arange(12), np.arange(12))
     exact = np.sort((np.pi ** 2 * (mm ** 2 / a ** 2 + nn ** 2 / b ** 2)).ravel())[:20]
     rel = np.abs(E.eigenvalues[1:] / exact[1:] - 1)
@@ -564,6 +566,12 @@ def test_fallback_failures_are_clear_errors(noisy4, monkeypatch):
     def odd(*args, **kwargs):
         raise ZeroDivisionError("division by zero")
 
+    def bad_input(pb):
+        raise ValueError("stiffness matrix is not positive semidefinite")
+
+    monkeypatch.setattr(fallback, "solve_shift_invert", bad_input)
+    with pytest.raises(ValueError, match="not positive semidefinite"):  # the input's fault: no fallback
+        eigenbasis(L, m, 10, method="sparse")
     monkeypatch.setattr(fallback, "solve_shift_invert", broken)
     monkeypatch.setattr(fallback.sla, "eigsh", singular)
     with pytest.raises(RuntimeError, match=r"eigensolver failed: the block Lanczos solver failed .*"

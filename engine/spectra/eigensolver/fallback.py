@@ -18,7 +18,6 @@ import scipy.sparse.linalg as sla
 from numpy.typing import NDArray
 
 from .dense import exact_constants, solve_dense
-from .factor import ShiftFailed
 from .final import pair_residuals
 from .shifted import Problem, Solution, solve_shift_invert
 
@@ -34,17 +33,10 @@ def solve_sparse(pb: Problem) -> Solution:
     """The own solver's answer when it converges, else the fallback's
     (``stats["fallback"]`` says why). A ValueError about the input (a
     stiffness that is not positive semidefinite) passes through; a failure
-    of both solvers is a RuntimeError."""
-    own: Solution | None = None
-    try:
-        own = solve_shift_invert(pb)
-    except (ShiftFailed, np.linalg.LinAlgError, ArithmeticError) as e:
-        reason = f"the block Lanczos solver failed ({type(e).__name__}: {e})"
-    else:
-        if own.stats.get("converged"):
-            return own
-        worst = float(own.residuals.max()) if own.residuals is not None else float("nan")
-        reason = f"the block Lanczos solver did not converge (worst residual {worst:.2g}, tol {pb.tol:g})"
+    of both solvers is a RuntimeError naming both."""
+    own, reason = run_own(pb)
+    if own is not None and reason is None:
+        return own
     try:
         fb = solve_with_eigsh(pb)
     except RuntimeError as e:
@@ -59,6 +51,23 @@ def solve_sparse(pb: Problem) -> Solution:
                                                                     "worst_residual_estimate")
                                   if key in own.stats}
     return fb
+
+
+def run_own(pb: Problem) -> tuple[Solution | None, str | None]:
+    """The own solver's answer (None if it failed inside) and why the
+    fallback must run (None when the answer converged)."""
+    try:
+        own = solve_shift_invert(pb)
+    except MemoryError:
+        raise
+    except Exception as e:  # the narrow interface: an internal failure goes to the fallback
+        if isinstance(e, ValueError) and not isinstance(e, np.linalg.LinAlgError):
+            raise  # a problem with the input, not with the solver
+        return None, f"the block Lanczos solver failed ({type(e).__name__}: {e})"
+    if own.stats.get("converged"):
+        return own, None
+    worst = float(own.residuals.max()) if own.residuals is not None else float("nan")
+    return own, f"the block Lanczos solver did not converge (worst residual {worst:.2g}, tol {pb.tol:g})"
 
 
 def solve_with_eigsh(pb: Problem) -> Solution:
