@@ -319,6 +319,7 @@ def wrap_up(L: sp.csr_matrix, m: Array, Z: Array, Zt: Array, st: Lanczos, plan: 
                   "shift": shift, "worst_residual_estimate": st.worst, "retries": int(st.retries),
                   **st.times})
     st.Qb = st.H = np.empty((0, 0))  # the basis is not needed any more
+    st.F = None
     # The pairs beyond the needed ones (kept only for the cluster check at the
     # cut) are reported by their Ritz values, without vectors.
     extra = np.sort(1.0 / mu[plan.need:plan.want] - shift)
