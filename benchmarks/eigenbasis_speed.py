@@ -98,7 +98,7 @@ def child(side: str, n: int, k: int, threads: int, tol, out: str, functions: str
             lam, X = E.eigenvalues, E.eigenvectors
             extra = {key: (round(E.info[key], 2) if isinstance(E.info[key], float) else E.info[key])
                      for key in ("solves", "block", "cycles", "t_order", "t_factor", "t_solve", "t_orth",
-                                 "t_rayleigh_ritz", "factor_nnz") if key in E.info}
+                                 "t_rayleigh_ritz", "factor_nnz", "converged", "fallback") if key in E.info}
         else:
             sigma = -1e-6 * float(L.diagonal().mean() / m.sum())
             lam, X = sla.eigsh(L, k=k, M=sp.diags(m), sigma=sigma, which="LM", tol=0)

@@ -137,3 +137,27 @@ def test_cached_eigenbasis_recomputes_bad_entry(tmp_path, ops):
     assert b.info["cache"] == "miss"
     np.testing.assert_array_equal(a.eigenvectors, b.eigenvectors)
     assert cached_eigenbasis(L, m, 8, cache=c).info["cache"] == "hit"  # rewritten
+
+
+def test_changed_solver_version_misses_the_eigenbasis_cache(tmp_path, monkeypatch):
+    # Shape keys its cached eigenbases by the solver's SOLVER_VERSION: a new
+    # session on the same mesh reads the stored basis, but after a solver
+    # change (a new version) it computes afresh instead of trusting the old one.
+    import engine.spectra.shape as shape_module
+    from engine.spectra.shape import Shape
+
+    v, f = icosphere(2)
+    a = Shape(v, f, cache=tmp_path)
+    first = a.eigenbasis(10)
+    assert a.hits["computed"] == 1
+    b = Shape(v, f, cache=tmp_path)
+    again = b.eigenbasis(10)
+    assert b.hits["disk"] == 1 and b.hits["computed"] == 0
+    np.testing.assert_array_equal(again.eigenvectors, first.eigenvectors)
+    monkeypatch.setattr(shape_module, "SOLVER_VERSION", shape_module.SOLVER_VERSION + 1)
+    c = Shape(v, f, cache=tmp_path)
+    c.eigenbasis(10)
+    assert c.hits["disk"] == 0 and c.hits["computed"] == 1
+    d = Shape(v, f, cache=tmp_path)
+    d.eigenbasis(10)
+    assert d.hits["disk"] == 1  # the new version's entry is stored beside the old one

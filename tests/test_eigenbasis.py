@@ -7,6 +7,7 @@ import pytest
 import scipy.sparse as sp
 
 from engine.spectra.eigensolver import Eigenbasis, eigenbasis
+from engine.spectra.eigensolver import factor, final, inputs, iteration, ordering, shifted
 from engine.spectra.laplacian import cotangent_laplacian, intrinsic_laplacian, mass_matrix
 from tests.meshes import grid, icosphere, noisy_sphere
 
@@ -377,11 +378,8 @@ def test_interior_shift_inertia_matches_dense(noisy4):
 def test_interior_shift_falls_back(noisy4, monkeypatch):
     # A factor judged inaccurate sends the solver to the positive definite
     # shift below lambda_1; the answer is the same (dense LAPACK reference).
-    import importlib
-
-    eb = importlib.import_module("engine.spectra.eigensolver")
     L, m = noisy4
-    monkeypatch.setattr(eb, "_BACKWARD_MAX", 0.0)
+    monkeypatch.setattr(shifted, "BACKWARD_MAX", 0.0)
     E = eigenbasis(L, m, 30, method="sparse")
     assert "backward error" in E.info["interior_failed"] and "interior_shift" not in E.info
     D = eigenbasis(L, m, 30, method="dense")
@@ -391,16 +389,13 @@ def test_interior_shift_falls_back(noisy4, monkeypatch):
 def test_block_factor_solves_indefinite_system(noisy4):
     # The block LDL^T of an indefinite shifted Laplacian against SuperLU
     # (scipy.sparse.linalg.spsolve) on the same system.
-    import importlib
-
     import scipy.sparse.linalg as sla
 
-    eb = importlib.import_module("engine.spectra.eigensolver")
     L, m = noisy4
-    L, m = eb._validate(L, m)
+    L, m = inputs.validate_problem(L, m)
     A = (L - 20.0 * sp.diags(m)).tocsr()  # between eigenvalues 12 and 20 of the unit sphere
-    perm, bounds = eb._nested_dissection(eb._pattern(L), m)
-    fac = eb._BlockFactor(A, perm, bounds, definite=False)
+    perm, bounds = ordering.nested_dissection(ordering.graph_pattern(L), m)
+    fac = factor.BlockFactor(A, perm, bounds, definite=False)
     b = np.random.default_rng(1).standard_normal((len(m), 3))
     x = fac.solve(b)
     ref = sla.spsolve(A.tocsc(), b)
@@ -409,7 +404,7 @@ def test_block_factor_solves_indefinite_system(noisy4):
     lam = np.linalg.eigvalsh(L.toarray() / np.sqrt(m)[:, None] / np.sqrt(m)[None, :])
     assert fac.negative == int((lam < 20.0).sum())
     with pytest.raises(ValueError, match="not positive definite"):
-        eb._BlockFactor(A, perm, bounds, definite=True)
+        factor.BlockFactor(A, perm, bounds, definite=True)
 
 
 def test_not_psd_on_the_sparse_path(noisy4):
@@ -423,22 +418,19 @@ def test_indefinite_block_inverse_and_inertia():
     # numpy.linalg.inv, and the negative count against the eigenvalues
     # (Sylvester's law of inertia, Golub and Van Loan, Matrix Computations,
     # section 8.1, from memory).
-    import importlib
-
-    eb = importlib.import_module("engine.spectra.eigensolver")
     rng = np.random.default_rng(3)
     for s in (1, 2, 7, 40, 130):
         Q, _ = np.linalg.qr(rng.standard_normal((s, s)))
         w = rng.uniform(0.5, 2.0, s) * rng.choice([-1.0, 1.0], s)
         F = (Q * w[None, :]) @ Q.T
         F = (F + F.T) * 0.5
-        Finv, neg = eb._indefinite_inverse(F)
+        Finv, neg = factor.indefinite_inverse(F)
         assert neg == int((w < 0).sum())
         np.testing.assert_allclose(Finv, np.linalg.inv(F), rtol=0, atol=1e-10 * np.abs(Finv).max())
         assert np.array_equal(Finv, Finv.T)
     S = np.diag([1.0, -2.0, 0.0])  # exactly singular
-    with pytest.raises(eb._ShiftFailed, match="singular"):
-        eb._indefinite_inverse(S)
+    with pytest.raises(factor.ShiftFailed, match="singular"):
+        factor.indefinite_inverse(S)
 
 
 def test_failed_final_check_factors_again(noisy4, monkeypatch):
@@ -446,11 +438,8 @@ def test_failed_final_check_factors_again(noisy4, monkeypatch):
     # residuals found there miss tol, it must factor again and go on. Forced
     # here by reporting the first final check as failed; the answer must
     # still match the dense LAPACK solution.
-    import importlib
-
-    eb = importlib.import_module("engine.spectra.eigensolver")
     L, m = noisy4
-    real = eb._final_ritz
+    real = iteration.final_ritz
     calls = []
 
     def first_fails(*args):
@@ -459,15 +448,15 @@ def test_failed_final_check_factors_again(noisy4, monkeypatch):
         return (th, X, res * 1e3) if len(calls) == 1 else (th, X, res)
 
     remade = []
-    real_factor = eb._BlockFactor
+    real_factor = shifted.BlockFactor
 
     class Counting(real_factor):
         def __init__(self, *a, **k):
             remade.append(1)
             super().__init__(*a, **k)
 
-    monkeypatch.setattr(eb, "_final_ritz", first_fails)
-    monkeypatch.setattr(eb, "_BlockFactor", Counting)
+    monkeypatch.setattr(iteration, "final_ritz", first_fails)
+    monkeypatch.setattr(shifted, "BlockFactor", Counting)
     E = eigenbasis(L, m, 30, method="sparse")
     assert E.info["retries"] == 1 and len(calls) == 2
     assert len(remade) == 2  # the first factor, and the one after the failed check
@@ -495,10 +484,119 @@ def test_symmetric_values_on_an_asymmetric_pattern(noisy4):
 def test_sign_ties_go_to_the_lowest_index():
     # The sign convention (module docstring): the entry of largest magnitude
     # is positive, the lowest index deciding between +a and -a.
-    import importlib
-
-    eb = importlib.import_module("engine.spectra.eigensolver")
     X = np.array([[0.5, -1.0, 1.0, 0.0],
                   [-1.0, 1.0, -0.2, 0.0],
                   [1.0, 0.3, -1.0, 0.0]])
-    np.testing.assert_array_equal(eb._signs(X), [-1.0, -1.0, 1.0, 1.0])
+    np.testing.assert_array_equal(final.signs(X), [-1.0, -1.0, 1.0, 1.0])
+
+
+# ------------------------------------------------------------ fallback to eigsh
+
+def _never_converges(monkeypatch):
+    # The own solver's final check sees residuals 1e3 times too large and
+    # gives up at once: a genuine "did not converge" result.
+    real = iteration.final_ritz
+
+    def inflated(*args):
+        th, X, res = real(*args)
+        return th, X, res * 1e3
+
+    monkeypatch.setattr(iteration, "final_ritz", inflated)
+    monkeypatch.setattr(iteration, "MAX_RETRIES", 0)
+
+
+def test_fallback_on_non_convergence_sphere(sphere4, monkeypatch):
+    # Same analytic check as test_unit_sphere_spectrum (l(l+1), multiplicity
+    # 2l+1; Chavel 1984, from memory), now answered by scipy's eigsh after the
+    # own solver reports no convergence.
+    _never_converges(monkeypatch)
+    L, m = sphere4
+    l, exact = _sphere_degrees(5)
+    E = eigenbasis(L, m, 36)
+    assert "did not converge" in E.info["fallback"] and E.info["fallback_method"] == "eigsh"
+    assert E.info["converged"] and E.info["own_solver"]["retries"] == 0
+    assert E.eigenvalues[0] == 0.0
+    rel = np.abs(E.eigenvalues[1:] / exact[1:] - 1)
+    assert rel.max() < 1.5e-2, rel.max()
+    assert rel[:24].max() < 8e-3, rel[:24].max()
+    candidates = np.arange(7) * (np.arange(7) + 1.0)
+    nearest = np.argmin(np.abs(E.eigenvalues[:, None] - candidates[None, :]), axis=1)
+    np.testing.assert_array_equal(nearest, l)  # no cluster member dropped
+    assert E.residuals.max() < 1e-5
+    G = E.eigenvectors.T @ (m[:, None] * E.eigenvectors)
+    assert np.abs(G - np.eye(36)).max() < 1e-10
+    idx = np.argmax(np.abs(E.eigenvectors), axis=0)
+    assert (E.eigenvectors[idx, np.arange(36)] > 0).all()
+
+
+@pytest.mark.parametrize("error", [np.linalg.LinAlgError("Matrix is not positive definite"),
+                                   IndexError("index 7 is out of bounds")])
+def test_fallback_on_internal_failure_rectangle(monkeypatch, error):
+    # Neumann rectangle 2 x 1: pi^2 (m^2/a^2 + n^2/b^2) (separation of
+    # variables, from memory), as in test_neumann_rectangle, answered by eigsh
+    # after the own solver raised.
+    from engine.spectra.eigensolver import fallback
+
+    def broken(pb):
+        raise error
+
+    monkeypatch.setattr(fallback, "solve_shift_invert", broken)
+    a, b = 2.0, 1.0
+    L, m = _ops(*grid(60, 30, a, b))
+    E = eigenbasis(L, m, 20)
+    assert f"failed ({type(error).__name__}" in E.info["fallback"] and E.info["fallback_method"] == "eigsh"
+    mm, nn = np.meshgrid(np.arange(12), np.arange(12))
+    exact = np.sort((np.pi ** 2 * (mm ** 2 / a ** 2 + nn ** 2 / b ** 2)).ravel())[:20]
+    rel = np.abs(E.eigenvalues[1:] / exact[1:] - 1)
+    assert rel.max() < 1e-2, rel.max()
+    assert E.eigenvalues[0] == 0.0 and E.residuals.max() < 1e-5
+
+
+def test_fallback_failures_are_clear_errors(noisy4, monkeypatch):
+    from engine.spectra.eigensolver import fallback
+
+    L, m = noisy4
+
+    def broken(pb):
+        raise np.linalg.LinAlgError("Matrix is not positive definite")
+
+    def singular(*args, **kwargs):
+        raise RuntimeError("Factor is exactly singular")
+
+    def odd(*args, **kwargs):
+        raise ZeroDivisionError("division by zero")
+
+    def bad_input(pb):
+        raise ValueError("stiffness matrix is not positive semidefinite")
+
+    monkeypatch.setattr(fallback, "solve_shift_invert", bad_input)
+    with pytest.raises(ValueError, match="not positive semidefinite"):  # the input's fault: no fallback
+        eigenbasis(L, m, 10, method="sparse")
+    monkeypatch.setattr(fallback, "solve_shift_invert", broken)
+    monkeypatch.setattr(fallback.sla, "eigsh", singular)
+    with pytest.raises(RuntimeError, match=r"eigensolver failed: the block Lanczos solver failed .*"
+                                           r"eigsh\) failed: RuntimeError: Factor is exactly singular"):
+        eigenbasis(L, m, 10, method="sparse")
+    monkeypatch.setattr(fallback.sla, "eigsh", odd)
+    with pytest.raises(RuntimeError, match="eigsh\\) failed: ZeroDivisionError"):
+        eigenbasis(L, m, 10, method="sparse")
+    # the own solver's unconverged answer is kept when the fallback fails too
+    monkeypatch.setattr(fallback, "solve_shift_invert", shifted.solve_shift_invert)
+    _never_converges(monkeypatch)
+    E = eigenbasis(L, m, 10, method="sparse")
+    assert not E.info["converged"] and "ZeroDivisionError" in E.info["fallback_failed"]
+    assert E.eigenvalues.shape == (10,) and np.isfinite(E.eigenvectors).all()
+
+
+def test_fallback_on_too_few_vertices_for_arpack(small):
+    # ARPACK needs fewer than n - 1 pairs; there the fallback solves densely
+    # (scipy.linalg.eigh, the dense reference).
+    from engine.spectra.eigensolver import fallback
+
+    L, m = inputs.validate_problem(*small)
+    n = len(m)
+    Z = inputs.constant_modes(np.zeros(n, np.int64), 1, m)
+    sol = fallback.solve_with_eigsh(shifted.Problem(L=L, m=m, Z=Z, p=n, k=n - 1, seed=0, tol=1e-5))
+    assert sol.stats["fallback_method"] == "dense"
+    D = eigenbasis(L, m, n - 1, method="dense")
+    np.testing.assert_allclose(np.maximum(sol.eigenvalues[:n - 1], 0), D.eigenvalues, rtol=1e-10, atol=1e-10)

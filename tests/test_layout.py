@@ -16,8 +16,6 @@ MAX_LINES, MAX_PARAMETERS = 80, 8
 # The goal is an empty list.
 KNOWN_LONG: set[str] = {
     "engine/matching/correspondence.py:correspond",
-    "engine/spectra/eigensolver.py:_shift_invert",
-    "engine/spectra/eigensolver.py:__init__",
     "engine/spectra/robust.py:_flip_to_delaunay",
     "engine/intake/preparation.py:prepare_mesh",
     "engine/matching/correspondence.py:_align_refine",

@@ -11,16 +11,21 @@ carries per-vertex results back to every original vertex.
 
 from __future__ import annotations
 
+from typing import Any
+
 import numpy as np
+from numpy.typing import NDArray
 
 from ..common.cache import Cache, geometry_key
-from .eigensolver import Eigenbasis, eigenbasis
+from .eigensolver import SOLVER_VERSION, Eigenbasis, eigenbasis
 from ..intake.preparation import prepare_mesh
 from .discretization import mesh_operators
 from .descriptors import heat_kernel_rows, heat_kernel_signature, wave_kernel_signature
 from .products import ProductBasis, default_product_tolerance, orthogonal_products
 
 __all__ = ["Shape"]
+
+Array = NDArray[Any]
 
 
 class Shape:
@@ -35,7 +40,9 @@ class Shape:
     corners : (c,) int array, optional
     sizes : (p,) int array, optional
     cache : Cache or path-like, optional
-        Folder cache for eigenbases and products.
+        Folder cache for eigenbases and products. Eigenbasis entries are keyed
+        by the geometry, ``k``, the operator variant and the solver's
+        ``SOLVER_VERSION``, so a changed solver never reads an old basis.
 
     Attributes
     ----------
@@ -47,18 +54,20 @@ class Shape:
         disk, or computed.
     """
 
-    def __init__(self, vertices, faces=None, *, corners=None, sizes=None, cache=None):
+    def __init__(self, vertices: Any, faces: Any = None, *, corners: Any = None, sizes: Any = None,
+                 cache: Any = None) -> None:
         self.prepared = prepare_mesh(vertices, faces, corners=corners, sizes=sizes)
-        self.vertices = self.prepared.vertices
-        self.faces = self.prepared.faces
+        self.vertices: Array = self.prepared.vertices
+        self.faces: Array = self.prepared.faces
         if cache is not None and not isinstance(cache, Cache):
-            cache = Cache(cache)
-        self.cache = cache
+            open_cache: Any = Cache  # Cache(folder) is not annotated yet
+            cache = open_cache(cache)
+        self.cache: Cache | None = cache
         self.key = geometry_key(self.vertices, self.faces)
         self.hits = {"memory": 0, "disk": 0, "computed": 0}
-        self._operators = None
+        self._operators: Any = None
         self._eig: Eigenbasis | None = None
-        self._products: dict = {}
+        self._products: dict[tuple[int, int, float], ProductBasis] = {}
 
     # ------------------------------------------------------------------ sizes
     @property
@@ -70,21 +79,23 @@ class Shape:
         return int(self.prepared.n_original)
 
     @property
-    def operators(self):
-        """Stiffness and mass, robust (intrinsic) variant when the mesh needs it (``engine.operators``)."""
+    def operators(self) -> Any:
+        """Stiffness and mass, the robust (intrinsic) variant when the mesh needs it
+        (:func:`.discretization.mesh_operators`)."""
         if self._operators is None:
             self._operators = mesh_operators(self.vertices, self.faces, robust="auto")
         return self._operators
 
     @property
-    def stiffness(self):
+    def stiffness(self) -> Any:
         """(n, n) csr_matrix, cotangent stiffness, positive semidefinite."""
         return self.operators.stiffness
 
     @property
-    def mass(self) -> np.ndarray:
+    def mass(self) -> Array:
         """(n,) float64 lumped barycentric mass; sums to the area."""
-        return self.operators.mass
+        mass: Array = self.operators.mass
+        return mass
 
     @property
     def area(self) -> float:
@@ -106,7 +117,7 @@ class Shape:
             self.hits["memory"] += 1
             return self._eig if self._eig.k == k else self._eig.truncate(k)
         key = geometry_key(self.vertices, self.faces, what="eigenbasis", k=k,
-                           robust=bool(self.operators.robust))
+                           robust=bool(self.operators.robust), solver=SOLVER_VERSION)
         if self.cache is not None:
             n = self.n_vertices
             stored = self.cache.load(key, {"eigenvalues": (k,), "eigenvectors": (n, k), "residuals": (k,)})
@@ -125,7 +136,7 @@ class Shape:
     def products(self, K: int, order: int, *, tol: float | None = None) -> ProductBasis:
         """Mass-orthonormal products of the first ``K`` eigenfunctions up to ``order``.
 
-        ``tol`` defaults to ``engine.products.default_product_tolerance`` for the vertex count.
+        ``tol`` defaults to :func:`.products.default_product_tolerance` for the vertex count.
         """
         if tol is None:
             tol = default_product_tolerance(self.n_vertices)
@@ -154,43 +165,43 @@ class Shape:
         return pb
 
     # ------------------------------------------------------------------ descriptors
-    def hks(self, k: int = 60, count: int = 16, *, scale_invariant: bool = True) -> np.ndarray:
+    def hks(self, k: int = 60, count: int = 16) -> Array:
         """Heat kernel signature, (n, count), on the area-normalised shape."""
         lam, phi = self.normalised_basis(k)
         return heat_kernel_signature(lam, phi, n_times=count)
 
-    def wks(self, k: int = 60, count: int = 16) -> np.ndarray:
+    def wks(self, k: int = 60, count: int = 16) -> Array:
         """Wave kernel signature, (n, count)."""
         lam, phi = self.normalised_basis(k)
         return wave_kernel_signature(lam, phi, n_energies=count)
 
-    def heat_rows(self, k: int, idx, times) -> np.ndarray:
+    def heat_rows(self, k: int, idx: Any, times: Any) -> Array:
         """Heat kernel rows of the vertices ``idx`` at ``times`` (area-normalised)."""
         lam, phi = self.normalised_basis(k)
         return heat_kernel_rows(lam, phi, idx, times)
 
-    def normalised_basis(self, k: int) -> tuple[np.ndarray, np.ndarray]:
+    def normalised_basis(self, k: int) -> tuple[Array, Array]:
         """Eigenpairs of the shape scaled to unit area: ``(lambda * A, phi * sqrt(A))``."""
         eb = self.eigenbasis(k)
         a = self.area
         return eb.eigenvalues[:k] * a, eb.eigenvectors[:, :k] * np.sqrt(a)
 
     # ------------------------------------------------------------------ maps
-    def restore(self, values) -> np.ndarray:
+    def restore(self, values: Any) -> Array:
         """Per-clean-vertex values -> per-original-vertex values."""
         return self.prepared.restore(values)
 
-    def to_cleaned(self, values) -> np.ndarray:
+    def to_cleaned(self, values: Any) -> Array:
         """Per-original-vertex values -> per-clean-vertex values."""
         return self.prepared.to_cleaned(values)
 
-    def original_index(self, idx) -> np.ndarray:
+    def original_index(self, idx: Any) -> Array:
         """Clean indices of original vertex indices; ValueError for dropped ones."""
         idx = np.asarray(idx, dtype=np.int64)
         if idx.size and (idx.min() < 0 or idx.max() >= self.n_original):
             raise ValueError(f"vertex index {int(idx.max() if idx.max() >= self.n_original else idx.min())} "
                              f"out of range for {self.n_original} vertices")
-        clean = np.asarray(self.prepared.to_clean)[idx]
+        clean: Array = np.asarray(self.prepared.to_clean)[idx]
         if (clean < 0).any():
             raise ValueError(f"vertex {int(idx[clean < 0][0])} is in no triangle")
         return clean
