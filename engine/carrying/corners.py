@@ -17,8 +17,10 @@ different values in the faces on each side. It is carried in two steps:
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
+from numpy.typing import ArrayLike, NDArray
 
 from ..matching.closest_point import SurfaceLocator
 from .signals import check_signal
@@ -30,21 +32,22 @@ __all__ = ["CornerResult", "carry_corners", "vertex_average", "seam_vertices"]
 class CornerResult:
     """Values per target corner and the point transfer's source error."""
 
-    values: np.ndarray
+    values: NDArray[np.float64]
     source_error: float
 
 
-def vertex_average(values, corner_verts, n: int) -> np.ndarray:
+def vertex_average(values: ArrayLike, corner_verts: ArrayLike, n: int) -> NDArray[np.float64]:
     """Per-vertex mean of per-corner values, (n, c)."""
     cv = np.asarray(corner_verts, dtype=np.int64)
     flat = np.asarray(values, dtype=np.float64).reshape(len(cv), -1)
     sums = np.zeros((n, flat.shape[1]))
     np.add.at(sums, cv, flat)
     counts = np.bincount(cv, minlength=n).astype(np.float64)
-    return sums / np.maximum(counts, 1.0)[:, None]
+    average: NDArray[np.float64] = sums / np.maximum(counts, 1.0)[:, None]
+    return average
 
 
-def seam_vertices(values, corner_verts, n: int) -> np.ndarray:
+def seam_vertices(values: ArrayLike, corner_verts: ArrayLike, n: int) -> NDArray[np.bool_]:
     """(n,) bool: vertices whose corners do not all carry the same value."""
     cv = np.asarray(corner_verts, dtype=np.int64)
     rows = np.ascontiguousarray(np.asarray(values).reshape(len(cv), -1))
@@ -57,13 +60,13 @@ def seam_vertices(values, corner_verts, n: int) -> np.ndarray:
     return seam
 
 
-def _corner_faces(sizes: np.ndarray) -> np.ndarray:
+def _corner_faces(sizes: NDArray[np.int64]) -> NDArray[np.int64]:
     return np.repeat(np.arange(len(sizes), dtype=np.int64), sizes)
 
 
-def carry_corners(pair, name: str, values, kind: str, source_corner_verts, source_face_sizes,
-                  target_corner_verts, target_face_sizes, *, basis: str | None = None,
-                  inset: float = 0.25) -> CornerResult:
+def carry_corners(pair: Any, name: str, values: ArrayLike, kind: str, source_corner_verts: ArrayLike,
+                  source_face_sizes: ArrayLike, target_corner_verts: ArrayLike, target_face_sizes: ArrayLike,
+                  *, basis: str | None = None, inset: float = 0.25) -> CornerResult:
     """Carry one corner signal from ``pair.source`` to ``pair.target``.
 
     Parameters
