@@ -37,7 +37,7 @@ import bpy
 
 from . import bridge
 from .properties import BASES, MATCH_MODES
-from .runs import PairRequest, check_pair, transfer_pair
+from .runs import PairRequest, check_pair, engine_settings, transfer_pair
 
 __all__ = ["COMMAND", "JobError", "Job", "PairJob", "load_job", "main", "register", "unregister"]
 
@@ -98,7 +98,12 @@ def _apply_settings(request: PairRequest, settings: Any, where: str) -> PairRequ
         elif key == "detail_size" and not 0 < value <= 1:
             raise JobError(f"{where}: setting 'detail_size' must be in (0, 1], got {value}")
         changes[key] = value
-    return replace(request, **changes)
+    flags = {key: changes.pop(key) for key in ("as_shown", "replace_existing") if key in changes}
+    try:
+        settings = engine_settings(changes, request.settings)
+    except ValueError as error:
+        raise JobError(f"{where}: {error}") from None
+    return replace(request, settings=settings, **flags)
 
 
 def _path(value: Any, base: Path, where: str) -> Path:
@@ -183,7 +188,7 @@ def check_job(job: Job) -> Job:
             if objs[0].type == 'MESH' and objs[1].type == 'MESH':
                 # every signal, except vertex groups the target also has: those pair up as landmarks
                 shared = {vg.name for vg in objs[1].vertex_groups}
-                listed = [s.name for s in bridge.list_signals(objs[0], evaluated=request.as_shown)
+                listed = [s.name for s in bridge.list_layers(objs[0], evaluated=request.as_shown)
                           if not (s.data_type == "VERTEX_GROUP" and s.name in shared)]
             else:
                 listed = []

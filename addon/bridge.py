@@ -1,9 +1,10 @@
 """The one place where Overtone touches Blender mesh data.
 
-Reads a mesh object into plain numpy arrays (world-space positions, polygons as
-corners and sizes, the per-vertex or per-corner signals it carries) and writes
-arrays back as colour attributes, generic attributes, vertex groups and shape
-keys. Everything else in the add-on sees arrays and the small dataclasses below.
+Reads a mesh object into the engine's own types (:class:`engine.MeshData`:
+world-space positions, polygons as corners and sizes; :class:`engine.Signal`:
+the per-vertex or per-corner layers it carries) and writes signals back as
+colour attributes, generic attributes, vertex groups and shape keys. A
+:class:`Layer` names where a signal lives on a mesh before its values are read.
 
 Conventions
 -----------
@@ -13,8 +14,7 @@ Conventions
   are, a ``BYTE_COLOR`` attribute stores 8-bit sRGB (linear 0.5 -> 188/255;
   alpha is not converted).
 - ``m`` is the vertex count for the ``POINT`` domain and the corner count for
-  ``CORNER``. Corner signals keep their seams: see :func:`split_corner_groups`
-  and :func:`corner_points`.
+  ``CORNER``. Corner signals keep their seams: see ``engine/carrying/corners.py``.
 
 Naming policy for results
 -------------------------
@@ -44,27 +44,24 @@ import bmesh
 import bpy
 import numpy as np
 
+from .engine import MeshData, Signal
+
 if TYPE_CHECKING:
     from numpy.typing import NDArray
 
 __all__ = [
-    "MeshArrays",
-    "Signal",
-    "Output",
-    "CornerGroups",
+    "Layer",
     "SUFFIX",
     "read_mesh",
-    "list_signals",
+    "list_layers",
     "read_signal",
     "read_vertex_groups",
-    "split_corner_groups",
-    "corner_points",
     "confidence_output",
     "shape_key_output",
     "write_outputs",
 ]
 
-Kind = Literal["color", "float", "vector", "weight", "label", "mask", "shape"]
+Kind = Literal["color", "float", "vector", "weight", "label", "mask"]
 
 SUFFIX = "_ot"
 """Results whose name is taken get ``<name>_ot1``, ``<name>_ot2``, ..."""
@@ -77,61 +74,18 @@ _GENERIC_KIND: dict[str, Kind] = {
 _CHANNELS = {"FLOAT": 0, "FLOAT_VECTOR": 3, "INT": 0, "BOOLEAN": 0, "BYTE_COLOR": 4,
              "FLOAT_COLOR": 4, "VERTEX_GROUP": 0, "SHAPE_KEY": 3}
 _KIND_OF_TYPE: dict[str, Kind] = {**_GENERIC_KIND, "BYTE_COLOR": "color", "FLOAT_COLOR": "color",
-                                  "VERTEX_GROUP": "weight", "SHAPE_KEY": "shape"}
+                                  "VERTEX_GROUP": "weight", "SHAPE_KEY": "vector"}
 _INT32 = np.iinfo(np.int32)
 
 
 @dataclass(frozen=True)
-class MeshArrays:
-    """A mesh object's geometry as arrays.
-
-    Attributes
-    ----------
-    name : str
-        The object's name.
-    positions : (n, 3) float64 array
-        Vertex positions in world space.
-    corner_verts : (c,) int64 array
-        Vertex of each face corner, faces one after another.
-    face_sizes : (f,) int64 array
-        Corner count of each face (the engine triangulates).
-    matrix_world : (4, 4) float64 array
-        The object's world matrix at the time of reading.
-    evaluated : bool
-        True when read from the evaluated mesh (modifiers applied, "as shown").
-    """
-
-    name: str
-    positions: NDArray[np.float64]
-    corner_verts: NDArray[np.int64]
-    face_sizes: NDArray[np.int64]
-    matrix_world: NDArray[np.float64]
-    evaluated: bool
-
-    @property
-    def face_starts(self) -> NDArray[np.int64]:
-        """(f,) int64 array: index of each face's first corner."""
-        starts = np.zeros(len(self.face_sizes), dtype=np.int64)
-        np.cumsum(self.face_sizes[:-1], out=starts[1:])
-        return starts
-
-    @property
-    def corner_faces(self) -> NDArray[np.int64]:
-        """(c,) int64 array: face of each corner."""
-        return np.repeat(np.arange(len(self.face_sizes), dtype=np.int64), self.face_sizes)
-
-
-@dataclass(frozen=True)
-class Signal:
-    """What one per-vertex or per-corner layer is.
+class Layer:
+    """Where one per-vertex or per-corner signal lives on a mesh.
 
     Attributes
     ----------
     name : str
         The layer's name on the mesh (vertex group, attribute or shape key).
-    kind : {"color", "float", "vector", "weight", "label", "mask", "shape"}
-        How the engine treats it: labels (integers) and masks (booleans) are
-        never blended; "shape" only appears in outputs.
     domain : {"POINT", "CORNER"}
     data_type : str
         Blender's type: ``BYTE_COLOR``, ``FLOAT_COLOR``, ``FLOAT``,
@@ -140,49 +94,18 @@ class Signal:
     """
 
     name: str
-    kind: Kind
     domain: str
     data_type: str
 
+    @property
+    def kind(self) -> Kind:
+        """How the engine treats it: labels (integers) and masks (booleans) are never blended."""
+        return _KIND_OF_TYPE[self.data_type]
 
-@dataclass(frozen=True)
-class Output:
-    """One result to write: a signal description and its values.
-
-    ``values`` is ``(m,)`` for FLOAT, INT, BOOLEAN and VERTEX_GROUP,
-    ``(m, 3)`` for FLOAT_VECTOR and SHAPE_KEY (world-space positions),
-    ``(m, 4)`` or ``(m, 3)`` linear RGB(A) for colours.
-    """
-
-    signal: Signal
-    values: NDArray[np.generic]
-
-
-@dataclass(frozen=True)
-class CornerGroups:
-    """Corners of one vertex that carry the same value, merged.
-
-    A vertex away from any seam has one group; a vertex on a colour seam has
-    one group per side. A per-vertex transfer can carry ``group_values`` of the
-    single-group vertices, and seam vertices keep one value per side.
-
-    Attributes
-    ----------
-    corner_group : (c,) int64 array
-        Group of each corner.
-    group_vert : (g,) int64 array
-        Vertex of each group (sorted ascending).
-    group_values : (g, k) array
-        The value all corners of a group share.
-    """
-
-    corner_group: NDArray[np.int64]
-    group_vert: NDArray[np.int64]
-    group_values: NDArray[np.generic]
-
-    def groups_per_vertex(self, n_vertices: int) -> NDArray[np.int64]:
-        """(n,) int64 array: number of groups at each vertex (0 if it has no corner)."""
-        return np.bincount(self.group_vert, minlength=n_vertices).astype(np.int64)
+    def signal(self, values: NDArray[Any]) -> Signal:
+        """The engine signal holding ``values`` for this layer."""
+        array = np.asarray(values)
+        return Signal(self.name, self.kind, array, array.dtype, self.domain, self.data_type)
 
 
 # --------------------------------------------------------------------------- reading
@@ -213,7 +136,7 @@ def _elements(attr: bpy.types.Attribute) -> Any:
     return cast(Any, attr).data
 
 
-def read_mesh(obj: bpy.types.Object, *, evaluated: bool = False) -> MeshArrays:
+def read_mesh(obj: bpy.types.Object, *, evaluated: bool = False) -> MeshData:
     """Read a mesh object's geometry in world space.
 
     Parameters
@@ -225,7 +148,10 @@ def read_mesh(obj: bpy.types.Object, *, evaluated: bool = False) -> MeshArrays:
 
     Returns
     -------
-    MeshArrays
+    engine.MeshData
+        ``vertices`` (n, 3) float64 in world space, ``corners`` (c,) int64
+        (the vertex of each face corner, faces one after another), ``sizes``
+        (f,) int64 (corners per face).
     """
     matrix = _matrix(obj)
     with _mesh_of(obj, evaluated) as mesh:
@@ -238,33 +164,31 @@ def read_mesh(obj: bpy.types.Object, *, evaluated: bool = False) -> MeshArrays:
         mesh.polygons.foreach_get("loop_total", sizes)
     points = local.reshape(n, 3).astype(np.float64)
     world = points @ matrix[:3, :3].T + matrix[:3, 3]
-    return MeshArrays(obj.name, np.ascontiguousarray(world), corner_verts.astype(np.int64),
-                      sizes.astype(np.int64), matrix, evaluated)
+    return MeshData(np.ascontiguousarray(world), corner_verts.astype(np.int64), sizes.astype(np.int64))
 
 
 def _is_user_layer(attr: bpy.types.Attribute) -> bool:
     return not (attr.name.startswith(".") or attr.is_internal or attr.is_required)
 
 
-def list_signals(obj: bpy.types.Object, *, evaluated: bool = False) -> list[Signal]:
-    """Every signal a mesh object carries, in a stable order.
+def list_layers(obj: bpy.types.Object, *, evaluated: bool = False) -> list[Layer]:
+    """Every layer a mesh object carries that Overtone can carry, in a stable order.
 
     Colour attributes (point and corner domain), then generic point attributes
     (FLOAT, FLOAT_VECTOR, INT, BOOLEAN; Blender's own and ``.``-names skipped),
     then vertex groups.
     """
-    found: list[Signal] = []
+    found: list[Layer] = []
     with _mesh_of(obj, evaluated) as mesh:
         for attr in mesh.color_attributes:
             if _is_user_layer(attr) and attr.domain in ("POINT", "CORNER"):
-                found.append(Signal(attr.name, "color", attr.domain, attr.data_type))
+                found.append(Layer(attr.name, attr.domain, attr.data_type))
         for attr in mesh.attributes:
             if (_is_user_layer(attr) and attr.domain == "POINT"
                     and attr.data_type in _GENERIC_KIND):
-                found.append(Signal(attr.name, _GENERIC_KIND[attr.data_type], "POINT",
-                                    attr.data_type))
+                found.append(Layer(attr.name, "POINT", attr.data_type))
         for name in (vg.name for vg in obj.vertex_groups):
-            found.append(Signal(name, "weight", "POINT", "VERTEX_GROUP"))
+            found.append(Layer(name, "POINT", "VERTEX_GROUP"))
     return found
 
 
@@ -297,18 +221,18 @@ def read_vertex_groups(obj: bpy.types.Object, names: Sequence[str] | None = None
     return weights
 
 
-def read_signal(obj: bpy.types.Object, signal: Signal, *,
-                evaluated: bool = False) -> NDArray[np.generic]:
-    """The values of one signal from :func:`list_signals`.
+def read_signal(obj: bpy.types.Object, signal: Layer, *, evaluated: bool = False) -> Signal:
+    """The signal held by one layer from :func:`list_layers`.
 
     Returns
     -------
-    (m,) or (m, k) array
-        float32 (colours: linear RGBA; floats; vectors; weights), int32
-        (labels) or bool (masks); ``m`` vertices or corners by domain.
+    engine.Signal
+        Values (m,) or (m, k): float32 (colours: linear RGBA; floats; vectors;
+        weights), int32 (labels) or bool (masks); ``m`` vertices or corners
+        by domain.
     """
     if signal.data_type == "VERTEX_GROUP":
-        return read_vertex_groups(obj, [signal.name], evaluated=evaluated)[signal.name]
+        return signal.signal(read_vertex_groups(obj, [signal.name], evaluated=evaluated)[signal.name])
     with _mesh_of(obj, evaluated) as mesh:
         attr = mesh.attributes.get(signal.name)
         if attr is None or attr.data_type != signal.data_type or attr.domain != signal.domain:
@@ -326,82 +250,14 @@ def read_signal(obj: bpy.types.Object, signal: Signal, *,
             dtype = {"FLOAT": np.float32, "INT": np.int32, "BOOLEAN": np.bool_}[signal.data_type]
             values = np.empty(m, dtype=dtype)
             _elements(attr).foreach_get("value", values)
-    return values.reshape(m, width) if width else values
-
-
-# --------------------------------------------------------------------------- corners
-
-
-def split_corner_groups(values: NDArray[np.generic],
-                        corner_verts: NDArray[np.integer[Any]]) -> CornerGroups:
-    """Merge the corners of each vertex that carry exactly the same value.
-
-    Parameters
-    ----------
-    values : (c,) or (c, k) array
-        A corner-domain signal.
-    corner_verts : (c,) int array
-        Vertex of each corner (:attr:`MeshArrays.corner_verts`).
-
-    Returns
-    -------
-    CornerGroups
-    """
-    vals = np.asarray(values)
-    verts = np.asarray(corner_verts, dtype=np.int64)
-    if vals.shape[:1] != verts.shape:
-        raise ValueError(f"values has {vals.shape[0] if vals.ndim else 0} rows "
-                         f"for {len(verts)} corners")
-    rows = np.ascontiguousarray(vals.reshape(len(verts), -1))
-    keyed = np.concatenate([verts[:, None].view(np.uint8).reshape(len(verts), -1),
-                            rows.view(np.uint8).reshape(len(verts), -1)], axis=1)
-    key = np.ascontiguousarray(keyed).view(np.dtype((np.void, keyed.shape[1]))).ravel()
-    _, key_id = np.unique(key, return_inverse=True)  # one id per distinct (vertex, value)
-    key_id = key_id.ravel()
-    # Sorting on vertex first keeps group_vert ascending.
-    order = np.lexsort((key_id, verts))
-    first = np.ones(len(order), dtype=bool)
-    first[1:] = key_id[order[1:]] != key_id[order[:-1]]
-    group_sorted = np.cumsum(first) - 1
-    corner_group = np.empty(len(verts), dtype=np.int64)
-    corner_group[order] = group_sorted
-    heads = order[first]
-    return CornerGroups(corner_group, verts[heads], vals[heads])
-
-
-def corner_points(mesh: MeshArrays, *, inset: float = 0.25) -> NDArray[np.float64]:
-    """A world-space point inside each corner's face, near the corner.
-
-    Mapping these points (instead of the vertices) to the source lets the
-    corners on either side of a target seam find the source faces on their own
-    side.
-
-    Parameters
-    ----------
-    mesh : MeshArrays
-    inset : float
-        Fraction of the way from the vertex towards the face centroid, in (0, 1).
-
-    Returns
-    -------
-    (c, 3) float64 array
-    """
-    if not 0.0 < inset < 1.0:
-        raise ValueError(f"inset must lie in (0, 1), got {inset}")
-    corner_pos = mesh.positions[mesh.corner_verts]
-    faces = mesh.corner_faces
-    sums = np.zeros((len(mesh.face_sizes), 3))
-    np.add.at(sums, faces, corner_pos)
-    centroids = sums / mesh.face_sizes[:, None]
-    points: NDArray[np.float64] = corner_pos + inset * (centroids[faces] - corner_pos)
-    return points
+    return signal.signal(values.reshape(m, width) if width else values)
 
 
 # --------------------------------------------------------------------------- outputs
 
 
 def confidence_output(confidence: NDArray[np.floating[Any]], *,
-                      name: str = "overtone_confidence") -> Output:
+                      name: str = "overtone_confidence") -> Signal:
     """A point colour showing confidence in [0, 1]: white is sure, red is not.
 
     Stored linear ``(1, c, c, c)``, so the green, blue and alpha channels hold
@@ -413,16 +269,15 @@ def confidence_output(confidence: NDArray[np.floating[Any]], *,
     if not np.all(np.isfinite(conf)) or conf.size and (conf.min() < 0 or conf.max() > 1):
         raise ValueError("confidence must be finite and within [0, 1]")
     rgba = np.column_stack([np.ones_like(conf), conf, conf, conf]).astype(np.float32)
-    return Output(Signal(name, "color", "POINT", "FLOAT_COLOR"), rgba)
+    return Layer(name, "POINT", "FLOAT_COLOR").signal(rgba)
 
 
-def shape_key_output(name: str, positions: NDArray[np.floating[Any]]) -> Output:
+def shape_key_output(name: str, positions: NDArray[np.floating[Any]]) -> Signal:
     """A shape key from ``(n, 3)`` world-space positions (stored object-local)."""
-    return Output(Signal(name, "shape", "POINT", "SHAPE_KEY"), np.asarray(positions))
+    return Layer(name, "POINT", "SHAPE_KEY").signal(np.asarray(positions))
 
 
-def _validated(obj: bpy.types.Object, mesh: bpy.types.Mesh, out: Output) -> NDArray[np.generic]:
-    sig = out.signal
+def _validated(obj: bpy.types.Object, mesh: bpy.types.Mesh, sig: Signal) -> NDArray[np.generic]:
     where = f"result {sig.name!r} for object {obj.name!r}"
     if sig.data_type not in _CHANNELS:
         raise ValueError(f"{where}: unknown data type {sig.data_type!r}")
@@ -435,7 +290,7 @@ def _validated(obj: bpy.types.Object, mesh: bpy.types.Mesh, out: Output) -> NDAr
         raise ValueError(f"{where}: names must be non-empty and not start with '.'")
     rows = len(mesh.loops) if sig.domain == "CORNER" else len(mesh.vertices)
     width = _CHANNELS[sig.data_type]
-    values: NDArray[Any] = np.asarray(out.values)
+    values: NDArray[Any] = np.asarray(sig.values)
     if sig.data_type in _COLOR_TYPES and values.ndim == 2 and values.shape[1] == 3:
         values = np.column_stack([values, np.ones(len(values), dtype=values.dtype)])
     expected = (rows, width) if width else (rows,)
@@ -506,7 +361,7 @@ class _Names:
 
 @dataclass
 class _Plan:
-    output: Output
+    output: Signal
     values: NDArray[np.generic]
     final: str           # the name the result ends with
     write_as: str        # the name it is written under first
@@ -579,12 +434,12 @@ def _write_layer(obj: bpy.types.Object, mesh: bpy.types.Mesh, sig: Signal, name:
         _write_shape_key(obj, mesh, name, cast("NDArray[np.float32]", values))
         return
     if sig.data_type in _COLOR_TYPES:
-        color = mesh.color_attributes.new(name, sig.data_type, sig.domain)  # type: ignore[arg-type]
+        color = mesh.color_attributes.new(name, sig.data_type, sig.domain)
         if color is None:
             raise ValueError(f"object {obj.name!r}: could not create colour attribute {name!r}")
         _elements(color).foreach_set("color", values.ravel())
         return
-    attr = mesh.attributes.new(name, sig.data_type, sig.domain)  # type: ignore[arg-type]
+    attr = mesh.attributes.new(name, sig.data_type, sig.domain)
     if attr is None:
         raise ValueError(f"object {obj.name!r}: could not create attribute {name!r}")
     _elements(attr).foreach_set("vector" if sig.data_type == "FLOAT_VECTOR" else "value", values.ravel())
@@ -612,7 +467,7 @@ def _rename(obj: bpy.types.Object, mesh: bpy.types.Mesh, old: str, new: str, sha
         mesh.attributes[old].name = new
 
 
-def write_outputs(obj: bpy.types.Object, outputs: Sequence[Output], *,
+def write_outputs(obj: bpy.types.Object, outputs: Sequence[Signal], *,
                   replace: bool = False) -> dict[str, str]:
     """Write results onto a mesh object, all or nothing.
 
@@ -620,8 +475,12 @@ def write_outputs(obj: bpy.types.Object, outputs: Sequence[Output], *,
     ----------
     obj : bpy.types.Object
         The target mesh object (object mode).
-    outputs : sequence of Output
-        The results; names must be distinct within a kind (layers / shape keys).
+    outputs : sequence of engine.Signal
+        The results, each with its domain and Blender data type: values
+        ``(m,)`` for FLOAT, INT, BOOLEAN and VERTEX_GROUP, ``(m, 3)`` for
+        FLOAT_VECTOR and SHAPE_KEY (world-space positions), ``(m, 4)`` or
+        ``(m, 3)`` linear RGB(A) for colours. Names must be distinct within
+        a kind (layers / shape keys).
     replace : bool
         Replace a target layer that already has a result's name; otherwise the
         result gets the next free ``<name>_ot<k>``.
@@ -647,8 +506,8 @@ def write_outputs(obj: bpy.types.Object, outputs: Sequence[Output], *,
     plans: list[_Plan] = []
     for out in outputs:
         values = _validated(obj, mesh, out)
-        shape = out.signal.data_type == "SHAPE_KEY"
-        wanted = out.signal.name
+        shape = out.data_type == "SHAPE_KEY"
+        wanted = out.name
         if (shape, wanted) in seen:
             raise ValueError(f"two results are called {wanted!r}")
         seen.add((shape, wanted))
@@ -665,10 +524,10 @@ def write_outputs(obj: bpy.types.Object, outputs: Sequence[Output], *,
     try:
         for plan in plans:
             written.append(plan)
-            _write_layer(obj, mesh, plan.output.signal, plan.write_as, plan.values)
+            _write_layer(obj, mesh, plan.output, plan.write_as, plan.values)
     except BaseException:
         for plan in reversed(written):
-            _remove(obj, mesh, plan.write_as, plan.output.signal.data_type == "SHAPE_KEY")
+            _remove(obj, mesh, plan.write_as, plan.output.data_type == "SHAPE_KEY")
         if not had_keys and mesh.shape_keys is not None:
             obj.shape_key_clear()
         _restore(obj, mesh, state)
@@ -676,11 +535,11 @@ def write_outputs(obj: bpy.types.Object, outputs: Sequence[Output], *,
         raise
     for plan in plans:
         if plan.replaces:
-            shape = plan.output.signal.data_type == "SHAPE_KEY"
+            shape = plan.output.data_type == "SHAPE_KEY"
             _remove(obj, mesh, plan.final, shape)
             _rename(obj, mesh, plan.write_as, plan.final, shape)
     active = state["active_attr"]
     if isinstance(active, str) and active in mesh.attributes:
         mesh.attributes.active = mesh.attributes[active]
     mesh.update()
-    return {plan.output.signal.name: plan.final for plan in plans}
+    return {plan.output.name: plan.final for plan in plans}

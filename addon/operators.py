@@ -262,7 +262,7 @@ class OVERTONE_OT_refresh_signals(bpy.types.Operator):
             return {'CANCELLED'}
         ticks = {item.name: item.use for item in settings.signals}
         settings.signals.clear()
-        for signal in bridge.list_signals(source, evaluated=settings.as_shown):
+        for signal in bridge.list_layers(source, evaluated=settings.as_shown):
             item = settings.signals.add()
             item.name = signal.name
             item.kind = signal.kind

@@ -47,12 +47,19 @@ class Signal:
         for masks.
     dtype : numpy dtype
         The type to write back (e.g. uint8 for an 8-bit colour).
+    domain : {"POINT", "CORNER"}
+        One value per vertex, or per face corner (see ``corners``).
+    data_type : str
+        How the signal's home format stores it (an attribute type, say),
+        so a writer can store a result as its source was; "" when unknown.
     """
 
     name: str
     kind: str
     values: NDArray[Any]
     dtype: np.dtype[Any]
+    domain: str = "POINT"
+    data_type: str = ""
 
     @property
     def bounds(self) -> tuple[NDArray[Any], NDArray[Any]] | None:
