@@ -69,7 +69,8 @@ _CHOICES = {"match_mode": [m[0] for m in MATCH_MODES], "basis": [b[0] for b in B
 _SETTING_TYPES: dict[str, type | tuple[type, ...]] = {
     "match_mode": str, "basis": str, "eigenfunctions": int, "product_order": int,
     "detail_strength": (int, float), "detail_size": (int, float), "as_shown": bool,
-    "replace_existing": bool,
+    "replace_existing": bool, "max_influences": int, "weight_threshold": (int, float),
+    "keep_weight_totals": bool,
 }
 _PAIR_KEYS = {"source", "target", "signals", "detail", "settings"}
 _JOB_KEYS = {"version", "settings", "pairs", "report", "save"}

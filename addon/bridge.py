@@ -56,6 +56,10 @@ __all__ = [
     "list_layers",
     "read_signal",
     "read_vertex_groups",
+    "uncarried_layers",
+    "carryable",
+    "not_carried_reason",
+    "element_property",
     "confidence_output",
     "shape_key_output",
     "write_outputs",
@@ -70,12 +74,23 @@ _MAX_NAME_BYTES = 63  # Blender's attribute and vertex-group names hold 63 bytes
 _COLOR_TYPES = ("BYTE_COLOR", "FLOAT_COLOR")
 _GENERIC_KIND: dict[str, Kind] = {
     "FLOAT": "float", "FLOAT_VECTOR": "vector", "INT": "label", "BOOLEAN": "mask",
+    "FLOAT2": "vector", "QUATERNION": "vector", "INT8": "label", "INT16_2D": "label",
+    "INT32_2D": "label",
 }
 _CHANNELS = {"FLOAT": 0, "FLOAT_VECTOR": 3, "INT": 0, "BOOLEAN": 0, "BYTE_COLOR": 4,
-             "FLOAT_COLOR": 4, "VERTEX_GROUP": 0, "SHAPE_KEY": 3}
+             "FLOAT_COLOR": 4, "VERTEX_GROUP": 0, "SHAPE_KEY": 3, "FLOAT2": 2, "QUATERNION": 4,
+             "INT8": 0, "INT16_2D": 2, "INT32_2D": 2}
 _KIND_OF_TYPE: dict[str, Kind] = {**_GENERIC_KIND, "BYTE_COLOR": "color", "FLOAT_COLOR": "color",
                                   "VERTEX_GROUP": "weight", "SHAPE_KEY": "vector"}
-_INT32 = np.iinfo(np.int32)
+_INT_RANGE: dict[str, tuple[int, int]] = {
+    "INT": (-2**31, 2**31 - 1), "INT32_2D": (-2**31, 2**31 - 1), "INT8": (-128, 127),
+    "INT16_2D": (-2**15, 2**15 - 1)}
+_READ_DTYPE = {"FLOAT": np.float32, "FLOAT_VECTOR": np.float32, "FLOAT2": np.float32,
+               "QUATERNION": np.float32, "BYTE_COLOR": np.float32, "FLOAT_COLOR": np.float32,
+               "INT": np.int32, "INT8": np.int32, "INT16_2D": np.int32, "INT32_2D": np.int32,
+               "BOOLEAN": np.bool_}
+_CORNER_TYPES = ("BYTE_COLOR", "FLOAT_COLOR", "FLOAT", "FLOAT_VECTOR", "FLOAT2")
+_FACE_SETS = ".sculpt_face_set"  # Blender's face sets: an INT face attribute (from memory)
 
 
 @dataclass(frozen=True)
@@ -171,22 +186,81 @@ def _is_user_layer(attr: bpy.types.Attribute) -> bool:
     return not (attr.name.startswith(".") or attr.is_internal or attr.is_required)
 
 
+def element_property(data_type: str) -> str:
+    """The property of an attribute's elements that holds its values."""
+    if data_type in _COLOR_TYPES:
+        return "color"
+    return "vector" if data_type in ("FLOAT_VECTOR", "FLOAT2") else "value"
+
+
+def carryable(domain: str, data_type: str) -> bool:
+    """Whether Overtone carries a layer of this domain and type.
+
+    Point layers of every numeric type; corner colours, floats, vectors and
+    2D values (UV maps); face layers of every numeric type (never blended).
+    Edges, text and matrices are not carried: :func:`not_carried_reason`.
+    """
+    if data_type in ("VERTEX_GROUP", "SHAPE_KEY"):
+        return domain == "POINT"
+    if data_type not in _CHANNELS:
+        return False
+    if domain == "CORNER":
+        return data_type in _CORNER_TYPES
+    return domain in ("POINT", "FACE")
+
+
+def not_carried_reason(domain: str, data_type: str) -> str:
+    """Why a layer of this domain and type is not carried, in an artist's words."""
+    if domain == "EDGE":
+        return ("edge layers (sharp edges, seams, creases) belong to the target's own edges, which "
+                "do not run along the source's; carried UV maps get their seams along the target's "
+                "faces (UV > Seams from Islands marks them)")
+    if data_type == "STRING":
+        return "text cannot be blended or located on another mesh"
+    if data_type == "FLOAT4X4":
+        return "blended matrices are no longer rotations and scales"
+    if domain == "CORNER":
+        return ("whole numbers, true/false values and rotations per face corner have no rule "
+                "across different topologies")
+    return f"{domain.lower()} layers of type {data_type} are not carried"
+
+
+def _listed_attribute(attr: bpy.types.Attribute) -> bool:
+    if attr.name == _FACE_SETS and attr.domain == "FACE":
+        return True
+    return _is_user_layer(attr)
+
+
+def uncarried_layers(obj: bpy.types.Object, *, evaluated: bool = False) -> list[tuple[Layer, str]]:
+    """The source's layers Overtone does not carry, each with the reason."""
+    skipped: list[tuple[Layer, str]] = []
+    with _mesh_of(obj, evaluated) as mesh:
+        for attr in mesh.attributes:
+            if _listed_attribute(attr) and not carryable(attr.domain, attr.data_type):
+                skipped.append((Layer(attr.name, attr.domain, attr.data_type),
+                                not_carried_reason(attr.domain, attr.data_type)))
+    return skipped
+
+
 def list_layers(obj: bpy.types.Object, *, evaluated: bool = False) -> list[Layer]:
     """Every layer a mesh object carries that Overtone can carry, in a stable order.
 
     Colour attributes (point and corner domain), then generic point attributes
-    (FLOAT, FLOAT_VECTOR, INT, BOOLEAN; Blender's own and ``.``-names skipped),
-    then vertex groups.
+    (FLOAT, FLOAT_VECTOR, INT, BOOLEAN, FLOAT2, QUATERNION, INT8 and integer
+    pairs; Blender's own and ``.``-names skipped), then UV maps and other
+    corner floats, then face attributes (material index, smooth/flat, face
+    sets, any numeric type), then vertex groups.
     """
     found: list[Layer] = []
     with _mesh_of(obj, evaluated) as mesh:
         for attr in mesh.color_attributes:
             if _is_user_layer(attr) and attr.domain in ("POINT", "CORNER"):
                 found.append(Layer(attr.name, attr.domain, attr.data_type))
-        for attr in mesh.attributes:
-            if (_is_user_layer(attr) and attr.domain == "POINT"
-                    and attr.data_type in _GENERIC_KIND):
-                found.append(Layer(attr.name, "POINT", attr.data_type))
+        for domain in ("POINT", "CORNER", "FACE"):
+            for attr in mesh.attributes:
+                if (_listed_attribute(attr) and attr.domain == domain and attr.data_type in _GENERIC_KIND
+                        and carryable(domain, attr.data_type)):
+                    found.append(Layer(attr.name, domain, attr.data_type))
         for name in (vg.name for vg in obj.vertex_groups):
             found.append(Layer(name, "POINT", "VERTEX_GROUP"))
     return found
@@ -240,16 +314,8 @@ def read_signal(obj: bpy.types.Object, signal: Layer, *, evaluated: bool = False
                              f"{signal.data_type} attribute {signal.name!r}")
         m = len(_elements(attr))
         width = _CHANNELS[signal.data_type]
-        if signal.data_type in _COLOR_TYPES:
-            values: NDArray[np.generic] = np.empty(m * 4, dtype=np.float32)
-            _elements(attr).foreach_get("color", values)
-        elif signal.data_type == "FLOAT_VECTOR":
-            values = np.empty(m * 3, dtype=np.float32)
-            _elements(attr).foreach_get("vector", values)
-        else:
-            dtype = {"FLOAT": np.float32, "INT": np.int32, "BOOLEAN": np.bool_}[signal.data_type]
-            values = np.empty(m, dtype=dtype)
-            _elements(attr).foreach_get("value", values)
+        values: NDArray[np.generic] = np.empty(m * max(width, 1), dtype=_READ_DTYPE[signal.data_type])
+        _elements(attr).foreach_get(element_property(signal.data_type), values)
     return signal.signal(values.reshape(m, width) if width else values)
 
 
@@ -283,12 +349,11 @@ def _validated(obj: bpy.types.Object, mesh: bpy.types.Mesh, sig: Signal) -> NDAr
         raise ValueError(f"{where}: unknown data type {sig.data_type!r}")
     if _KIND_OF_TYPE[sig.data_type] != sig.kind:
         raise ValueError(f"{where}: kind {sig.kind!r} does not match data type {sig.data_type}")
-    allowed = ("POINT", "CORNER") if sig.data_type in _COLOR_TYPES else ("POINT",)
-    if sig.domain not in allowed:
+    if not carryable(sig.domain, sig.data_type):
         raise ValueError(f"{where}: domain {sig.domain!r} not supported for {sig.data_type}")
-    if not sig.name or sig.name.startswith("."):
+    if not sig.name or (sig.name.startswith(".") and sig.name != _FACE_SETS):
         raise ValueError(f"{where}: names must be non-empty and not start with '.'")
-    rows = len(mesh.loops) if sig.domain == "CORNER" else len(mesh.vertices)
+    rows = {"CORNER": len(mesh.loops), "FACE": len(mesh.polygons)}.get(sig.domain, len(mesh.vertices))
     width = _CHANNELS[sig.data_type]
     values: NDArray[Any] = np.asarray(sig.values)
     if sig.data_type in _COLOR_TYPES and values.ndim == 2 and values.shape[1] == 3:
@@ -305,10 +370,11 @@ def _validated(obj: bpy.types.Object, mesh: bpy.types.Mesh, sig: Signal) -> NDAr
     if not np.all(np.isfinite(values)):
         bad = int(np.flatnonzero(~np.isfinite(values.reshape(rows, -1)).all(axis=1))[0])
         raise ValueError(f"{where}: non-finite value at row {bad}")
-    if sig.data_type == "INT":
+    if sig.data_type in _INT_RANGE:
+        low, high = _INT_RANGE[sig.data_type]
         if values.size and (np.any(values != np.round(values))
-                            or values.min() < _INT32.min or values.max() > _INT32.max):
-            raise ValueError(f"{where}: labels must be whole numbers within 32-bit range")
+                            or values.min() < low or values.max() > high):
+            raise ValueError(f"{where}: labels must be whole numbers within [{low}, {high}]")
         return values.astype(np.int32)
     if sig.data_type == "VERTEX_GROUP" and values.size and (values.min() < 0 or values.max() > 1):
         raise ValueError(f"{where}: weights must lie in [0, 1], got "
@@ -338,12 +404,30 @@ class _Names:
         keys = mesh.shape_keys
         self.shapes = {k.name for k in keys.key_blocks} if keys else set()
         protected = {a.name for a in mesh.attributes if not _is_user_layer(a)}
-        protected |= {uv.name for uv in mesh.uv_layers}
+        self.uv_maps = {uv.name for uv in mesh.uv_layers}
+        protected |= self.uv_maps
         self.protected = protected
         if keys:
             self.protected_shapes = {keys.reference_key.name}
         else:
             self.protected_shapes = set()
+
+    def protected_for(self, out: Signal) -> set[str]:
+        """The layer names ``out`` may not replace: a UV map may replace a UV map,
+        face sets may replace face sets; nothing else replaces Blender's layers."""
+        if out.domain == "CORNER" and out.data_type == "FLOAT2":
+            return self.protected - self.uv_maps
+        if out.name == _FACE_SETS and out.domain == "FACE":
+            return self.protected - {_FACE_SETS}
+        return self.protected
+
+    def home(self, base: str, protected: set[str]) -> str:
+        """The first ``<base>_ot<k>`` that is not protected: where a result whose own
+        name is protected goes, the same name on every run."""
+        k = 1
+        while _fit(base, f"{SUFFIX}{k}") in protected:
+            k += 1
+        return _fit(base, f"{SUFFIX}{k}")
 
     def taken(self, shape: bool) -> set[str]:
         return self.shapes if shape else self.layers
@@ -370,7 +454,10 @@ class _Plan:
 
 def _snapshot(obj: bpy.types.Object, mesh: bpy.types.Mesh) -> dict[str, object]:
     colors = mesh.color_attributes
-    return {"active_color": colors.active_color_name, "render_color": colors.render_color_index,
+    uvs = mesh.uv_layers
+    render_uv = next((uv.name for uv in uvs if uv.active_render), None)
+    return {"active_uv": uvs.active.name if uvs.active else None, "render_uv": render_uv,
+            "active_color": colors.active_color_name, "render_color": colors.render_color_index,
             "active_attr": mesh.attributes.active.name if mesh.attributes.active else None,
             "active_group": obj.vertex_groups.active_index,
             "active_shape": obj.active_shape_key_index}
@@ -386,6 +473,17 @@ def _restore(obj: bpy.types.Object, mesh: bpy.types.Mesh, state: dict[str, objec
         mesh.attributes.active = mesh.attributes[active]
     obj.vertex_groups.active_index = cast(int, state["active_group"])
     obj.active_shape_key_index = cast(int, state["active_shape"])
+    _restore_uv_maps(mesh, state)
+
+
+def _restore_uv_maps(mesh: bpy.types.Mesh, state: dict[str, object]) -> None:
+    """The active and render UV maps back by name (a replaced map keeps its role)."""
+    uvs = mesh.uv_layers
+    active, render = state.get("active_uv"), state.get("render_uv")
+    if isinstance(active, str) and active in uvs:
+        uvs.active = uvs[active]
+    if isinstance(render, str) and render in uvs:
+        uvs[render].active_render = True
 
 
 def _write_vertex_group(obj: bpy.types.Object, mesh: bpy.types.Mesh, name: str,
@@ -433,7 +531,7 @@ def _write_layer(obj: bpy.types.Object, mesh: bpy.types.Mesh, sig: Signal, name:
     if sig.data_type == "SHAPE_KEY":
         _write_shape_key(obj, mesh, name, cast("NDArray[np.float32]", values))
         return
-    if sig.data_type in _COLOR_TYPES:
+    if sig.data_type in _COLOR_TYPES and sig.domain in ("POINT", "CORNER"):
         color = mesh.color_attributes.new(name, sig.data_type, sig.domain)
         if color is None:
             raise ValueError(f"object {obj.name!r}: could not create colour attribute {name!r}")
@@ -442,7 +540,7 @@ def _write_layer(obj: bpy.types.Object, mesh: bpy.types.Mesh, sig: Signal, name:
     attr = mesh.attributes.new(name, sig.data_type, sig.domain)
     if attr is None:
         raise ValueError(f"object {obj.name!r}: could not create attribute {name!r}")
-    _elements(attr).foreach_set("vector" if sig.data_type == "FLOAT_VECTOR" else "value", values.ravel())
+    _elements(attr).foreach_set(element_property(sig.data_type), values.ravel())
 
 
 def _remove(obj: bpy.types.Object, mesh: bpy.types.Mesh, name: str, shape: bool) -> None:
@@ -511,7 +609,9 @@ def write_outputs(obj: bpy.types.Object, outputs: Sequence[Signal], *,
         if (shape, wanted) in seen:
             raise ValueError(f"two results are called {wanted!r}")
         seen.add((shape, wanted))
-        protected = names.protected_shapes if shape else names.protected
+        protected = names.protected_shapes if shape else names.protected_for(out)
+        if replace and not shape and wanted in protected:
+            wanted = names.home(wanted, protected)
         if wanted in names.taken(shape) and replace and wanted not in protected:
             plans.append(_Plan(out, values, wanted, names.fresh(wanted, shape), True))
         else:
@@ -541,5 +641,6 @@ def write_outputs(obj: bpy.types.Object, outputs: Sequence[Signal], *,
     active = state["active_attr"]
     if isinstance(active, str) and active in mesh.attributes:
         mesh.attributes.active = mesh.attributes[active]
+    _restore_uv_maps(mesh, state)
     mesh.update()
     return {plan.output.name: plan.final for plan in plans}

@@ -23,13 +23,15 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from .engine import (Cache, MeshData, Pair, Settings, Shape, Signal, approximate_signals,
-                     check_signal, geometry_key, vertex_average, weighted_centre_vertex)
+from .engine import (Cache, FaceHits, MeshData, Pair, Settings, Shape, Signal, approximate_signals,
+                     carry_charted, carry_faces, check_signal, faces_under_centres, geometry_key,
+                     vertex_average, weighted_centre_vertex)
 
 if TYPE_CHECKING:
     from numpy.typing import NDArray
 
 __all__ = ["JOB_KINDS", "JobInput", "JobOutput", "Progress", "KeptPairs", "PAIRS", "run_job",
+           "carry_by_face", "unit_rotations",
            "forget_pairs", "mesh_digest", "prune_cache", "CORNER_INSET"]
 
 JOB_KINDS = ("transfer", "detail", "preview")
@@ -208,22 +210,58 @@ def _carry_signals(inp: JobInput, pair: Pair, basis: str
     if not inp.signals:
         raise ValueError("no signals to carry")
     point = {s.name: (s.values, s.kind) for s in inp.signals if s.domain == "POINT"}
-    results: dict[str, Any] = pair.carry(point, basis=basis) if point else {}
+    results: dict[str, Any] = (pair.carry(point, basis=basis, weights=inp.settings.weight_options())
+                               if point else {})
     values: dict[str, NDArray[Any]] = {}
     corner_report: dict[str, Any] = {}
+    hits: list[FaceHits] = []  # where the target's faces land, found once when needed
     for sig in inp.signals:
-        if sig.domain != "CORNER":
-            values[sig.name] = results[sig.name].values
+        if sig.domain == "POINT":
+            values[sig.name] = unit_rotations(results[sig.name].values, sig.data_type)
             continue
-        carried = pair.carry_corners(sig.name, sig.values, sig.kind, inp.source.corners,
-                                     inp.source.sizes, inp.target.corners, inp.target.sizes,
-                                     basis=basis, inset=CORNER_INSET)
-        values[sig.name] = carried.values
-        corner_report[sig.name] = {"kind": sig.kind, "domain": "CORNER",
-                                   "source_error": carried.source_error}
+        values[sig.name], corner_report[sig.name] = carry_by_face(inp, pair, sig, basis, hits)
     report = pair.report(results)
     report.setdefault("signals", {}).update(corner_report)
     return values, report
+
+
+def unit_rotations(values: NDArray[Any], data_type: str) -> NDArray[Any]:
+    """Quaternions blended on a triangle, made unit length again (others unchanged)."""
+    if data_type != "QUATERNION":
+        return values
+    rows = np.asarray(values, dtype=np.float64)
+    norms = np.linalg.norm(rows, axis=1, keepdims=True)
+    identity = np.array([1.0, 0.0, 0.0, 0.0])
+    unit: NDArray[Any] = np.where(norms > 1e-12, rows / np.maximum(norms, 1e-12), identity)
+    return unit
+
+
+def carry_by_face(inp: JobInput, pair: Pair, sig: Signal, basis: str,
+                  hits: list[FaceHits]) -> tuple[NDArray[Any], dict[str, Any]]:
+    """One corner or face signal on the target, and its report entry.
+
+    UV maps (2D corner values) are laid out per target face in one island
+    (``engine/carrying/charts.py``); face values come from the source face
+    under each target face's centre, never blended (``faces.py``); other
+    corner values keep their seams (``corners.py``). ``hits`` caches where the
+    target's face centres land (filled on first use).
+    """
+    assert inp.target is not None
+    src, tgt = inp.source, inp.target
+    if sig.domain == "FACE":
+        if not hits:
+            hits.append(faces_under_centres(pair, tgt.corners, tgt.sizes))
+        face_values = carry_faces(hits[0], sig.name, sig.values, len(src.sizes))
+        return unit_rotations(face_values, sig.data_type), {
+            "kind": sig.kind, "domain": "FACE", "route": "source face under each face centre",
+            "source_error": 0.0}
+    if sig.data_type == "FLOAT2":
+        charted = carry_charted(pair, sig.name, sig.values, src.corners, src.sizes, tgt.corners, tgt.sizes)
+        return charted.values, {"kind": sig.kind, "domain": "CORNER", "route": "UV islands",
+                                "source_error": 0.0}
+    carried = pair.carry_corners(sig.name, sig.values, sig.kind, src.corners, src.sizes, tgt.corners,
+                                 tgt.sizes, basis=basis, inset=CORNER_INSET)
+    return carried.values, {"kind": sig.kind, "domain": "CORNER", "source_error": carried.source_error}
 
 
 def _transfer(inp: JobInput, progress: Progress) -> JobOutput:
@@ -233,7 +271,8 @@ def _transfer(inp: JobInput, progress: Progress) -> JobOutput:
     settings = replace(inp.settings, landmarks=landmarks)
     # the correspondence and kept transfers depend on these; detail options and
     # the basis are passed per call
-    keyed = replace(settings, basis="pointwise", detail_strength=1.0, detail_size=0.05)
+    keyed = replace(settings, basis="pointwise", detail_strength=1.0, detail_size=0.05,
+                    max_influences=0, weight_threshold=0.0, keep_weight_totals=True)
     pair, held = _pair(inp, keyed, progress)
     values: dict[str, NDArray[Any]] = {}
     positions = None
@@ -264,6 +303,8 @@ def _preview(inp: JobInput, progress: Progress) -> JobOutput:
     shape = _shape(inp.source, inp.names[0], inp.cache_folder)
     signals = {}
     for sig in inp.signals:
+        if sig.domain == "FACE" or sig.data_type == "FLOAT2" and sig.domain == "CORNER":
+            continue  # face values and UV maps are never filtered: shown as they are
         raw = (vertex_average(sig.values, inp.source.corners, shape.n_original)
                if sig.domain == "CORNER" else sig.values)
         checked = check_signal(sig.name, raw, shape.n_original, sig.kind)
@@ -273,6 +314,9 @@ def _preview(inp: JobInput, progress: Progress) -> JobOutput:
     preview = approximate_signals(shape, signals, basis=settings.basis, k=k, order=settings.order)
     values: dict[str, NDArray[Any]] = {}
     for sig in inp.signals:
+        if sig.name not in preview.values:
+            values[sig.name] = np.asarray(sig.values)
+            continue
         v = np.asarray(preview.values[sig.name])
         values[sig.name] = v[inp.source.corners] if sig.domain == "CORNER" else v
     report: dict[str, Any] = {

@@ -47,7 +47,8 @@ PREVIEW_SUFFIX = "_carried"
 
 ENGINE_NAMES = {"match_mode": "match", "basis": "basis", "eigenfunctions": "k",
                 "product_order": "order", "detail_strength": "detail_strength",
-                "detail_size": "detail_size"}
+                "detail_size": "detail_size", "max_influences": "max_influences",
+                "weight_threshold": "weight_threshold", "keep_weight_totals": "keep_weight_totals"}
 """The add-on's setting names (scene properties, batch ``settings`` keys) and
 the :class:`engine.Settings` field each one sets: the one place they meet."""
 
@@ -104,6 +105,8 @@ class Plan:
     target: str
     request: PairRequest
     inputs: job.JobInput
+    not_carried: tuple[tuple[str, str], ...] = ()
+    """The source's layers Overtone cannot carry, with the reason (reported)."""
 
     @property
     def written_on(self) -> str:
@@ -254,7 +257,13 @@ def make_plan(kind: str, source: bpy.types.Object | None, target: bpy.types.Obje
     inputs = job.JobInput(kind, bridge.read_mesh(source, evaluated=request.as_shown), target_input,
                           tuple(bridge.read_signal(source, s, evaluated=request.as_shown) for s in signals),
                           groups, request.settings, (source.name, (target or source).name), folder, limit)
-    return Plan(kind, source.name, (target or source).name, request, inputs)
+    skipped = () if kind == "detail" else not_carried(source, request.as_shown)
+    return Plan(kind, source.name, (target or source).name, request, inputs, skipped)
+
+
+def not_carried(source: bpy.types.Object, evaluated: bool) -> tuple[tuple[str, str], ...]:
+    """(name, reason) for each source layer Overtone does not carry."""
+    return tuple((layer.name, reason) for layer, reason in bridge.uncarried_layers(source, evaluated=evaluated))
 
 
 # --------------------------------------------------------------------------- writing
@@ -307,6 +316,8 @@ def finish(plan: Plan, out: job.JobOutput) -> dict[str, Any]:
     report = dict(out.report)
     report["written"] = written
     report["object"] = plan.written_on
+    if plan.not_carried:
+        report["not_carried"] = {name: reason for name, reason in plan.not_carried}
     report["summary"] = _summary(plan, report)
     return report
 
@@ -318,8 +329,9 @@ def _summary(plan: Plan, report: dict[str, Any]) -> str:
     conf = report.get("mean_confidence")
     conf_text = f"{conf:.2f}" if isinstance(conf, float) else "?"
     what = "detail" if plan.kind == "detail" else f"{len(plan.inputs.signals)} signals"
+    skipped = f"; not carried: {', '.join(name for name, _ in plan.not_carried)}" if plan.not_carried else ""
     return (f"carried {what} from {plan.source!r} to {plan.target!r} "
-            f"({report.get('mode')}, mean confidence {conf_text})")
+            f"({report.get('mode')}, mean confidence {conf_text}){skipped}")
 
 
 # --------------------------------------------------------------------------- running

@@ -15,18 +15,10 @@ from engine.carrying.weights import WeightOptions, carry_weights, is_partition, 
 from engine.jobs.demo import creature
 from engine.jobs.pair import Pair, Settings
 from engine.spectra.shape import Shape
+from tests.pairs import rig
 
 BONES = 11
 BASES = ("pointwise", "laplacian", "orthoproducts", "products")
-
-
-def rig(uv, bones=BONES, keep=4):
-    """(n, bones) linear-blend weights of the body coordinate u: 4 influences summing to 1."""
-    u = np.asarray(uv)[:, 0]
-    centres = (np.arange(bones) + 0.5) / bones
-    raw = np.exp(-((u[:, None] - centres[None]) / (1.2 / bones)) ** 2)
-    np.put_along_axis(raw, np.argsort(-raw, axis=1)[:, keep:], 0.0, axis=1)
-    return raw / raw.sum(axis=1, keepdims=True)
 
 
 @pytest.fixture(scope="module")

@@ -274,7 +274,8 @@ class Pair:
             "timings": dict(self.timings),
             "cache_hits": {**self.cache_hits, "source": dict(self.source.hits), "target": dict(self.target.hits)},
         }
-        if self.weights_report is not None:
+        carried_groups = results and any(r.report.get("kind") == "weight" for r in results.values())
+        if carried_groups and self.weights_report is not None:
             out["weights"] = dict(self.weights_report)
         if self._transfers:
             out["bases"] = {name: t.report()["transfer"] for name, t in self._transfers.items()}

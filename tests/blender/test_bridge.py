@@ -110,10 +110,12 @@ def test_list_layers_skips_blender_internals(bridge, grid):
     # colours first, vertex groups last; generic attributes in Blender's own order
     assert listed[0] == ("paint", "color", "POINT", "FLOAT_COLOR")
     assert listed[-1] == ("spine", "weight", "POINT", "VERTEX_GROUP")
-    assert sorted(listed[1:-1]) == [("flow", "vector", "POINT", "FLOAT_VECTOR"),
-                                    ("height", "float", "POINT", "FLOAT"),
-                                    ("keep", "mask", "POINT", "BOOLEAN"),
-                                    ("part", "label", "POINT", "INT")]
+    # then point, corner (UV maps) and face layers, each domain in Blender's own order
+    assert sorted(listed[1:5]) == [("flow", "vector", "POINT", "FLOAT_VECTOR"),
+                                   ("height", "float", "POINT", "FLOAT"),
+                                   ("keep", "mask", "POINT", "BOOLEAN"),
+                                   ("part", "label", "POINT", "INT")]
+    assert listed[5:-1] == [("UVMap", "vector", "CORNER", "FLOAT2"), ("per_face", "float", "FACE", "FLOAT")]
 
 
 # ----------------------------------------------------------------------------- colours
@@ -303,7 +305,8 @@ def test_bad_array_leaves_target_unchanged(bridge, grid, bad, match):
     (("w", "weight", "POINT", "VERTEX_GROUP"), np.full(30, 1.5), r"weights must lie in \[0, 1\], got \[1.5, 1.5\]"),
     (("l", "label", "POINT", "INT"), np.full(30, 0.5), "labels must be whole numbers"),
     (("m", "mask", "POINT", "BOOLEAN"), np.zeros(30), "a mask needs bool values, got float64"),
-    (("f", "float", "CORNER", "FLOAT"), np.zeros(80), "domain 'CORNER' not supported for FLOAT"),
+    (("f", "float", "EDGE", "FLOAT"), np.zeros(49), "domain 'EDGE' not supported for FLOAT"),
+    (("i", "label", "CORNER", "INT"), np.zeros(80), "domain 'CORNER' not supported for INT"),
     (("f", "color", "POINT", "FLOAT"), np.zeros(30), "kind 'color' does not match data type FLOAT"),
     ((".f", "float", "POINT", "FLOAT"), np.zeros(30), "names must be non-empty and not start with '.'"),
 ])
