@@ -67,7 +67,7 @@ def test_rig_weights_keep_their_sums_and_four_influences(mod, scene, basis):
     np.testing.assert_allclose(got.sum(axis=1), 1.0, atol=1e-4)
     assert np.count_nonzero(got, axis=1).max() <= 4
     # close to the true rig on the bent copy (engine figures on this pair:
-    # 0.0024-0.0028 mean, under 0.045 max; tests/test_weights.py)
+    # 0.0028-0.0029 mean, under 0.045 max; docs/measurements.md)
     assert np.abs(got - truth).mean() < 0.005
     assert np.abs(got - truth).max() < 0.08
 
