@@ -317,7 +317,7 @@ def finish(plan: Plan, out: job.JobOutput) -> dict[str, Any]:
     report["written"] = written
     report["object"] = plan.written_on
     if plan.not_carried:
-        report["not_carried"] = {name: reason for name, reason in plan.not_carried}
+        report["skipped"] = {name: reason for name, reason in plan.not_carried}
     report["summary"] = _summary(plan, report)
     return report
 

@@ -203,8 +203,8 @@ def test_uncarried_layers_are_named_with_a_reason(mod, scene):
     _tick(scene, {"spin", "tag"})
     assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
     report = json.loads(scene.overtone.report_json)
-    assert set(report["not_carried"]) >= {"note", "crease_edge"}
-    assert "edge" in report["not_carried"]["crease_edge"]
+    assert set(report["skipped"]) >= {"note", "crease_edge"}
+    assert "edge" in report["skipped"]["crease_edge"]
     tag = tgt.data.attributes["tag"]
     assert tag.data_type == 'INT8'
     values = np.empty(len(tgt.data.vertices), np.int32)
