@@ -35,7 +35,7 @@ it was before the call.
 
 from __future__ import annotations
 
-from collections.abc import Iterator, Sequence
+from collections.abc import Callable, Collection, Iterator, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any, Literal, cast
@@ -60,6 +60,8 @@ __all__ = [
     "carryable",
     "not_carried_reason",
     "element_property",
+    "shape_modifiers",
+    "select_group",
     "confidence_output",
     "shape_key_output",
     "write_outputs",
@@ -143,6 +145,11 @@ def _mesh_of(obj: bpy.types.Object, evaluated: bool) -> Iterator[bpy.types.Mesh]
 
 
 def _matrix(obj: bpy.types.Object) -> NDArray[np.float64]:
+    """The object's world matrix as it is now. ``matrix_world`` is only brought
+    up to date by a depsgraph evaluation: a script that sets ``scale`` or
+    ``location`` and runs Overtone at once would otherwise be read with the old
+    matrix, so the depsgraph is evaluated first (a no-op when nothing changed)."""
+    bpy.context.evaluated_depsgraph_get()
     return np.array(cast("Sequence[Sequence[float]]", obj.matrix_world), dtype=np.float64)
 
 
@@ -151,8 +158,8 @@ def _elements(attr: bpy.types.Attribute) -> Any:
     return cast(Any, attr).data
 
 
-def read_mesh(obj: bpy.types.Object, *, evaluated: bool = False) -> MeshData:
-    """Read a mesh object's geometry in world space.
+def read_mesh(obj: bpy.types.Object, *, evaluated: bool = False, local: bool = False) -> MeshData:
+    """Read a mesh object's geometry in world space (or its own, local, space).
 
     Parameters
     ----------
@@ -160,6 +167,8 @@ def read_mesh(obj: bpy.types.Object, *, evaluated: bool = False) -> MeshData:
         A mesh object.
     evaluated : bool
         Read the mesh as shown in the viewport (modifiers applied).
+    local : bool
+        Keep the mesh's own coordinates, ignoring where the object sits.
 
     Returns
     -------
@@ -168,16 +177,16 @@ def read_mesh(obj: bpy.types.Object, *, evaluated: bool = False) -> MeshData:
         (the vertex of each face corner, faces one after another), ``sizes``
         (f,) int64 (corners per face).
     """
-    matrix = _matrix(obj)
+    matrix = np.eye(4) if local else _matrix(obj)
     with _mesh_of(obj, evaluated) as mesh:
         n, c, f = len(mesh.vertices), len(mesh.loops), len(mesh.polygons)
-        local = np.empty(n * 3, dtype=np.float32)
-        _elements(mesh.attributes["position"]).foreach_get("vector", local)
+        flat = np.empty(n * 3, dtype=np.float32)
+        _elements(mesh.attributes["position"]).foreach_get("vector", flat)
         corner_verts = np.empty(c, dtype=np.int32)
         _elements(mesh.attributes[".corner_vert"]).foreach_get("value", corner_verts)
         sizes = np.empty(f, dtype=np.int32)
         mesh.polygons.foreach_get("loop_total", sizes)
-    points = local.reshape(n, 3).astype(np.float64)
+    points = flat.reshape(n, 3).astype(np.float64)
     world = points @ matrix[:3, :3].T + matrix[:3, 3]
     return MeshData(np.ascontiguousarray(world), corner_verts.astype(np.int64), sizes.astype(np.int64))
 
@@ -295,6 +304,39 @@ def read_vertex_groups(obj: bpy.types.Object, names: Sequence[str] | None = None
     return weights
 
 
+def shape_modifiers(obj: bpy.types.Object) -> list[str]:
+    """The viewport modifiers of ``obj`` when, together, they change its shape.
+
+    Returns the names of the modifiers shown in the viewport when the mesh as
+    shown differs from the mesh itself (another vertex count, or a vertex
+    moved by more than a millionth of the mesh's size); otherwise ``[]``.
+    """
+    shown = [m.name for m in obj.modifiers if m.show_viewport]
+    if not shown:
+        return []
+    base = read_mesh(obj, local=True)
+    evaluated = read_mesh(obj, evaluated=True, local=True)
+    if base.vertices.shape != evaluated.vertices.shape:
+        return shown
+    size = float(np.ptp(base.vertices, axis=0).max()) if len(base.vertices) else 0.0
+    moved = float(np.abs(base.vertices - evaluated.vertices).max()) if len(base.vertices) else 0.0
+    return shown if moved > 1e-6 * max(size, 1e-12) else []
+
+
+def select_group(obj: bpy.types.Object, name: str) -> int:
+    """Select exactly the vertices of ``obj`` with weight in group ``name``; return how many."""
+    if obj.mode == 'EDIT':
+        raise ValueError(f"object {obj.name!r} is in edit mode; leave it to select a group")
+    weights = read_vertex_groups(obj, [name])[name]
+    mesh = cast(bpy.types.Mesh, obj.data)
+    chosen = weights > 0
+    mesh.vertices.foreach_set("select", chosen)
+    mesh.edges.foreach_set("select", np.zeros(len(mesh.edges), dtype=bool))
+    mesh.polygons.foreach_set("select", np.zeros(len(mesh.polygons), dtype=bool))
+    mesh.update()
+    return int(chosen.sum())
+
+
 def read_signal(obj: bpy.types.Object, signal: Layer, *, evaluated: bool = False) -> Signal:
     """The signal held by one layer from :func:`list_layers`.
 
@@ -343,7 +385,8 @@ def shape_key_output(name: str, positions: NDArray[np.floating[Any]]) -> Signal:
     return Layer(name, "POINT", "SHAPE_KEY").signal(np.asarray(positions))
 
 
-def _validated(obj: bpy.types.Object, mesh: bpy.types.Mesh, sig: Signal) -> NDArray[np.generic]:
+def _validated(obj: bpy.types.Object, mesh: bpy.types.Mesh, sig: Signal,
+               local: bool = False) -> NDArray[np.generic]:
     where = f"result {sig.name!r} for object {obj.name!r}"
     if sig.data_type not in _CHANNELS:
         raise ValueError(f"{where}: unknown data type {sig.data_type!r}")
@@ -379,7 +422,7 @@ def _validated(obj: bpy.types.Object, mesh: bpy.types.Mesh, sig: Signal) -> NDAr
     if sig.data_type == "VERTEX_GROUP" and values.size and (values.min() < 0 or values.max() > 1):
         raise ValueError(f"{where}: weights must lie in [0, 1], got "
                          f"[{values.min():g}, {values.max():g}]")
-    if sig.data_type == "SHAPE_KEY":
+    if sig.data_type == "SHAPE_KEY" and not local:
         matrix = _matrix(obj)
         if abs(np.linalg.det(matrix[:3, :3])) < 1e-12:
             raise ValueError(f"{where}: object matrix is singular, cannot go back to local space")
@@ -400,6 +443,9 @@ class _Names:
     """The names in use on the target, and which of them may be replaced."""
 
     def __init__(self, obj: bpy.types.Object, mesh: bpy.types.Mesh) -> None:
+        self.kinds: dict[str, Layer] = {a.name: Layer(a.name, a.domain, a.data_type)
+                                        for a in mesh.attributes if a.data_type in _KIND_OF_TYPE}
+        self.kinds.update({g.name: Layer(g.name, "POINT", "VERTEX_GROUP") for g in obj.vertex_groups})
         self.layers = {a.name for a in mesh.attributes} | {g.name for g in obj.vertex_groups}
         keys = mesh.shape_keys
         self.shapes = {k.name for k in keys.key_blocks} if keys else set()
@@ -433,12 +479,15 @@ class _Names:
         return self.shapes if shape else self.layers
 
     def fresh(self, base: str, shape: bool) -> str:
+        """``base``, or ``base_ot<k>`` with the smallest free k; a name over
+        Blender's 63 bytes is shortened and always gets a suffix, so two long
+        names that share their first 63 bytes stay apart."""
         taken = self.taken(shape)
-        name = _fit(base)
-        k = 1
+        k = 0 if len(base.encode()) <= _MAX_NAME_BYTES else 1
+        name = _fit(base, f"{SUFFIX}{k}" if k else "")
         while name in taken:
-            name = _fit(base, f"{SUFFIX}{k}")
             k += 1
+            name = _fit(base, f"{SUFFIX}{k}")
         taken.add(name)
         return name
 
@@ -452,27 +501,86 @@ class _Plan:
     replaces: bool       # an old layer called ``final`` is removed at the end
 
 
+def _conformed(mesh: bpy.types.Mesh, sig: Signal, values: NDArray[np.generic],
+               old: Layer) -> tuple[Signal, NDArray[np.generic]] | None:
+    """The result shaped as the layer it replaces (that layer's domain and type),
+    or None when it cannot be (another kind, or a domain that cannot hold it)."""
+    if old.data_type == sig.data_type and old.domain == sig.domain:
+        return sig, values
+    if old.kind != sig.kind or sig.kind != "color" or old.domain not in ("POINT", "CORNER"):
+        return None
+    if old.domain != sig.domain:
+        corner_verts = np.empty(len(mesh.loops), dtype=np.int32)
+        _elements(mesh.attributes[".corner_vert"]).foreach_get("value", corner_verts)
+        if old.domain == "CORNER":
+            values = values[corner_verts]
+        else:
+            sums = np.zeros((len(mesh.vertices), values.shape[1]))
+            np.add.at(sums, corner_verts, values)
+            counts = np.bincount(corner_verts, minlength=len(mesh.vertices))
+            values = (sums / np.maximum(counts, 1)[:, None]).astype(np.float32)
+    return old.signal(values), values
+
+
+def _plan(obj: bpy.types.Object, mesh: bpy.types.Mesh, outputs: Sequence[Signal],
+          may_replace: Callable[[str], bool], local: bool) -> list[_Plan]:
+    """Check every result and choose its name (nothing is written here)."""
+    names = _Names(obj, mesh)
+    seen: set[tuple[bool, str]] = set()
+    plans: list[_Plan] = []
+    for out in outputs:
+        values = _validated(obj, mesh, out, local)
+        shape = out.data_type == "SHAPE_KEY"
+        wanted = out.name
+        if (shape, wanted) in seen:
+            raise ValueError(f"two results are called {wanted!r}")
+        seen.add((shape, wanted))
+        protected = names.protected_shapes if shape else names.protected_for(out)
+        if not shape and wanted in protected and may_replace(names.home(wanted, protected)):
+            wanted = names.home(wanted, protected)  # one name on every run, never Blender's layer
+        fitted = None
+        if wanted in names.taken(shape) and may_replace(wanted) and wanted not in protected:
+            old = names.kinds.get(wanted)
+            fitted = (out, values) if shape or old is None else _conformed(mesh, out, values, old)
+        if fitted is not None:
+            plans.append(_Plan(fitted[0], fitted[1], wanted, names.fresh(wanted, shape), True))
+        else:
+            final = names.fresh(wanted, shape)
+            plans.append(_Plan(out, values, final, final, False))
+    return plans
+
+
 def _snapshot(obj: bpy.types.Object, mesh: bpy.types.Mesh) -> dict[str, object]:
     colors = mesh.color_attributes
     uvs = mesh.uv_layers
     render_uv = next((uv.name for uv in uvs if uv.active_render), None)
+    render = colors.render_color_index
     return {"active_uv": uvs.active.name if uvs.active else None, "render_uv": render_uv,
-            "active_color": colors.active_color_name, "render_color": colors.render_color_index,
+            "active_color": colors.active_color_name,
+            "render_color": colors[render].name if 0 <= render < len(colors) else None,
             "active_attr": mesh.attributes.active.name if mesh.attributes.active else None,
-            "active_group": obj.vertex_groups.active_index,
+            "active_group": obj.vertex_groups.active.name if obj.vertex_groups.active else None,
             "active_shape": obj.active_shape_key_index}
 
 
 def _restore(obj: bpy.types.Object, mesh: bpy.types.Mesh, state: dict[str, object]) -> None:
+    """Put back the active and render colour, active attribute and group, by name."""
     colors = mesh.color_attributes
-    if state["active_color"]:
-        colors.active_color_name = cast(str, state["active_color"])
-    colors.render_color_index = cast(int, state["render_color"])
+    names = [c.name for c in colors]
+    active_color, render_color = state["active_color"], state["render_color"]
+    if isinstance(active_color, str) and active_color in names:
+        colors.active_color_name = active_color
+    if isinstance(render_color, str) and render_color in names:
+        colors.render_color_index = names.index(render_color)
     active = state["active_attr"]
     if isinstance(active, str) and active in mesh.attributes:
         mesh.attributes.active = mesh.attributes[active]
-    obj.vertex_groups.active_index = cast(int, state["active_group"])
-    obj.active_shape_key_index = cast(int, state["active_shape"])
+    group = state["active_group"]
+    if isinstance(group, str) and group in obj.vertex_groups:
+        obj.vertex_groups.active_index = obj.vertex_groups[group].index
+    keys = mesh.shape_keys
+    if keys is not None and cast(int, state["active_shape"]) < len(keys.key_blocks):
+        obj.active_shape_key_index = cast(int, state["active_shape"])
     _restore_uv_maps(mesh, state)
 
 
@@ -514,22 +622,22 @@ def _write_vertex_group(obj: bpy.types.Object, mesh: bpy.types.Mesh, name: str,
 
 
 def _write_shape_key(obj: bpy.types.Object, mesh: bpy.types.Mesh, name: str,
-                     local: NDArray[np.float32]) -> None:
+                     local: NDArray[np.float32], value: float) -> None:
     if mesh.shape_keys is None:
         obj.shape_key_add(name="Basis", from_mix=False)
     key = obj.shape_key_add(name=name, from_mix=False)
     key.data.foreach_set("co", local.ravel())
-    key.value = 1.0
+    key.value = value
     mesh.update()
 
 
 def _write_layer(obj: bpy.types.Object, mesh: bpy.types.Mesh, sig: Signal, name: str,
-                 values: NDArray[np.generic]) -> None:
+                 values: NDArray[np.generic], key_value: float = 1.0) -> None:
     if sig.data_type == "VERTEX_GROUP":
         _write_vertex_group(obj, mesh, name, cast("NDArray[np.float32]", values))
         return
     if sig.data_type == "SHAPE_KEY":
-        _write_shape_key(obj, mesh, name, cast("NDArray[np.float32]", values))
+        _write_shape_key(obj, mesh, name, cast("NDArray[np.float32]", values), key_value)
         return
     if sig.data_type in _COLOR_TYPES and sig.domain in ("POINT", "CORNER"):
         color = mesh.color_attributes.new(name, sig.data_type, sig.domain)
@@ -565,8 +673,17 @@ def _rename(obj: bpy.types.Object, mesh: bpy.types.Mesh, old: str, new: str, sha
         mesh.attributes[old].name = new
 
 
-def write_outputs(obj: bpy.types.Object, outputs: Sequence[Signal], *,
-                  replace: bool = False) -> dict[str, str]:
+def _key_value(mesh: bpy.types.Mesh, name: str, default: float) -> float:
+    """The value of shape key ``name`` (the artist's choice to keep on a refresh), else ``default``."""
+    keys = mesh.shape_keys
+    if keys is not None and name in keys.key_blocks:
+        return float(keys.key_blocks[name].value)
+    return default
+
+
+def write_outputs(obj: bpy.types.Object, outputs: Sequence[Signal], *, replace: bool = False,
+                  refresh: Collection[str] = (), local: bool = False,
+                  key_value: float = 1.0) -> dict[str, str]:
     """Write results onto a mesh object, all or nothing.
 
     Parameters
@@ -576,12 +693,24 @@ def write_outputs(obj: bpy.types.Object, outputs: Sequence[Signal], *,
     outputs : sequence of engine.Signal
         The results, each with its domain and Blender data type: values
         ``(m,)`` for FLOAT, INT, BOOLEAN and VERTEX_GROUP, ``(m, 3)`` for
-        FLOAT_VECTOR and SHAPE_KEY (world-space positions), ``(m, 4)`` or
-        ``(m, 3)`` linear RGB(A) for colours. Names must be distinct within
-        a kind (layers / shape keys).
+        FLOAT_VECTOR and SHAPE_KEY (positions), ``(m, 4)`` or ``(m, 3)``
+        linear RGB(A) for colours. Names must be distinct within a kind
+        (layers / shape keys).
     replace : bool
         Replace a target layer that already has a result's name; otherwise the
         result gets the next free ``<name>_ot<k>``.
+    refresh : collection of str
+        Names that are replaced even without ``replace`` (what Overtone wrote
+        there before).
+    local : bool
+        Shape-key positions are in the object's own space (default: world).
+    key_value : float
+        Value of a new shape key; a replaced key keeps the value it had.
+
+    A replaced layer keeps its domain and type (a colour changes domain by
+    taking each vertex's value to its corners, or the mean of its corners);
+    one of another kind is kept and the result takes a fresh name. The active
+    and render colour, active attribute and active group stay as they were.
 
     Returns
     -------
@@ -599,32 +728,15 @@ def write_outputs(obj: bpy.types.Object, outputs: Sequence[Signal], *,
     if obj.mode == 'EDIT':
         raise ValueError(f"object {obj.name!r} is in edit mode; leave it to write results")
     mesh = cast(bpy.types.Mesh, obj.data)
-    names = _Names(obj, mesh)
-    seen: set[tuple[bool, str]] = set()
-    plans: list[_Plan] = []
-    for out in outputs:
-        values = _validated(obj, mesh, out)
-        shape = out.data_type == "SHAPE_KEY"
-        wanted = out.name
-        if (shape, wanted) in seen:
-            raise ValueError(f"two results are called {wanted!r}")
-        seen.add((shape, wanted))
-        protected = names.protected_shapes if shape else names.protected_for(out)
-        if replace and not shape and wanted in protected:
-            wanted = names.home(wanted, protected)
-        if wanted in names.taken(shape) and replace and wanted not in protected:
-            plans.append(_Plan(out, values, wanted, names.fresh(wanted, shape), True))
-        else:
-            final = names.fresh(wanted, shape)
-            plans.append(_Plan(out, values, final, final, False))
-
+    plans = _plan(obj, mesh, outputs, lambda name: replace or name in refresh, local)
     state = _snapshot(obj, mesh)
     had_keys = mesh.shape_keys is not None
     written: list[_Plan] = []
     try:
         for plan in plans:
             written.append(plan)
-            _write_layer(obj, mesh, plan.output, plan.write_as, plan.values)
+            value = _key_value(mesh, plan.final, key_value) if plan.replaces else key_value
+            _write_layer(obj, mesh, plan.output, plan.write_as, plan.values, value)
     except BaseException:
         for plan in reversed(written):
             _remove(obj, mesh, plan.write_as, plan.output.data_type == "SHAPE_KEY")
@@ -638,9 +750,6 @@ def write_outputs(obj: bpy.types.Object, outputs: Sequence[Signal], *,
             shape = plan.output.data_type == "SHAPE_KEY"
             _remove(obj, mesh, plan.final, shape)
             _rename(obj, mesh, plan.write_as, plan.final, shape)
-    active = state["active_attr"]
-    if isinstance(active, str) and active in mesh.attributes:
-        mesh.attributes.active = mesh.attributes[active]
-    _restore_uv_maps(mesh, state)
+    _restore(obj, mesh, state)
     mesh.update()
     return {plan.output.name: plan.final for plan in plans}

@@ -264,9 +264,11 @@ def test_name_clash_with_vertex_group(bridge, grid):
     values = np.arange(30, dtype=np.float32)
     assert bridge.write_outputs(grid, [sig.signal(values)]) == {"mask": "mask_ot1"}
     assert "mask" in grid.vertex_groups
-    assert bridge.write_outputs(grid, [sig.signal(values)], replace=True) == {"mask": "mask"}
-    assert "mask" not in grid.vertex_groups
-    np.testing.assert_array_equal(bridge.read_signal(grid, sig).values, values)
+    # Replace keeps the target layer's kind: the group stays, the float takes a fresh name
+    assert bridge.write_outputs(grid, [sig.signal(values)], replace=True) == {"mask": "mask_ot2"}
+    assert "mask" in grid.vertex_groups
+    np.testing.assert_array_equal(bridge.read_signal(grid, bridge.Layer("mask_ot2", "POINT", "FLOAT")).values,
+                                  values)
 
 
 def test_blender_layers_are_never_replaced(bridge, grid):
@@ -276,12 +278,80 @@ def test_blender_layers_are_never_replaced(bridge, grid):
     assert out == {"UVMap": "UVMap_ot1"} and "UVMap" in grid.data.uv_layers
 
 
-def test_long_names_are_shortened_to_fit(bridge, grid):
-    long = "n" * 63
-    sig = bridge.Layer(long, "POINT", "FLOAT")
-    bridge.write_outputs(grid, [sig.signal(np.zeros(30, np.float32))])
-    out = bridge.write_outputs(grid, [sig.signal(np.ones(30, np.float32))])
-    assert out[long] == "n" * 59 + "_ot1"  # 63 bytes, Blender's vertex-group limit and out[long] in grid.data.attributes
+def test_long_names_are_shortened_uniquely(bridge, grid):
+    # Blender keeps 63 bytes of an attribute or group name (docs/platform.md); a
+    # longer result name is shortened and always suffixed, so two names sharing
+    # their first 63 bytes never land on one layer
+    first, second = "n" * 60 + "_carried", "n" * 60 + "_carriedX"
+    out = bridge.write_outputs(grid, [bridge.Layer(first, "POINT", "FLOAT").signal(np.zeros(30, np.float32)),
+                                      bridge.Layer(second, "POINT", "FLOAT").signal(np.ones(30, np.float32))])
+    assert out == {first: "n" * 59 + "_ot1", second: "n" * 59 + "_ot2"}
+    assert all(len(name.encode()) == 63 and name in grid.data.attributes for name in out.values())
+    short = "m" * 63  # fits: written as it is
+    assert bridge.write_outputs(grid, [bridge.Layer(short, "POINT", "FLOAT").signal(np.zeros(30, np.float32))]) \
+        == {short: short}
+
+
+def test_refresh_replaces_without_the_replace_option(bridge, grid):
+    sig = bridge.Layer("tint", "POINT", "FLOAT_COLOR")
+    bridge.write_outputs(grid, [sig.signal(np.zeros((30, 4), np.float32))])
+    out = bridge.write_outputs(grid, [sig.signal(np.ones((30, 4), np.float32))], refresh={"tint"})
+    assert out == {"tint": "tint"} and [c.name for c in grid.data.color_attributes] == ["tint"]
+    np.testing.assert_array_equal(bridge.read_signal(grid, sig).values, np.ones((30, 4), np.float32))
+
+
+def test_replace_keeps_domain_type_and_colour_choices(bridge, grid):
+    mesh = grid.data
+    mesh.color_attributes.new("base", 'BYTE_COLOR', 'POINT')
+    mesh.color_attributes.new("tint", 'BYTE_COLOR', 'CORNER')
+    mesh.color_attributes.active_color_name = "base"
+    mesh.color_attributes.render_color_index = 1          # "tint"
+    values = RNG.random((30, 4)).astype(np.float32)
+    carried = bridge.Layer("tint", "POINT", "FLOAT_COLOR").signal(values)
+    out = bridge.write_outputs(grid, [carried, bridge.confidence_output(np.ones(30))], replace=True)
+    assert out == {"tint": "tint", "overtone_confidence": "overtone_confidence"}
+    attr = mesh.color_attributes["tint"]
+    assert (attr.domain, attr.data_type) == ("CORNER", "BYTE_COLOR")   # the target's, not the source's
+    names = [c.name for c in mesh.color_attributes]
+    assert mesh.color_attributes.active_color_name == "base"
+    assert names[mesh.color_attributes.render_color_index] == "tint"
+    back = bridge.read_signal(grid, bridge.Layer("tint", "CORNER", "BYTE_COLOR")).values
+    corner_vert = [lp.vertex_index for lp in mesh.loops]
+    # each corner holds its vertex's value, to 8-bit sRGB precision (one step: 1/255 of the encoded value)
+    np.testing.assert_allclose(srgb_encode(back[:, :3]), srgb_encode(values[corner_vert, :3]), atol=1.01 / 255)
+
+
+def test_refreshed_shape_key_keeps_its_value(bridge, grid):
+    positions = bridge.read_mesh(grid).vertices
+    bridge.write_outputs(grid, [bridge.shape_key_output("carved", positions + 0.1)])
+    grid.data.shape_keys.key_blocks["carved"].value = 0.4
+    bridge.write_outputs(grid, [bridge.shape_key_output("carved", positions + 0.2)], refresh={"carved"})
+    keys = grid.data.shape_keys.key_blocks
+    assert [k.name for k in keys] == ["Basis", "carved"] and keys["carved"].value == pytest.approx(0.4)
+    bridge.write_outputs(grid, [bridge.shape_key_output("carved", positions)], key_value=0.0)
+    assert keys["carved_ot1"].value == 0.0
+
+
+def test_stale_object_matrix_is_brought_up_to_date(bridge, grid):
+    # a script sets the transform and reads at once: matrix_world is only updated by a
+    # depsgraph evaluation (docs/platform.md), which read_mesh asks for
+    grid.scale = (1.0, 1.6, 0.8)
+    grid.location = (3.0, -1.0, 0.5)
+    local = np.array([v.co[:] for v in grid.data.vertices])
+    expected = local * np.array([1.0, 1.6, 0.8]) + np.array([3.0, -1.0, 0.5])
+    np.testing.assert_allclose(bridge.read_mesh(grid).vertices, expected, atol=1e-6)
+    np.testing.assert_allclose(bridge.read_mesh(grid, local=True).vertices, local, atol=0)
+
+
+def test_shape_modifiers_are_named_only_when_they_change_the_shape(bridge, grid):
+    assert bridge.shape_modifiers(grid) == []
+    weld = grid.modifiers.new("weld", 'WELD')             # nothing closer than its distance: no change
+    assert bridge.shape_modifiers(grid) == []
+    mirror = grid.modifiers.new("mirror", 'MIRROR')
+    assert bridge.shape_modifiers(grid) == ["weld", "mirror"]
+    mirror.show_viewport = False
+    weld.show_viewport = False
+    assert bridge.shape_modifiers(grid) == []
 
 
 # ----------------------------------------------------------------------------- all or nothing
@@ -332,11 +402,11 @@ def test_failure_midway_removes_what_was_added(bridge, grid, monkeypatch):
     real = bridge._write_layer
     calls = []
 
-    def flaky(obj, mesh, sig, name, values):
+    def flaky(obj, mesh, sig, name, values, *rest):
         calls.append(name)
         if len(calls) == 4:
             raise RuntimeError("disk on fire")
-        real(obj, mesh, sig, name, values)
+        real(obj, mesh, sig, name, values, *rest)
 
     monkeypatch.setattr(bridge, "_write_layer", flaky)
     n = 30
