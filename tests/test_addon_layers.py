@@ -11,14 +11,7 @@ import numpy as np
 from tests import meshes
 from tests.pairs import rig
 from tests.test_addon_job import engine, job
-from tests.test_faces import region, true_uv, uv_sphere
-
-
-def _centres(v, cv, sizes):
-    face = np.repeat(np.arange(len(sizes)), sizes)
-    c = np.zeros((len(sizes), 3))
-    np.add.at(c, face, v[cv])
-    return c / sizes[:, None]
+from tests.test_faces import face_centres, region, true_uv, uv_sphere
 
 
 def test_uv_map_faces_rotations_and_groups_through_one_job():
@@ -26,7 +19,7 @@ def test_uv_map_faces_rotations_and_groups_through_one_job():
     tv, tf = meshes.icosphere(3)
     source = engine.MeshData(v, cv.astype(np.int64), sizes.astype(np.int64))
     target = engine.MeshData(tv, tf.ravel().astype(np.int64), np.full(len(tf), 3, dtype=np.int64))
-    material = region(_centres(v, cv, sizes)).astype(np.int32)
+    material = region(face_centres(v, cv, sizes)).astype(np.int32)
     spin = np.tile([0.0, 0.0, 0.0, 2.0], (len(v), 1)).astype(np.float32)
     # a rig along the sphere's axis: u from the height
     weights = rig(np.column_stack([(1 - v[:, 2]) / 2, np.zeros(len(v))]))

@@ -71,7 +71,7 @@ def remeshed():
     return Pair(S, T, Settings(match="aligned")), (v, cv, sizes, uv), (tv, tf.ravel(), np.full(len(tf), 3))
 
 
-def _centres(v, cv, sizes):
+def face_centres(v, cv, sizes):
     face = np.repeat(np.arange(len(sizes)), sizes)
     c = np.zeros((len(sizes), 3))
     np.add.at(c, face, v[cv])
@@ -92,11 +92,11 @@ def test_the_source_map_is_what_it_claims():
 
 def test_material_index_arrives_by_the_face_under_each_centre(remeshed):
     pair, (v, cv, sizes, _), (tv, tcv, tsizes) = remeshed
-    material = region(_centres(v, cv, sizes))
+    material = region(face_centres(v, cv, sizes))
     hits = faces_under_centres(pair, tcv, tsizes)
     got = carry_faces(hits, "material_index", material, len(sizes))
     assert got.dtype == material.dtype
-    centres = _centres(tv, tcv, tsizes)
+    centres = face_centres(tv, tcv, tsizes)
     wrong = got != region(centres)
     # a target face can only be wrong where its centre lies in a source face
     # that straddles a region border (source faces are about 0.26 across)
@@ -112,7 +112,7 @@ def test_faces_of_an_identical_copy_are_exact():
     v, cv, sizes, _ = uv_sphere()
     S, T = Shape(v, corners=cv, sizes=sizes), Shape(v, corners=cv, sizes=sizes)
     pair = Pair(S, T, Settings(match="aligned"))
-    material = region(_centres(v, cv, sizes))
+    material = region(face_centres(v, cv, sizes))
     got = carry_faces(faces_under_centres(pair, cv, sizes), "m", material, len(sizes))
     np.testing.assert_array_equal(got, material)
     flags = material % 2 == 0
@@ -127,7 +127,7 @@ def test_uv_map_arrives_with_a_seam_along_target_edges(remeshed):
     # the truth there, then compare each face as a whole
     centre_u = np.repeat(got.reshape(-1, 3, 2)[:, :, 0].mean(axis=1), 3)
     truth_u = truth[:, 0] + np.round(centre_u - truth[:, 0])
-    inside = np.repeat(np.abs(_centres(tv, tcv, tsizes)[:, 2]) < 0.9, 3)  # longitude is singular at the poles
+    inside = np.repeat(np.abs(face_centres(tv, tcv, tsizes)[:, 2]) < 0.9, 3)  # longitude is singular at the poles
     err_u = np.abs(got[:, 0] - truth_u)[inside]
     err_v = np.abs(got[:, 1] - truth[:, 1])[inside]
     # faces on an equirectangular map of a 16 x 24 polygon sphere: chords
