@@ -318,8 +318,23 @@ def finish(plan: Plan, out: job.JobOutput) -> dict[str, Any]:
     report["object"] = plan.written_on
     if plan.not_carried:
         report["skipped"] = {name: reason for name, reason in plan.not_carried}
-    report["summary"] = _summary(plan, report)
+    note = material_note(obj, written, out)
+    if note:
+        report["materials"] = note
+    report["summary"] = _summary(plan, report) + (f"; {note}" if note else "")
     return report
+
+
+def material_note(obj: bpy.types.Object, written: dict[str, str], out: job.JobOutput) -> str:
+    """A warning when carried material indices name slots the target does not have."""
+    if written.get("material_index") != "material_index" or "material_index" not in out.values:
+        return ""
+    highest = int(np.max(out.values["material_index"], initial=0))
+    slots = len(cast(bpy.types.Mesh, obj.data).materials)
+    if highest < max(slots, 1):
+        return ""
+    return (f"material indices go up to {highest} but {obj.name!r} has {slots} material slots: "
+            "give it the source's materials (Link Materials, Ctrl L)")
 
 
 def _summary(plan: Plan, report: dict[str, Any]) -> str:

@@ -190,6 +190,8 @@ def test_uv_map_and_material_index_arrive_on_a_remeshed_copy(mod, scene):
     near = (np.min(np.abs(centres[:, 2:3] - [-0.35, 0.4]), axis=1) < 0.15) | (np.abs(centres[:, 0] - 0.2) < 0.15)
     assert not (wrong & ~near).any()
     assert wrong.mean() < 0.06
+    # the target has no material slots for those indices: the report says so
+    assert "material slots" in json.loads(scene.overtone.report_json)["materials"]
 
 
 def test_uncarried_layers_are_named_with_a_reason(mod, scene):
