@@ -248,15 +248,16 @@ def carry_by_face(inp: JobInput, pair: Pair, sig: Signal, basis: str,
     """
     assert inp.target is not None
     src, tgt = inp.source, inp.target
+    if not hits and (sig.domain == "FACE" or sig.data_type == "FLOAT2"):
+        hits.append(faces_under_centres(pair, tgt.corners, tgt.sizes))
     if sig.domain == "FACE":
-        if not hits:
-            hits.append(faces_under_centres(pair, tgt.corners, tgt.sizes))
         face_values = carry_faces(hits[0], sig.name, sig.values, len(src.sizes))
         return unit_rotations(face_values, sig.data_type), {
             "kind": sig.kind, "domain": "FACE", "route": "source face under each face centre",
             "source_error": 0.0}
     if sig.data_type == "FLOAT2":
-        charted = carry_charted(pair, sig.name, sig.values, src.corners, src.sizes, tgt.corners, tgt.sizes)
+        charted = carry_charted(pair, sig.name, sig.values, src.corners, src.sizes, tgt.corners, tgt.sizes,
+                                hits[0])
         return charted.values, {"kind": sig.kind, "domain": "CORNER", "route": "UV islands",
                                 "source_error": 0.0}
     carried = pair.carry_corners(sig.name, sig.values, sig.kind, src.corners, src.sizes, tgt.corners,

@@ -36,7 +36,7 @@ from scipy.sparse import coo_matrix
 from scipy.sparse.csgraph import connected_components
 
 from .corners import CornerResult, triangle_corners
-from .faces import faces_under_centres, polygon_arrays
+from .faces import FaceHits, faces_under_centres, polygon_arrays
 from .signals import check_signal
 
 __all__ = ["SAME_VALUE", "JUMP", "polygon_islands", "plane_barycentric", "carry_charted"]
@@ -100,7 +100,7 @@ def plane_barycentric(points: NDArray[np.float64], corners: NDArray[np.float64])
 
 def carry_charted(pair: Any, name: str, values: ArrayLike, source_corner_verts: ArrayLike,
                   source_face_sizes: ArrayLike, target_corner_verts: ArrayLike,
-                  target_face_sizes: ArrayLike) -> CornerResult:
+                  target_face_sizes: ArrayLike, hits: FaceHits | None = None) -> CornerResult:
     """Carry one per-corner map laid out in islands (module docstring).
 
     Parameters
@@ -110,6 +110,8 @@ def carry_charted(pair: Any, name: str, values: ArrayLike, source_corner_verts: 
     name : str
     values : (c_s, k) float, one row per source corner (k = 2 for a UV map)
     source_corner_verts, source_face_sizes, target_corner_verts, target_face_sizes : the polygons
+    hits : FaceHits, optional
+        Where the target's face centres land, when already found.
 
     Returns
     -------
@@ -122,7 +124,10 @@ def carry_charted(pair: Any, name: str, values: ArrayLike, source_corner_verts: 
     vals = check_signal(name, values, len(s_cv), "vector").reshape(len(s_cv), -1)
     island = polygon_islands(vals, s_cv, s_sizes)
     tri_island = island[np.asarray(S.prepared.tri_polygon)]
-    hits = faces_under_centres(pair, t_cv, t_sizes)
+    if hits is None:
+        hits = faces_under_centres(pair, t_cv, t_sizes)
+    if len(hits.triangle) != len(t_sizes):
+        raise ValueError(f"carrying {name!r}: the face centres were found for another target")
     corr = cast(Any, pair.correspondence)
     own_tri = np.asarray(T.restore(corr.triangle), dtype=np.int64)[t_cv]
     own_bary = np.asarray(T.restore(corr.barycentric), dtype=np.float64)[t_cv]
