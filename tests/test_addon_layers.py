@@ -25,7 +25,9 @@ def test_uv_map_faces_rotations_and_groups_through_one_job():
     weights = rig(np.column_stack([(1 - v[:, 2]) / 2, np.zeros(len(v))]))
     signals = [engine.Signal("UVMap", "vector", uv.astype(np.float32), np.dtype(np.float32), "CORNER", "FLOAT2"),
                engine.Signal("material_index", "label", material, material.dtype, "FACE", "INT"),
-               engine.Signal("spin", "vector", spin, spin.dtype, "POINT", "QUATERNION")]
+               engine.Signal("spin", "vector", spin, spin.dtype, "POINT", "QUATERNION"),
+               engine.Signal("height", "float", v[cv][:, 2].astype(np.float32), np.dtype(np.float32),
+                             "CORNER", "FLOAT")]
     signals += [engine.Signal(f"bone{b}", "weight", weights[:, b].astype(np.float32), np.dtype(np.float32),
                               "POINT", "VERTEX_GROUP") for b in range(weights.shape[1])]
     job.forget_pairs()
@@ -35,6 +37,9 @@ def test_uv_map_faces_rotations_and_groups_through_one_job():
     assert np.abs(out.values["UVMap"][:, 1] - true_uv(tv[target.corners])[:, 1]).max() < 0.02
     assert out.values["material_index"].dtype == np.int32 and out.values["material_index"].shape == (len(tf),)
     assert set(np.unique(out.values["material_index"])) <= set(np.unique(material))
+    # a corner float linear in position: interpolation on the source's flat faces,
+    # within the sphere's chord error (16 rings: 1 - cos(pi / 32) < 0.005)
+    assert np.abs(out.values["height"].ravel() - tv[target.corners][:, 2]).max() < 0.01
     np.testing.assert_allclose(out.values["spin"], np.tile([0, 0, 0, 1.0], (len(tv), 1)), atol=1e-9)
     groups = np.column_stack([out.values[f"bone{b}"] for b in range(weights.shape[1])])
     np.testing.assert_allclose(groups.sum(axis=1), 1.0, atol=1e-4)

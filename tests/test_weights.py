@@ -132,3 +132,9 @@ def test_bad_weights_and_options_are_named(bent):
         WeightOptions(threshold=1.0)
     with pytest.raises(ValueError, match="threshold"):
         Settings(weight_threshold=float("nan"))
+
+
+def test_empty_groups_stay_empty(bent):
+    pair, ws, _ = bent
+    got = pair.carry({"a": (np.zeros(len(ws)), "weight"), "b": (np.zeros(len(ws)), "weight")})
+    assert not got["a"].values.any() and not got["b"].values.any()

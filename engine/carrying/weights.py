@@ -166,7 +166,7 @@ def carry_weights(transfer: Transfer, groups: dict[str, ArrayLike],
     else:
         totals = np.minimum(out.sum(axis=1), 1.0)
     before = int(np.count_nonzero(out))
-    limit = int(opts.max_influences) or source_most
+    limit = int(opts.max_influences) or max(source_most, 1)
     out = limit_influences(out, totals, max_influences=limit, threshold=opts.threshold,
                            keep_totals=opts.keep_totals)
     if not np.isfinite(out).all():  # never write NaN
