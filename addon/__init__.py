@@ -1,7 +1,7 @@
 """Overtone: carry vertex colours, attributes, weights and surface detail between meshes.
 
 The add-on is thin: :mod:`.bridge` turns Blender meshes into arrays and back,
-:mod:`.transfer` hands the arrays to the bundled engine (``.engine``),
+:mod:`.runs` and :mod:`.job` hand them to the bundled engine (``.engine``),
 operators read settings and report, panels draw.
 """
 

@@ -38,7 +38,7 @@ from typing import Any
 import bpy
 
 from .properties import BASES, MATCH_MODES
-from .runs import PairRequest, check_pair, default_signals, transfer_pair
+from .runs import PairRequest, check_pair, default_signals, engine_settings, transfer_pair
 
 __all__ = ["COMMAND", "JobError", "Job", "PairJob", "load_job", "main", "register", "unregister"]
 
@@ -70,7 +70,8 @@ _CHOICES = {"match_mode": [m[0] for m in MATCH_MODES], "basis": [b[0] for b in B
 _SETTING_TYPES: dict[str, type | tuple[type, ...]] = {
     "match_mode": str, "basis": str, "eigenfunctions": int, "product_order": int,
     "detail_strength": (int, float), "detail_size": (int, float), "as_shown": bool,
-    "replace_existing": bool,
+    "replace_existing": bool, "max_influences": int, "weight_threshold": (int, float),
+    "keep_weight_totals": bool,
 }
 _PAIR_KEYS = {"source", "target", "signals", "detail", "settings"}
 _JOB_KEYS = {"version", "settings", "pairs", "report", "save"}
@@ -99,7 +100,12 @@ def _apply_settings(request: PairRequest, settings: Any, where: str) -> PairRequ
         elif key == "detail_size" and not 0 < value <= 1:
             raise JobError(f"{where}: setting 'detail_size' must be in (0, 1], got {value}")
         changes[key] = value
-    return replace(request, **changes)
+    flags = {key: changes.pop(key) for key in ("as_shown", "replace_existing") if key in changes}
+    try:
+        settings = engine_settings(changes, request.settings)
+    except ValueError as error:
+        raise JobError(f"{where}: {error}") from None
+    return replace(request, settings=settings, **flags)
 
 
 def _path(value: Any, base: Path, where: str) -> Path:

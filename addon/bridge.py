@@ -1,9 +1,10 @@
 """The one place where Overtone touches Blender mesh data.
 
-Reads a mesh object into plain numpy arrays (world-space positions, polygons as
-corners and sizes, the per-vertex or per-corner signals it carries) and writes
-arrays back as colour attributes, generic attributes, vertex groups and shape
-keys. Everything else in the add-on sees arrays and the small dataclasses below.
+Reads a mesh object into the engine's own types (:class:`engine.MeshData`:
+world-space positions, polygons as corners and sizes; :class:`engine.Signal`:
+the per-vertex or per-corner layers it carries) and writes signals back as
+colour attributes, generic attributes, vertex groups and shape keys. A
+:class:`Layer` names where a signal lives on a mesh before its values are read.
 
 Conventions
 -----------
@@ -13,8 +14,7 @@ Conventions
   are, a ``BYTE_COLOR`` attribute stores 8-bit sRGB (linear 0.5 -> 188/255;
   alpha is not converted).
 - ``m`` is the vertex count for the ``POINT`` domain and the corner count for
-  ``CORNER``. Corner signals keep their seams: see :func:`split_corner_groups`
-  and :func:`corner_points`.
+  ``CORNER``. Corner signals keep their seams: see ``engine/carrying/corners.py``.
 
 Naming policy for results
 -------------------------
@@ -35,7 +35,7 @@ it was before the call.
 
 from __future__ import annotations
 
-from collections.abc import Iterator, Sequence
+from collections.abc import Callable, Collection, Iterator, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any, Literal, cast
@@ -44,27 +44,30 @@ import bmesh
 import bpy
 import numpy as np
 
+from .engine import MeshData, Signal
+
 if TYPE_CHECKING:
     from numpy.typing import NDArray
 
 __all__ = [
-    "MeshArrays",
-    "Signal",
-    "Output",
-    "CornerGroups",
+    "Layer",
     "SUFFIX",
     "read_mesh",
-    "list_signals",
+    "list_layers",
     "read_signal",
     "read_vertex_groups",
-    "split_corner_groups",
-    "corner_points",
+    "uncarried_layers",
+    "carryable",
+    "not_carried_reason",
+    "element_property",
+    "shape_modifiers",
+    "select_group",
     "confidence_output",
     "shape_key_output",
     "write_outputs",
 ]
 
-Kind = Literal["color", "float", "vector", "weight", "label", "mask", "shape"]
+Kind = Literal["color", "float", "vector", "weight", "label", "mask"]
 
 SUFFIX = "_ot"
 """Results whose name is taken get ``<name>_ot1``, ``<name>_ot2``, ..."""
@@ -73,65 +76,33 @@ _MAX_NAME_BYTES = 63  # Blender's attribute and vertex-group names hold 63 bytes
 _COLOR_TYPES = ("BYTE_COLOR", "FLOAT_COLOR")
 _GENERIC_KIND: dict[str, Kind] = {
     "FLOAT": "float", "FLOAT_VECTOR": "vector", "INT": "label", "BOOLEAN": "mask",
+    "FLOAT2": "vector", "QUATERNION": "vector", "INT8": "label", "INT16_2D": "label",
+    "INT32_2D": "label",
 }
 _CHANNELS = {"FLOAT": 0, "FLOAT_VECTOR": 3, "INT": 0, "BOOLEAN": 0, "BYTE_COLOR": 4,
-             "FLOAT_COLOR": 4, "VERTEX_GROUP": 0, "SHAPE_KEY": 3}
+             "FLOAT_COLOR": 4, "VERTEX_GROUP": 0, "SHAPE_KEY": 3, "FLOAT2": 2, "QUATERNION": 4,
+             "INT8": 0, "INT16_2D": 2, "INT32_2D": 2}
 _KIND_OF_TYPE: dict[str, Kind] = {**_GENERIC_KIND, "BYTE_COLOR": "color", "FLOAT_COLOR": "color",
-                                  "VERTEX_GROUP": "weight", "SHAPE_KEY": "shape"}
-_INT32 = np.iinfo(np.int32)
+                                  "VERTEX_GROUP": "weight", "SHAPE_KEY": "vector"}
+_INT_RANGE: dict[str, tuple[int, int]] = {
+    "INT": (-2**31, 2**31 - 1), "INT32_2D": (-2**31, 2**31 - 1), "INT8": (-128, 127),
+    "INT16_2D": (-2**15, 2**15 - 1)}
+_READ_DTYPE = {"FLOAT": np.float32, "FLOAT_VECTOR": np.float32, "FLOAT2": np.float32,
+               "QUATERNION": np.float32, "BYTE_COLOR": np.float32, "FLOAT_COLOR": np.float32,
+               "INT": np.int32, "INT8": np.int32, "INT16_2D": np.int32, "INT32_2D": np.int32,
+               "BOOLEAN": np.bool_}
+_CORNER_TYPES = ("BYTE_COLOR", "FLOAT_COLOR", "FLOAT", "FLOAT_VECTOR", "FLOAT2")
+_FACE_SETS = ".sculpt_face_set"  # Blender's face sets: an INT face attribute (from memory)
 
 
 @dataclass(frozen=True)
-class MeshArrays:
-    """A mesh object's geometry as arrays.
-
-    Attributes
-    ----------
-    name : str
-        The object's name.
-    positions : (n, 3) float64 array
-        Vertex positions in world space.
-    corner_verts : (c,) int64 array
-        Vertex of each face corner, faces one after another.
-    face_sizes : (f,) int64 array
-        Corner count of each face (the engine triangulates).
-    matrix_world : (4, 4) float64 array
-        The object's world matrix at the time of reading.
-    evaluated : bool
-        True when read from the evaluated mesh (modifiers applied, "as shown").
-    """
-
-    name: str
-    positions: NDArray[np.float64]
-    corner_verts: NDArray[np.int64]
-    face_sizes: NDArray[np.int64]
-    matrix_world: NDArray[np.float64]
-    evaluated: bool
-
-    @property
-    def face_starts(self) -> NDArray[np.int64]:
-        """(f,) int64 array: index of each face's first corner."""
-        starts = np.zeros(len(self.face_sizes), dtype=np.int64)
-        np.cumsum(self.face_sizes[:-1], out=starts[1:])
-        return starts
-
-    @property
-    def corner_faces(self) -> NDArray[np.int64]:
-        """(c,) int64 array: face of each corner."""
-        return np.repeat(np.arange(len(self.face_sizes), dtype=np.int64), self.face_sizes)
-
-
-@dataclass(frozen=True)
-class Signal:
-    """What one per-vertex or per-corner layer is.
+class Layer:
+    """Where one per-vertex or per-corner signal lives on a mesh.
 
     Attributes
     ----------
     name : str
         The layer's name on the mesh (vertex group, attribute or shape key).
-    kind : {"color", "float", "vector", "weight", "label", "mask", "shape"}
-        How the engine treats it: labels (integers) and masks (booleans) are
-        never blended; "shape" only appears in outputs.
     domain : {"POINT", "CORNER"}
     data_type : str
         Blender's type: ``BYTE_COLOR``, ``FLOAT_COLOR``, ``FLOAT``,
@@ -140,49 +111,18 @@ class Signal:
     """
 
     name: str
-    kind: Kind
     domain: str
     data_type: str
 
+    @property
+    def kind(self) -> Kind:
+        """How the engine treats it: labels (integers) and masks (booleans) are never blended."""
+        return _KIND_OF_TYPE[self.data_type]
 
-@dataclass(frozen=True)
-class Output:
-    """One result to write: a signal description and its values.
-
-    ``values`` is ``(m,)`` for FLOAT, INT, BOOLEAN and VERTEX_GROUP,
-    ``(m, 3)`` for FLOAT_VECTOR and SHAPE_KEY (world-space positions),
-    ``(m, 4)`` or ``(m, 3)`` linear RGB(A) for colours.
-    """
-
-    signal: Signal
-    values: NDArray[np.generic]
-
-
-@dataclass(frozen=True)
-class CornerGroups:
-    """Corners of one vertex that carry the same value, merged.
-
-    A vertex away from any seam has one group; a vertex on a colour seam has
-    one group per side. A per-vertex transfer can carry ``group_values`` of the
-    single-group vertices, and seam vertices keep one value per side.
-
-    Attributes
-    ----------
-    corner_group : (c,) int64 array
-        Group of each corner.
-    group_vert : (g,) int64 array
-        Vertex of each group (sorted ascending).
-    group_values : (g, k) array
-        The value all corners of a group share.
-    """
-
-    corner_group: NDArray[np.int64]
-    group_vert: NDArray[np.int64]
-    group_values: NDArray[np.generic]
-
-    def groups_per_vertex(self, n_vertices: int) -> NDArray[np.int64]:
-        """(n,) int64 array: number of groups at each vertex (0 if it has no corner)."""
-        return np.bincount(self.group_vert, minlength=n_vertices).astype(np.int64)
+    def signal(self, values: NDArray[Any]) -> Signal:
+        """The engine signal holding ``values`` for this layer."""
+        array = np.asarray(values)
+        return Signal(self.name, self.kind, array, array.dtype, self.domain, self.data_type)
 
 
 # --------------------------------------------------------------------------- reading
@@ -205,6 +145,11 @@ def _mesh_of(obj: bpy.types.Object, evaluated: bool) -> Iterator[bpy.types.Mesh]
 
 
 def _matrix(obj: bpy.types.Object) -> NDArray[np.float64]:
+    """The object's world matrix as it is now. ``matrix_world`` is only brought
+    up to date by a depsgraph evaluation: a script that sets ``scale`` or
+    ``location`` and runs Overtone at once would otherwise be read with the old
+    matrix, so the depsgraph is evaluated first (a no-op when nothing changed)."""
+    bpy.context.evaluated_depsgraph_get()
     return np.array(cast("Sequence[Sequence[float]]", obj.matrix_world), dtype=np.float64)
 
 
@@ -213,8 +158,8 @@ def _elements(attr: bpy.types.Attribute) -> Any:
     return cast(Any, attr).data
 
 
-def read_mesh(obj: bpy.types.Object, *, evaluated: bool = False) -> MeshArrays:
-    """Read a mesh object's geometry in world space.
+def read_mesh(obj: bpy.types.Object, *, evaluated: bool = False, local: bool = False) -> MeshData:
+    """Read a mesh object's geometry in world space (or its own, local, space).
 
     Parameters
     ----------
@@ -222,49 +167,111 @@ def read_mesh(obj: bpy.types.Object, *, evaluated: bool = False) -> MeshArrays:
         A mesh object.
     evaluated : bool
         Read the mesh as shown in the viewport (modifiers applied).
+    local : bool
+        Keep the mesh's own coordinates, ignoring where the object sits.
 
     Returns
     -------
-    MeshArrays
+    engine.MeshData
+        ``vertices`` (n, 3) float64 in world space, ``corners`` (c,) int64
+        (the vertex of each face corner, faces one after another), ``sizes``
+        (f,) int64 (corners per face).
     """
-    matrix = _matrix(obj)
+    matrix = np.eye(4) if local else _matrix(obj)
     with _mesh_of(obj, evaluated) as mesh:
         n, c, f = len(mesh.vertices), len(mesh.loops), len(mesh.polygons)
-        local = np.empty(n * 3, dtype=np.float32)
-        _elements(mesh.attributes["position"]).foreach_get("vector", local)
+        flat = np.empty(n * 3, dtype=np.float32)
+        _elements(mesh.attributes["position"]).foreach_get("vector", flat)
         corner_verts = np.empty(c, dtype=np.int32)
         _elements(mesh.attributes[".corner_vert"]).foreach_get("value", corner_verts)
         sizes = np.empty(f, dtype=np.int32)
         mesh.polygons.foreach_get("loop_total", sizes)
-    points = local.reshape(n, 3).astype(np.float64)
+    points = flat.reshape(n, 3).astype(np.float64)
     world = points @ matrix[:3, :3].T + matrix[:3, 3]
-    return MeshArrays(obj.name, np.ascontiguousarray(world), corner_verts.astype(np.int64),
-                      sizes.astype(np.int64), matrix, evaluated)
+    return MeshData(np.ascontiguousarray(world), corner_verts.astype(np.int64), sizes.astype(np.int64))
 
 
 def _is_user_layer(attr: bpy.types.Attribute) -> bool:
     return not (attr.name.startswith(".") or attr.is_internal or attr.is_required)
 
 
-def list_signals(obj: bpy.types.Object, *, evaluated: bool = False) -> list[Signal]:
-    """Every signal a mesh object carries, in a stable order.
+def element_property(data_type: str) -> str:
+    """The property of an attribute's elements that holds its values."""
+    if data_type in _COLOR_TYPES:
+        return "color"
+    return "vector" if data_type in ("FLOAT_VECTOR", "FLOAT2") else "value"
+
+
+def carryable(domain: str, data_type: str) -> bool:
+    """Whether Overtone carries a layer of this domain and type.
+
+    Point layers of every numeric type; corner colours, floats, vectors and
+    2D values (UV maps); face layers of every numeric type (never blended).
+    Edges, text and matrices are not carried: :func:`not_carried_reason`.
+    """
+    if data_type in ("VERTEX_GROUP", "SHAPE_KEY"):
+        return domain == "POINT"
+    if data_type not in _CHANNELS:
+        return False
+    if domain == "CORNER":
+        return data_type in _CORNER_TYPES
+    return domain in ("POINT", "FACE")
+
+
+def not_carried_reason(domain: str, data_type: str) -> str:
+    """Why a layer of this domain and type is not carried, in an artist's words."""
+    if domain == "EDGE":
+        return ("edge layers (sharp edges, seams, creases) belong to the target's own edges, which "
+                "do not run along the source's; carried UV maps get their seams along the target's "
+                "faces (UV > Seams from Islands marks them)")
+    if data_type == "STRING":
+        return "text cannot be blended or located on another mesh"
+    if data_type == "FLOAT4X4":
+        return "blended matrices are no longer rotations and scales"
+    if domain == "CORNER":
+        return ("whole numbers, true/false values and rotations per face corner have no rule "
+                "across different topologies")
+    return f"{domain.lower()} layers of type {data_type} are not carried"
+
+
+def _listed_attribute(attr: bpy.types.Attribute) -> bool:
+    if attr.name == _FACE_SETS and attr.domain == "FACE":
+        return True
+    return _is_user_layer(attr)
+
+
+def uncarried_layers(obj: bpy.types.Object, *, evaluated: bool = False) -> list[tuple[Layer, str]]:
+    """The source's layers Overtone does not carry, each with the reason."""
+    skipped: list[tuple[Layer, str]] = []
+    with _mesh_of(obj, evaluated) as mesh:
+        for attr in mesh.attributes:
+            if _listed_attribute(attr) and not carryable(attr.domain, attr.data_type):
+                skipped.append((Layer(attr.name, attr.domain, attr.data_type),
+                                not_carried_reason(attr.domain, attr.data_type)))
+    return skipped
+
+
+def list_layers(obj: bpy.types.Object, *, evaluated: bool = False) -> list[Layer]:
+    """Every layer a mesh object carries that Overtone can carry, in a stable order.
 
     Colour attributes (point and corner domain), then generic point attributes
-    (FLOAT, FLOAT_VECTOR, INT, BOOLEAN; Blender's own and ``.``-names skipped),
-    then vertex groups.
+    (FLOAT, FLOAT_VECTOR, INT, BOOLEAN, FLOAT2, QUATERNION, INT8 and integer
+    pairs; Blender's own and ``.``-names skipped), then UV maps and other
+    corner floats, then face attributes (material index, smooth/flat, face
+    sets, any numeric type), then vertex groups.
     """
-    found: list[Signal] = []
+    found: list[Layer] = []
     with _mesh_of(obj, evaluated) as mesh:
         for attr in mesh.color_attributes:
             if _is_user_layer(attr) and attr.domain in ("POINT", "CORNER"):
-                found.append(Signal(attr.name, "color", attr.domain, attr.data_type))
-        for attr in mesh.attributes:
-            if (_is_user_layer(attr) and attr.domain == "POINT"
-                    and attr.data_type in _GENERIC_KIND):
-                found.append(Signal(attr.name, _GENERIC_KIND[attr.data_type], "POINT",
-                                    attr.data_type))
+                found.append(Layer(attr.name, attr.domain, attr.data_type))
+        for domain in ("POINT", "CORNER", "FACE"):
+            for attr in mesh.attributes:
+                if (_listed_attribute(attr) and attr.domain == domain and attr.data_type in _GENERIC_KIND
+                        and carryable(domain, attr.data_type)):
+                    found.append(Layer(attr.name, domain, attr.data_type))
         for name in (vg.name for vg in obj.vertex_groups):
-            found.append(Signal(name, "weight", "POINT", "VERTEX_GROUP"))
+            found.append(Layer(name, "POINT", "VERTEX_GROUP"))
     return found
 
 
@@ -297,18 +304,51 @@ def read_vertex_groups(obj: bpy.types.Object, names: Sequence[str] | None = None
     return weights
 
 
-def read_signal(obj: bpy.types.Object, signal: Signal, *,
-                evaluated: bool = False) -> NDArray[np.generic]:
-    """The values of one signal from :func:`list_signals`.
+def shape_modifiers(obj: bpy.types.Object) -> list[str]:
+    """The viewport modifiers of ``obj`` when, together, they change its shape.
+
+    Returns the names of the modifiers shown in the viewport when the mesh as
+    shown differs from the mesh itself (another vertex count, or a vertex
+    moved by more than a millionth of the mesh's size); otherwise ``[]``.
+    """
+    shown = [m.name for m in obj.modifiers if m.show_viewport]
+    if not shown:
+        return []
+    base = read_mesh(obj, local=True)
+    evaluated = read_mesh(obj, evaluated=True, local=True)
+    if base.vertices.shape != evaluated.vertices.shape:
+        return shown
+    size = float(np.ptp(base.vertices, axis=0).max()) if len(base.vertices) else 0.0
+    moved = float(np.abs(base.vertices - evaluated.vertices).max()) if len(base.vertices) else 0.0
+    return shown if moved > 1e-6 * max(size, 1e-12) else []
+
+
+def select_group(obj: bpy.types.Object, name: str) -> int:
+    """Select exactly the vertices of ``obj`` with weight in group ``name``; return how many."""
+    if obj.mode == 'EDIT':
+        raise ValueError(f"object {obj.name!r} is in edit mode; leave it to select a group")
+    weights = read_vertex_groups(obj, [name])[name]
+    mesh = cast(bpy.types.Mesh, obj.data)
+    chosen = weights > 0
+    mesh.vertices.foreach_set("select", chosen)
+    mesh.edges.foreach_set("select", np.zeros(len(mesh.edges), dtype=bool))
+    mesh.polygons.foreach_set("select", np.zeros(len(mesh.polygons), dtype=bool))
+    mesh.update()
+    return int(chosen.sum())
+
+
+def read_signal(obj: bpy.types.Object, signal: Layer, *, evaluated: bool = False) -> Signal:
+    """The signal held by one layer from :func:`list_layers`.
 
     Returns
     -------
-    (m,) or (m, k) array
-        float32 (colours: linear RGBA; floats; vectors; weights), int32
-        (labels) or bool (masks); ``m`` vertices or corners by domain.
+    engine.Signal
+        Values (m,) or (m, k): float32 (colours: linear RGBA; floats; vectors;
+        weights), int32 (labels) or bool (masks); ``m`` vertices or corners
+        by domain.
     """
     if signal.data_type == "VERTEX_GROUP":
-        return read_vertex_groups(obj, [signal.name], evaluated=evaluated)[signal.name]
+        return signal.signal(read_vertex_groups(obj, [signal.name], evaluated=evaluated)[signal.name])
     with _mesh_of(obj, evaluated) as mesh:
         attr = mesh.attributes.get(signal.name)
         if attr is None or attr.data_type != signal.data_type or attr.domain != signal.domain:
@@ -316,92 +356,16 @@ def read_signal(obj: bpy.types.Object, signal: Signal, *,
                              f"{signal.data_type} attribute {signal.name!r}")
         m = len(_elements(attr))
         width = _CHANNELS[signal.data_type]
-        if signal.data_type in _COLOR_TYPES:
-            values: NDArray[np.generic] = np.empty(m * 4, dtype=np.float32)
-            _elements(attr).foreach_get("color", values)
-        elif signal.data_type == "FLOAT_VECTOR":
-            values = np.empty(m * 3, dtype=np.float32)
-            _elements(attr).foreach_get("vector", values)
-        else:
-            dtype = {"FLOAT": np.float32, "INT": np.int32, "BOOLEAN": np.bool_}[signal.data_type]
-            values = np.empty(m, dtype=dtype)
-            _elements(attr).foreach_get("value", values)
-    return values.reshape(m, width) if width else values
-
-
-# --------------------------------------------------------------------------- corners
-
-
-def split_corner_groups(values: NDArray[np.generic],
-                        corner_verts: NDArray[np.integer[Any]]) -> CornerGroups:
-    """Merge the corners of each vertex that carry exactly the same value.
-
-    Parameters
-    ----------
-    values : (c,) or (c, k) array
-        A corner-domain signal.
-    corner_verts : (c,) int array
-        Vertex of each corner (:attr:`MeshArrays.corner_verts`).
-
-    Returns
-    -------
-    CornerGroups
-    """
-    vals = np.asarray(values)
-    verts = np.asarray(corner_verts, dtype=np.int64)
-    if vals.shape[:1] != verts.shape:
-        raise ValueError(f"values has {vals.shape[0] if vals.ndim else 0} rows "
-                         f"for {len(verts)} corners")
-    rows = np.ascontiguousarray(vals.reshape(len(verts), -1))
-    keyed = np.concatenate([verts[:, None].view(np.uint8).reshape(len(verts), -1),
-                            rows.view(np.uint8).reshape(len(verts), -1)], axis=1)
-    key = np.ascontiguousarray(keyed).view(np.dtype((np.void, keyed.shape[1]))).ravel()
-    _, key_id = np.unique(key, return_inverse=True)  # one id per distinct (vertex, value)
-    key_id = key_id.ravel()
-    # Sorting on vertex first keeps group_vert ascending.
-    order = np.lexsort((key_id, verts))
-    first = np.ones(len(order), dtype=bool)
-    first[1:] = key_id[order[1:]] != key_id[order[:-1]]
-    group_sorted = np.cumsum(first) - 1
-    corner_group = np.empty(len(verts), dtype=np.int64)
-    corner_group[order] = group_sorted
-    heads = order[first]
-    return CornerGroups(corner_group, verts[heads], vals[heads])
-
-
-def corner_points(mesh: MeshArrays, *, inset: float = 0.25) -> NDArray[np.float64]:
-    """A world-space point inside each corner's face, near the corner.
-
-    Mapping these points (instead of the vertices) to the source lets the
-    corners on either side of a target seam find the source faces on their own
-    side.
-
-    Parameters
-    ----------
-    mesh : MeshArrays
-    inset : float
-        Fraction of the way from the vertex towards the face centroid, in (0, 1).
-
-    Returns
-    -------
-    (c, 3) float64 array
-    """
-    if not 0.0 < inset < 1.0:
-        raise ValueError(f"inset must lie in (0, 1), got {inset}")
-    corner_pos = mesh.positions[mesh.corner_verts]
-    faces = mesh.corner_faces
-    sums = np.zeros((len(mesh.face_sizes), 3))
-    np.add.at(sums, faces, corner_pos)
-    centroids = sums / mesh.face_sizes[:, None]
-    points: NDArray[np.float64] = corner_pos + inset * (centroids[faces] - corner_pos)
-    return points
+        values: NDArray[np.generic] = np.empty(m * max(width, 1), dtype=_READ_DTYPE[signal.data_type])
+        _elements(attr).foreach_get(element_property(signal.data_type), values)
+    return signal.signal(values.reshape(m, width) if width else values)
 
 
 # --------------------------------------------------------------------------- outputs
 
 
 def confidence_output(confidence: NDArray[np.floating[Any]], *,
-                      name: str = "overtone_confidence") -> Output:
+                      name: str = "overtone_confidence") -> Signal:
     """A point colour showing confidence in [0, 1]: white is sure, red is not.
 
     Stored linear ``(1, c, c, c)``, so the green, blue and alpha channels hold
@@ -413,29 +377,28 @@ def confidence_output(confidence: NDArray[np.floating[Any]], *,
     if not np.all(np.isfinite(conf)) or conf.size and (conf.min() < 0 or conf.max() > 1):
         raise ValueError("confidence must be finite and within [0, 1]")
     rgba = np.column_stack([np.ones_like(conf), conf, conf, conf]).astype(np.float32)
-    return Output(Signal(name, "color", "POINT", "FLOAT_COLOR"), rgba)
+    return Layer(name, "POINT", "FLOAT_COLOR").signal(rgba)
 
 
-def shape_key_output(name: str, positions: NDArray[np.floating[Any]]) -> Output:
+def shape_key_output(name: str, positions: NDArray[np.floating[Any]]) -> Signal:
     """A shape key from ``(n, 3)`` world-space positions (stored object-local)."""
-    return Output(Signal(name, "shape", "POINT", "SHAPE_KEY"), np.asarray(positions))
+    return Layer(name, "POINT", "SHAPE_KEY").signal(np.asarray(positions))
 
 
-def _validated(obj: bpy.types.Object, mesh: bpy.types.Mesh, out: Output) -> NDArray[np.generic]:
-    sig = out.signal
+def _validated(obj: bpy.types.Object, mesh: bpy.types.Mesh, sig: Signal,
+               local: bool = False) -> NDArray[np.generic]:
     where = f"result {sig.name!r} for object {obj.name!r}"
     if sig.data_type not in _CHANNELS:
         raise ValueError(f"{where}: unknown data type {sig.data_type!r}")
     if _KIND_OF_TYPE[sig.data_type] != sig.kind:
         raise ValueError(f"{where}: kind {sig.kind!r} does not match data type {sig.data_type}")
-    allowed = ("POINT", "CORNER") if sig.data_type in _COLOR_TYPES else ("POINT",)
-    if sig.domain not in allowed:
+    if not carryable(sig.domain, sig.data_type):
         raise ValueError(f"{where}: domain {sig.domain!r} not supported for {sig.data_type}")
-    if not sig.name or sig.name.startswith("."):
+    if not sig.name or (sig.name.startswith(".") and sig.name != _FACE_SETS):
         raise ValueError(f"{where}: names must be non-empty and not start with '.'")
-    rows = len(mesh.loops) if sig.domain == "CORNER" else len(mesh.vertices)
+    rows = {"CORNER": len(mesh.loops), "FACE": len(mesh.polygons)}.get(sig.domain, len(mesh.vertices))
     width = _CHANNELS[sig.data_type]
-    values: NDArray[Any] = np.asarray(out.values)
+    values: NDArray[Any] = np.asarray(sig.values)
     if sig.data_type in _COLOR_TYPES and values.ndim == 2 and values.shape[1] == 3:
         values = np.column_stack([values, np.ones(len(values), dtype=values.dtype)])
     expected = (rows, width) if width else (rows,)
@@ -450,15 +413,16 @@ def _validated(obj: bpy.types.Object, mesh: bpy.types.Mesh, out: Output) -> NDAr
     if not np.all(np.isfinite(values)):
         bad = int(np.flatnonzero(~np.isfinite(values.reshape(rows, -1)).all(axis=1))[0])
         raise ValueError(f"{where}: non-finite value at row {bad}")
-    if sig.data_type == "INT":
+    if sig.data_type in _INT_RANGE:
+        low, high = _INT_RANGE[sig.data_type]
         if values.size and (np.any(values != np.round(values))
-                            or values.min() < _INT32.min or values.max() > _INT32.max):
-            raise ValueError(f"{where}: labels must be whole numbers within 32-bit range")
+                            or values.min() < low or values.max() > high):
+            raise ValueError(f"{where}: labels must be whole numbers within [{low}, {high}]")
         return values.astype(np.int32)
     if sig.data_type == "VERTEX_GROUP" and values.size and (values.min() < 0 or values.max() > 1):
         raise ValueError(f"{where}: weights must lie in [0, 1], got "
                          f"[{values.min():g}, {values.max():g}]")
-    if sig.data_type == "SHAPE_KEY":
+    if sig.data_type == "SHAPE_KEY" and not local:
         matrix = _matrix(obj)
         if abs(np.linalg.det(matrix[:3, :3])) < 1e-12:
             raise ValueError(f"{where}: object matrix is singular, cannot go back to local space")
@@ -479,58 +443,155 @@ class _Names:
     """The names in use on the target, and which of them may be replaced."""
 
     def __init__(self, obj: bpy.types.Object, mesh: bpy.types.Mesh) -> None:
+        self.kinds: dict[str, Layer] = {a.name: Layer(a.name, a.domain, a.data_type)
+                                        for a in mesh.attributes if a.data_type in _KIND_OF_TYPE}
+        self.kinds.update({g.name: Layer(g.name, "POINT", "VERTEX_GROUP") for g in obj.vertex_groups})
         self.layers = {a.name for a in mesh.attributes} | {g.name for g in obj.vertex_groups}
         keys = mesh.shape_keys
         self.shapes = {k.name for k in keys.key_blocks} if keys else set()
         protected = {a.name for a in mesh.attributes if not _is_user_layer(a)}
-        protected |= {uv.name for uv in mesh.uv_layers}
+        self.uv_maps = {uv.name for uv in mesh.uv_layers}
+        protected |= self.uv_maps
         self.protected = protected
         if keys:
             self.protected_shapes = {keys.reference_key.name}
         else:
             self.protected_shapes = set()
 
+    def protected_for(self, out: Signal) -> set[str]:
+        """The layer names ``out`` may not replace: a UV map may replace a UV map,
+        face sets may replace face sets; nothing else replaces Blender's layers."""
+        if out.domain == "CORNER" and out.data_type == "FLOAT2":
+            return self.protected - self.uv_maps
+        if out.name == _FACE_SETS and out.domain == "FACE":
+            return self.protected - {_FACE_SETS}
+        return self.protected
+
+    def home(self, base: str, protected: set[str]) -> str:
+        """The first ``<base>_ot<k>`` that is not protected: where a result whose own
+        name is protected goes, the same name on every run."""
+        k = 1
+        while _fit(base, f"{SUFFIX}{k}") in protected:
+            k += 1
+        return _fit(base, f"{SUFFIX}{k}")
+
     def taken(self, shape: bool) -> set[str]:
         return self.shapes if shape else self.layers
 
     def fresh(self, base: str, shape: bool) -> str:
+        """``base``, or ``base_ot<k>`` with the smallest free k; a name over
+        Blender's 63 bytes is shortened and always gets a suffix, so two long
+        names that share their first 63 bytes stay apart."""
         taken = self.taken(shape)
-        name = _fit(base)
-        k = 1
+        k = 0 if len(base.encode()) <= _MAX_NAME_BYTES else 1
+        name = _fit(base, f"{SUFFIX}{k}" if k else "")
         while name in taken:
-            name = _fit(base, f"{SUFFIX}{k}")
             k += 1
+            name = _fit(base, f"{SUFFIX}{k}")
         taken.add(name)
         return name
 
 
 @dataclass
 class _Plan:
-    output: Output
+    output: Signal
     values: NDArray[np.generic]
     final: str           # the name the result ends with
     write_as: str        # the name it is written under first
     replaces: bool       # an old layer called ``final`` is removed at the end
 
 
+def _conformed(mesh: bpy.types.Mesh, sig: Signal, values: NDArray[np.generic],
+               old: Layer) -> tuple[Signal, NDArray[np.generic]] | None:
+    """The result shaped as the layer it replaces (that layer's domain and type),
+    or None when it cannot be (another kind, or a domain that cannot hold it)."""
+    if old.data_type == sig.data_type and old.domain == sig.domain:
+        return sig, values
+    if old.kind != sig.kind or sig.kind != "color" or old.domain not in ("POINT", "CORNER"):
+        return None
+    if old.domain != sig.domain:
+        corner_verts = np.empty(len(mesh.loops), dtype=np.int32)
+        _elements(mesh.attributes[".corner_vert"]).foreach_get("value", corner_verts)
+        if old.domain == "CORNER":
+            values = values[corner_verts]
+        else:
+            sums = np.zeros((len(mesh.vertices), values.shape[1]))
+            np.add.at(sums, corner_verts, values)
+            counts = np.bincount(corner_verts, minlength=len(mesh.vertices))
+            values = (sums / np.maximum(counts, 1)[:, None]).astype(np.float32)
+    return old.signal(values), values
+
+
+def _plan(obj: bpy.types.Object, mesh: bpy.types.Mesh, outputs: Sequence[Signal],
+          may_replace: Callable[[str], bool], local: bool) -> list[_Plan]:
+    """Check every result and choose its name (nothing is written here)."""
+    names = _Names(obj, mesh)
+    seen: set[tuple[bool, str]] = set()
+    plans: list[_Plan] = []
+    for out in outputs:
+        values = _validated(obj, mesh, out, local)
+        shape = out.data_type == "SHAPE_KEY"
+        wanted = out.name
+        if (shape, wanted) in seen:
+            raise ValueError(f"two results are called {wanted!r}")
+        seen.add((shape, wanted))
+        protected = names.protected_shapes if shape else names.protected_for(out)
+        if not shape and wanted in protected and may_replace(names.home(wanted, protected)):
+            wanted = names.home(wanted, protected)  # one name on every run, never Blender's layer
+        fitted = None
+        if wanted in names.taken(shape) and may_replace(wanted) and wanted not in protected:
+            old = names.kinds.get(wanted)
+            fitted = (out, values) if shape or old is None else _conformed(mesh, out, values, old)
+        if fitted is not None:
+            plans.append(_Plan(fitted[0], fitted[1], wanted, names.fresh(wanted, shape), True))
+        else:
+            final = names.fresh(wanted, shape)
+            plans.append(_Plan(out, values, final, final, False))
+    return plans
+
+
 def _snapshot(obj: bpy.types.Object, mesh: bpy.types.Mesh) -> dict[str, object]:
     colors = mesh.color_attributes
-    return {"active_color": colors.active_color_name, "render_color": colors.render_color_index,
+    uvs = mesh.uv_layers
+    render_uv = next((uv.name for uv in uvs if uv.active_render), None)
+    render = colors.render_color_index
+    return {"active_uv": uvs.active.name if uvs.active else None, "render_uv": render_uv,
+            "active_color": colors.active_color_name,
+            "render_color": colors[render].name if 0 <= render < len(colors) else None,
             "active_attr": mesh.attributes.active.name if mesh.attributes.active else None,
-            "active_group": obj.vertex_groups.active_index,
+            "active_group": obj.vertex_groups.active.name if obj.vertex_groups.active else None,
             "active_shape": obj.active_shape_key_index}
 
 
 def _restore(obj: bpy.types.Object, mesh: bpy.types.Mesh, state: dict[str, object]) -> None:
+    """Put back the active and render colour, active attribute and group, by name."""
     colors = mesh.color_attributes
-    if state["active_color"]:
-        colors.active_color_name = cast(str, state["active_color"])
-    colors.render_color_index = cast(int, state["render_color"])
+    names = [c.name for c in colors]
+    active_color, render_color = state["active_color"], state["render_color"]
+    if isinstance(active_color, str) and active_color in names:
+        colors.active_color_name = active_color
+    if isinstance(render_color, str) and render_color in names:
+        colors.render_color_index = names.index(render_color)
     active = state["active_attr"]
     if isinstance(active, str) and active in mesh.attributes:
         mesh.attributes.active = mesh.attributes[active]
-    obj.vertex_groups.active_index = cast(int, state["active_group"])
-    obj.active_shape_key_index = cast(int, state["active_shape"])
+    group = state["active_group"]
+    if isinstance(group, str) and group in obj.vertex_groups:
+        obj.vertex_groups.active_index = obj.vertex_groups[group].index
+    keys = mesh.shape_keys
+    if keys is not None and cast(int, state["active_shape"]) < len(keys.key_blocks):
+        obj.active_shape_key_index = cast(int, state["active_shape"])
+    _restore_uv_maps(mesh, state)
+
+
+def _restore_uv_maps(mesh: bpy.types.Mesh, state: dict[str, object]) -> None:
+    """The active and render UV maps back by name (a replaced map keeps its role)."""
+    uvs = mesh.uv_layers
+    active, render = state.get("active_uv"), state.get("render_uv")
+    if isinstance(active, str) and active in uvs:
+        uvs.active = uvs[active]
+    if isinstance(render, str) and render in uvs:
+        uvs[render].active_render = True
 
 
 def _write_vertex_group(obj: bpy.types.Object, mesh: bpy.types.Mesh, name: str,
@@ -561,33 +622,33 @@ def _write_vertex_group(obj: bpy.types.Object, mesh: bpy.types.Mesh, name: str,
 
 
 def _write_shape_key(obj: bpy.types.Object, mesh: bpy.types.Mesh, name: str,
-                     local: NDArray[np.float32]) -> None:
+                     local: NDArray[np.float32], value: float) -> None:
     if mesh.shape_keys is None:
         obj.shape_key_add(name="Basis", from_mix=False)
     key = obj.shape_key_add(name=name, from_mix=False)
     key.data.foreach_set("co", local.ravel())
-    key.value = 1.0
+    key.value = value
     mesh.update()
 
 
 def _write_layer(obj: bpy.types.Object, mesh: bpy.types.Mesh, sig: Signal, name: str,
-                 values: NDArray[np.generic]) -> None:
+                 values: NDArray[np.generic], key_value: float = 1.0) -> None:
     if sig.data_type == "VERTEX_GROUP":
         _write_vertex_group(obj, mesh, name, cast("NDArray[np.float32]", values))
         return
     if sig.data_type == "SHAPE_KEY":
-        _write_shape_key(obj, mesh, name, cast("NDArray[np.float32]", values))
+        _write_shape_key(obj, mesh, name, cast("NDArray[np.float32]", values), key_value)
         return
-    if sig.data_type in _COLOR_TYPES:
-        color = mesh.color_attributes.new(name, sig.data_type, sig.domain)  # type: ignore[arg-type]
+    if sig.data_type in _COLOR_TYPES and sig.domain in ("POINT", "CORNER"):
+        color = mesh.color_attributes.new(name, sig.data_type, sig.domain)
         if color is None:
             raise ValueError(f"object {obj.name!r}: could not create colour attribute {name!r}")
         _elements(color).foreach_set("color", values.ravel())
         return
-    attr = mesh.attributes.new(name, sig.data_type, sig.domain)  # type: ignore[arg-type]
+    attr = mesh.attributes.new(name, sig.data_type, sig.domain)
     if attr is None:
         raise ValueError(f"object {obj.name!r}: could not create attribute {name!r}")
-    _elements(attr).foreach_set("vector" if sig.data_type == "FLOAT_VECTOR" else "value", values.ravel())
+    _elements(attr).foreach_set(element_property(sig.data_type), values.ravel())
 
 
 def _remove(obj: bpy.types.Object, mesh: bpy.types.Mesh, name: str, shape: bool) -> None:
@@ -612,19 +673,44 @@ def _rename(obj: bpy.types.Object, mesh: bpy.types.Mesh, old: str, new: str, sha
         mesh.attributes[old].name = new
 
 
-def write_outputs(obj: bpy.types.Object, outputs: Sequence[Output], *,
-                  replace: bool = False) -> dict[str, str]:
+def _key_value(mesh: bpy.types.Mesh, name: str, default: float) -> float:
+    """The value of shape key ``name`` (the artist's choice to keep on a refresh), else ``default``."""
+    keys = mesh.shape_keys
+    if keys is not None and name in keys.key_blocks:
+        return float(keys.key_blocks[name].value)
+    return default
+
+
+def write_outputs(obj: bpy.types.Object, outputs: Sequence[Signal], *, replace: bool = False,
+                  refresh: Collection[str] = (), local: bool = False,
+                  key_value: float = 1.0) -> dict[str, str]:
     """Write results onto a mesh object, all or nothing.
 
     Parameters
     ----------
     obj : bpy.types.Object
         The target mesh object (object mode).
-    outputs : sequence of Output
-        The results; names must be distinct within a kind (layers / shape keys).
+    outputs : sequence of engine.Signal
+        The results, each with its domain and Blender data type: values
+        ``(m,)`` for FLOAT, INT, BOOLEAN and VERTEX_GROUP, ``(m, 3)`` for
+        FLOAT_VECTOR and SHAPE_KEY (positions), ``(m, 4)`` or ``(m, 3)``
+        linear RGB(A) for colours. Names must be distinct within a kind
+        (layers / shape keys).
     replace : bool
         Replace a target layer that already has a result's name; otherwise the
         result gets the next free ``<name>_ot<k>``.
+    refresh : collection of str
+        Names that are replaced even without ``replace`` (what Overtone wrote
+        there before).
+    local : bool
+        Shape-key positions are in the object's own space (default: world).
+    key_value : float
+        Value of a new shape key; a replaced key keeps the value it had.
+
+    A replaced layer keeps its domain and type (a colour changes domain by
+    taking each vertex's value to its corners, or the mean of its corners);
+    one of another kind is kept and the result takes a fresh name. The active
+    and render colour, active attribute and active group stay as they were.
 
     Returns
     -------
@@ -642,33 +728,18 @@ def write_outputs(obj: bpy.types.Object, outputs: Sequence[Output], *,
     if obj.mode == 'EDIT':
         raise ValueError(f"object {obj.name!r} is in edit mode; leave it to write results")
     mesh = cast(bpy.types.Mesh, obj.data)
-    names = _Names(obj, mesh)
-    seen: set[tuple[bool, str]] = set()
-    plans: list[_Plan] = []
-    for out in outputs:
-        values = _validated(obj, mesh, out)
-        shape = out.signal.data_type == "SHAPE_KEY"
-        wanted = out.signal.name
-        if (shape, wanted) in seen:
-            raise ValueError(f"two results are called {wanted!r}")
-        seen.add((shape, wanted))
-        protected = names.protected_shapes if shape else names.protected
-        if wanted in names.taken(shape) and replace and wanted not in protected:
-            plans.append(_Plan(out, values, wanted, names.fresh(wanted, shape), True))
-        else:
-            final = names.fresh(wanted, shape)
-            plans.append(_Plan(out, values, final, final, False))
-
+    plans = _plan(obj, mesh, outputs, lambda name: replace or name in refresh, local)
     state = _snapshot(obj, mesh)
     had_keys = mesh.shape_keys is not None
     written: list[_Plan] = []
     try:
         for plan in plans:
             written.append(plan)
-            _write_layer(obj, mesh, plan.output.signal, plan.write_as, plan.values)
+            value = _key_value(mesh, plan.final, key_value) if plan.replaces else key_value
+            _write_layer(obj, mesh, plan.output, plan.write_as, plan.values, value)
     except BaseException:
         for plan in reversed(written):
-            _remove(obj, mesh, plan.write_as, plan.output.signal.data_type == "SHAPE_KEY")
+            _remove(obj, mesh, plan.write_as, plan.output.data_type == "SHAPE_KEY")
         if not had_keys and mesh.shape_keys is not None:
             obj.shape_key_clear()
         _restore(obj, mesh, state)
@@ -676,11 +747,9 @@ def write_outputs(obj: bpy.types.Object, outputs: Sequence[Output], *,
         raise
     for plan in plans:
         if plan.replaces:
-            shape = plan.output.signal.data_type == "SHAPE_KEY"
+            shape = plan.output.data_type == "SHAPE_KEY"
             _remove(obj, mesh, plan.final, shape)
             _rename(obj, mesh, plan.write_as, plan.final, shape)
-    active = state["active_attr"]
-    if isinstance(active, str) and active in mesh.attributes:
-        mesh.attributes.active = mesh.attributes[active]
+    _restore(obj, mesh, state)
     mesh.update()
-    return {plan.output.signal.name: plan.final for plan in plans}
+    return {plan.output.name: plan.final for plan in plans}

@@ -75,8 +75,8 @@ def plan_from_context(context: bpy.types.Context, kind: str) -> Plan:
         if not ticked and len(settings.signals):
             raise ValueError(f"nothing ticked in the list of {source.name!r}: tick the layers to carry")
     request = PairRequest.from_settings(settings, signals=ticked, detail=kind == "detail")
-    if kind == "preview" and request.basis == "POINTWISE":
-        request = replace(request, basis=PREVIEW_BASIS)
+    if kind == "preview" and request.settings.basis == "pointwise":
+        request = replace(request, settings=replace(request.settings, basis=PREVIEW_BASIS.lower()))
     return make_plan(kind, source, target, request)
 
 
@@ -337,7 +337,7 @@ class OVERTONE_OT_refresh_signals(bpy.types.Operator):
         target = _target if _target is not None and _target != source else None
         ticked = set(default_signals(source, target, evaluated=settings.as_shown))
         settings.signals.clear()
-        for signal in bridge.list_signals(source, evaluated=settings.as_shown):
+        for signal in bridge.list_layers(source, evaluated=settings.as_shown):
             item = settings.signals.add()
             item.name = signal.name
             item.kind = signal.kind

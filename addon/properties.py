@@ -131,6 +131,22 @@ class OvertoneSettings(bpy.types.PropertyGroup):
     report_written: IntProperty(  # type: ignore[valid-type]
         name="Layers Written", description="Attributes, vertex groups and shape keys written")
 
+    # ---- vertex groups carried as a rig (engine/carrying/weights.py) ---------------------------
+    # Read through runs.ENGINE_NAMES; drawn under the vertex-group options.
+    max_influences: IntProperty(  # type: ignore[valid-type]
+        name="Max Groups per Vertex", default=0, min=0, soft_max=8, max=64,
+        description="How many vertex groups each target vertex keeps at most, the strongest ones "
+                    "(game engines often take 4). 0 keeps as many as the source has on any one vertex")
+    weight_threshold: FloatProperty(  # type: ignore[valid-type]
+        name="Drop Weights Below", default=0.0, min=0.0, max=0.99, soft_max=0.1, precision=3,
+        description="Weights smaller than this are removed from the target's vertex groups; "
+                    "a vertex always keeps its strongest group. 0 keeps every weight")
+    keep_weight_totals: BoolProperty(  # type: ignore[valid-type]
+        name="Keep Weight Totals", default=True,
+        description="After weights are removed, scale the rest up so each vertex's weights add up "
+                    "as before (to 1 for a rig), so the deformation keeps its strength. Weights that "
+                    "add up to 1 on the source always add up to 1 on the target when this is on")
+
 
 def settings_of(context: bpy.types.Context) -> OvertoneSettings:
     """The scene's Overtone settings."""

@@ -5,7 +5,8 @@ batch runner, the demo. A run has three steps, and only the first and last
 touch Blender:
 
 1. :func:`make_plan` checks the objects and reads everything into a
-   :class:`.job.JobInput` (world-space arrays; the source "as shown" when asked);
+   :class:`.job.JobInput` (the engine's mesh and signal types, world space;
+   the source "as shown" when asked);
 2. :func:`.job.run_job` runs the engine, here (:func:`run_plan`) or in the
    worker process (:class:`BackgroundRun`);
 3. :func:`finish` checks that the object written to has not changed since
@@ -23,8 +24,8 @@ from __future__ import annotations
 import shutil
 import tempfile
 import time
-from collections.abc import Sequence
-from dataclasses import dataclass, fields, replace
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any, cast
 
@@ -32,11 +33,13 @@ import bpy
 import numpy as np
 
 from . import bridge, job, preferences
-from .worker import Status, shared_worker
+from .engine import Settings, Signal
+from .worker import Status, load_output, save_input, shared_worker
 
 __all__ = ["PairRequest", "Plan", "BackgroundRun", "selected_pair", "pick_pair", "check_pair",
-           "default_signals", "make_plan", "run_plan", "finish", "transfer_pair",
-           "CONFIDENCE_NAME", "DETAIL_NAME", "PREVIEW_SUFFIX", "RESULTS_PROPERTY", "UNCERTAIN_BELOW"]
+           "default_signals", "make_plan", "run_plan", "finish", "transfer_pair", "engine_settings",
+           "ENGINE_NAMES", "CONFIDENCE_NAME", "DETAIL_NAME", "PREVIEW_SUFFIX", "RESULTS_PROPERTY",
+           "UNCERTAIN_BELOW"]
 
 CONFIDENCE_NAME = "overtone_confidence"
 DETAIL_NAME = "overtone_detail"
@@ -50,23 +53,45 @@ target's mean edge length: under 0.5 means the round trip misses by more than
 4 sqrt(ln 2) ~ 3.3 edge lengths, several faces away."""
 
 
+ENGINE_NAMES = {"match_mode": "match", "basis": "basis", "eigenfunctions": "k",
+                "product_order": "order", "detail_strength": "detail_strength",
+                "detail_size": "detail_size", "max_influences": "max_influences",
+                "weight_threshold": "weight_threshold", "keep_weight_totals": "keep_weight_totals"}
+"""The add-on's setting names (scene properties, batch ``settings`` keys) and
+the :class:`engine.Settings` field each one sets: the one place they meet."""
+
+DEFAULT_SETTINGS = Settings(k=60, order=2)
+"""The engine settings of a run nobody tuned (as the scene properties' defaults)."""
+
+
+def engine_settings(values: Mapping[str, Any], base: Settings = DEFAULT_SETTINGS) -> Settings:
+    """``base`` with the add-on settings in ``values`` applied (enum items lowercased).
+
+    Raises
+    ------
+    ValueError
+        For a name not in :data:`ENGINE_NAMES` or a value the engine refuses.
+    """
+    changes: dict[str, Any] = {}
+    for name, value in values.items():
+        if name not in ENGINE_NAMES:
+            raise ValueError(f"unknown setting {name!r} (known: {', '.join(sorted(ENGINE_NAMES))})")
+        changes[ENGINE_NAMES[name]] = value.lower() if isinstance(value, str) else value
+    return replace(base, **changes)
+
+
 @dataclass(frozen=True)
 class PairRequest:
     """Everything one transfer needs besides the two objects.
 
-    Field names match ``OvertoneSettings`` and the batch job's ``settings``.
     An empty ``signals`` means: every colour attribute and vertex group of the
-    source (vertex groups that pair up as landmarks excepted).
+    source (vertex groups that pair up as landmarks excepted). ``settings`` are
+    the engine's own (landmarks come from the objects' vertex groups).
     """
 
     signals: tuple[str, ...] = ()
     detail: bool = False
-    match_mode: str = "AUTO"
-    basis: str = "POINTWISE"
-    eigenfunctions: int = 60
-    product_order: int = 2
-    detail_strength: float = 1.0
-    detail_size: float = 0.05
+    settings: Settings = DEFAULT_SETTINGS
     as_shown: bool = False
     replace_existing: bool = False
 
@@ -74,15 +99,9 @@ class PairRequest:
     def from_settings(cls, settings: Any, *, signals: Sequence[str] = (),
                       detail: bool = False) -> PairRequest:
         """Build from the scene settings (or anything with the same attributes)."""
-        values = {f.name: getattr(settings, f.name) for f in fields(cls)
-                  if f.name not in ("signals", "detail")}
-        return cls(signals=tuple(signals), detail=detail, **values)
-
-    def engine_settings(self) -> dict[str, Any]:
-        """Keyword arguments of ``engine.jobs.pair.Settings``."""
-        return {"match": self.match_mode.lower(), "basis": self.basis.lower(),
-                "k": int(self.eigenfunctions), "order": int(self.product_order),
-                "detail_strength": float(self.detail_strength), "detail_size": float(self.detail_size)}
+        engine = engine_settings({name: getattr(settings, name) for name in ENGINE_NAMES})
+        return cls(signals=tuple(signals), detail=detail, settings=engine,
+                   as_shown=bool(settings.as_shown), replace_existing=bool(settings.replace_existing))
 
 
 @dataclass(frozen=True)
@@ -94,6 +113,8 @@ class Plan:
     target: str
     request: PairRequest
     inputs: job.JobInput
+    not_carried: tuple[tuple[str, str], ...] = ()
+    """The source's layers Overtone cannot carry, with the reason (reported)."""
 
     @property
     def written_on(self) -> str:
@@ -164,7 +185,7 @@ def default_signals(source: bpy.types.Object, target: bpy.types.Object | None = 
 
     Other attributes (numbers, vectors, integers, on/off) are carried only when named."""
     shared = set(_shared_groups(source, target)) if target is not None else set()
-    listed = bridge.list_signals(source, evaluated=evaluated)
+    listed = bridge.list_layers(source, evaluated=evaluated)
     names = {s.name for s in listed}
     return tuple(s.name for s in listed
                  if (s.kind == "color" or (s.data_type == "VERTEX_GROUP" and s.name not in shared))
@@ -172,7 +193,7 @@ def default_signals(source: bpy.types.Object, target: bpy.types.Object | None = 
 
 
 def check_pair(source: bpy.types.Object | None, target: bpy.types.Object | None,
-               request: PairRequest) -> list[bridge.Signal]:
+               request: PairRequest) -> list[bridge.Layer]:
     """Check a pair before any work; return the source signals to carry.
 
     Raises
@@ -186,7 +207,7 @@ def check_pair(source: bpy.types.Object | None, target: bpy.types.Object | None,
         _check_object(role, obj)
     if source == target:
         raise ValueError(f"source and target are the same object {source.name!r}")
-    available = {s.name: s for s in bridge.list_signals(source, evaluated=request.as_shown)}
+    available = {s.name: s for s in bridge.list_layers(source, evaluated=request.as_shown)}
     missing = [name for name in request.signals if name not in available]
     if missing:
         raise ValueError(f"source {source.name!r} has no signal {', '.join(map(repr, missing))}"
@@ -198,16 +219,6 @@ def check_pair(source: bpy.types.Object | None, target: bpy.types.Object | None,
 
 
 # --------------------------------------------------------------------------- reading
-
-
-def _mesh_input(obj: bpy.types.Object, evaluated: bool) -> job.MeshInput:
-    arrays = bridge.read_mesh(obj, evaluated=evaluated)
-    return job.MeshInput(obj.name, arrays.positions, arrays.corner_verts, arrays.face_sizes)
-
-
-def _signal_input(obj: bpy.types.Object, signal: bridge.Signal, evaluated: bool) -> job.SignalInput:
-    values = bridge.read_signal(obj, signal, evaluated=evaluated)
-    return job.SignalInput(signal.name, signal.kind, signal.domain, signal.data_type, values)
 
 
 def _cache_settings() -> tuple[str | None, int]:
@@ -232,7 +243,7 @@ def make_plan(kind: str, source: bpy.types.Object | None, target: bpy.types.Obje
         if source is None:
             raise ValueError("select the source mesh to preview")
         _check_object("source", source)
-        listed = {s.name: s for s in bridge.list_signals(source, evaluated=request.as_shown)}
+        listed = {s.name: s for s in bridge.list_layers(source, evaluated=request.as_shown)}
         names = request.signals or default_signals(source, evaluated=request.as_shown)
         missing = [n for n in names if n not in listed]
         if missing:
@@ -252,23 +263,29 @@ def make_plan(kind: str, source: bpy.types.Object | None, target: bpy.types.Obje
         assert source is not None and target is not None
         if kind == "detail":
             signals = []
-        target_input = _mesh_input(target, False)
+        target_input = bridge.read_mesh(target)
         shared = _shared_groups(source, target)
         src_w = bridge.read_vertex_groups(source, shared, evaluated=request.as_shown)
         tgt_w = bridge.read_vertex_groups(target, shared)
         groups = {name: (src_w[name], tgt_w[name]) for name in shared}
     folder, limit = _cache_settings()
-    inputs = job.JobInput(kind, _mesh_input(source, request.as_shown), target_input,
-                          tuple(_signal_input(source, s, request.as_shown) for s in signals),
-                          groups, request.engine_settings(), folder, limit)
-    return Plan(kind, source.name, (target or source).name, request, inputs)
+    inputs = job.JobInput(kind, bridge.read_mesh(source, evaluated=request.as_shown), target_input,
+                          tuple(bridge.read_signal(source, s, evaluated=request.as_shown) for s in signals),
+                          groups, request.settings, (source.name, (target or source).name), folder, limit)
+    skipped = () if kind == "detail" else not_carried(source, request.as_shown)
+    return Plan(kind, source.name, (target or source).name, request, inputs, skipped)
+
+
+def not_carried(source: bpy.types.Object, evaluated: bool) -> tuple[tuple[str, str], ...]:
+    """(name, reason) for each source layer Overtone does not carry."""
+    return tuple((layer.name, reason) for layer, reason in bridge.uncarried_layers(source, evaluated=evaluated))
 
 
 # --------------------------------------------------------------------------- writing
 
 
-def _outputs(plan: Plan, out: job.JobOutput) -> list[bridge.Output]:
-    outputs: list[bridge.Output] = []
+def _outputs(plan: Plan, out: job.JobOutput) -> list[Signal]:
+    outputs: list[Signal] = []
     if plan.kind == "detail":
         if out.positions is None:
             raise ValueError("the detail job returned no positions")
@@ -278,9 +295,7 @@ def _outputs(plan: Plan, out: job.JobOutput) -> list[bridge.Output]:
         values = out.values.get(sig.name)
         if values is None:
             raise ValueError(f"the engine returned no result for {sig.name!r}")
-        name = sig.name + suffix
-        kind = cast(Any, sig.kind)
-        outputs.append(bridge.Output(bridge.Signal(name, kind, sig.domain, sig.data_type), values))
+        outputs.append(bridge.Layer(sig.name + suffix, sig.domain, sig.data_type).signal(values))
     if plan.kind == "transfer":
         if out.confidence is None:
             raise ValueError("the transfer returned no confidence")
@@ -303,10 +318,10 @@ def finish(plan: Plan, out: job.JobOutput) -> dict[str, Any]:
     expected = plan.inputs.source if plan.kind == "preview" else plan.inputs.target
     assert expected is not None
     evaluated = plan.kind == "preview" and plan.request.as_shown
-    if _mesh_input(obj, evaluated).digest() != expected.digest():
+    if job.mesh_digest(bridge.read_mesh(obj, evaluated=evaluated)) != job.mesh_digest(expected):
         raise ValueError(f"object {plan.written_on!r} changed while Overtone was working: "
                          "nothing written, run again")
-    if evaluated and len(cast(bpy.types.Mesh, obj.data).vertices) != len(expected.positions):
+    if evaluated and len(cast(bpy.types.Mesh, obj.data).vertices) != len(expected.vertices):
         raise ValueError(f"source {plan.source!r} as shown has a different vertex count than its "
                          "mesh: turn off Source With Modifiers to preview onto it")
     written = bridge.write_outputs(obj, _outputs(plan, out), replace=plan.request.replace_existing)
@@ -319,8 +334,25 @@ def finish(plan: Plan, out: job.JobOutput) -> dict[str, Any]:
         report.setdefault("uncertain_share", float(np.mean(out.confidence < report["uncertain_below"])))
     report["written"] = written
     report["object"] = plan.written_on
-    report["summary"] = _summary(plan, report)
+    if plan.not_carried:
+        report["skipped"] = {name: reason for name, reason in plan.not_carried}
+    note = material_note(obj, written, out)
+    if note:
+        report["materials"] = note
+    report["summary"] = _summary(plan, report) + (f"; {note}" if note else "")
     return report
+
+
+def material_note(obj: bpy.types.Object, written: dict[str, str], out: job.JobOutput) -> str:
+    """A warning when carried material indices name slots the target does not have."""
+    if written.get("material_index") != "material_index" or "material_index" not in out.values:
+        return ""
+    highest = int(np.max(out.values["material_index"], initial=0))
+    slots = len(cast(bpy.types.Mesh, obj.data).materials)
+    if highest < max(slots, 1):
+        return ""
+    return (f"material indices go up to {highest} but {obj.name!r} has {slots} material slots: "
+            "give it the source's materials (Link Materials, Ctrl L)")
 
 
 def _summary(plan: Plan, report: dict[str, Any]) -> str:
@@ -330,8 +362,9 @@ def _summary(plan: Plan, report: dict[str, Any]) -> str:
     conf = report.get("mean_confidence")
     conf_text = f"{conf:.2f}" if isinstance(conf, float) else "?"
     what = "detail" if plan.kind == "detail" else f"{len(plan.inputs.signals)} layers"
+    skipped = f"; not carried: {', '.join(name for name, _ in plan.not_carried)}" if plan.not_carried else ""
     return (f"carried {what} from {plan.source!r} to {plan.target!r} "
-            f"({report.get('mode')}, mean confidence {conf_text})")
+            f"({report.get('mode')}, mean confidence {conf_text}){skipped}")
 
 
 # --------------------------------------------------------------------------- running
@@ -360,7 +393,7 @@ class BackgroundRun:
         self.folder = Path(tempfile.mkdtemp(prefix="overtone-job-"))
         self.worker = shared_worker()
         try:
-            job.save_input(self.folder, plan.inputs)
+            save_input(self.folder, plan.inputs)
             self.worker.submit(self.folder)
         except BaseException:
             shutil.rmtree(self.folder, ignore_errors=True)
@@ -381,7 +414,7 @@ class BackgroundRun:
             status = self.poll()
             if status.state != "done":
                 raise ValueError(status.text)
-            report = finish(self.plan, job.load_output(self.folder))
+            report = finish(self.plan, load_output(self.folder))
             report.setdefault("timings", {})["wall"] = round(time.perf_counter() - self.started, 4)
             return report
         finally:

@@ -1,12 +1,18 @@
 """The background worker: engine jobs in a separate process, so Blender never freezes.
 
-Standard library only on the Blender side (no ``bpy``): the operators hand a job
-folder to :class:`Worker`, which keeps one Python process alive between jobs
-(so the pairs it matched stay in its memory, :mod:`.job`), and poll
-:meth:`Worker.poll` from a modal timer. The process reads one job folder per
-line on stdin and writes into the folder ``progress.json`` while it works, then
-``output.json`` / ``output.npz`` or ``error.json``. Cancelling terminates the
+No ``bpy`` here: the operators write a job into a folder (:func:`save_input`)
+and hand it to :class:`Worker`, which keeps one Python process alive between
+jobs (so the pairs it matched stay in its memory, :data:`.job.PAIRS`), and
+poll :meth:`Worker.poll` from a modal timer. Cancelling terminates the
 process; nothing is ever written to Blender data by it.
+
+The file protocol (one folder per job)
+    ``input.npz`` then ``input.json``    the job (:func:`save_input`)
+    ``progress.json``                    ``{"fraction", "text"}`` while it runs
+    ``output.npz`` then ``output.json``  the result (:func:`save_output`)
+    ``error.json``                       ``{"error"}`` when it failed
+Every file is written whole (``engine/common/atomic.py``); the ``.json`` of a
+pair is written last, so its presence means the pair is complete.
 
 Run as a script (``python worker.py``) this file is the process itself: it
 loads :mod:`.job` and the bundled engine from its own folder without running
@@ -21,13 +27,29 @@ import subprocess
 import sys
 import tempfile
 import time
-from dataclasses import dataclass
+import types
+from dataclasses import asdict, dataclass
 from pathlib import Path
 from typing import Any
 
-__all__ = ["Status", "Worker", "child_environment", "python_executable", "shared_worker", "stop_shared_worker"]
-
 _PACKAGE = "_overtone_worker"
+
+if __name__ == "__main__" and not __package__:
+    # Run as the worker process: make this folder a package without its
+    # __init__ (which needs bpy), so the relative imports below resolve.
+    _package = types.ModuleType(_PACKAGE)
+    _package.__path__ = [os.path.dirname(os.path.abspath(__file__))]
+    sys.modules[_PACKAGE] = _package
+    __package__ = _PACKAGE
+
+import numpy as np  # noqa: E402  (after the package set-up above)
+
+from .engine import MeshData, Settings, Signal  # noqa: E402
+from .engine.common.atomic import atomic_write  # noqa: E402
+from .job import JobInput, JobOutput, run_job  # noqa: E402
+
+__all__ = ["Status", "Worker", "child_environment", "python_executable", "shared_worker", "stop_shared_worker",
+           "save_input", "load_input", "save_output", "load_output"]
 
 
 def python_executable() -> str:
@@ -96,7 +118,7 @@ class Worker:
             os.close(handle)
 
     def submit(self, folder: Path) -> None:
-        """Start the job written in ``folder`` (see :func:`.job.save_input`)."""
+        """Start the job written in ``folder`` (see :func:`save_input`)."""
         if self.folder is not None and self.poll().state == "running":
             raise ValueError("a job is already running: wait for it or press Esc")
         if not self.alive:
@@ -177,42 +199,120 @@ def stop_shared_worker() -> None:
         _shared = None
 
 
-# --------------------------------------------------------------------------- the process
+# --------------------------------------------------------------------------- the files
 
 
 def _write_json(path: Path, data: Any) -> None:
-    tmp = path.with_name(f".{path.name}.tmp")
-    tmp.write_text(json.dumps(data), encoding="utf-8")
-    os.replace(tmp, path)
+    with atomic_write(path, text=True) as fh:
+        fh.write(json.dumps(data))
 
 
-def _load_job_module() -> Any:
-    import importlib
-    import types
-    here = os.path.dirname(os.path.abspath(__file__))
-    package = types.ModuleType(_PACKAGE)
-    package.__path__ = [here]
-    sys.modules[_PACKAGE] = package
-    return importlib.import_module(_PACKAGE + ".job")
+def _write(folder: Path, meta: dict[str, Any], arrays: dict[str, Any], stem: str) -> None:
+    folder.mkdir(parents=True, exist_ok=True)
+    with atomic_write(folder / f"{stem}.npz") as fh:
+        np.savez(fh, **arrays)
+    _write_json(folder / f"{stem}.json", meta)  # written last: its presence means complete
+
+
+def _mesh_meta(mesh: MeshData, prefix: str, arrays: dict[str, Any]) -> dict[str, Any]:
+    arrays[f"{prefix}_vertices"] = mesh.vertices
+    arrays[f"{prefix}_corners"] = mesh.corners
+    arrays[f"{prefix}_sizes"] = mesh.sizes
+    return {}
+
+
+def save_input(folder: Path, inp: JobInput) -> None:
+    """Write a job into ``folder`` (``input.npz`` then ``input.json``)."""
+    arrays: dict[str, Any] = {}
+    settings = asdict(inp.settings)
+    settings["landmarks"] = [list(p) for p in inp.settings.landmarks]
+    meta: dict[str, Any] = {
+        "kind": inp.kind, "source": _mesh_meta(inp.source, "source", arrays),
+        "target": _mesh_meta(inp.target, "target", arrays) if inp.target is not None else None,
+        "signals": [], "landmark_groups": sorted(inp.landmark_groups), "settings": settings,
+        "names": list(inp.names), "cache_folder": inp.cache_folder,
+        "cache_limit_bytes": inp.cache_limit_bytes,
+    }
+    for i, sig in enumerate(inp.signals):
+        meta["signals"].append({"name": sig.name, "kind": sig.kind, "domain": sig.domain,
+                                "data_type": sig.data_type, "dtype": np.dtype(sig.dtype).str})
+        arrays[f"signal_{i}"] = sig.values
+    for i, name in enumerate(meta["landmark_groups"]):
+        arrays[f"group_source_{i}"], arrays[f"group_target_{i}"] = inp.landmark_groups[name]
+    _write(folder, meta, arrays, "input")
+
+
+def _mesh_from(prefix: str, z: Any) -> MeshData:
+    return MeshData(z[f"{prefix}_vertices"], z[f"{prefix}_corners"], z[f"{prefix}_sizes"])
+
+
+def load_input(folder: Path) -> JobInput:
+    """Read a job written by :func:`save_input`.
+
+    Raises
+    ------
+    ValueError
+        When the settings in the file are not the engine's.
+    """
+    meta = json.loads((folder / "input.json").read_text(encoding="utf-8"))
+    try:
+        settings = Settings(**meta["settings"])
+    except (TypeError, ValueError) as error:
+        raise ValueError(f"bad settings: {error}") from None
+    with np.load(folder / "input.npz", allow_pickle=False) as z:
+        signals = tuple(Signal(s["name"], s["kind"], z[f"signal_{i}"], np.dtype(s["dtype"]),
+                               s["domain"], s["data_type"]) for i, s in enumerate(meta["signals"]))
+        groups = {name: (z[f"group_source_{i}"], z[f"group_target_{i}"])
+                  for i, name in enumerate(meta["landmark_groups"])}
+        source = _mesh_from("source", z)
+        target = _mesh_from("target", z) if meta["target"] is not None else None
+    return JobInput(meta["kind"], source, target, signals, groups, settings,
+                    (meta["names"][0], meta["names"][1]), meta["cache_folder"],
+                    int(meta["cache_limit_bytes"]))
+
+
+def save_output(folder: Path, out: JobOutput) -> None:
+    """Write a job's result into ``folder`` (``output.npz`` then ``output.json``)."""
+    names = sorted(out.values)
+    arrays: dict[str, Any] = {f"value_{i}": out.values[name] for i, name in enumerate(names)}
+    if out.confidence is not None:
+        arrays["confidence"] = out.confidence
+    if out.positions is not None:
+        arrays["positions"] = out.positions
+    _write(folder, {"names": names, "report": out.report}, arrays, "output")
+
+
+def load_output(folder: Path) -> JobOutput:
+    """Read a result written by :func:`save_output`."""
+    meta = json.loads((folder / "output.json").read_text(encoding="utf-8"))
+    with np.load(folder / "output.npz", allow_pickle=False) as z:
+        values = {name: z[f"value_{i}"] for i, name in enumerate(meta["names"])}
+        confidence = z["confidence"] if "confidence" in z.files else None
+        positions = z["positions"] if "positions" in z.files else None
+    return JobOutput(values, confidence, positions, meta["report"])
+
+
+# --------------------------------------------------------------------------- the process
+
+
+def serve_folder(folder: Path) -> None:
+    """Run the job in ``folder``: its output, or ``error.json`` saying why not."""
+
+    def progress(fraction: float, text: str) -> None:
+        _write_json(folder / "progress.json", {"fraction": fraction, "text": text})
+
+    try:
+        save_output(folder, run_job(load_input(folder), progress))
+    except ValueError as error:
+        _write_json(folder / "error.json", {"error": str(error)})
+    except Exception as error:  # anything else: say what, never leave the caller waiting
+        _write_json(folder / "error.json", {"error": f"internal error: {type(error).__name__}: {error}"})
 
 
 def _serve() -> None:
-    job = _load_job_module()
     for line in sys.stdin:
-        folder = Path(line.strip())
-        if not line.strip():
-            continue
-
-        def progress(fraction: float, text: str, folder: Path = folder) -> None:
-            _write_json(folder / "progress.json", {"fraction": fraction, "text": text})
-
-        try:
-            out = job.run_job(job.load_input(folder), progress)
-            job.save_output(folder, out)
-        except ValueError as error:
-            _write_json(folder / "error.json", {"error": str(error)})
-        except Exception as error:  # anything else: say what, never leave the caller waiting
-            _write_json(folder / "error.json", {"error": f"internal error: {type(error).__name__}: {error}"})
+        if line.strip():
+            serve_folder(Path(line.strip()))
 
 
 if __name__ == "__main__":

@@ -34,6 +34,13 @@ Shapes, correspondence and transfer
     Transfer              carries signals through a basis of choice (TransferResult)
     Pair, Settings        the whole job for one source/target pair (pipeline.py)
     run_transfer_job, run_detail_job   file in, file out: one pair per call
+    weighted_centre_vertex  the vertex at the weighted centre of a group (landmarks)
+    Signal, check_signal  a per-vertex or per-corner signal, checked at the door
+    vertex_average        per-vertex mean of a corner signal
+    WeightOptions, carry_weights   vertex groups carried together (sums, influences)
+    faces_under_centres, carry_faces   face values by the source face under each target face
+    carry_charted         UV maps with their seams
+    approximate_signals   what a basis can carry, shown on the source (Preview)
     SurfaceLocator        closest points on a triangle mesh
 
 Operators
@@ -48,7 +55,13 @@ Operators
 
 from .matching.closest_point import SurfaceLocator, SurfacePoints
 from .matching.correspondence import Correspondence, correspond
-from .jobs.pair import Pair, Settings, run_detail_job, run_transfer_job
+from .jobs.pair import Pair, Settings, run_detail_job, run_transfer_job, weighted_centre_vertex
+from .carrying.signals import Signal, check_signal
+from .carrying.corners import vertex_average
+from .carrying.weights import WeightOptions, carry_weights
+from .carrying.faces import FaceHits, carry_faces, faces_under_centres
+from .carrying.charts import carry_charted
+from .carrying.preview import approximate_signals
 from .spectra.shape import Shape
 from .carrying.transfer import Transfer, TransferResult
 from .spectra.discretization import MeshDefects, Operators, mesh_defects, mesh_operators
@@ -73,6 +86,17 @@ __all__ = [
     "Settings",
     "run_transfer_job",
     "run_detail_job",
+    "weighted_centre_vertex",
+    "Signal",
+    "check_signal",
+    "vertex_average",
+    "WeightOptions",
+    "carry_weights",
+    "FaceHits",
+    "carry_faces",
+    "faces_under_centres",
+    "carry_charted",
+    "approximate_signals",
     "SurfaceLocator",
     "SurfacePoints",
     "validate_mesh",

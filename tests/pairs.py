@@ -44,6 +44,19 @@ def mask(rest: np.ndarray, scale: float = 1.0) -> np.ndarray:
     return np.sin(1.5 * p[:, 0] + 0.8 * p[:, 2]) > 0.2
 
 
+# ---------------------------------------------------------------- rig weights
+def rig(uv, bones: int = 11, keep: int = 4) -> np.ndarray:
+    """(n, bones) linear-blend skinning weights of the body coordinate u (uv[:, 0]):
+    bones evenly along the body, a Gaussian falloff, the ``keep`` largest kept
+    and divided by their sum (at most 4 influences summing to 1 is common
+    practice for game-engine skinning)."""
+    u = np.asarray(uv)[:, 0]
+    centres = (np.arange(bones) + 0.5) / bones
+    raw = np.exp(-((u[:, None] - centres[None]) / (1.2 / bones)) ** 2)
+    np.put_along_axis(raw, np.argsort(-raw, axis=1)[:, keep:], 0.0, axis=1)
+    return raw / raw.sum(axis=1, keepdims=True)
+
+
 def rest_scale(pair: Pair) -> float:
     """Frame scale for the signals: a third of the rest bounding-box diagonal."""
     r = pair.source_rest

@@ -17,34 +17,37 @@ different values in the faces on each side. It is carried in two steps:
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
+from numpy.typing import ArrayLike, NDArray
 
 from ..matching.closest_point import SurfaceLocator
 from .signals import check_signal
 
-__all__ = ["CornerResult", "carry_corners", "vertex_average", "seam_vertices"]
+__all__ = ["CornerResult", "carry_corners", "vertex_average", "seam_vertices", "triangle_corners"]
 
 
 @dataclass(frozen=True)
 class CornerResult:
     """Values per target corner and the point transfer's source error."""
 
-    values: np.ndarray
+    values: NDArray[np.float64]
     source_error: float
 
 
-def vertex_average(values, corner_verts, n: int) -> np.ndarray:
+def vertex_average(values: ArrayLike, corner_verts: ArrayLike, n: int) -> NDArray[np.float64]:
     """Per-vertex mean of per-corner values, (n, c)."""
     cv = np.asarray(corner_verts, dtype=np.int64)
     flat = np.asarray(values, dtype=np.float64).reshape(len(cv), -1)
     sums = np.zeros((n, flat.shape[1]))
     np.add.at(sums, cv, flat)
     counts = np.bincount(cv, minlength=n).astype(np.float64)
-    return sums / np.maximum(counts, 1.0)[:, None]
+    average: NDArray[np.float64] = sums / np.maximum(counts, 1.0)[:, None]
+    return average
 
 
-def seam_vertices(values, corner_verts, n: int) -> np.ndarray:
+def seam_vertices(values: ArrayLike, corner_verts: ArrayLike, n: int) -> NDArray[np.bool_]:
     """(n,) bool: vertices whose corners do not all carry the same value."""
     cv = np.asarray(corner_verts, dtype=np.int64)
     rows = np.ascontiguousarray(np.asarray(values).reshape(len(cv), -1))
@@ -57,13 +60,33 @@ def seam_vertices(values, corner_verts, n: int) -> np.ndarray:
     return seam
 
 
-def _corner_faces(sizes: np.ndarray) -> np.ndarray:
+def _corner_faces(sizes: NDArray[np.int64]) -> NDArray[np.int64]:
     return np.repeat(np.arange(len(sizes), dtype=np.int64), sizes)
 
 
-def carry_corners(pair, name: str, values, kind: str, source_corner_verts, source_face_sizes,
-                  target_corner_verts, target_face_sizes, *, basis: str | None = None,
-                  inset: float = 0.25) -> CornerResult:
+def triangle_corners(shape: Any, corner_verts: NDArray[np.int64], face_sizes: NDArray[np.int64],
+                     triangles: NDArray[np.int64], name: str) -> NDArray[np.int64]:
+    """(q, 3) the polygon corner behind each slot of the given cleaned triangles.
+
+    ``shape`` was built from the polygons ``corner_verts``/``face_sizes``; a
+    triangle's slot is the corner of its polygon at the same vertex.
+    """
+    to_clean = np.asarray(shape.prepared.to_clean)
+    n_clean = shape.n_vertices
+    keys = _corner_faces(face_sizes) * n_clean + to_clean[corner_verts]
+    order = np.argsort(keys, kind="stable")
+    tri_poly = np.asarray(shape.prepared.tri_polygon)[triangles]
+    slot_keys = tri_poly[:, None] * n_clean + shape.faces[triangles]
+    pos = np.clip(np.searchsorted(keys[order], slot_keys), 0, len(keys) - 1)
+    slot_corner: NDArray[np.int64] = order[pos]
+    if not np.array_equal(keys[slot_corner], slot_keys):
+        raise ValueError(f"corner signal {name!r}: source triangles do not match their polygons")
+    return slot_corner
+
+
+def carry_corners(pair: Any, name: str, values: ArrayLike, kind: str, source_corner_verts: ArrayLike,
+                  source_face_sizes: ArrayLike, target_corner_verts: ArrayLike, target_face_sizes: ArrayLike,
+                  *, basis: str | None = None, inset: float = 0.25) -> CornerResult:
     """Carry one corner signal from ``pair.source`` to ``pair.target``.
 
     Parameters
@@ -120,16 +143,7 @@ def carry_corners(pair, name: str, values, kind: str, source_corner_verts, sourc
     centroids /= t_sizes[:, None]
     at = mapped[t_cv[chosen]]
     hit = SurfaceLocator(S.vertices, S.faces).closest(at + inset * (centroids[faces[chosen]] - at))
-    # the source corner behind each (triangle, slot): same polygon, same vertex
-    n_clean = S.n_vertices
-    keys = _corner_faces(s_sizes) * n_clean + to_clean[s_cv]
-    order = np.argsort(keys, kind="stable")
-    tri_poly = np.asarray(S.prepared.tri_polygon)[hit.triangle]
-    slot_keys = tri_poly[:, None] * n_clean + S.faces[hit.triangle]
-    pos = np.clip(np.searchsorted(keys[order], slot_keys), 0, len(keys) - 1)
-    slot_corner = order[pos]
-    if not np.array_equal(keys[slot_corner], slot_keys):
-        raise ValueError(f"corner signal {name!r}: source triangles do not match their polygons")
+    slot_corner = triangle_corners(S, s_cv, s_sizes, hit.triangle, name)
     carried = np.einsum("qj,qjc->qc", hit.barycentric, vals[slot_corner])
     if kind in ("color", "weight"):
         carried = np.clip(carried, 0.0, 1.0)

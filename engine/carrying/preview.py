@@ -9,9 +9,12 @@ either, so the error is a lower bound for the transfer's.
 
 from __future__ import annotations
 
+from collections.abc import Iterable
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
+from numpy.typing import NDArray
 
 from ..spectra.approximation import LaplacianBasis, relative_error
 from ..spectra.products import least_squares_products, product_budget
@@ -42,14 +45,14 @@ class Preview:
         The number of basis functions.
     """
 
-    values: dict
-    properties: dict
-    errors: dict
+    values: dict[str, NDArray[Any]]
+    properties: dict[str, NDArray[Any]]
+    errors: dict[str, float]
     description: str
     size: int
 
 
-def basis_for(shape, name: str, *, k: int | None = None, order: int = 3):
+def basis_for(shape: Any, name: str, *, k: int | None = None, order: int = 3) -> tuple[Any, str]:
     """The approximation basis ``name`` on ``shape`` and a description of it.
 
     Parameters
@@ -79,7 +82,7 @@ def basis_for(shape, name: str, *, k: int | None = None, order: int = 3):
     return ls, f"{ls.rank} of {ls.exponents.shape[0]} raw products (K={K}, order {order}, least squares)"
 
 
-def approximate_signals(shape, signals: dict[str, Signal], *, basis: str = "orthoproducts",
+def approximate_signals(shape: Any, signals: dict[str, Signal], *, basis: str = "orthoproducts",
                         k: int | None = None, order: int = 3) -> Preview:
     """Reconstruct every signal through one basis of ``shape``.
 
@@ -88,7 +91,9 @@ def approximate_signals(shape, signals: dict[str, Signal], *, basis: str = "orth
     """
     b, description = basis_for(shape, basis, k=k, order=order)
     mass = shape.mass
-    values, props, errors = {}, {}, {}
+    values: dict[str, NDArray[Any]] = {}
+    props: dict[str, NDArray[Any]] = {}
+    errors: dict[str, float] = {}
     for name, sig in signals.items():
         if sig.values.shape[0] != shape.n_original:
             raise ValueError(f"signal {name!r} has {sig.values.shape[0]} rows; the mesh has "
@@ -98,16 +103,18 @@ def approximate_signals(shape, signals: dict[str, Signal], *, basis: str = "orth
         else:
             f = shape.to_cleaned(sig.values)
             recon = b.reconstruct(b.project(f))
-            lo, hi = sig.bounds
-            recon = np.clip(recon, lo, hi)
+            bounds = sig.bounds
+            assert bounds is not None  # blended kinds have bounds
+            recon = np.clip(recon, bounds[0], bounds[1])
             errors[name] = float(relative_error(recon, f, mass))
             values[name] = shape.restore(recon)
         props[name] = signal_to_property(sig, values[name])
     return Preview(values, props, errors, description, _size(b))
 
 
-def approximate_properties(shape, properties: dict, *, basis: str = "orthoproducts", k: int | None = None,
-                           order: int = 3, names=None) -> Preview:
+def approximate_properties(shape: Any, properties: dict[str, NDArray[Any]], *, basis: str = "orthoproducts",
+                           k: int | None = None, order: int = 3,
+                           names: Iterable[str] | None = None) -> Preview:
     """:func:`approximate_signals` for file vertex properties (as ``read_mesh`` gives them)."""
     signals = signals_from_properties(properties, names=names)
     if not signals:
@@ -115,6 +122,6 @@ def approximate_properties(shape, properties: dict, *, basis: str = "orthoproduc
     return approximate_signals(shape, signals, basis=basis, k=k, order=order)
 
 
-def _size(b) -> int:
+def _size(b: Any) -> int:
     rank = getattr(b, "rank", None)
     return int(rank) if rank is not None else int(b.basis.shape[1])

@@ -17,9 +17,12 @@ are labels, or masks when they only hold 0 and 1; float properties are float.
 
 from __future__ import annotations
 
+from collections.abc import Iterable
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
+from numpy.typing import ArrayLike, NDArray
 
 from .color import decode_bytes, encode_bytes
 
@@ -44,15 +47,22 @@ class Signal:
         for masks.
     dtype : numpy dtype
         The type to write back (e.g. uint8 for an 8-bit colour).
+    domain : {"POINT", "CORNER"}
+        One value per vertex, or per face corner (see ``corners``).
+    data_type : str
+        How the signal's home format stores it (an attribute type, say),
+        so a writer can store a result as its source was; "" when unknown.
     """
 
     name: str
     kind: str
-    values: np.ndarray
-    dtype: np.dtype
+    values: NDArray[Any]
+    dtype: np.dtype[Any]
+    domain: str = "POINT"
+    data_type: str = ""
 
     @property
-    def bounds(self) -> tuple[np.ndarray, np.ndarray] | None:
+    def bounds(self) -> tuple[NDArray[Any], NDArray[Any]] | None:
         """Range a reconstruction is clamped to, per channel; None for labels/masks."""
         if self.kind in ("color", "weight"):
             shape = self.values.shape[1:]
@@ -62,7 +72,7 @@ class Signal:
         return None
 
 
-def check_signal(name: str, values, n: int, kind: str) -> np.ndarray:
+def check_signal(name: str, values: ArrayLike, n: int, kind: str) -> NDArray[Any]:
     """Validate one signal at the door; returns it as a contiguous array."""
     if kind not in KINDS:
         raise ValueError(f"unknown signal kind {kind!r} for {name!r}; expected one of {', '.join(KINDS)}")
@@ -94,7 +104,8 @@ def check_signal(name: str, values, n: int, kind: str) -> np.ndarray:
     return np.ascontiguousarray(a, dtype=bool)
 
 
-def signals_from_properties(properties: dict, *, names=None) -> dict[str, Signal]:
+def signals_from_properties(properties: dict[str, NDArray[Any]], *,
+                            names: Iterable[str] | None = None) -> dict[str, Signal]:
     """Signals from file vertex properties (as ``meshio.read_mesh`` returns them).
 
     Parameters
@@ -132,7 +143,7 @@ def signals_from_properties(properties: dict, *, names=None) -> dict[str, Signal
     return out
 
 
-def signal_to_property(signal: Signal, values) -> np.ndarray:
+def signal_to_property(signal: Signal, values: ArrayLike) -> NDArray[Any]:
     """Values of ``signal``'s kind back to its file dtype (sRGB bytes for 8-bit colours)."""
     a = np.asarray(values)
     if signal.kind == "color" and signal.dtype == np.uint8:

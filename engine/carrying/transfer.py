@@ -29,11 +29,14 @@ from __future__ import annotations
 
 import time
 from dataclasses import dataclass
+from typing import Any, cast
 
 import numpy as np
+from numpy.typing import ArrayLike, NDArray
 
 from ..spectra.products import product_exponents, raw_products
 from ..matching.correspondence import Correspondence
+from ..spectra.shape import Shape
 from .signals import KINDS, check_signal
 
 __all__ = ["Transfer", "TransferResult"]
@@ -55,9 +58,9 @@ class TransferResult:
     report : dict
     """
 
-    values: np.ndarray
+    values: NDArray[Any]
     source_error: float
-    report: dict
+    report: dict[str, Any]
 
 
 class Transfer:
@@ -76,20 +79,20 @@ class Transfer:
         orthogonalisation stays within a few seconds.
     """
 
-    def __init__(self, source, target, correspondence: Correspondence, *, basis: str = "pointwise",
-                 k: int = 100, K: int | None = None, order: int = 3):
+    def __init__(self, source: Shape, target: Shape, correspondence: Correspondence, *,
+                 basis: str = "pointwise", k: int = 100, K: int | None = None, order: int = 3) -> None:
         if basis not in BASES:
             raise ValueError(f"unknown basis {basis!r}; expected one of {', '.join(BASES)}")
         if correspondence.source is not source or correspondence.target is not target:
             raise ValueError("the correspondence was built for another source/target pair")
         self.source, self.target, self.correspondence, self.basis = source, target, correspondence, basis
         t0 = time.perf_counter()
-        self._P = correspondence.matrix()                          # (n_t, n_s) sparse
-        self._B = None                                             # (n_s, r) basis on the source
-        self._W = None                                             # (r, n_s) coefficient operator
+        self._P: Any = cast(Any, correspondence).matrix()          # (n_t, n_s) sparse
+        self._B: NDArray[np.float64] | None = None                 # (n_s, r) basis on the source
+        self._W: NDArray[np.float64] | None = None                 # (r, n_s) coefficient operator
         if K is None:
             K = 10 if source.n_vertices <= 20000 else 8
-        info: dict = {"basis": basis}
+        info: dict[str, Any] = {"basis": basis}
         if basis == "laplacian":
             eb = source.eigenbasis(k)
             self._B = eb.eigenvectors
@@ -112,7 +115,31 @@ class Transfer:
         self.info = info
         self.info["build_seconds"] = round(time.perf_counter() - t0, 4)
 
-    def transfer(self, values, *, kind: str = "color", name: str = "signal") -> TransferResult:
+    def linear(self, flat: NDArray[np.float64]) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+        """The basis route of ``flat`` without any clamping, on the cleaned meshes.
+
+        Parameters
+        ----------
+        flat : (n_s_clean, c) float64 array
+
+        Returns
+        -------
+        values : (n_t_clean, c) float64 array
+            ``P f`` for pointwise, ``P B W f`` through a basis.
+        source_errors : (c,) float64 array
+            Per column, ``||f - B W f||_M / ||f||_M`` (0 for pointwise).
+        """
+        if self._B is None or self._W is None:
+            return np.asarray(self._P @ flat, dtype=np.float64), np.zeros(flat.shape[1])
+        coef = self._W @ flat
+        rec = self._B @ coef
+        m = self.source.mass[:, None]
+        num = np.sqrt((m * (rec - flat) ** 2).sum(axis=0))
+        den = np.sqrt((m * flat ** 2).sum(axis=0))
+        errors = np.divide(num, den, out=np.zeros_like(num), where=den > 0)
+        return np.asarray(self._PB @ coef, dtype=np.float64), errors
+
+    def transfer(self, values: ArrayLike, *, kind: str = "color", name: str = "signal") -> TransferResult:
         """Carry one signal.
 
         Parameters
@@ -129,22 +156,16 @@ class Transfer:
         t0 = time.perf_counter()
         a = check_signal(name, values, self.source.n_original, kind)
         if kind in ("label", "mask"):
-            out = self.correspondence.pull_labels(a)
-            return TransferResult(out, 0.0, {"name": name, "kind": kind, "route": "pointwise",
-                                             "seconds": round(time.perf_counter() - t0, 4)})
+            labels = self.correspondence.pull_labels(a)
+            return TransferResult(labels, 0.0, {"name": name, "kind": kind, "route": "pointwise",
+                                                "seconds": round(time.perf_counter() - t0, 4)})
         f = self.source.to_cleaned(a).astype(np.float64)
         flat = f.reshape(len(f), -1)
-        if self._B is None:
-            out = self._P @ flat
-            err = 0.0
-        else:
-            coef = self._W @ flat
-            out = self._PB @ coef
-            rec = self._B @ coef
-            m = self.source.mass[:, None]
-            num = float(np.sqrt((m * (rec - flat) ** 2).sum()))
-            den = float(np.sqrt((m * flat ** 2).sum()))
-            err = num / den if den > 0 else 0.0
+        out, errors = self.linear(flat)
+        # the errors of all channels together: sqrt(sum num_c^2) / sqrt(sum den_c^2)
+        den_c = np.sqrt((self.source.mass[:, None] * flat ** 2).sum(axis=0))
+        den = float(np.sqrt((den_c ** 2).sum()))
+        err = float(np.sqrt(((errors * den_c) ** 2).sum())) / den if den > 0 else 0.0
         if kind in ("color", "weight"):
             out = np.clip(out, 0.0, 1.0)
         else:
@@ -156,6 +177,6 @@ class Transfer:
                               {"name": name, "kind": kind, "basis": self.basis, "source_error": err,
                                "seconds": round(time.perf_counter() - t0, 4)})
 
-    def report(self) -> dict:
+    def report(self) -> dict[str, Any]:
         """JSON-able: the correspondence's report and this transfer's bases."""
         return {"correspondence": self.correspondence.report(), "transfer": dict(self.info)}

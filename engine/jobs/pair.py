@@ -31,6 +31,7 @@ from ..common.cache import Cache, geometry_key
 from ..spectra.shape import Shape
 from ..carrying.signals import check_signal
 from ..carrying.transfer import BASES, Transfer, TransferResult
+from ..carrying.weights import WeightOptions, carry_weights
 
 __all__ = ["Settings", "Pair", "weighted_centre_vertex", "load_landmarks", "run_transfer_job",
            "run_detail_job"]
@@ -62,6 +63,9 @@ class Settings:
     detail_size : float
         Features shorter than this fraction of the square root of the
         source's area count as detail (0.05: a twentieth of the shape's size).
+    max_influences, weight_threshold, keep_weight_totals
+        How carried vertex groups are cleaned up on the target
+        (:class:`engine.carrying.weights.WeightOptions`).
     """
 
     match: str = "auto"
@@ -72,6 +76,9 @@ class Settings:
     landmarks: tuple = ()
     detail_strength: float = 1.0
     detail_size: float = 0.05
+    max_influences: int = 0
+    weight_threshold: float = 0.0
+    keep_weight_totals: bool = True
 
     def __post_init__(self):
         if self.match not in MATCHES:
@@ -88,6 +95,11 @@ class Settings:
             raise ValueError(f"detail size must be in (0, 1] (a fraction of the shape's size), "
                              f"got {self.detail_size}")
         object.__setattr__(self, "landmarks", tuple((int(a), int(b)) for a, b in self.landmarks))
+        self.weight_options()  # validates the weight options
+
+    def weight_options(self) -> WeightOptions:
+        """The options for carried vertex groups."""
+        return WeightOptions(self.max_influences, self.weight_threshold, self.keep_weight_totals)
 
     def map_key(self) -> dict:
         """The settings the correspondence depends on."""
@@ -113,6 +125,7 @@ class Pair:
         self.correspondence = self._load_or_correspond()
         self.timings["correspondence"] = round(time.perf_counter() - t0, 4)
         self._transfers: dict = {}
+        self.weights_report: dict | None = None
 
     # ----------------------------------------------------------------- map
     def _map_cache_key(self) -> str | None:
@@ -158,7 +171,8 @@ class Pair:
                                              k=s.k, K=s.K, order=s.order)
         return self._transfers[name]
 
-    def carry(self, signals: dict, *, basis: str | None = None) -> dict[str, TransferResult]:
+    def carry(self, signals: dict, *, basis: str | None = None,
+              weights: WeightOptions | None = None) -> dict[str, TransferResult]:
         """Carry several signals through one correspondence.
 
         Parameters
@@ -166,8 +180,13 @@ class Pair:
         signals : dict name -> (values, kind)
             ``values`` per original source vertex; ``kind`` one of
             ``engine.signals.KINDS``. All are validated before any is carried.
+            Every signal of kind ``"weight"`` is carried together with the
+            others as vertex groups (:func:`engine.carrying.weights.carry_weights`);
+            what happened to them is in :attr:`weights_report`.
         basis : str, optional
             Overrides the settings' basis.
+        weights : WeightOptions, optional
+            Overrides the settings' weight options.
 
         Returns
         -------
@@ -180,9 +199,15 @@ class Pair:
         t0 = time.perf_counter()
         transfer = self.transfer_for(basis)
         self.timings["bases"] = round(time.perf_counter() - t0, 4)
-        out = {name: transfer.transfer(values, kind=kind, name=name) for name, (values, kind) in checked.items()}
+        groups = {name: values for name, (values, kind) in checked.items() if kind == "weight"}
+        out = {name: transfer.transfer(values, kind=kind, name=name)
+               for name, (values, kind) in checked.items() if kind != "weight"}
+        if groups:
+            carried, self.weights_report = carry_weights(transfer, groups,
+                                                         weights or self.settings.weight_options())
+            out.update(carried)
         self.timings["signals"] = round(time.perf_counter() - t0 - self.timings["bases"], 4)
-        return out
+        return {name: out[name] for name in checked}
 
     def carry_corners(self, name: str, values, kind: str, source_corner_verts, source_face_sizes,
                       target_corner_verts, target_face_sizes, *, basis: str | None = None,
@@ -249,6 +274,9 @@ class Pair:
             "timings": dict(self.timings),
             "cache_hits": {**self.cache_hits, "source": dict(self.source.hits), "target": dict(self.target.hits)},
         }
+        carried_groups = results and any(r.report.get("kind") == "weight" for r in results.values())
+        if carried_groups and self.weights_report is not None:
+            out["weights"] = dict(self.weights_report)
         if self._transfers:
             out["bases"] = {name: t.report()["transfer"] for name, t in self._transfers.items()}
         if results:

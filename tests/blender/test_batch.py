@@ -103,7 +103,7 @@ def test_all_signals_resolved_and_pair_hook_reported(batch, pair, tmp_path, caps
                    "settings": {"basis": "laplacian"}}]})))
     request = job.pairs[0].request
     assert request.signals == ("AO", "arm") and request.detail
-    assert (request.match_mode, request.basis, request.eigenfunctions) == ("INTRINSIC", "LAPLACIAN", 80)
+    assert (request.settings.match, request.settings.basis, request.settings.k) == ("intrinsic", "laplacian", 80)
 
 
 def test_a_failing_pair_is_reported_and_the_others_kept(batch, pair, tmp_path, capsys):
@@ -154,15 +154,15 @@ def test_batch_carries_and_saves(batch, scene, tmp_path):
     bpy.ops.wm.open_mainfile(filepath=str(tmp_path / "out" / "result.blend"))
     src, tgt = bpy.data.objects["Scan"], bpy.data.objects["LOD1"]
     a, b = bridge.read_mesh(src), bridge.read_mesh(tgt)
-    pair = pipeline.Pair(shape(a.positions, corners=a.corner_verts, sizes=a.face_sizes),
-                         shape(b.positions, corners=b.corner_verts, sizes=b.face_sizes),
+    pair = pipeline.Pair(shape(a.vertices, corners=a.corners, sizes=a.sizes),
+                         shape(b.vertices, corners=b.corners, sizes=b.sizes),
                          pipeline.Settings(basis="pointwise", k=60, order=2))
-    signal = bridge.list_signals(tgt)[0]
+    signal = bridge.list_layers(tgt)[0]
     assert signal.name == "tint"
-    np.testing.assert_allclose(bridge.read_signal(tgt, signal), pair.carry({"t": (tint, "color")})["t"].values,
+    np.testing.assert_allclose(bridge.read_signal(tgt, signal).values, pair.carry({"t": (tint, "color")})["t"].values,
                                atol=1e-6)
     keys = tgt.data.shape_keys.key_blocks
-    co = np.empty(len(b.positions) * 3, np.float32)
+    co = np.empty(len(b.vertices) * 3, np.float32)
     keys["overtone_detail"].data.foreach_get("co", co)
     np.testing.assert_allclose(co.reshape(-1, 3), pair.detail(), atol=2e-5)
     assert entry["result"]["mode"] == pair.correspondence.mode

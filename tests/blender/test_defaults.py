@@ -27,7 +27,7 @@ def mod(overtone):
 
 
 def layers(mod, obj):
-    return {s.name for s in mod.bridge.list_signals(obj)}
+    return {s.name for s in mod.bridge.list_layers(obj)}
 
 
 def test_preview_works_with_the_default_settings(mod, scene):
@@ -47,7 +47,7 @@ def test_preview_works_with_the_default_settings(mod, scene):
     assert mod.operators.PREVIEW_BASIS == "ORTHOPRODUCTS"
     engine_settings = pipeline.Settings(basis="orthoproducts", k=60, order=2)
     direct = preview.approximate_signals(
-        shape(a.positions, corners=a.corner_verts, sizes=a.face_sizes),
+        shape(a.vertices, corners=a.corners, sizes=a.sizes),
         {"tint": signals.Signal("tint", "color", tint, tint.dtype)}, basis="orthoproducts",
         k=engine_settings.K, order=2)
     np.testing.assert_allclose(read(mod, src, "tint_carried"), direct.values["tint"], atol=1e-6)

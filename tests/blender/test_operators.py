@@ -59,13 +59,13 @@ def engine_pair(mod, src, tgt, **settings):
     shape = engine_module("spectra.shape").Shape
     a, b = mod.bridge.read_mesh(src), mod.bridge.read_mesh(tgt)
     options = {"match": "auto", "basis": "pointwise", "k": 60, "order": 2, **settings}
-    return pipeline.Pair(shape(a.positions, corners=a.corner_verts, sizes=a.face_sizes),
-                         shape(b.positions, corners=b.corner_verts, sizes=b.face_sizes),
+    return pipeline.Pair(shape(a.vertices, corners=a.corners, sizes=a.sizes),
+                         shape(b.vertices, corners=b.corners, sizes=b.sizes),
                          pipeline.Settings(**options))
 
 
 def read(mod, obj, name):
-    return next(mod.bridge.read_signal(obj, s) for s in mod.bridge.list_signals(obj) if s.name == name)
+    return next(mod.bridge.read_signal(obj, s).values for s in mod.bridge.list_layers(obj) if s.name == name)
 
 
 def test_carry_signals_default_set_matches_the_engine(mod, scene):
@@ -74,7 +74,7 @@ def test_carry_signals_default_set_matches_the_engine(mod, scene):
     assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
     assert snapshot(src) == before  # the source is never modified
     # nothing ticked: every colour attribute and vertex group, not the float/vector attributes
-    names = {s.name for s in mod.bridge.list_signals(tgt)}
+    names = {s.name for s in mod.bridge.list_layers(tgt)}
     assert names == {"tint", "tint_bytes", "head", "overtone_confidence"}
     pair = engine_pair(mod, src, tgt)
     tint = read(mod, src, "tint")
@@ -83,10 +83,10 @@ def test_carry_signals_default_set_matches_the_engine(mod, scene):
     np.testing.assert_allclose(read(mod, tgt, "head"), expected["head"].values, atol=1e-6)
     # seamless corner colour: exactly the point transfer at each corner's vertex,
     # stored as 8-bit sRGB (within one step of the encoded value)
-    src_corners = mod.bridge.read_mesh(src).corner_verts
+    src_corners = mod.bridge.read_mesh(src).corners
     stored = np.zeros((len(tint), 4))
     stored[src_corners] = read(mod, src, "tint_bytes")  # seamless: every corner of a vertex agrees
-    corner_verts = mod.bridge.read_mesh(tgt).corner_verts
+    corner_verts = mod.bridge.read_mesh(tgt).corners
     got = srgb_encode(read(mod, tgt, "tint_bytes")[:, :3])
     want = srgb_encode(pair.carry({"t": (stored, "color")})["t"].values[corner_verts][:, :3])
     assert np.abs(got - want).max() <= 1 / 255 + 1e-6
@@ -106,7 +106,7 @@ def test_ticked_float_and_vector_attributes(mod, scene):
     for item in scene.overtone.signals:
         item.use = item.name in ("dirt", "flow")
     assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
-    assert {s.name for s in mod.bridge.list_signals(tgt)} == {"dirt", "flow", "overtone_confidence"}
+    assert {s.name for s in mod.bridge.list_layers(tgt)} == {"dirt", "flow", "overtone_confidence"}
     pair = engine_pair(mod, src, tgt)
     res = pair.carry({"dirt": (read(mod, src, "dirt"), "float"), "flow": (read(mod, src, "flow"), "vector")})
     np.testing.assert_allclose(read(mod, tgt, "dirt"), res["dirt"].values, atol=1e-6)
@@ -123,11 +123,11 @@ def test_names_follow_the_policy_and_replace_only_when_asked(mod, scene):
         item.use = item.name == "tint"
     bpy.ops.overtone.transfer_attributes()
     bpy.ops.overtone.transfer_attributes()
-    names = {s.name for s in mod.bridge.list_signals(tgt)}
+    names = {s.name for s in mod.bridge.list_layers(tgt)}
     assert {"tint", "tint_ot1", "overtone_confidence", "overtone_confidence_ot1"} <= names
     scene.overtone.replace_existing = True
     bpy.ops.overtone.transfer_attributes()
-    assert {s.name for s in mod.bridge.list_signals(tgt)} == names
+    assert {s.name for s in mod.bridge.list_layers(tgt)} == names
 
 
 def test_corner_colour_keeps_its_seams(mod, scene):
@@ -185,7 +185,7 @@ def test_detail_becomes_a_shape_key_in_object_space(mod, scene):
     world = co.reshape(-1, 3).astype(np.float64) @ np.array(matrix.to_3x3()).T + np.array(matrix.translation)
     expected = engine_pair(mod, src, tgt).detail(strength=1.0, size=0.05)
     np.testing.assert_allclose(world, expected, atol=2e-5)
-    assert np.abs(expected - mod.bridge.read_mesh(tgt).positions).max() > 1e-3  # something was carried
+    assert np.abs(expected - mod.bridge.read_mesh(tgt).vertices).max() > 1e-3  # something was carried
 
 
 def test_preview_adds_carried_layers_to_the_source_only(mod, scene):
@@ -205,19 +205,19 @@ def test_preview_adds_carried_layers_to_the_source_only(mod, scene):
     a = mod.bridge.read_mesh(src)
     tint = read(mod, src, "tint").astype(np.float64)
     direct = preview.approximate_signals(
-        shape(a.positions, corners=a.corner_verts, sizes=a.face_sizes),
+        shape(a.vertices, corners=a.corners, sizes=a.sizes),
         {"tint": signals.Signal("tint", "color", tint, tint.dtype)}, basis="laplacian", k=30)
     np.testing.assert_allclose(read(mod, src, "tint_carried"), direct.values["tint"], atol=1e-6)
     errors = {i.name: i.source_error for i in scene.overtone.report_signals}
     assert errors["tint"] == pytest.approx(direct.errors["tint"], rel=1e-5) and errors["tint"] > 0
-    assert len(mod.bridge.list_signals(tgt)) == 0
+    assert len(mod.bridge.list_layers(tgt)) == 0
 
 
 def test_same_named_vertex_groups_are_landmarks(mod, scene):
     src, tgt = painted_pair(scene)
     pipeline = engine_module("jobs.pair")
     for obj, name in ((src, "snout"), (tgt, "snout")):
-        positions = mod.bridge.read_mesh(obj).positions
+        positions = mod.bridge.read_mesh(obj).vertices
         group = obj.vertex_groups.new(name=name)
         group.add(np.flatnonzero(positions[:, 0] < 0.1).tolist(), 1.0, 'REPLACE')
     assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
@@ -226,9 +226,9 @@ def test_same_named_vertex_groups_are_landmarks(mod, scene):
     w_t = mod.bridge.read_vertex_groups(tgt, ["snout"])["snout"]
     assert report["landmarks"]["groups"] == ["snout"]
     assert report["landmarks"]["pairs"] == [[
-        pipeline.weighted_centre_vertex(mod.bridge.read_mesh(src).positions, w_s),
-        pipeline.weighted_centre_vertex(mod.bridge.read_mesh(tgt).positions, w_t)]]
-    assert "snout_ot1" not in {s.name for s in mod.bridge.list_signals(tgt)}  # not carried
+        pipeline.weighted_centre_vertex(mod.bridge.read_mesh(src).vertices, w_s),
+        pipeline.weighted_centre_vertex(mod.bridge.read_mesh(tgt).vertices, w_t)]]
+    assert "snout_ot1" not in {s.name for s in mod.bridge.list_layers(tgt)}  # not carried
     # the carried "head" group is not a landmark on the next run, and is carried again
     assert sorted(tgt["overtone_results"]) == ["head", "overtone_confidence", "tint", "tint_bytes"]
     assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
@@ -381,19 +381,26 @@ def test_a_target_changed_while_working_is_not_written(mod, scene):
     assert _scene_state() == before
 
 
-def test_worker_errors_come_back_as_one_message(mod, scene, tmp_path):
+def test_worker_errors_come_back_as_one_message(mod, scene, tmp_path, monkeypatch):
     src, tgt = painted_pair(scene)
     plan = mod.operators.plan_from_context(bpy.context, "transfer")
-    bad = mod.runs.Plan(plan.kind, plan.source, plan.target, plan.request,
-                            mod.job.JobInput(**{**plan.inputs.__dict__, "settings": {"basis": "wavelets"}}))
-    run = mod.runs.BackgroundRun(bad)
+    real = mod.runs.save_input
+
+    def corrupt(folder, inputs):  # a job file whose settings the engine refuses
+        real(folder, inputs)
+        meta = json.loads((folder / "input.json").read_text())
+        meta["settings"]["basis"] = "wavelets"
+        (folder / "input.json").write_text(json.dumps(meta))
+
+    monkeypatch.setattr(mod.runs, "save_input", corrupt)
+    run = mod.runs.BackgroundRun(plan)
     assert run.worker.wait(timeout=60).state == "failed"
     messages = []
     assert mod.operators.step_run(run, scene.overtone, lambda k, m: messages.append(m)) == {'CANCELLED'}
     assert messages == ["Overtone: bad settings: unknown basis 'wavelets'; expected one of pointwise, "
                         "laplacian, orthoproducts, products"]
-    with pytest.raises(ValueError, match="bad settings: unknown basis 'wavelets'"):
-        mod.job.run_job(bad.inputs)
+    with pytest.raises(ValueError, match="bad settings: expected the engine's Settings"):
+        mod.job.run_job(mod.job.JobInput(**{**plan.inputs.__dict__, "settings": {"basis": "wavelets"}}))
 
 
 def test_worker_gets_one_blas_thread_unless_the_user_chose(mod, scene, monkeypatch):

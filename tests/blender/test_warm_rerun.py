@@ -49,8 +49,8 @@ def test_changed_bake_reuses_the_pair(overtone, scene):
     pipeline, shape = engine_module("jobs.pair"), engine_module("spectra.shape").Shape
     folder = bpy.context.preferences.addons[MODULE].preferences.cache_folder
     a, b = bridge.read_mesh(src), bridge.read_mesh(tgt)
-    pair = pipeline.Pair(shape(a.positions, corners=a.corner_verts, sizes=a.face_sizes, cache=folder),
-                         shape(b.positions, corners=b.corner_verts, sizes=b.face_sizes, cache=folder),
+    pair = pipeline.Pair(shape(a.vertices, corners=a.corners, sizes=a.sizes, cache=folder),
+                         shape(b.vertices, corners=b.corners, sizes=b.sizes, cache=folder),
                          pipeline.Settings(basis="orthoproducts", k=60, order=2))
     assert pair.cache_hits["correspondence"] == "disk"
     got = read(type("M", (), {"bridge": bridge}), tgt, "ao_ot1")
