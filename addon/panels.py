@@ -15,7 +15,7 @@ import bpy
 from . import properties
 from .runs import selected_pair
 
-__all__ = ["OVERTONE_UL_layers", "OVERTONE_PT_main", "OVERTONE_PT_detail", "OVERTONE_PT_method",
+__all__ = ["OVERTONE_UL_layers", "OVERTONE_PT_main", "OVERTONE_PT_detail", "OVERTONE_PT_weights", "OVERTONE_PT_method",
            "OVERTONE_PT_report", "SELECT_UNCERTAIN", "KIND_WORDS", "DOMAIN_WORDS", "wrap_width",
            "duration_words", "percent_words",
            "register", "unregister"]
@@ -155,6 +155,11 @@ class OVERTONE_PT_detail(_SettingsPanel):
     shown = ("detail_strength", "detail_size")
 
 
+class OVERTONE_PT_weights(_SettingsPanel):
+    bl_label = "Vertex Groups"
+    shown = ("max_influences", "weight_threshold", "keep_weight_totals")
+
+
 class OVERTONE_PT_method(_SettingsPanel):
     bl_label = "Method"
     shown = ("match_mode", "basis", "eigenfunctions", "product_order")
@@ -225,7 +230,7 @@ def percent_words(share: float) -> str:
     return f"{share:.0%}"
 
 
-_CLASSES = (OVERTONE_UL_layers, OVERTONE_PT_main, OVERTONE_PT_detail, OVERTONE_PT_method,
+_CLASSES = (OVERTONE_UL_layers, OVERTONE_PT_main, OVERTONE_PT_detail, OVERTONE_PT_weights, OVERTONE_PT_method,
             OVERTONE_PT_report)
 
 
