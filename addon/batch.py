@@ -37,6 +37,7 @@ import bpy
 
 from . import bridge
 from .properties import BASES, MATCH_MODES
+from .records import landmark_names
 from .runs import PairRequest, check_pair, engine_settings, transfer_pair
 
 __all__ = ["COMMAND", "JobError", "Job", "PairJob", "load_job", "main", "register", "unregister"]
@@ -69,8 +70,9 @@ _CHOICES = {"match_mode": [m[0] for m in MATCH_MODES], "basis": [b[0] for b in B
 _SETTING_TYPES: dict[str, type | tuple[type, ...]] = {
     "match_mode": str, "basis": str, "eigenfunctions": int, "product_order": int,
     "detail_strength": (int, float), "detail_size": (int, float), "as_shown": bool,
-    "replace_existing": bool,
+    "replace_existing": bool, "local_space": bool, "keep_earlier": bool, "write_anyway": bool,
 }
+_FLAGS = ("as_shown", "replace_existing", "local_space", "keep_earlier", "write_anyway")
 _PAIR_KEYS = {"source", "target", "signals", "detail", "settings"}
 _JOB_KEYS = {"version", "settings", "pairs", "report", "save"}
 
@@ -98,7 +100,7 @@ def _apply_settings(request: PairRequest, settings: Any, where: str) -> PairRequ
         elif key == "detail_size" and not 0 < value <= 1:
             raise JobError(f"{where}: setting 'detail_size' must be in (0, 1], got {value}")
         changes[key] = value
-    flags = {key: changes.pop(key) for key in ("as_shown", "replace_existing") if key in changes}
+    flags = {key: changes.pop(key) for key in _FLAGS if key in changes}
     try:
         settings = engine_settings(changes, request.settings)
     except ValueError as error:
@@ -186,10 +188,11 @@ def check_job(job: Job) -> Job:
         request = pair.request
         if request.signals == ("*",):
             if objs[0].type == 'MESH' and objs[1].type == 'MESH':
-                # every signal, except vertex groups the target also has: those pair up as landmarks
-                shared = {vg.name for vg in objs[1].vertex_groups}
+                # every signal, except the vertex groups that pair up as landmarks (the
+                # rule the operators follow: records.landmark_names)
+                pinned = set(landmark_names(objs[0], objs[1], evaluated=request.as_shown))
                 listed = [s.name for s in bridge.list_layers(objs[0], evaluated=request.as_shown)
-                          if not (s.data_type == "VERTEX_GROUP" and s.name in shared)]
+                          if not (s.data_type == "VERTEX_GROUP" and s.name in pinned)]
             else:
                 listed = []
             if not listed and request.detail:

@@ -57,6 +57,7 @@ __all__ = [
     "read_signal",
     "read_vertex_groups",
     "shape_modifiers",
+    "layer_names",
     "select_group",
     "confidence_output",
     "shape_key_output",
@@ -249,6 +250,14 @@ def shape_modifiers(obj: bpy.types.Object) -> list[str]:
     return shown if moved > 1e-6 * max(size, 1e-12) else []
 
 
+def layer_names(obj: bpy.types.Object) -> tuple[set[str], set[str]]:
+    """The names of ``obj``'s attributes and vertex groups, and of its shape keys."""
+    mesh = cast(bpy.types.Mesh, obj.data)
+    keys = mesh.shape_keys
+    return ({a.name for a in mesh.attributes} | {g.name for g in obj.vertex_groups},
+            {k.name for k in keys.key_blocks} if keys else set())
+
+
 def select_group(obj: bpy.types.Object, name: str) -> int:
     """Select exactly the vertices of ``obj`` with weight in group ``name``; return how many."""
     if obj.mode == 'EDIT':
@@ -256,9 +265,14 @@ def select_group(obj: bpy.types.Object, name: str) -> int:
     weights = read_vertex_groups(obj, [name])[name]
     mesh = cast(bpy.types.Mesh, obj.data)
     chosen = weights > 0
-    mesh.vertices.foreach_set("select", chosen)
-    mesh.edges.foreach_set("select", np.zeros(len(mesh.edges), dtype=bool))
-    mesh.polygons.foreach_set("select", np.zeros(len(mesh.polygons), dtype=bool))
+    # selection is kept in the boolean attributes .select_vert/_edge/_poly; none means nothing selected
+    for layer in (".select_edge", ".select_poly"):
+        if layer in mesh.attributes:
+            mesh.attributes.remove(mesh.attributes[layer])
+    attr = mesh.attributes.get(".select_vert") or mesh.attributes.new(".select_vert", 'BOOLEAN', 'POINT')
+    if attr is None:
+        raise ValueError(f"object {obj.name!r}: could not select its vertices")
+    _elements(attr).foreach_set("value", chosen)
     mesh.update()
     return int(chosen.sum())
 
