@@ -17,6 +17,9 @@ JOB.json (version 1)::
       "save": "none" | "overwrite" | {"as": "out.blend"}              # optional, default "none"
     }
 
+``settings`` keys are the panel's names (:data:`.runs.ENGINE_NAMES` plus the
+flags ``as_shown``, ``replace_existing``, ``local_space``, ``keep_earlier``,
+``write_anyway``). Re-runs follow the operators' rule (:mod:`.records`).
 Relative paths are relative to the job file. Everything is checked (objects exist,
 are meshes, carry the named signals) before the first pair runs. Exit codes: 0 every
 pair done; 1 some pair failed (the report says which and why; the others are kept);

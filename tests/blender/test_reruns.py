@@ -242,13 +242,32 @@ def test_a_failed_match_is_an_error_and_leaves_the_target(mod, scene):
     np.testing.assert_array_equal(marked > 0, conf < 0.5)
 
 
-def test_an_uncertain_match_warns_marks_and_selects(mod, scene, capsys):
-    src, tgt = painted_pair(scene)
+def tear_one_end(mod, tgt):
+    """Move the target's last tenth (along x) 3 units up: that end matches nothing."""
     positions = mod.bridge.read_mesh(tgt).vertices
     far_end = positions[:, 0] > np.quantile(positions[:, 0], 0.9)
-    positions[far_end, 2] += 3.0              # one end torn away from the source
+    positions[far_end, 2] += 3.0
     tgt.data.attributes["position"].data.foreach_set("vector", positions.astype(np.float32).ravel())
     tgt.data.update()
+    return far_end
+
+
+def test_the_background_run_warns_too(mod, scene):
+    src, tgt = painted_pair(scene)
+    tear_one_end(mod, tgt)
+    scene.overtone.match_mode = "ALIGNED"
+    scene.overtone.basis = "POINTWISE"
+    run = mod.runs.BackgroundRun(mod.operators.plan_from_context(bpy.context, "transfer"))
+    assert run.worker.wait(timeout=300).state == "done"
+    reports = []
+    assert mod.operators.step_run(run, scene.overtone, lambda level, text: reports.append((level, text))) \
+        == {'FINISHED'}
+    assert reports[0][0] == {'WARNING'} and "uncertain match: mean confidence" in reports[0][1]
+
+
+def test_an_uncertain_match_warns_marks_and_selects(mod, scene, capsys):
+    src, tgt = painted_pair(scene)
+    far_end = tear_one_end(mod, tgt)
     scene.overtone.match_mode = "ALIGNED"
     scene.overtone.basis = "POINTWISE"
     assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
@@ -274,3 +293,22 @@ def test_an_uncertain_match_warns_marks_and_selects(mod, scene, capsys):
     assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
     cleared = mod.bridge.read_vertex_groups(tgt, ["overtone_uncertain"])["overtone_uncertain"]
     assert json.loads(scene.overtone.report_json)["outcome"] == "ok" and not cleared.any()
+
+
+def test_batch_refuses_a_failed_match_unless_told(mod, scene, tmp_path):
+    src, tgt = painted_pair(scene)
+    tgt.location = (50.0, 0.0, 0.0)
+    before = snapshot(tgt)
+    path, report = tmp_path / "job.json", tmp_path / "report.json"
+    job = {"settings": {"match_mode": "aligned", "basis": "pointwise"}, "report": str(report),
+           "pairs": [{"source": "Painted", "target": "Plain", "signals": ["tint"]}]}
+    path.write_text(json.dumps(job))
+    assert mod.batch.main([str(path)]) == 1
+    entry = json.loads(report.read_text())["pairs"][0]
+    assert entry["status"] == "failed" and entry["error"].startswith("no reliable match: mean confidence")
+    assert snapshot(tgt) == before
+    job["settings"]["write_anyway"] = True
+    path.write_text(json.dumps(job))
+    assert mod.batch.main([str(path)]) == 0
+    entry = json.loads(report.read_text())["pairs"][0]
+    assert entry["result"]["outcome"] == "failure" and "overtone_uncertain" in tgt.vertex_groups
