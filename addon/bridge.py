@@ -468,8 +468,8 @@ def _plan(obj: bpy.types.Object, mesh: bpy.types.Mesh, outputs: Sequence[Signal]
         protected = names.protected_shapes if shape else names.protected
         fitted = None
         if wanted in names.taken(shape) and may_replace(wanted) and wanted not in protected:
-            old = names.kinds.get(wanted)
-            fitted = (out, values) if shape or old is None else _conformed(mesh, out, values, old)
+            old = names.kinds.get(wanted)  # None: a layer type Overtone does not write, kept
+            fitted = (out, values) if shape else None if old is None else _conformed(mesh, out, values, old)
         if fitted is not None:
             plans.append(_Plan(fitted[0], fitted[1], wanted, names.fresh(wanted, shape), True))
         else:

@@ -436,7 +436,10 @@ def finish(plan: Plan, out: job.JobOutput) -> dict[str, Any]:
         if judged.level == "failure" and not plan.request.write_anyway:
             raise ValueError(f"{judged.text}. {plan.target!r} is left as it was (tick Write Anyway "
                              "to write the result)" + "".join(f"; {n}" for n in warnings))
-        if judged.level != "ok":
+        if judged.level == "failure":
+            warnings.append(f"{judged.text}; written anyway, the uncertain vertices are in the "
+                            f"vertex group {UNCERTAIN_NAME!r}")
+        elif judged.level == "warning":
             warnings.append(judged.text)
         outputs += _uncertain_output(obj, judged)
     asked: dict[str, str] = {}
