@@ -24,7 +24,7 @@ import bpy
 
 from . import bridge, preferences, properties
 from .job import forget_pairs
-from .engine.common.cache import Cache
+from .engine import Cache
 from .records import UNCERTAIN_NAME
 from .runs import BackgroundRun, PairRequest, Plan, make_plan, message_of, pick_pair, run_plan, selected_pair
 from .worker import stop_shared_worker

@@ -279,7 +279,10 @@ def test_an_uncertain_match_warns_marks_and_selects(mod, scene, capsys):
     marked = mod.bridge.read_vertex_groups(tgt, ["overtone_uncertain"])["overtone_uncertain"] > 0
     np.testing.assert_array_equal(marked, conf < 0.5)
     assert 0.02 < marked.mean() < 0.5 and marked[far_end].mean() > 0.5
-    # the artist selects them
+    # the artist selects them (a mesh never carried onto says so)
+    bpy.context.view_layer.objects.active = src
+    with pytest.raises(RuntimeError, match="'Painted' has no 'overtone_uncertain' group"):
+        bpy.ops.overtone.select_uncertain()
     bpy.context.view_layer.objects.active = tgt
     assert bpy.ops.overtone.select_uncertain() == {'FINISHED'}
     assert tgt.mode == 'EDIT'
