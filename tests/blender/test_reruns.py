@@ -66,6 +66,18 @@ def test_carry_detail_twice_keeps_strength_one(mod, scene):
     assert detail_strength(mod, tgt, expected) == pytest.approx(1.0, abs=1e-4)
 
 
+def test_carry_detail_twice_in_the_background_keeps_strength_one(mod, scene):
+    # the click path: invoke hands the job to the worker, the timer's step writes it
+    src, tgt = bumpy_pair(scene)
+    expected = engine_pair(mod, src, tgt).detail(strength=1.0, size=0.05)
+    for _ in range(2):
+        run = mod.runs.BackgroundRun(mod.operators.plan_from_context(bpy.context, "detail"))
+        assert run.worker.wait(timeout=300).state == "done"
+        assert mod.operators.step_run(run, scene.overtone, lambda level, text: None) == {'FINISHED'}
+    assert [k.name for k in tgt.data.shape_keys.key_blocks] == ["Basis", "overtone_detail"]
+    assert detail_strength(mod, tgt, expected) == pytest.approx(1.0, abs=1e-4)
+
+
 def test_batch_detail_twice_keeps_strength_one(mod, scene, tmp_path):
     src, tgt = bumpy_pair(scene)
     expected = engine_pair(mod, src, tgt).detail(strength=1.0, size=0.05)
