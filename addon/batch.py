@@ -19,6 +19,9 @@ JOB.json (version 1)::
 
 ``"signals": "all"`` (the default) carries what the UI carries when nothing is
 ticked: every colour attribute and vertex group (:func:`.runs.default_signals`).
+``settings`` keys are the panel's names (:data:`.runs.ENGINE_NAMES` plus the
+flags ``as_shown``, ``replace_existing``, ``local_space``, ``keep_earlier``,
+``write_anyway``). Re-runs follow the operators' rule (:mod:`.records`).
 Relative paths are relative to the job file. Everything is checked (objects exist,
 are meshes, carry the named signals) before the first pair runs. Exit codes: 0 every
 pair done; 1 some pair failed (the report says which and why; the others are kept);
@@ -71,8 +74,9 @@ _SETTING_TYPES: dict[str, type | tuple[type, ...]] = {
     "match_mode": str, "basis": str, "eigenfunctions": int, "product_order": int,
     "detail_strength": (int, float), "detail_size": (int, float), "as_shown": bool,
     "replace_existing": bool, "max_influences": int, "weight_threshold": (int, float),
-    "keep_weight_totals": bool,
+    "keep_weight_totals": bool, "local_space": bool, "keep_earlier": bool, "write_anyway": bool,
 }
+_FLAGS = ("as_shown", "replace_existing", "local_space", "keep_earlier", "write_anyway")
 _PAIR_KEYS = {"source", "target", "signals", "detail", "settings"}
 _JOB_KEYS = {"version", "settings", "pairs", "report", "save"}
 
@@ -100,7 +104,7 @@ def _apply_settings(request: PairRequest, settings: Any, where: str) -> PairRequ
         elif key == "detail_size" and not 0 < value <= 1:
             raise JobError(f"{where}: setting 'detail_size' must be in (0, 1], got {value}")
         changes[key] = value
-    flags = {key: changes.pop(key) for key in ("as_shown", "replace_existing") if key in changes}
+    flags = {key: changes.pop(key) for key in _FLAGS if key in changes}
     try:
         settings = engine_settings(changes, request.settings)
     except ValueError as error:

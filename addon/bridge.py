@@ -61,6 +61,7 @@ __all__ = [
     "not_carried_reason",
     "element_property",
     "shape_modifiers",
+    "layer_names",
     "select_group",
     "confidence_output",
     "shape_key_output",
@@ -323,6 +324,14 @@ def shape_modifiers(obj: bpy.types.Object) -> list[str]:
     return shown if moved > 1e-6 * max(size, 1e-12) else []
 
 
+def layer_names(obj: bpy.types.Object) -> tuple[set[str], set[str]]:
+    """The names of ``obj``'s attributes and vertex groups, and of its shape keys."""
+    mesh = cast(bpy.types.Mesh, obj.data)
+    keys = mesh.shape_keys
+    return ({a.name for a in mesh.attributes} | {g.name for g in obj.vertex_groups},
+            {k.name for k in keys.key_blocks} if keys else set())
+
+
 def select_group(obj: bpy.types.Object, name: str) -> int:
     """Select exactly the vertices of ``obj`` with weight in group ``name``; return how many."""
     if obj.mode == 'EDIT':
@@ -330,9 +339,14 @@ def select_group(obj: bpy.types.Object, name: str) -> int:
     weights = read_vertex_groups(obj, [name])[name]
     mesh = cast(bpy.types.Mesh, obj.data)
     chosen = weights > 0
-    mesh.vertices.foreach_set("select", chosen)
-    mesh.edges.foreach_set("select", np.zeros(len(mesh.edges), dtype=bool))
-    mesh.polygons.foreach_set("select", np.zeros(len(mesh.polygons), dtype=bool))
+    # selection is kept in the boolean attributes .select_vert/_edge/_poly; none means nothing selected
+    for layer in (".select_edge", ".select_poly"):
+        if layer in mesh.attributes:
+            mesh.attributes.remove(mesh.attributes[layer])
+    attr = mesh.attributes.get(".select_vert") or mesh.attributes.new(".select_vert", 'BOOLEAN', 'POINT')
+    if attr is None:
+        raise ValueError(f"object {obj.name!r}: could not select its vertices")
+    _elements(attr).foreach_set("value", chosen)
     mesh.update()
     return int(chosen.sum())
 
@@ -540,8 +554,8 @@ def _plan(obj: bpy.types.Object, mesh: bpy.types.Mesh, outputs: Sequence[Signal]
             wanted = names.home(wanted, protected)  # one name on every run, never Blender's layer
         fitted = None
         if wanted in names.taken(shape) and may_replace(wanted) and wanted not in protected:
-            old = names.kinds.get(wanted)
-            fitted = (out, values) if shape or old is None else _conformed(mesh, out, values, old)
+            old = names.kinds.get(wanted)  # None: a layer type Overtone does not write, kept
+            fitted = (out, values) if shape else None if old is None else _conformed(mesh, out, values, old)
         if fitted is not None:
             plans.append(_Plan(fitted[0], fitted[1], wanted, names.fresh(wanted, shape), True))
         else:

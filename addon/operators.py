@@ -25,9 +25,10 @@ import bpy
 
 from . import bridge, preferences, properties
 from .job import forget_pairs
-from .engine.common.cache import Cache
-from .runs import (BackgroundRun, PairRequest, Plan, default_signals, make_plan, pick_pair, run_plan,
-                   selected_pair)
+from .engine import Cache
+from .records import UNCERTAIN_NAME
+from .runs import (BackgroundRun, PairRequest, Plan, default_signals, make_plan, message_of, pick_pair,
+                   run_plan, selected_pair)
 from .worker import stop_shared_worker
 
 if TYPE_CHECKING:
@@ -35,6 +36,7 @@ if TYPE_CHECKING:
 
 __all__ = ["OVERTONE_OT_transfer_attributes", "OVERTONE_OT_transfer_detail",
            "OVERTONE_OT_preview_carry", "OVERTONE_OT_refresh_signals", "OVERTONE_OT_clear_cache",
+           "OVERTONE_OT_select_uncertain",
            "plan_from_context", "store_report", "store_error", "step_run", "cancel_run",
            "runs_modal", "cache_words", "skipped_lines", "PREVIEW_BASIS",
            "register", "unregister"]
@@ -188,7 +190,8 @@ def step_run(run: BackgroundRun, settings: Any, report: Reporter,
         report({'ERROR'}, f"Overtone: {error}")
         return {'CANCELLED'}
     store_report(settings, result)
-    report({'INFO'}, f"Overtone: {settings.report_text}")
+    level, text = message_of(result)
+    report(level, f"Overtone: {text}")
     return {'FINISHED'}
 
 
@@ -234,7 +237,8 @@ class _JobOperator:
         except ValueError as error:
             return self._fail(context, str(error))
         store_report(settings, result)
-        self._reporter()({'INFO'}, f"Overtone: {settings.report_text}")
+        level, text = message_of(result)
+        self._reporter()(level, f"Overtone: {text}")
         return {'FINISHED'}
 
     def invoke(self, context: bpy.types.Context, event: bpy.types.Event) -> set[OperatorReturnItems]:
@@ -371,8 +375,39 @@ class OVERTONE_OT_clear_cache(bpy.types.Operator):
         return {'FINISHED'}
 
 
+# --------------------------------------------------------------------------- uncertain vertices
+
+
+class OVERTONE_OT_select_uncertain(bpy.types.Operator):
+    """Select the vertices of the active mesh whose match the last carry was unsure of, in Edit Mode"""
+
+    bl_idname = "overtone.select_uncertain"
+    bl_label = "Select Uncertain Vertices"
+    bl_options = {'REGISTER', 'UNDO'}
+
+    @classmethod
+    def poll(cls, context: bpy.types.Context) -> bool:
+        obj = context.active_object
+        return obj is not None and obj.type == 'MESH' and context.mode in ('OBJECT', 'EDIT_MESH')
+
+    def execute(self, context: bpy.types.Context) -> set[OperatorReturnItems]:
+        obj = context.active_object
+        assert obj is not None
+        if obj.vertex_groups.get(UNCERTAIN_NAME) is None:
+            self.report({'ERROR'}, f"Overtone: {obj.name!r} has no {UNCERTAIN_NAME!r} group: "
+                                   "no carry onto it was unsure")
+            return {'CANCELLED'}
+        if obj.mode == 'EDIT':
+            bpy.ops.object.mode_set(mode='OBJECT')
+        count = bridge.select_group(obj, UNCERTAIN_NAME)
+        bpy.ops.object.mode_set(mode='EDIT')
+        bpy.ops.mesh.select_mode(type='VERT')
+        self.report({'INFO'}, f"Overtone: {count} uncertain vertices selected on {obj.name!r}")
+        return {'FINISHED'}
+
+
 _CLASSES = (OVERTONE_OT_transfer_attributes, OVERTONE_OT_transfer_detail, OVERTONE_OT_preview_carry,
-            OVERTONE_OT_refresh_signals, OVERTONE_OT_clear_cache)
+            OVERTONE_OT_refresh_signals, OVERTONE_OT_clear_cache, OVERTONE_OT_select_uncertain)
 
 def register() -> None:
     for cls in _CLASSES:

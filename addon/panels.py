@@ -15,7 +15,7 @@ import bpy
 from . import properties
 from .runs import selected_pair
 
-__all__ = ["OVERTONE_UL_layers", "OVERTONE_PT_main", "OVERTONE_PT_detail", "OVERTONE_PT_weights", "OVERTONE_PT_method",
+__all__ = ["OVERTONE_UL_layers", "OVERTONE_PT_main", "OVERTONE_PT_detail", "OVERTONE_PT_weights", "OVERTONE_PT_results", "OVERTONE_PT_method",
            "OVERTONE_PT_report", "SELECT_UNCERTAIN", "KIND_WORDS", "DOMAIN_WORDS", "wrap_width",
            "duration_words", "percent_words",
            "register", "unregister"]
@@ -117,6 +117,7 @@ class OVERTONE_PT_main(_Sidebar):
                      "Click the refresh button to choose.", icon='INFO')
         col = layout.column()
         col.prop(settings, "as_shown")
+        col.prop(settings, "local_space")
         col.prop(settings, "replace_existing")
         if settings.running:
             layout.prop(settings, "progress", text=settings.progress_text or "Working", slider=True)
@@ -153,6 +154,11 @@ class _SettingsPanel(_Sidebar):
 class OVERTONE_PT_detail(_SettingsPanel):
     bl_label = "Detail"
     shown = ("detail_strength", "detail_size")
+
+
+class OVERTONE_PT_results(_SettingsPanel):
+    bl_label = "Re-runs and Failures"
+    shown = ("keep_earlier", "write_anyway")
 
 
 class OVERTONE_PT_weights(_SettingsPanel):
@@ -230,7 +236,8 @@ def percent_words(share: float) -> str:
     return f"{share:.0%}"
 
 
-_CLASSES = (OVERTONE_UL_layers, OVERTONE_PT_main, OVERTONE_PT_detail, OVERTONE_PT_weights, OVERTONE_PT_method,
+_CLASSES = (OVERTONE_UL_layers, OVERTONE_PT_main, OVERTONE_PT_detail, OVERTONE_PT_weights, OVERTONE_PT_results,
+            OVERTONE_PT_method,
             OVERTONE_PT_report)
 
 

@@ -147,6 +147,20 @@ class OvertoneSettings(bpy.types.PropertyGroup):
                     "as before (to 1 for a rig), so the deformation keeps its strength. Weights that "
                     "add up to 1 on the source always add up to 1 on the target when this is on")
 
+    # --- re-runs, space and outcomes (read by runs.PairRequest.from_settings)
+    local_space: BoolProperty(  # type: ignore[valid-type]
+        name="Ignore Placement", default=False,
+        description="Match the two meshes as they are stored, ignoring where each object sits, "
+                    "turns and scales: for copies of one asset placed apart")
+    keep_earlier: BoolProperty(  # type: ignore[valid-type]
+        name="Keep Earlier Results", default=False,
+        description="Write beside what an earlier run from this source wrote, instead of refreshing it; "
+                    "a new detail shape key starts at value 0")
+    write_anyway: BoolProperty(  # type: ignore[valid-type]
+        name="Write Anyway", default=False,
+        description="Write the result even when most of the target found no reliable match "
+                    "(otherwise the target is left as it was)")
+
 
 def settings_of(context: bpy.types.Context) -> OvertoneSettings:
     """The scene's Overtone settings."""

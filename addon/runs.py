@@ -27,22 +27,25 @@ import time
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, replace
 from pathlib import Path
-from typing import Any, cast
+from typing import TYPE_CHECKING, Any, cast
 
 import bpy
 import numpy as np
 
 from . import bridge, job, preferences
 from .engine import Settings, Signal
+from .records import (CONFIDENCE_NAME, DETAIL_NAME, UNCERTAIN_NAME, landmark_names, names_for, record,
+                      written_on)
 from .worker import Status, load_output, save_input, shared_worker
+
+if TYPE_CHECKING:
+    from numpy.typing import NDArray
 
 __all__ = ["PairRequest", "Plan", "BackgroundRun", "selected_pair", "pick_pair", "check_pair",
            "default_signals", "make_plan", "run_plan", "finish", "transfer_pair", "engine_settings",
-           "ENGINE_NAMES", "CONFIDENCE_NAME", "DETAIL_NAME", "PREVIEW_SUFFIX", "RESULTS_PROPERTY",
-           "UNCERTAIN_BELOW"]
+           "outcome", "Outcome", "message_of", "ENGINE_NAMES", "CONFIDENCE_NAME", "DETAIL_NAME",
+           "PREVIEW_SUFFIX", "UNCERTAIN_BELOW", "WARN_SHARE", "FAIL_SHARE", "not_carried", "material_note"]
 
-CONFIDENCE_NAME = "overtone_confidence"
-DETAIL_NAME = "overtone_detail"
 PREVIEW_SUFFIX = "_carried"
 UNCERTAIN_BELOW = 0.5
 """Match confidence under which a target vertex counts as uncertain in the report.
@@ -51,6 +54,22 @@ The engine's confidence is exp(-(d / 4e)^2), d the distance a vertex's round
 trip through the forward and reverse maps ends from where it began, e the
 target's mean edge length: under 0.5 means the round trip misses by more than
 4 sqrt(ln 2) ~ 3.3 edge lengths, several faces away."""
+
+# When to warn, and when to refuse. A target vertex's confidence is
+# exp(-(d / 4e)^2), d the distance its round trip (target -> source -> target)
+# ends from where it started and e the target's mean edge length
+# (engine/matching/correspondence.py). Below 0.5 the round trip ends more
+# than 3.3 edges away (4 sqrt(ln 2)): past the vertex's own neighbourhood, so
+# its value comes from another part of the source; such a vertex is uncertain.
+# On the test pairs of tests/pairs.py (re-posed, re-meshed, re-proportioned,
+# thickened and pinched creatures) at most 0.7 % of vertices were uncertain
+# (docs/measurements.md, add-on section): a run with more than 2 % is warned
+# about. When more than half of the target is uncertain the map does not hold
+# for most of the surface: the run is refused (the target left as it was)
+# unless the artist asks to write anyway.
+UNCERTAIN_BELOW = 0.5
+WARN_SHARE = 0.02
+FAIL_SHARE = 0.5
 
 
 ENGINE_NAMES = {"match_mode": "match", "basis": "basis", "eigenfunctions": "k",
@@ -94,14 +113,20 @@ class PairRequest:
     settings: Settings = DEFAULT_SETTINGS
     as_shown: bool = False
     replace_existing: bool = False
+    local_space: bool = False
+    keep_earlier: bool = False
+    write_anyway: bool = False
 
     @classmethod
     def from_settings(cls, settings: Any, *, signals: Sequence[str] = (),
                       detail: bool = False) -> PairRequest:
         """Build from the scene settings (or anything with the same attributes)."""
         engine = engine_settings({name: getattr(settings, name) for name in ENGINE_NAMES})
-        return cls(signals=tuple(signals), detail=detail, settings=engine,
-                   as_shown=bool(settings.as_shown), replace_existing=bool(settings.replace_existing))
+        flags = {name: bool(getattr(settings, name, False)) for name in _FLAGS}
+        return cls(signals=tuple(signals), detail=detail, settings=engine, **flags)
+
+
+_FLAGS = ("as_shown", "replace_existing", "local_space", "keep_earlier", "write_anyway")
 
 
 @dataclass(frozen=True)
@@ -115,6 +140,7 @@ class Plan:
     inputs: job.JobInput
     not_carried: tuple[tuple[str, str], ...] = ()
     """The source's layers Overtone cannot carry, with the reason (reported)."""
+    notes: tuple[str, ...] = ()
 
     @property
     def written_on(self) -> str:
@@ -163,32 +189,21 @@ def _check_object(role: str, obj: bpy.types.Object) -> None:
                          "Overtone needs a surface")
 
 
-RESULTS_PROPERTY = "overtone_results"
-"""Custom property on a target listing the layers Overtone wrote there: those
-never pair up as landmarks (a carried "head" group is a result, not a pin)."""
-
-
-def _shared_groups(source: bpy.types.Object, target: bpy.types.Object) -> list[str]:
-    ours = set(cast(Any, target.get(RESULTS_PROPERTY, ())))
-    names = {vg.name for vg in target.vertex_groups} - ours
-    return [vg.name for vg in source.vertex_groups if vg.name in names]
-
-
 def default_signals(source: bpy.types.Object, target: bpy.types.Object | None = None, *,
                     evaluated: bool = False) -> tuple[str, ...]:
     """What is carried when nothing is chosen (the UI, batch ``"all"``, the preview):
     every colour attribute and vertex group of the source, except
 
-    - groups the target also has (those are landmarks, unless Overtone wrote
-      them: see :data:`RESULTS_PROPERTY`);
+    - the groups that pair up as landmarks (:func:`.records.landmark_names`:
+      groups the target also has and Overtone did not write);
     - preview layers ``<name>_carried`` next to their ``<name>``.
 
     Other attributes (numbers, vectors, integers, on/off) are carried only when named."""
-    shared = set(_shared_groups(source, target)) if target is not None else set()
+    pinned = set(landmark_names(source, target, evaluated=evaluated)) if target is not None else set()
     listed = bridge.list_layers(source, evaluated=evaluated)
     names = {s.name for s in listed}
     return tuple(s.name for s in listed
-                 if (s.kind == "color" or (s.data_type == "VERTEX_GROUP" and s.name not in shared))
+                 if (s.kind == "color" or (s.data_type == "VERTEX_GROUP" and s.name not in pinned))
                  and not (s.name.endswith(PREVIEW_SUFFIX) and s.name[:-len(PREVIEW_SUFFIX)] in names))
 
 
@@ -230,6 +245,37 @@ def _cache_settings() -> tuple[str | None, int]:
     return str(folder), limit * 1024 * 1024
 
 
+def _modifier_notes(source: bpy.types.Object, target: bpy.types.Object | None,
+                    request: PairRequest) -> tuple[str, ...]:
+    """Warnings for modifiers that change a mesh's shape the run does not see."""
+    notes = []
+    if not request.as_shown:
+        changed = bridge.shape_modifiers(source)
+        if changed:
+            notes.append(f"source {source.name!r}: its modifiers ({', '.join(changed)}) change its shape, "
+                         "but Overtone read the mesh without them; tick As Shown to carry from what "
+                         "the viewport shows")
+    if target is not None and target != source:
+        changed = bridge.shape_modifiers(target)
+        if changed:
+            notes.append(f"target {target.name!r}: its modifiers ({', '.join(changed)}) change its shape; "
+                         "Overtone matched and wrote its mesh before them")
+    return tuple(notes)
+
+
+def _preview_layers(source: bpy.types.Object, request: PairRequest) -> list[bridge.Layer]:
+    _check_object("source", source)
+    listed = {s.name: s for s in bridge.list_layers(source, evaluated=request.as_shown)}
+    names = request.signals or default_signals(source, evaluated=request.as_shown)
+    missing = [n for n in names if n not in listed]
+    if missing:
+        raise ValueError(f"source {source.name!r} has no signal {', '.join(map(repr, missing))}"
+                         f" (it has {', '.join(map(repr, listed)) or 'none'})")
+    if not names:
+        raise ValueError(f"source {source.name!r} has no signals to preview")
+    return [listed[n] for n in names]
+
+
 def make_plan(kind: str, source: bpy.types.Object | None, target: bpy.types.Object | None,
               request: PairRequest) -> Plan:
     """Check the pair and read everything the job needs (the only Blender reads).
@@ -239,41 +285,36 @@ def make_plan(kind: str, source: bpy.types.Object | None, target: bpy.types.Obje
     """
     if kind not in job.JOB_KINDS:
         raise ValueError(f"unknown job kind {kind!r}")
+    groups: dict[str, tuple[Any, Any]] = {}
+    target_input = None
+    local = request.local_space
     if kind == "preview":
         if source is None:
             raise ValueError("select the source mesh to preview")
-        _check_object("source", source)
-        listed = {s.name: s for s in bridge.list_layers(source, evaluated=request.as_shown)}
-        names = request.signals or default_signals(source, evaluated=request.as_shown)
-        missing = [n for n in names if n not in listed]
-        if missing:
-            raise ValueError(f"source {source.name!r} has no signal {', '.join(map(repr, missing))}"
-                             f" (it has {', '.join(map(repr, listed)) or 'none'})")
-        if not names:
-            raise ValueError(f"source {source.name!r} has no signals to preview")
-        signals = [listed[n] for n in names]
-        target_input = None
-        groups: dict[str, tuple[Any, Any]] = {}
+        signals = _preview_layers(source, request)
     else:
         if source is not None and target is not None and source != target and not request.signals \
-                and not request.detail and source.type == 'MESH':
+                and not request.detail and source.type == 'MESH' and target.type == 'MESH':
             request = replace(request, signals=default_signals(source, target,
                                                                 evaluated=request.as_shown))
         signals = check_pair(source, target, request)
         assert source is not None and target is not None
         if kind == "detail":
             signals = []
-        target_input = bridge.read_mesh(target)
-        shared = _shared_groups(source, target)
-        src_w = bridge.read_vertex_groups(source, shared, evaluated=request.as_shown)
-        tgt_w = bridge.read_vertex_groups(target, shared)
-        groups = {name: (src_w[name], tgt_w[name]) for name in shared}
+        target_input = bridge.read_mesh(target, local=local)
+        pinned = landmark_names(source, target, evaluated=request.as_shown)
+        src_w = bridge.read_vertex_groups(source, pinned, evaluated=request.as_shown)
+        tgt_w = bridge.read_vertex_groups(target, pinned)
+        groups = {name: (src_w[name], tgt_w[name]) for name in pinned}
     folder, limit = _cache_settings()
-    inputs = job.JobInput(kind, bridge.read_mesh(source, evaluated=request.as_shown), target_input,
+    inputs = job.JobInput(kind, bridge.read_mesh(source, evaluated=request.as_shown, local=local),
+                          target_input,
                           tuple(bridge.read_signal(source, s, evaluated=request.as_shown) for s in signals),
                           groups, request.settings, (source.name, (target or source).name), folder, limit)
     skipped = () if kind == "detail" else not_carried(source, request.as_shown)
-    return Plan(kind, source.name, (target or source).name, request, inputs, skipped)
+    notes = _modifier_notes(source, None if kind == "preview" else target, request)
+    return Plan(kind, source.name, (target or source).name, request, inputs,
+                not_carried=skipped, notes=notes)
 
 
 def not_carried(source: bpy.types.Object, evaluated: bool) -> tuple[tuple[str, str], ...]:
@@ -281,15 +322,45 @@ def not_carried(source: bpy.types.Object, evaluated: bool) -> tuple[tuple[str, s
     return tuple((layer.name, reason) for layer, reason in bridge.uncarried_layers(source, evaluated=evaluated))
 
 
+
+# --------------------------------------------------------------------------- outcomes
+
+
+@dataclass(frozen=True)
+class Outcome:
+    """How far a run's match can be trusted (thresholds above)."""
+
+    level: str                      # "ok", "warning" or "failure"
+    mean_confidence: float
+    uncertain: NDArray[np.bool_]    # (n_t,) vertices below UNCERTAIN_BELOW
+    text: str
+
+
+def outcome(confidence: NDArray[np.floating[Any]]) -> Outcome:
+    """Judge a target's confidence: ok, a warning, or a failure, with the numbers."""
+    conf = np.asarray(confidence, dtype=np.float64)
+    uncertain = conf < UNCERTAIN_BELOW
+    share = float(uncertain.mean()) if conf.size else 0.0
+    mean = float(conf.mean()) if conf.size else 0.0
+    numbers = (f"mean confidence {mean:.3f}, {share:.1%} of the target's vertices uncertain "
+               f"({int(uncertain.sum())} of {conf.size}, confidence under {UNCERTAIN_BELOW})")
+    if share > FAIL_SHARE:
+        return Outcome("failure", mean, uncertain, f"no reliable match: {numbers}")
+    if share > WARN_SHARE:
+        return Outcome("warning", mean, uncertain,
+                       f"uncertain match: {numbers}; they are in the vertex group {UNCERTAIN_NAME!r}")
+    return Outcome("ok", mean, uncertain, numbers)
+
+
 # --------------------------------------------------------------------------- writing
 
 
 def _outputs(plan: Plan, out: job.JobOutput) -> list[Signal]:
-    outputs: list[Signal] = []
     if plan.kind == "detail":
         if out.positions is None:
             raise ValueError("the detail job returned no positions")
         return [bridge.shape_key_output(DETAIL_NAME, out.positions)]
+    outputs: list[Signal] = []
     suffix = PREVIEW_SUFFIX if plan.kind == "preview" else ""
     for sig in plan.inputs.signals:
         values = out.values.get(sig.name)
@@ -303,43 +374,119 @@ def _outputs(plan: Plan, out: job.JobOutput) -> list[Signal]:
     return outputs
 
 
-def finish(plan: Plan, out: job.JobOutput) -> dict[str, Any]:
-    """Write a job's results onto the scene, all or nothing; return the report.
+def _uncertain_output(obj: bpy.types.Object, judged: Outcome) -> list[Signal]:
+    """The uncertain vertices as a group; an empty one only to clear an earlier mark."""
+    if judged.uncertain.any() or UNCERTAIN_NAME in written_on(obj).layers:
+        weights = judged.uncertain.astype(np.float32)
+        return [bridge.Layer(UNCERTAIN_NAME, "POINT", "VERTEX_GROUP").signal(weights)]
+    return []
 
-    Raises
-    ------
-    ValueError
-        The object is gone or its geometry changed since the plan was made, or
-        a result does not fit (nothing is written then).
-    """
+
+def _check_unchanged(plan: Plan) -> bpy.types.Object:
     obj = bpy.data.objects.get(plan.written_on)
     if obj is None or obj.type != 'MESH':
         raise ValueError(f"object {plan.written_on!r} is gone: nothing written")
     expected = plan.inputs.source if plan.kind == "preview" else plan.inputs.target
     assert expected is not None
     evaluated = plan.kind == "preview" and plan.request.as_shown
-    if job.mesh_digest(bridge.read_mesh(obj, evaluated=evaluated)) != job.mesh_digest(expected):
+    now = bridge.read_mesh(obj, evaluated=evaluated, local=plan.request.local_space)
+    if job.mesh_digest(now) != job.mesh_digest(expected):
         raise ValueError(f"object {plan.written_on!r} changed while Overtone was working: "
                          "nothing written, run again")
     if evaluated and len(cast(bpy.types.Mesh, obj.data).vertices) != len(expected.vertices):
         raise ValueError(f"source {plan.source!r} as shown has a different vertex count than its "
                          "mesh: turn off Source With Modifiers to preview onto it")
-    written = bridge.write_outputs(obj, _outputs(plan, out), replace=plan.request.replace_existing)
-    if plan.kind != "preview":
-        ours = set(cast(Any, obj.get(RESULTS_PROPERTY, ()))) | set(written.values())
-        obj[RESULTS_PROPERTY] = sorted(ours)
+    return obj
+
+
+def _write(plan: Plan, obj: bpy.types.Object, outputs: list[Signal],
+           asked: dict[str, str]) -> dict[str, str]:
+    """Write through the re-run rule (:mod:`.records`), in one all-or-nothing
+    call; returns result name -> name written. ``asked`` receives result ->
+    the name it was meant to get, where that was not a layer Overtone wrote."""
+    request = plan.request
+    if plan.kind == "preview":
+        asked.update({o.name: o.name for o in outputs})
+        return bridge.write_outputs(obj, outputs, replace=request.replace_existing)
+    is_key = [o.data_type == "SHAPE_KEY" for o in outputs]
+    rule = {"keep_earlier": request.keep_earlier, "replace_existing": request.replace_existing}
+    layers = names_for(obj, plan.source, [o.name for o, k in zip(outputs, is_key) if not k], **rule)
+    keys = names_for(obj, plan.source, [o.name for o, k in zip(outputs, is_key) if k], shape=True, **rule)
+    renamed = [replace(o, name=(keys if k else layers).names[o.name]) for o, k in zip(outputs, is_key)]
+    got = bridge.write_outputs(obj, renamed, replace=request.replace_existing,
+                               refresh=layers.refresh | keys.refresh, local=request.local_space,
+                               key_value=keys.key_value)
+    written = {o.name: got[r.name] for o, r in zip(outputs, renamed)}
+    earlier = written_on(obj)
+    asked.update({o.name: r.name for o, r in zip(outputs, renamed)
+                  if r.name not in earlier.layers and r.name not in earlier.shapes})
+    record(obj, plan.source, {o.name: written[o.name] for o, k in zip(outputs, is_key) if not k})
+    record(obj, plan.source, {o.name: written[o.name] for o, k in zip(outputs, is_key) if k}, shape=True)
+    return written
+
+
+def _renamed_notes(written: dict[str, str], asked: dict[str, str]) -> list[str]:
+    """Why a result did not get the name it was meant to get."""
+    notes = []
+    for result, meant in asked.items():
+        name = written[result]
+        if name == meant:
+            continue
+        if len(meant.encode()) > 63:
+            notes.append(f"{meant!r} is longer than Blender's 63 bytes: written as {name!r}")
+        else:
+            notes.append(f"the target keeps its own {meant!r}: the result is written as {name!r}")
+    return notes
+
+
+def finish(plan: Plan, out: job.JobOutput) -> dict[str, Any]:
+    """Write a job's results onto the scene, all or nothing; return the report.
+
+    A transfer or detail whose match fails (:func:`outcome`) writes nothing
+    unless the request says to write anyway; an uncertain one writes, marks
+    the uncertain vertices and says so in ``report["warnings"]``.
+
+    Raises
+    ------
+    ValueError
+        The object is gone or its geometry changed since the plan was made, a
+        result does not fit, or the match failed (nothing is written then).
+    """
+    obj = _check_unchanged(plan)
+    warnings = list(plan.notes)
+    outputs = _outputs(plan, out)
+    judged = None
+    if plan.kind != "preview" and out.confidence is not None:
+        judged = outcome(out.confidence)
+        if judged.level == "failure" and not plan.request.write_anyway:
+            raise ValueError(f"{judged.text}. {plan.target!r} is left as it was (tick Write Anyway "
+                             "to write the result)" + "".join(f"; {n}" for n in warnings))
+        if judged.level == "failure":
+            warnings.append(f"{judged.text}; written anyway, the uncertain vertices are in the "
+                            f"vertex group {UNCERTAIN_NAME!r}")
+        elif judged.level == "warning":
+            warnings.append(judged.text)
+        outputs += _uncertain_output(obj, judged)
+    asked: dict[str, str] = {}
+    written = _write(plan, obj, outputs, asked)
     report = dict(out.report)
     if out.confidence is not None and len(out.confidence):
         report.setdefault("uncertain_below", UNCERTAIN_BELOW)
         report.setdefault("uncertain_share", float(np.mean(out.confidence < report["uncertain_below"])))
     report["written"] = written
     report["object"] = plan.written_on
+    report["warnings"] = warnings
+    report["notes"] = _renamed_notes(written, asked)
+    if judged is not None:
+        report["outcome"] = judged.level
+        report["uncertain_vertices"] = int(judged.uncertain.sum())
     if plan.not_carried:
         report["skipped"] = {name: reason for name, reason in plan.not_carried}
     note = material_note(obj, written, out)
     if note:
         report["materials"] = note
-    report["summary"] = _summary(plan, report) + (f"; {note}" if note else "")
+        report["warnings"].append(note)
+    report["summary"] = _summary(plan, report)
     return report
 
 
@@ -353,6 +500,16 @@ def material_note(obj: bpy.types.Object, written: dict[str, str], out: job.JobOu
         return ""
     return (f"material indices go up to {highest} but {obj.name!r} has {slots} material slots: "
             "give it the source's materials (Link Materials, Ctrl L)")
+
+
+def message_of(report: dict[str, Any]) -> tuple[set[str], str]:
+    """The operator's report level and line for a finished run: a warning,
+    with every warning, when there is one; otherwise information. Notes (a
+    result under another name than its own, and why) follow either."""
+    warnings = [str(w) for w in report.get("warnings", ())]
+    text = "; ".join([str(report.get("summary", "done")), *warnings,
+                      *(str(n) for n in report.get("notes", ()))])
+    return ({'WARNING'} if warnings else {'INFO'}), text
 
 
 def _summary(plan: Plan, report: dict[str, Any]) -> str:

@@ -121,13 +121,16 @@ def test_names_follow_the_policy_and_replace_only_when_asked(mod, scene):
     bpy.ops.overtone.refresh_signals()
     for item in scene.overtone.signals:
         item.use = item.name == "tint"
+    tgt.data.color_attributes.new("tint", 'FLOAT_COLOR', 'POINT')     # the target's own "tint"
     bpy.ops.overtone.transfer_attributes()
     bpy.ops.overtone.transfer_attributes()
+    # the second run refreshes what the first wrote: no tint_ot2, no second confidence
     names = {s.name for s in mod.bridge.list_layers(tgt)}
-    assert {"tint", "tint_ot1", "overtone_confidence", "overtone_confidence_ot1"} <= names
+    assert names == {"tint", "tint_ot1", "overtone_confidence"}
     scene.overtone.replace_existing = True
     bpy.ops.overtone.transfer_attributes()
     assert {s.name for s in mod.bridge.list_layers(tgt)} == names
+    np.testing.assert_array_equal(read(mod, tgt, "tint"), read(mod, tgt, "tint_ot1"))
 
 
 def test_corner_colour_keeps_its_seams(mod, scene):
@@ -229,12 +232,13 @@ def test_same_named_vertex_groups_are_landmarks(mod, scene):
         pipeline.weighted_centre_vertex(mod.bridge.read_mesh(src).vertices, w_s),
         pipeline.weighted_centre_vertex(mod.bridge.read_mesh(tgt).vertices, w_t)]]
     assert "snout_ot1" not in {s.name for s in mod.bridge.list_layers(tgt)}  # not carried
-    # the carried "head" group is not a landmark on the next run, and is carried again
-    assert sorted(tgt["overtone_results"]) == ["head", "overtone_confidence", "tint", "tint_bytes"]
+    # the carried "head" group is not a landmark on the next run, and is carried again, in place
+    written = json.loads(tgt["overtone_written"])["layers"]
+    assert written == {name: ["Painted", name] for name in ("head", "overtone_confidence", "tint", "tint_bytes")}
     assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
     report = json.loads(scene.overtone.report_json)
     assert report["landmarks"]["groups"] == ["snout"] and report["pair"] == "memory"
-    assert "head_ot1" in tgt.vertex_groups
+    assert report["written"]["head"] == "head" and "head_ot1" not in tgt.vertex_groups
 
 
 def test_results_survive_save_and_reopen(mod, scene, tmp_path):
