@@ -18,8 +18,6 @@ KNOWN_LONG: set[str] = {
     "engine/matching/correspondence.py:correspond",
     "engine/spectra/eigensolver.py:_shift_invert",
     "engine/spectra/eigensolver.py:__init__",
-    "engine/spectra/robust.py:_flip_to_delaunay",
-    "engine/intake/preparation.py:prepare_mesh",
     "engine/matching/correspondence.py:_align_refine",
     "engine/carrying/corners.py:carry_corners",
     "engine/matching/correspondence.py:_refine_aligned",

@@ -44,9 +44,10 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.sparse as sp
 
-from .laplacian import cotangents, stiffness_from_cotangents, mass_matrix
-from ..intake.preparation import mesh_topology, validate_mesh
-from .robust import robust_operators
+from .geometry import check_mass_kind, cotangents_from_lengths, edge_lengths, face_edges, heron_areas, lumped_mass
+from .laplacian import stiffness_from_cotangents
+from ..intake.preparation import group_edges, mesh_topology, validate_mesh
+from .robust import DELAUNAY_TOL, check_mollify_factor, robust_operators
 
 __all__ = ["Operators", "mesh_operators", "MeshDefects", "mesh_defects"]
 
@@ -124,31 +125,25 @@ def mesh_defects(vertices, faces) -> MeshDefects:
         cotangent weight ``cot a + cot b``.
     """
     v, f = validate_mesh(vertices, faces)
-    cot = cotangents(v, f)
-    return _defects(v, f, cot)
+    lengths = edge_lengths(v, f)
+    area = heron_areas(lengths)
+    return _defects(v.shape[0], f, cotangents_from_lengths(lengths, area), area)
 
 
-def _defects(v: np.ndarray, f: np.ndarray, cot: np.ndarray) -> MeshDefects:
-    n = v.shape[0]
+def _defects(n: int, f: np.ndarray, cot: np.ndarray, area: np.ndarray) -> MeshDefects:
     _, nonmanifold_edges, nonmanifold_vertices = mesh_topology(f, n)
     # Interior (two-face) edges and their cotangent weights; face-edge 3t + c
     # lies opposite corner c, from corner c+1 to corner c+2.
-    p, q = f[:, [1, 2, 0]].ravel(), f[:, [2, 0, 1]].ravel()
-    key = np.minimum(p, q) * np.int64(n) + np.maximum(p, q)
-    order = np.argsort(key, kind="stable")
-    ks = key[order]
-    start = np.ones(ks.size, dtype=bool)
-    start[1:] = ks[1:] != ks[:-1]
-    counts = np.diff(np.append(np.flatnonzero(start), ks.size))
-    first = start & (counts[np.cumsum(start) - 1] == 2)
-    x, y = order[first], order[np.flatnonzero(first) + 1]
-    negative = int((cot.ravel()[x] + cot.ravel()[y] < 0).sum())
+    # A weight within rounding of zero (a right angle opposite a right angle)
+    # is not negative: the same tolerance as the robust flips.
+    p, q, _ = face_edges(f)
+    groups = group_edges(p, q, n)
+    pairs = groups.starts[groups.counts == 2]
+    x, y = groups.order[pairs], groups.order[pairs + 1]
+    negative = int((0.5 * (cot.ravel()[x] + cot.ravel()[y]) < -DELAUNAY_TOL).sum())
 
     angles = np.degrees(np.arctan2(1.0, cot))  # in (0, 180); 90 where the triangle is degenerate
-    e1 = v[f[:, 1]] - v[f[:, 0]]
-    e2 = v[f[:, 2]] - v[f[:, 0]]
-    degenerate = np.linalg.norm(np.cross(e1, e2), axis=1) == 0
-    angles[degenerate] = 0.0
+    angles[area == 0] = 0.0
     smallest = angles.min(axis=1)
     return MeshDefects(nonmanifold_edges, nonmanifold_vertices, int((smallest < _SLIVER_DEGREES).sum()),
                        float(smallest.min()), negative, int(x.size))
@@ -184,17 +179,17 @@ def mesh_operators(vertices, faces, *, robust: bool | str = "auto", mass: str = 
     """
     if not (robust is True or robust is False or (isinstance(robust, str) and robust == "auto")):
         raise ValueError(f"robust must be 'auto', True or False, got {robust!r}")
-    if mass not in ("barycentric", "voronoi"):
-        raise ValueError(f"unknown mass kind {mass!r}; expected 'barycentric' or 'voronoi'")
-    if not (np.isfinite(mollify_factor) and mollify_factor >= 0):
-        raise ValueError(f"mollify_factor must be finite and non-negative, got {mollify_factor!r}")
+    check_mass_kind(mass)
+    check_mollify_factor(mollify_factor)
     v, f = validate_mesh(vertices, faces)
-    cot = cotangents(v, f)
-    found = "; ".join(_defects(v, f, cot).reasons())
+    lengths = edge_lengths(v, f)
+    area = heron_areas(lengths)
+    cot = cotangents_from_lengths(lengths, area)
+    found = "; ".join(_defects(v.shape[0], f, cot, area).reasons())
     use = bool(found) if robust == "auto" else bool(robust)
     if use:
         L, M = robust_operators(v, f, mollify_factor=mollify_factor, mass=mass)[:2]
         return Operators(L, M, True, found or "requested")
     L = stiffness_from_cotangents(v.shape[0], f, cot)
-    M = mass_matrix(v, f, kind=mass)
+    M = lumped_mass(lengths, f, v.shape[0], mass, area)
     return Operators(L, M, False, f"plain requested despite {found}" if found else "")
