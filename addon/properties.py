@@ -11,6 +11,8 @@ import bpy
 from bpy.props import (BoolProperty, CollectionProperty, EnumProperty, FloatProperty,
                        IntProperty, PointerProperty, StringProperty)
 
+from .engine.carrying.transfer import BASES as ENGINE_BASES
+
 __all__ = ["OvertoneSignalItem", "OvertoneSignalReport", "OvertoneSettings", "MATCH_MODES", "BASES", "settings_of",
            "register", "unregister"]
 
@@ -20,14 +22,16 @@ MATCH_MODES = [
     ("INTRINSIC", "Intrinsic",
      "Different pose or proportions: match the surfaces by their intrinsic shape"),
 ]
-BASES = [
-    ("POINTWISE", "Point to Point",
-     "Interpolate values through the point correspondence, unfiltered (most accurate on our measurements)"),
-    ("ORTHOPRODUCTS", "Orthogonalised Products",
-     "Filter through eigenfunctions and their mass-orthonormal products, then carry"),
-    ("LAPLACIAN", "Eigenfunctions", "Filter through Laplace-Beltrami eigenfunctions only: smooth signals"),
-    ("PRODUCTS", "Raw Products", "Filter through raw eigenfunction products fitted by least squares"),
-]
+# Label and description of each basis the engine offers (engine.carrying.transfer.BASES).
+_BASIS_LABELS = {
+    "pointwise": ("Point to Point",
+                  "Interpolate values through the point correspondence, unfiltered (most accurate on our measurements)"),
+    "orthoproducts": ("Orthogonalised Products",
+                      "Filter through eigenfunctions and their mass-orthonormal products, then carry"),
+    "laplacian": ("Eigenfunctions", "Filter through Laplace-Beltrami eigenfunctions only: smooth signals"),
+    "products": ("Raw Products", "Filter through raw eigenfunction products fitted by least squares"),
+}
+BASES = [(name.upper(), *_BASIS_LABELS[name]) for name in ENGINE_BASES]
 
 
 class OvertoneSignalItem(bpy.types.PropertyGroup):

@@ -23,7 +23,8 @@ import numpy as np
 
 from .color import decode_bytes, encode_bytes
 
-__all__ = ["KINDS", "Signal", "signals_from_properties", "signal_to_property", "check_signal"]
+__all__ = ["KINDS", "Signal", "signals_from_properties", "signal_to_property", "check_signal", "clamp_range",
+           "clamp"]
 
 KINDS = ("color", "weight", "float", "vector", "label", "mask")
 BLENDED = ("color", "weight", "float", "vector")
@@ -54,12 +55,28 @@ class Signal:
     @property
     def bounds(self) -> tuple[np.ndarray, np.ndarray] | None:
         """Range a reconstruction is clamped to, per channel; None for labels/masks."""
-        if self.kind in ("color", "weight"):
-            shape = self.values.shape[1:]
-            return np.zeros(shape), np.ones(shape)
-        if self.kind in ("float", "vector"):
-            return self.values.min(axis=0), self.values.max(axis=0)
-        return None
+        return clamp_range(self.kind, self.values)
+
+
+def clamp_range(kind: str, reference: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
+    """Per-channel range a blended signal of ``kind`` is clamped to; None for labels and masks.
+
+    Colours and weights: [0, 1]. Floats and vectors: the per-channel range of
+    ``reference`` (the source's own values, (n,) or (n, c)), so filtering
+    never invents new extremes.
+    """
+    if kind in ("color", "weight"):
+        shape = reference.shape[1:]
+        return np.zeros(shape), np.ones(shape)
+    if kind in ("float", "vector"):
+        return reference.min(axis=0), reference.max(axis=0)
+    return None
+
+
+def clamp(values: np.ndarray, kind: str, reference: np.ndarray) -> np.ndarray:
+    """``values`` clipped to :func:`clamp_range` of ``kind`` and ``reference``; unchanged for labels and masks."""
+    bounds = clamp_range(kind, reference)
+    return values if bounds is None else np.clip(values, bounds[0], bounds[1])
 
 
 def check_signal(name: str, values, n: int, kind: str) -> np.ndarray:

@@ -19,7 +19,20 @@ import numpy as np
 
 from ..common.arrays import check_coefficients, check_eigenvectors_mass, check_mass, check_vertex_signal
 
-__all__ = ["Approximation", "Basis", "LaplacianBasis", "approximate", "relative_error"]
+__all__ = ["SPECTRAL_BASES", "check_basis_name", "Approximation", "Basis", "LaplacianBasis", "approximate",
+           "relative_error"]
+
+# The names of the spectral bases, in the order the add-on lists them:
+# orthogonalised eigenfunction products, Laplacian eigenfunctions, raw products
+# fitted by least squares. ``engine.carrying.transfer.BASES`` adds "pointwise".
+SPECTRAL_BASES = ("orthoproducts", "laplacian", "products")
+
+
+def check_basis_name(name: str, names: tuple[str, ...] = SPECTRAL_BASES) -> str:
+    """Return ``name`` if it is one of ``names``; raise ValueError naming the choices otherwise."""
+    if name not in names:
+        raise ValueError(f"unknown basis {name!r}; expected one of {', '.join(names)}")
+    return name
 
 
 @runtime_checkable
