@@ -17,6 +17,7 @@ import scipy.sparse as sp
 from scipy.sparse.csgraph import connected_components
 from scipy.spatial import cKDTree
 
+from ..common.arrays import Array, ArrayLike
 from .triangulation import triangulate
 
 __all__ = ["validate_mesh", "prepare_mesh", "PreparedMesh", "mesh_topology", "EdgeGroups", "group_edges"]
@@ -32,7 +33,7 @@ __all__ = ["validate_mesh", "prepare_mesh", "PreparedMesh", "mesh_topology", "Ed
 _ZERO_AREA = 1e-14
 
 
-def validate_mesh(vertices, faces) -> tuple[np.ndarray, np.ndarray]:
+def validate_mesh(vertices: ArrayLike, faces: ArrayLike) -> tuple[Array, Array]:
     """Check a triangle mesh and return it as contiguous float64 / int64 arrays.
 
     Parameters
@@ -72,7 +73,7 @@ def validate_mesh(vertices, faces) -> tuple[np.ndarray, np.ndarray]:
     return v, np.ascontiguousarray(f, dtype=np.int64)
 
 
-def validate_vertices(vertices) -> np.ndarray:
+def validate_vertices(vertices: ArrayLike) -> Array:
     """The vertex half of :func:`validate_mesh`: (n, 3) finite numbers, as float64."""
     v = np.asarray(vertices)
     if v.dtype == object or not (np.issubdtype(v.dtype, np.floating) or np.issubdtype(v.dtype, np.integer)):
@@ -90,7 +91,7 @@ def validate_vertices(vertices) -> np.ndarray:
     return v
 
 
-def validate_polygons(corners, sizes, n: int) -> tuple[np.ndarray, np.ndarray]:
+def validate_polygons(corners: ArrayLike, sizes: ArrayLike, n: int) -> tuple[Array, Array]:
     """Check polygons given as a flat corner list and per-polygon sizes.
 
     Parameters
@@ -174,21 +175,21 @@ class PreparedMesh:
         What the cleaning did, one short sentence each.
     """
 
-    vertices: np.ndarray
-    faces: np.ndarray
-    to_clean: np.ndarray
-    from_clean: np.ndarray
-    restore_index: np.ndarray
-    tri_polygon: np.ndarray
+    vertices: Array
+    faces: Array
+    to_clean: Array
+    from_clean: Array
+    restore_index: Array
+    tri_polygon: Array
     n_original: int
     n_components: int
-    component: np.ndarray
+    component: Array
     n_boundary_loops: int
     non_manifold_edges: int
     non_manifold_vertices: int
     notes: tuple[str, ...]
 
-    def restore(self, values) -> np.ndarray:
+    def restore(self, values: ArrayLike) -> Array:
         """Per-vertex values on the cleaned mesh, handed back to every original vertex.
 
         Parameters
@@ -209,7 +210,7 @@ class PreparedMesh:
                              f"got shape {a.shape}")
         return a[self.restore_index]
 
-    def to_cleaned(self, values) -> np.ndarray:
+    def to_cleaned(self, values: ArrayLike) -> Array:
         """Per-vertex values on the original mesh, taken to the cleaned vertices.
 
         Parameters
@@ -231,7 +232,8 @@ class PreparedMesh:
         return a[self.from_clean]
 
 
-def prepare_mesh(vertices, faces=None, *, corners=None, sizes=None, weld: bool = True) -> PreparedMesh:
+def prepare_mesh(vertices: ArrayLike, faces: ArrayLike | None = None, *, corners: ArrayLike | None = None,
+                 sizes: ArrayLike | None = None, weld: bool = True) -> PreparedMesh:
     """Validate, triangulate and clean a mesh, keeping the map back to it.
 
     Parameters
@@ -318,7 +320,7 @@ def prepare_mesh(vertices, faces=None, *, corners=None, sizes=None, weld: bool =
         notes=tuple(notes))
 
 
-def _weld(v: np.ndarray, notes: list[str]) -> np.ndarray:
+def _weld(v: Array, notes: list[str]) -> Array:
     """Representative of each vertex: the lowest original index with exactly the same position."""
     n = len(v)
     rep = np.arange(n, dtype=np.int64)
@@ -337,8 +339,8 @@ def _weld(v: np.ndarray, notes: list[str]) -> np.ndarray:
     return rep
 
 
-def _drop_degenerate(v: np.ndarray, tris: np.ndarray, tri_polygon: np.ndarray,
-                     notes: list[str]) -> tuple[np.ndarray, np.ndarray]:
+def _drop_degenerate(v: Array, tris: Array, tri_polygon: Array,
+                     notes: list[str]) -> tuple[Array, Array]:
     """Drop zero-area triangles (including those welding collapsed), then repeated ones (first kept)."""
     used = np.flatnonzero(np.bincount(tris.reshape(-1), minlength=len(v)))
     span = v[used].max(axis=0) - v[used].min(axis=0)
@@ -360,7 +362,7 @@ def _drop_degenerate(v: np.ndarray, tris: np.ndarray, tri_polygon: np.ndarray,
     return tris, tri_polygon
 
 
-def mesh_topology(faces: np.ndarray, nv: int) -> tuple[int, int, int]:
+def mesh_topology(faces: Array, nv: int) -> tuple[int, int, int]:
     """Boundary loops, non-manifold edges and non-manifold vertices of a triangle mesh.
 
     Half-edge ``t*3 + k`` runs from corner ``k`` to corner ``k + 1`` of triangle
@@ -425,7 +427,7 @@ def mesh_topology(faces: np.ndarray, nv: int) -> tuple[int, int, int]:
     return loops, nm_edges, nm_vertices
 
 
-def _first_of_rows(rows: np.ndarray) -> np.ndarray:
+def _first_of_rows(rows: Array) -> Array:
     """Indices of the first occurrence of each distinct row, ascending.
 
     A lexicographic sort of the integer columns; much faster than
@@ -454,16 +456,16 @@ class EdgeGroups:
         manifold, more on a non-manifold edge).
     """
 
-    order: np.ndarray
-    starts: np.ndarray
-    counts: np.ndarray
+    order: Array
+    starts: Array
+    counts: Array
 
-    def group_of(self) -> np.ndarray:
+    def group_of(self) -> Array:
         """(3 m,) group number of each sorted position."""
         return np.repeat(np.arange(self.starts.size), self.counts)
 
 
-def group_edges(p: np.ndarray, q: np.ndarray, n: int, secondary: np.ndarray | None = None) -> EdgeGroups:
+def group_edges(p: Array, q: Array, n: int, secondary: Array | None = None) -> EdgeGroups:
     """Group directed edges ``p[i] -> q[i]`` over ``n`` vertices by the undirected edge {p, q}.
 
     The edge key is ``min(p, q) * n + max(p, q)``; within a group the edges

@@ -24,14 +24,27 @@ simple polygon with more than three corners has two non-overlapping ears.
 
 from __future__ import annotations
 
+from collections.abc import Callable
+
 import numpy as np
 
-try:  # a maintained C++ ear cutter, bundled with the extension as a wheel
-    from mapbox_earcut import triangulate_float64 as _earcut
-except ImportError:  # pragma: no cover - depends on the environment
-    _earcut = None
+from ..common.arrays import Array, ArrayLike
 
 __all__: list[str] = []
+
+
+def _load_earcut() -> Callable[[Array, Array], Array] | None:
+    """The ear cutter of ``mapbox_earcut`` (a maintained C++ library, bundled with the extension as a
+    wheel), or None when it is not installed."""
+    try:
+        from mapbox_earcut import triangulate_float64
+    except ImportError:  # pragma: no cover - depends on the environment
+        return None
+    cut: Callable[[Array, Array], Array] = triangulate_float64
+    return cut
+
+
+_earcut = _load_earcut()
 
 # Below this fraction of the squared polygon extent a signed area counts as
 # zero: the rounding error of a cross product of coordinates of size ``s`` is a
@@ -40,7 +53,7 @@ __all__: list[str] = []
 _REL_EPS = 1e-14
 
 
-def triangulate(vertices: np.ndarray, corners: np.ndarray, sizes: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def triangulate(vertices: Array, corners: Array, sizes: Array) -> tuple[Array, Array]:
     """Split polygons into triangles that keep each polygon's winding.
 
     The caller has validated the input (``sizes >= 3``,
@@ -71,8 +84,8 @@ def triangulate(vertices: np.ndarray, corners: np.ndarray, sizes: np.ndarray) ->
     corners = np.asarray(corners, dtype=np.int64)
     sizes = np.asarray(sizes, dtype=np.int64)
     starts = np.cumsum(sizes) - sizes
-    tris: list[np.ndarray] = []
-    owners: list[np.ndarray] = []
+    tris: list[Array] = []
+    owners: list[Array] = []
 
     which = np.flatnonzero(sizes == 3)
     if which.size:
@@ -99,7 +112,7 @@ def triangulate(vertices: np.ndarray, corners: np.ndarray, sizes: np.ndarray) ->
     return np.ascontiguousarray(triangles[order]), tri_polygon[order]
 
 
-def _split_quads(v: np.ndarray, quads: np.ndarray) -> np.ndarray:
+def _split_quads(v: Array, quads: Array) -> Array:
     """Cut each quad ``abcd`` into two triangles, (q, 2, 3).
 
     Diagonal ``ac`` gives ``abc, acd``; diagonal ``bd`` gives ``abd, bcd``. A
@@ -114,8 +127,8 @@ def _split_quads(v: np.ndarray, quads: np.ndarray) -> np.ndarray:
     a, b, c, d = (v[quads[:, i]] for i in range(4))
     normal = np.cross(c - a, d - b)
 
-    def along(p, q, r):
-        return np.einsum("ij,ij->i", np.cross(q - p, r - p), normal)
+    def along(p: Array, q: Array, r: Array) -> Array:
+        return np.asarray(np.einsum("ij,ij->i", np.cross(q - p, r - p), normal))
 
     score_ac = np.minimum(along(a, b, c), along(a, c, d))
     score_bd = np.minimum(along(a, b, d), along(b, c, d))
@@ -131,13 +144,13 @@ def _split_quads(v: np.ndarray, quads: np.ndarray) -> np.ndarray:
     return out
 
 
-def _fan(k: int) -> np.ndarray:
+def _fan(k: int) -> Array:
     i = np.arange(1, k - 1)
     return np.column_stack([np.zeros_like(i), i, i + 1])
 
 
-def _planar(v: np.ndarray, corners: np.ndarray, starts: np.ndarray, sizes: np.ndarray,
-            which: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def _planar(v: Array, corners: Array, starts: Array, sizes: Array,
+            which: Array) -> tuple[Array, Array, Array]:
     """Corners of polygons ``which`` in their best-fit planes, counter-clockwise.
 
     Each polygon is centred on its centroid and projected onto the plane
@@ -176,13 +189,13 @@ def _planar(v: np.ndarray, corners: np.ndarray, starts: np.ndarray, sizes: np.nd
     return xy, flat, _REL_EPS * extent2
 
 
-def _cut_polygons(v: np.ndarray, corners: np.ndarray, starts: np.ndarray, sizes: np.ndarray,
-                  which: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def _cut_polygons(v: Array, corners: Array, starts: Array, sizes: Array,
+                  which: Array) -> tuple[Array, Array]:
     """Triangles (vertex indices, each polygon's winding) and their polygon, for the polygons ``which``."""
     xy, flat, eps = _planar(v, corners, starts, sizes, which)
     k_all = sizes[which]
     offset = np.cumsum(k_all) - k_all
-    local: list[np.ndarray] = []
+    local: list[Array] = []
     by_library = np.zeros(which.size, dtype=bool)
     for i, (k, at) in enumerate(zip(k_all.tolist(), offset.tolist())):
         pts = xy[at:at + k]
@@ -202,14 +215,14 @@ def _cut_polygons(v: np.ndarray, corners: np.ndarray, starts: np.ndarray, sizes:
     return corners[tri + first[:, None]], which[owner]
 
 
-def _library_ears(pts: np.ndarray) -> np.ndarray | None:
+def _library_ears(pts: Array) -> Array | None:
     """Ear cutting by ``mapbox_earcut`` (local indices, any winding); None when the library is missing."""
     if _earcut is None:
         return None
     return np.asarray(_earcut(pts, np.array([len(pts)], dtype=np.uint32)), dtype=np.int64).reshape(-1, 3)
 
 
-def _ear_clip(x: np.ndarray, y: np.ndarray, eps: float) -> np.ndarray:
+def _ear_clip(x: Array, y: Array, eps: float) -> Array:
     """Ear-clip one counter-clockwise planar polygon, (k - 2, 3) local indices.
 
     A corner is convex when the signed area of (previous, corner, next) is
@@ -226,7 +239,7 @@ def _ear_clip(x: np.ndarray, y: np.ndarray, eps: float) -> np.ndarray:
 
     def signed(i: int) -> float:
         a, c = prev[i], nxt[i]
-        return (x[i] - x[a]) * (y[c] - y[i]) - (y[i] - y[a]) * (x[c] - x[i])
+        return float((x[i] - x[a]) * (y[c] - y[i]) - (y[i] - y[a]) * (x[c] - x[i]))
 
     def is_ear(i: int) -> bool:
         a, c = prev[i], nxt[i]

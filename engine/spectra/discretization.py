@@ -44,6 +44,7 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.sparse as sp
 
+from ..common.arrays import Array, ArrayLike
 from .geometry import check_mass_kind, cotangents_from_lengths, edge_lengths, face_edges, heron_areas, lumped_mass
 from .laplacian import stiffness_from_cotangents
 from ..intake.preparation import group_edges, mesh_topology, validate_mesh
@@ -73,7 +74,7 @@ class Operators:
     """
 
     stiffness: sp.csr_matrix
-    mass: np.ndarray
+    mass: Array
     robust: bool
     reason: str
 
@@ -105,7 +106,7 @@ class MeshDefects:
         return out
 
 
-def mesh_defects(vertices, faces) -> MeshDefects:
+def mesh_defects(vertices: ArrayLike, faces: ArrayLike) -> MeshDefects:
     """Count the defects that make the plain cotangent Laplacian unreliable.
 
     Parameters
@@ -130,7 +131,7 @@ def mesh_defects(vertices, faces) -> MeshDefects:
     return _defects(v.shape[0], f, cotangents_from_lengths(lengths, area), area)
 
 
-def _defects(n: int, f: np.ndarray, cot: np.ndarray, area: np.ndarray) -> MeshDefects:
+def _defects(n: int, f: Array, cot: Array, area: Array) -> MeshDefects:
     _, nonmanifold_edges, nonmanifold_vertices = mesh_topology(f, n)
     # Interior (two-face) edges and their cotangent weights; face-edge 3t + c
     # lies opposite corner c, from corner c+1 to corner c+2.
@@ -149,7 +150,7 @@ def _defects(n: int, f: np.ndarray, cot: np.ndarray, area: np.ndarray) -> MeshDe
                        float(smallest.min()), negative, int(x.size))
 
 
-def mesh_operators(vertices, faces, *, robust: bool | str = "auto", mass: str = "barycentric",
+def mesh_operators(vertices: ArrayLike, faces: ArrayLike, *, robust: bool | str = "auto", mass: str = "barycentric",
               mollify_factor: float = 1e-5) -> Operators:
     """Stiffness matrix and lumped mass of a triangle mesh, plain or robust.
 

@@ -13,7 +13,7 @@ corner ``c + 1`` to corner ``c + 2``.
 from __future__ import annotations
 
 import numpy as np
-from numpy.typing import ArrayLike
+from ..common.arrays import Array, ArrayLike
 
 __all__ = ["MASS_KINDS", "face_edges", "edge_lengths", "check_lengths", "heron_areas", "cotangents_from_lengths",
            "mixed_voronoi_corners", "check_mass_kind", "lumped_mass"]
@@ -21,7 +21,7 @@ __all__ = ["MASS_KINDS", "face_edges", "edge_lengths", "check_lengths", "heron_a
 MASS_KINDS = ("barycentric", "voronoi")
 
 
-def face_edges(f: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def face_edges(f: Array) -> tuple[Array, Array, Array]:
     """Per face-edge (row ``3t + c``): endpoints p -> q (corners c+1 -> c+2) and the opposite vertex.
 
     Parameters
@@ -35,13 +35,13 @@ def face_edges(f: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     return f[:, [1, 2, 0]].ravel(), f[:, [2, 0, 1]].ravel(), f.ravel()
 
 
-def edge_lengths(v: np.ndarray, f: np.ndarray) -> np.ndarray:
+def edge_lengths(v: Array, f: Array) -> Array:
     """(m, 3) float64 array: ``[t, c]`` is the length of the edge opposite corner ``c`` of triangle ``t``."""
     p, q, _ = face_edges(f)
     return np.asarray(np.linalg.norm(v[q] - v[p], axis=1).reshape(f.shape), dtype=np.float64)
 
 
-def check_lengths(lengths: ArrayLike, faces: ArrayLike) -> tuple[np.ndarray, np.ndarray]:
+def check_lengths(lengths: ArrayLike, faces: ArrayLike) -> tuple[Array, Array]:
     """Per-triangle edge lengths and faces as float64 / int64, checked to match.
 
     Raises
@@ -59,7 +59,7 @@ def check_lengths(lengths: ArrayLike, faces: ArrayLike) -> tuple[np.ndarray, np.
     return lens, f
 
 
-def heron_areas(lengths: np.ndarray) -> np.ndarray:
+def heron_areas(lengths: Array) -> Array:
     """Triangle areas from (k, 3) edge lengths: Heron's formula in Kahan's stable form.
 
     Sides sorted so that ``x >= y >= z``, the area is
@@ -73,20 +73,20 @@ def heron_areas(lengths: np.ndarray) -> np.ndarray:
     return np.asarray(0.25 * np.sqrt(np.clip(prod, 0.0, None)), dtype=np.float64)
 
 
-def cotangents_from_lengths(lengths: np.ndarray, area: np.ndarray) -> np.ndarray:
+def cotangents_from_lengths(lengths: Array, area: Array) -> Array:
     """(k, 3) cotangent of the angle at each corner, from the law of cosines.
 
     ``cot(angle at c) = (l_{c+1}^2 + l_{c+2}^2 - l_c^2) / (4 area)``; a triangle
     of zero area gets cotangent 0 at every corner.
     """
     sq = lengths * lengths
-    num = sq[:, [1, 2, 0]] + sq[:, [2, 0, 1]] - sq
+    num: Array = sq[:, [1, 2, 0]] + sq[:, [2, 0, 1]] - sq
     pos = area > 0
     denom = np.where(pos, 4.0 * area, 1.0)[:, None]
     return np.asarray(np.where(pos[:, None], num / denom, 0.0), dtype=np.float64)
 
 
-def mixed_voronoi_corners(lengths: np.ndarray, area: np.ndarray, cot: np.ndarray) -> np.ndarray:
+def mixed_voronoi_corners(lengths: Array, area: Array, cot: Array) -> Array:
     """(k, 3) mixed Voronoi area of each corner (Meyer, Desbrun, Schroeder and Barr 2003).
 
     In a triangle without an obtuse angle corner ``c`` gets its Voronoi area
@@ -108,8 +108,8 @@ def check_mass_kind(kind: str) -> None:
         raise ValueError(f"unknown mass kind {kind!r}; expected 'barycentric' or 'voronoi'")
 
 
-def lumped_mass(lengths: np.ndarray, faces: np.ndarray, n: int, kind: str = "barycentric",
-                area: np.ndarray | None = None) -> np.ndarray:
+def lumped_mass(lengths: Array, faces: Array, n: int, kind: str = "barycentric",
+                area: Array | None = None) -> Array:
     """(n,) lumped mass per vertex: sums to the total area; vertices in no triangle get 0.
 
     ``kind="barycentric"`` gives each corner a third of its triangle's area,

@@ -12,15 +12,14 @@ from __future__ import annotations
 import numpy as np
 import scipy.sparse as sp
 
-from numpy.typing import ArrayLike
-
+from ..common.arrays import Array, ArrayLike
 from ..intake.preparation import validate_mesh
 from .geometry import check_lengths, cotangents_from_lengths, edge_lengths, heron_areas, lumped_mass
 
 __all__ = ["cotangent_laplacian", "intrinsic_laplacian", "mass_matrix", "face_areas", "corner_cotangents"]
 
 
-def face_areas(vertices: ArrayLike, faces: ArrayLike) -> np.ndarray:
+def face_areas(vertices: ArrayLike, faces: ArrayLike) -> Array:
     """Area of each triangle.
 
     Parameters
@@ -36,7 +35,7 @@ def face_areas(vertices: ArrayLike, faces: ArrayLike) -> np.ndarray:
     return heron_areas(edge_lengths(v, f))
 
 
-def corner_cotangents(vertices: ArrayLike, faces: ArrayLike) -> np.ndarray:
+def corner_cotangents(vertices: ArrayLike, faces: ArrayLike) -> Array:
     """Cotangent of the angle at each corner of each triangle.
 
     Returns
@@ -49,7 +48,7 @@ def corner_cotangents(vertices: ArrayLike, faces: ArrayLike) -> np.ndarray:
     return cotangents(v, f)
 
 
-def cotangents(v: np.ndarray, f: np.ndarray) -> np.ndarray:
+def cotangents(v: Array, f: Array) -> Array:
     """(m, 3) corner cotangents of a validated mesh (see :func:`corner_cotangents`)."""
     lengths = edge_lengths(v, f)
     return cotangents_from_lengths(lengths, heron_areas(lengths))
@@ -73,7 +72,7 @@ def cotangent_laplacian(vertices: ArrayLike, faces: ArrayLike) -> sp.csr_matrix:
     return stiffness_from_cotangents(v.shape[0], f, cotangents(v, f))
 
 
-def stiffness_from_cotangents(n: int, f: np.ndarray, cot: np.ndarray) -> sp.csr_matrix:
+def stiffness_from_cotangents(n: int, f: Array, cot: Array) -> sp.csr_matrix:
     """(n, n) stiffness: corner ``c``'s cotangent weights the opposite edge by ``cot / 2``."""
     # corner c's cotangent weights the opposite edge (c+1, c+2)
     i = np.concatenate([f[:, 1], f[:, 2], f[:, 0]])
@@ -88,7 +87,7 @@ def stiffness_from_cotangents(n: int, f: np.ndarray, cot: np.ndarray) -> sp.csr_
     return L
 
 
-def mass_matrix(vertices: ArrayLike, faces: ArrayLike, *, kind: str = "barycentric") -> np.ndarray:
+def mass_matrix(vertices: ArrayLike, faces: ArrayLike, *, kind: str = "barycentric") -> Array:
     """Lumped (diagonal) mass per vertex.
 
     Parameters
@@ -110,7 +109,7 @@ def mass_matrix(vertices: ArrayLike, faces: ArrayLike, *, kind: str = "barycentr
     return lumped_mass(edge_lengths(v, f), f, v.shape[0], kind)
 
 
-def intrinsic_laplacian(lengths: ArrayLike, faces: ArrayLike, n_vertices: int) -> tuple[sp.csr_matrix, np.ndarray]:
+def intrinsic_laplacian(lengths: ArrayLike, faces: ArrayLike, n_vertices: int) -> tuple[sp.csr_matrix, Array]:
     """Cotangent stiffness and barycentric mass from edge lengths alone.
 
     The cotangent Laplacian depends only on the metric, so a mesh given by its

@@ -22,7 +22,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..common.arrays import check_coefficients, check_eigenvectors_mass, check_vertex_signal, float_matrix
+from ..common.arrays import ArrayLike, Array, check_coefficients, check_eigenvectors_mass, check_vertex_signal, float_matrix
 import scipy.linalg as sla
 
 __all__ = [
@@ -115,7 +115,7 @@ _BUDGET_ENTRIES = 5.0e7
 _BUDGET_WORK = 1.0e10
 
 
-def product_exponents(K: int, order: int) -> np.ndarray:
+def product_exponents(K: int, order: int) -> Array:
     """Exponent vectors of all monomials of degree <= ``order`` in ``K`` eigenfunctions.
 
     Parameters
@@ -142,7 +142,7 @@ def product_exponents(K: int, order: int) -> np.ndarray:
     return np.vstack(rows)
 
 
-def raw_products(eigenvectors, exponents) -> np.ndarray:
+def raw_products(eigenvectors: ArrayLike, exponents: ArrayLike) -> Array:
     """Pointwise products of eigenfunctions given by exponent vectors.
 
     Parameters
@@ -180,7 +180,7 @@ def raw_products(eigenvectors, exponents) -> np.ndarray:
     return out
 
 
-def _monomials(phi: np.ndarray, exps: np.ndarray) -> np.ndarray:
+def _monomials(phi: Array, exps: Array) -> Array:
     """Products for a block of exponents, without any parent columns (one block of memory)."""
     n, K = phi.shape
     deg = exps.sum(axis=1)
@@ -221,20 +221,20 @@ class ProductBasis:
     rank : int
     """
 
-    basis: np.ndarray
-    kept: np.ndarray
-    exponents: np.ndarray
-    coefficients: np.ndarray
-    mass: np.ndarray
+    basis: Array
+    kept: Array
+    exponents: Array
+    coefficients: Array
+    mass: Array
     tolerance: float
     rank: int
 
-    def project(self, signal) -> np.ndarray:
+    def project(self, signal: ArrayLike) -> Array:
         """Coefficients ``basis^T M f``: (rank,) or (rank, c) for an (n,) or (n, c) signal."""
         f = check_vertex_signal(signal, self.basis.shape[0])
         return self.basis.T @ (self.mass[:, None] * f if f.ndim == 2 else self.mass * f)
 
-    def reconstruct(self, coeffs) -> np.ndarray:
+    def reconstruct(self, coeffs: ArrayLike) -> Array:
         """Signal ``basis @ coeffs``: (n,) or (n, c)."""
         c = check_coefficients(coeffs, self.rank)
         return self.basis @ c
@@ -246,7 +246,7 @@ def default_product_tolerance(n_vertices: int) -> float:
     return max(DEFAULT_PRODUCT_TOLERANCE, 2.0 / max(int(n_vertices), 1))
 
 
-def orthogonal_products(eigenvectors, mass, order: int, *, K: int | None = None,
+def orthogonal_products(eigenvectors: ArrayLike, mass: ArrayLike, order: int, *, K: int | None = None,
                         tol: float | None = None,
                         block_size: int = DEFAULT_BLOCK_SIZE) -> ProductBasis:
     """Mass-orthonormal basis of the products of the first ``K`` eigenfunctions.
@@ -349,7 +349,7 @@ The Gram route resolves remaining norms to about ``sqrt(eps) ~ 1.5e-8`` of a
 column's norm, ample for tolerances of 1e-6 and above."""
 
 
-def _split_block(scaled: np.ndarray, m: np.ndarray, sw: np.ndarray, tol: float):
+def _split_block(scaled: Array, m: Array, sw: Array, tol: float) -> tuple[Array, Array, Array]:
     """Greedy rank-revealing split of a block already orthogonal to the accepted basis.
 
     Each column of ``scaled`` is divided by its original norm, so its
@@ -384,9 +384,9 @@ def _split_block(scaled: np.ndarray, m: np.ndarray, sw: np.ndarray, tol: float):
     acc: list[int] = []
     live = np.ones(b, dtype=bool)
     if tol >= _GRAM_TOLERANCE:
-        G = scaled.T @ (m[:, None] * scaled)
+        G: Array = scaled.T @ (m[:, None] * scaled)
         G = 0.5 * (G + G.T)
-        rest = np.diag(G).copy()  # squared remainders
+        rest: Array = np.diag(G).copy()  # squared remainders
         while live.any():
             j = _pivot(rest, live, tol * tol)
             if j < 0:
@@ -410,7 +410,7 @@ def _split_block(scaled: np.ndarray, m: np.ndarray, sw: np.ndarray, tol: float):
         U2 = sla.cholesky(0.5 * (G2 + G2.T), lower=False)
         new = sla.solve_triangular(U2, new.T, trans="T", lower=False).T
         return new, U2 @ tri, idx
-    W = sw[:, None] * scaled
+    W: Array = sw[:, None] * scaled
     Qw = np.empty((n, b))
     rest = np.einsum("ij,ij->j", W, W)
     while live.any():
@@ -418,7 +418,7 @@ def _split_block(scaled: np.ndarray, m: np.ndarray, sw: np.ndarray, tol: float):
         if j < 0:
             break
         a = len(acc)
-        w = W[:, j].copy()
+        w: Array = W[:, j].copy()
         for _ in range(2):
             if a:
                 c = Qw[:, :a].T @ w
@@ -450,7 +450,7 @@ def _split_block(scaled: np.ndarray, m: np.ndarray, sw: np.ndarray, tol: float):
     return new, tri[:a], idx
 
 
-def _pivot(rest: np.ndarray, live: np.ndarray, floor: float) -> int:
+def _pivot(rest: Array, live: Array, floor: float) -> int:
     """Live column with the largest squared remainder (earliest within 1e-9), or -1 below ``floor``."""
     cand = np.where(live, rest, -np.inf)
     best = cand.max()
@@ -478,9 +478,9 @@ class LeastSquaresProducts:
         precision times the largest dimension (the LAPACK default).
     """
 
-    products: np.ndarray
-    exponents: np.ndarray
-    mass: np.ndarray
+    products: Array
+    exponents: Array
+    mass: Array
     rcond: float | None
 
     @property
@@ -488,22 +488,22 @@ class LeastSquaresProducts:
         """Number of coefficients (the raw product count; dependent ones are not removed)."""
         return self.products.shape[1]
 
-    def project(self, signal) -> np.ndarray:
+    def project(self, signal: ArrayLike) -> Array:
         """Least-squares coefficients: (r,) or (r, c)."""
         f = check_vertex_signal(signal, self.products.shape[0])
         sw = np.sqrt(self.mass)
         A = sw[:, None] * self.products
         b = sw[:, None] * f if f.ndim == 2 else sw * f
         c, *_ = sla.lstsq(A, b, cond=self.rcond)
-        return c
+        return np.asarray(c)
 
-    def reconstruct(self, coeffs) -> np.ndarray:
+    def reconstruct(self, coeffs: ArrayLike) -> Array:
         """Signal ``P @ coeffs``: (n,) or (n, c)."""
         c = check_coefficients(coeffs, self.rank)
         return self.products @ c
 
 
-def least_squares_products(eigenvectors, mass, order: int, *, K: int | None = None,
+def least_squares_products(eigenvectors: ArrayLike, mass: ArrayLike, order: int, *, K: int | None = None,
                            rcond: float | None = None) -> LeastSquaresProducts:
     """Raw eigenfunction products with a mass-weighted least-squares fit.
 
@@ -572,7 +572,7 @@ def product_budget(n_vertices: int, K: int, order: int) -> tuple[int, int]:
 
 # --- validation shared with approximation.py and descriptors.py ---------------------------------
 
-def _check_K_order(K, order) -> tuple[int, int]:
+def _check_K_order(K: object, order: object) -> tuple[int, int]:
     if not isinstance(order, (int, np.integer)) or isinstance(order, bool) or not 1 <= order <= MAX_ORDER:
         raise ValueError(f"order must be an integer from 1 to {MAX_ORDER}, got {order!r}")
     if not isinstance(K, (int, np.integer)) or isinstance(K, bool) or K < 1:
@@ -580,7 +580,7 @@ def _check_K_order(K, order) -> tuple[int, int]:
     return int(K), int(order)
 
 
-def _resolve_K(K, order, phi: np.ndarray) -> int:
+def _resolve_K(K: int | None, order: int, phi: Array) -> int:
     k = phi.shape[1]
     if K is None:
         _check_K_order(k, order)
@@ -591,7 +591,7 @@ def _resolve_K(K, order, phi: np.ndarray) -> int:
     return K
 
 
-def _check_exponents(exponents, k: int) -> np.ndarray:
+def _check_exponents(exponents: ArrayLike, k: int) -> Array:
     e = np.asarray(exponents)
     if e.ndim != 2 or e.shape[0] == 0 or not np.issubdtype(e.dtype, np.integer):
         raise ValueError(f"exponents must be a non-empty (r, K) integer array, got {e.dtype} {e.shape}")

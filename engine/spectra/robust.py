@@ -44,8 +44,7 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.sparse as sp
 
-from numpy.typing import ArrayLike
-
+from ..common.arrays import Array, ArrayLike
 from .geometry import check_mass_kind, check_lengths, cotangents_from_lengths, edge_lengths, face_edges, heron_areas, lumped_mass
 from .laplacian import intrinsic_laplacian
 from ..intake.preparation import group_edges, validate_mesh
@@ -76,13 +75,13 @@ class IntrinsicTriangulation:
         Number of edge flips performed to reach this triangulation.
     """
 
-    triangles: np.ndarray
-    twin: np.ndarray
-    lengths: np.ndarray
+    triangles: Array
+    twin: Array
+    lengths: Array
     flips: int = 0
 
 
-def _clean_faces(f: np.ndarray) -> np.ndarray:
+def _clean_faces(f: Array) -> Array:
     """Drop faces with a repeated vertex: they have no area and no interior."""
     keep = (f[:, 0] != f[:, 1]) & (f[:, 1] != f[:, 2]) & (f[:, 2] != f[:, 0])
     if not keep.any():
@@ -90,7 +89,7 @@ def _clean_faces(f: np.ndarray) -> np.ndarray:
     return f if keep.all() else f[keep]
 
 
-def tufted_cover(vertices, faces) -> tuple[np.ndarray, np.ndarray]:
+def tufted_cover(vertices: ArrayLike, faces: ArrayLike) -> tuple[Array, Array]:
     """Connectivity of the tufted cover of a triangle mesh.
 
     Parameters
@@ -125,7 +124,7 @@ def tufted_cover(vertices, faces) -> tuple[np.ndarray, np.ndarray]:
     return _tufted_cover(v, f)
 
 
-def _tufted_cover(v: np.ndarray, f: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def _tufted_cover(v: Array, f: Array) -> tuple[Array, Array]:
     n, m = v.shape[0], f.shape[0]
     triangles = np.concatenate([f, f[:, [0, 2, 1]]])
     p, q, w = face_edges(f)
@@ -176,7 +175,7 @@ def check_mollify_factor(mollify_factor: float) -> None:
         raise ValueError(f"mollify_factor must be finite and non-negative, got {mollify_factor!r}")
 
 
-def mollify_lengths(lengths, faces, *, mollify_factor: float = 1e-5) -> tuple[np.ndarray, float]:
+def mollify_lengths(lengths: ArrayLike, faces: ArrayLike, *, mollify_factor: float = 1e-5) -> tuple[Array, float]:
     """Add one small length to every edge so all triangles are strictly valid.
 
     The rule of Sharp and Crane (2020, section 4.5): with
@@ -213,13 +212,13 @@ def mollify_lengths(lengths, faces, *, mollify_factor: float = 1e-5) -> tuple[np
     return lengths + epsilon, epsilon
 
 
-def _half_cot(lens: np.ndarray, h: np.ndarray) -> np.ndarray:
+def _half_cot(lens: Array, h: Array) -> Array:
     """Half the cotangent of the angle opposite each halfedge ``h`` (0 in a zero-area triangle)."""
     tl = lens.reshape(-1, 3)[h // 3]
     return np.asarray(0.5 * cotangents_from_lengths(tl, heron_areas(tl))[np.arange(h.size), h % 3])
 
 
-def intrinsic_delaunay(triangles, twin, lengths, *, max_flips: int | None = None) -> IntrinsicTriangulation:
+def intrinsic_delaunay(triangles: ArrayLike, twin: ArrayLike, lengths: ArrayLike, *, max_flips: int | None = None) -> IntrinsicTriangulation:
     """Flip edges of an intrinsic triangulation until every cotangent weight is non-negative.
 
     An edge is flipped while its weight ``(cot a + cot b) / 2`` is below
@@ -272,7 +271,7 @@ def intrinsic_delaunay(triangles, twin, lengths, *, max_flips: int | None = None
     return IntrinsicTriangulation(tri, tw, lens, flips)
 
 
-def _flip_to_delaunay(tri: np.ndarray, tw: np.ndarray, lens: np.ndarray, max_flips: int) -> int:
+def _flip_to_delaunay(tri: Array, tw: Array, lens: Array, max_flips: int) -> int:
     """Flip in place (``lens`` is a flat view, one entry per halfedge); returns the number of flips."""
     n_he = tw.size
     owner = np.full(n_he // 3, _NONE, dtype=np.int64)
@@ -310,7 +309,7 @@ def _flip_to_delaunay(tri: np.ndarray, tw: np.ndarray, lens: np.ndarray, max_fli
 _NONE = np.iinfo(np.int64).max
 
 
-def _independent(cand: np.ndarray, g: np.ndarray, weight: np.ndarray, owner: np.ndarray) -> np.ndarray:
+def _independent(cand: Array, g: Array, weight: Array, owner: Array) -> Array:
     """Mask of edges to flip in one round: each triangle goes to its most negative edge.
 
     ``owner`` is scratch space, one entry per triangle, all ``_NONE`` on entry and on return.
@@ -326,7 +325,7 @@ def _independent(cand: np.ndarray, g: np.ndarray, weight: np.ndarray, owner: np.
     return np.asarray(sel)
 
 
-def _flipped_lengths(tw: np.ndarray, lens: np.ndarray, hh: np.ndarray) -> np.ndarray:
+def _flipped_lengths(tw: Array, lens: Array, hh: Array) -> Array:
     """Length of the edge each halfedge ``hh`` would become after a flip (not finite where it cannot).
 
     Planar layout of the two triangles: i at the origin, j at (l_ij, 0), the
@@ -345,8 +344,8 @@ def _flipped_lengths(tw: np.ndarray, lens: np.ndarray, hh: np.ndarray) -> np.nda
     return np.asarray(np.hypot(dx, dy))
 
 
-def _flip(tri: np.ndarray, tw: np.ndarray, lens: np.ndarray, hh: np.ndarray, d: np.ndarray,
-          remap: np.ndarray) -> np.ndarray:
+def _flip(tri: Array, tw: Array, lens: Array, hh: Array, d: Array,
+          remap: Array) -> Array:
     """Flip the edges of halfedges ``hh`` (pairwise disjoint triangles) to new length ``d``, in place.
 
     ``remap`` is scratch space, the identity over halfedges on entry and on
@@ -378,15 +377,15 @@ def _flip(tri: np.ndarray, tw: np.ndarray, lens: np.ndarray, hh: np.ndarray, d: 
     return np.concatenate([3 * A, 3 * A + 1, 3 * A + 2, 3 * B, 3 * B + 1, 3 * B + 2])
 
 
-def _unique_sorted(x: np.ndarray) -> np.ndarray:
+def _unique_sorted(x: Array) -> Array:
     x = np.sort(x)
     keep = np.ones(x.size, dtype=bool)
     keep[1:] = x[1:] != x[:-1]
-    return x[keep]
+    return np.asarray(x[keep])
 
 
-def robust_laplacian(vertices, faces, *, mollify_factor: float = 1e-5,
-                     mass: str = "barycentric") -> tuple[sp.csr_matrix, np.ndarray]:
+def robust_laplacian(vertices: ArrayLike, faces: ArrayLike, *, mollify_factor: float = 1e-5,
+                     mass: str = "barycentric") -> tuple[sp.csr_matrix, Array]:
     """Positive semidefinite Laplacian for any triangle mesh (Sharp and Crane 2020).
 
     Parameters
@@ -414,10 +413,13 @@ def robust_laplacian(vertices, faces, *, mollify_factor: float = 1e-5,
         Sums to the surface area (plus the small mollification increase).
         Vertices in no face get 0.
     """
-    return robust_operators(vertices, faces, mollify_factor=mollify_factor, mass=mass)[:2]
+    L, m, _, _ = robust_operators(vertices, faces, mollify_factor=mollify_factor, mass=mass)
+    return L, m
 
 
-def robust_operators(vertices, faces, *, mollify_factor: float, mass: str):
+def robust_operators(vertices: ArrayLike, faces: ArrayLike, *, mollify_factor: float,
+                     mass: str) -> tuple[sp.csr_matrix, Array, IntrinsicTriangulation, float]:
+    """:func:`robust_laplacian`, with the intrinsic triangulation reached and the mollification ``epsilon``."""
     v, f = validate_mesh(vertices, faces)
     check_mass_kind(mass)
     check_mollify_factor(mollify_factor)
