@@ -10,7 +10,7 @@ from numpy.typing import ArrayLike, NDArray
 Array = NDArray[Any]
 """Any NumPy array, for annotations (shapes and dtypes are given in the docstrings)."""
 
-__all__ = ['Array', 'ArrayLike', 'check_coefficients', 'check_eigenvectors_mass', 'check_mass', 'check_vertex_signal', 'float_matrix', 'numeric_array']
+__all__ = ['Array', 'ArrayLike', 'finite_float', 'check_coefficients', 'check_eigenvectors_mass', 'check_mass', 'check_vertex_signal', 'float_matrix', 'numeric_array']
 
 
 def numeric_array(a: ArrayLike, name: str, *, allow_bool: bool = False) -> Array:
@@ -26,9 +26,14 @@ def float_matrix(a: ArrayLike, name: str) -> Array:
     x = numeric_array(a, name)
     if x.ndim != 2 or x.shape[0] == 0 or x.shape[1] == 0:
         raise ValueError(f"{name} must have shape (n, k) with n, k >= 1, got {x.shape}")
-    x = np.ascontiguousarray(x, dtype=np.float64)
+    return finite_float(x, name, "entries")
+
+
+def finite_float(a: ArrayLike, name: str, what: str = "values") -> Array:
+    """``a`` as a contiguous float64 array; ValueError counting the non-finite ``what`` otherwise."""
+    x = np.ascontiguousarray(a, dtype=np.float64)
     if not np.isfinite(x).all():
-        raise ValueError(f"{name} has {int((~np.isfinite(x)).sum())} non-finite entries")
+        raise ValueError(f"{name} has {int((~np.isfinite(x)).sum())} non-finite {what}")
     return x
 
 
@@ -53,10 +58,7 @@ def check_vertex_signal(signal: ArrayLike, n: int) -> Array:
     f = numeric_array(signal, "signal", allow_bool=True)
     if f.ndim not in (1, 2) or f.shape[0] != n:
         raise ValueError(f"signal must have shape ({n},) or ({n}, c), got {f.shape}")
-    f = np.asarray(f, dtype=np.float64)
-    if not np.isfinite(f).all():
-        raise ValueError(f"signal has {int((~np.isfinite(f)).sum())} non-finite values")
-    return f
+    return finite_float(f, "signal")
 
 
 def check_coefficients(coeffs: ArrayLike, r: int) -> Array:
