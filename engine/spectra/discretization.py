@@ -123,7 +123,9 @@ def mesh_defects(vertices: ArrayLike, faces: ArrayLike) -> MeshDefects:
         ``sliver_triangles``: triangles with an angle below 1 degree, and the
         ``smallest_angle`` in degrees. ``negative_edges`` of
         ``interior_edges`` (edges in exactly two faces) have a negative
-        cotangent weight ``cot a + cot b``.
+        cotangent weight: ``(cot a + cot b) / 2`` below ``-1e-8``, the
+        tolerance of the robust Laplacian's flips (a right angle opposite a
+        right angle is not negative, whatever the rounding).
     """
     v, f = validate_mesh(vertices, faces)
     lengths = edge_lengths(v, f)
