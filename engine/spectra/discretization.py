@@ -17,23 +17,19 @@ holds:
    if each were alone and no longer discretises a surface Laplacian; the
    tufted cover does (Sharp and Crane 2020, section 4).
 2. **An angle below 1 degree.** Its cotangent exceeds 57, so one edge weight
-   dominates its row by orders of magnitude (8,500 on the glmark2 bunny,
-   smallest angle 0.007 degrees) and the weight of an edge depends on a
+   dominates its row by orders of magnitude and the weight of an edge depends on a
    detail far below the mesh resolution.
 3. **More than 10% of interior edges with a negative cotangent weight.** A
    negative weight breaks the maximum principle (Wardetzky, Mathur, Kaelberer
    and Grinspun, "Discrete Laplace operators: no free lunch", SGP 2007), so
    smoothing and interpolation can overshoot the input range; the intrinsic
-   Delaunay weights are all non-negative. Measured on the reference meshes
-   (first 20 eigenvalues, plain against robust): meshes above 10% (CGAL hand
-   16%, cow 16%, homer 12%, camel 12%, a jittered grid 17%) differ by
-   0.4-11%; clean meshes (icosphere 0%, the CGAL and pymeshlab bunnies
-   0.01-0.02%, elephant 0.2%) by under 3e-5; in between (noisy sphere 5%,
-   armadillo 9%) by 0.03-0.2%, where either operator serves.
+   Delaunay weights are all non-negative. On the reference meshes the low
+   eigenvalues of the two operators differ by percents above the 10% mark
+   and negligibly on clean meshes (figures in docs/measurements.md,
+   "Laplacian operators").
 
-The robust construction costs about the same as the plain one plus a second
-or so at 50k vertices, small beside an eigensolve, so the thresholds err
-towards it. On a mesh where it changes nothing (all triangles Delaunay and
+The robust construction costs little beside an eigensolve, so the
+thresholds err towards it. On a mesh where it changes nothing (all triangles Delaunay and
 well shaped) it equals the plain matrix up to mollification.
 """
 
