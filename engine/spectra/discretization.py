@@ -44,7 +44,7 @@ from ..common.arrays import Array, ArrayLike
 from .geometry import check_mass_kind, cotangents_from_lengths, edge_lengths, face_edges, heron_areas, lumped_mass
 from .laplacian import stiffness_from_cotangents
 from ..intake.preparation import group_edges, mesh_topology, validate_mesh
-from .robust import DELAUNAY_TOL, check_mollify_factor, robust_operators
+from .robust import check_mollify_factor, robust_operators
 
 __all__ = ["Operators", "mesh_operators", "MeshDefects", "mesh_defects"]
 
@@ -119,33 +119,51 @@ def mesh_defects(vertices: ArrayLike, faces: ArrayLike) -> MeshDefects:
         ``sliver_triangles``: triangles with an angle below 1 degree, and the
         ``smallest_angle`` in degrees. ``negative_edges`` of
         ``interior_edges`` (edges in exactly two faces) have a negative
-        cotangent weight: ``(cot a + cot b) / 2`` below ``-1e-8``, the
-        tolerance of the robust Laplacian's flips (a right angle opposite a
-        right angle is not negative, whatever the rounding).
+        cotangent weight ``cot a + cot b``.
     """
     v, f = validate_mesh(vertices, faces)
-    lengths = edge_lengths(v, f)
-    area = heron_areas(lengths)
-    return _defects(v.shape[0], f, cotangents_from_lengths(lengths, area), area)
+    return _defects(v, f)
 
 
-def _defects(n: int, f: Array, cot: Array, area: Array) -> MeshDefects:
+def _defects(v: Array, f: Array) -> MeshDefects:
+    n = v.shape[0]
     _, nonmanifold_edges, nonmanifold_vertices = mesh_topology(f, n)
+    cot, degenerate = _corner_angle_cotangents(v, f)
     # Interior (two-face) edges and their cotangent weights; face-edge 3t + c
     # lies opposite corner c, from corner c+1 to corner c+2.
-    # A weight within rounding of zero (a right angle opposite a right angle)
-    # is not negative: the same tolerance as the robust flips.
     p, q, _ = face_edges(f)
     groups = group_edges(p, q, n)
     pairs = groups.starts[groups.counts == 2]
     x, y = groups.order[pairs], groups.order[pairs + 1]
-    negative = int((0.5 * (cot.ravel()[x] + cot.ravel()[y]) < -DELAUNAY_TOL).sum())
+    negative = int((cot.ravel()[x] + cot.ravel()[y] < 0).sum())
 
     angles = np.degrees(np.arctan2(1.0, cot))  # in (0, 180); 90 where the triangle is degenerate
-    angles[area == 0] = 0.0
+    angles[degenerate] = 0.0
     smallest = angles.min(axis=1)
     return MeshDefects(nonmanifold_edges, nonmanifold_vertices, int((smallest < _SLIVER_DEGREES).sum()),
                        float(smallest.min()), negative, int(x.size))
+
+
+def _corner_angle_cotangents(v: Array, f: Array) -> tuple[Array, Array]:
+    """Corner cotangents from edge vectors (``dot / |cross|``), for the defect counts only, and the
+    triangles whose cross product is zero.
+
+    The operators take their cotangents from edge lengths (:mod:`geometry`).
+    The counts keep this form because their verdict on weights that are zero
+    in exact arithmetic (the opposite angles of a cocircular quad, such as the
+    isosceles trapezoids of a surface of revolution) is decided by rounding,
+    and it decides which operator a mesh gets: another formula would give some
+    existing meshes the other operator.
+    """
+    cot = np.empty(f.shape, dtype=np.float64)
+    for c in range(3):
+        a = v[f[:, (c + 1) % 3]] - v[f[:, c]]
+        b = v[f[:, (c + 2) % 3]] - v[f[:, c]]
+        dot = np.einsum("ij,ij->i", a, b)
+        cross = np.linalg.norm(np.cross(a, b), axis=1)
+        cot[:, c] = np.where(cross > 0, dot / np.where(cross > 0, cross, 1.0), 0.0)
+    e1, e2 = v[f[:, 1]] - v[f[:, 0]], v[f[:, 2]] - v[f[:, 0]]
+    return cot, np.linalg.norm(np.cross(e1, e2), axis=1) == 0
 
 
 def mesh_operators(vertices: ArrayLike, faces: ArrayLike, *, robust: bool | str = "auto", mass: str = "barycentric",
@@ -181,14 +199,13 @@ def mesh_operators(vertices: ArrayLike, faces: ArrayLike, *, robust: bool | str 
     check_mass_kind(mass)
     check_mollify_factor(mollify_factor)
     v, f = validate_mesh(vertices, faces)
-    lengths = edge_lengths(v, f)
-    area = heron_areas(lengths)
-    cot = cotangents_from_lengths(lengths, area)
-    found = "; ".join(_defects(v.shape[0], f, cot, area).reasons())
+    found = "; ".join(_defects(v, f).reasons())
     use = bool(found) if robust == "auto" else bool(robust)
     if use:
         L, M = robust_operators(v, f, mollify_factor=mollify_factor, mass=mass)[:2]
         return Operators(L, M, True, found or "requested")
-    L = stiffness_from_cotangents(v.shape[0], f, cot)
+    lengths = edge_lengths(v, f)
+    area = heron_areas(lengths)
+    L = stiffness_from_cotangents(v.shape[0], f, cotangents_from_lengths(lengths, area))
     M = lumped_mass(lengths, f, v.shape[0], mass, area)
     return Operators(L, M, False, f"plain requested despite {found}" if found else "")

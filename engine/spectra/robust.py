@@ -51,11 +51,11 @@ from ..intake.preparation import group_edges, validate_mesh
 
 __all__ = ["robust_laplacian", "tufted_cover", "mollify_lengths", "intrinsic_delaunay", "IntrinsicTriangulation"]
 
-# Flip an edge while its cotangent weight (cot a + cot b) / 2 is below -DELAUNAY_TOL.
+# Flip an edge while its cotangent weight (cot a + cot b) / 2 is below -_DELAUNAY_TOL.
 # Cotangents are scale-free; 1e-8 sits far above the rounding error of the
 # weights (about 1e-16 times the largest cotangent, ~1e4 for 0.01-degree
 # slivers) so nearly cocircular quads never flip back and forth.
-DELAUNAY_TOL = 1e-8
+_DELAUNAY_TOL = 1e-8
 
 
 @dataclass(frozen=True)
@@ -281,7 +281,7 @@ def _flip_to_delaunay(tri: Array, tw: Array, lens: Array, max_flips: int) -> int
     while cand.size:
         g = tw[cand]
         weight = _half_cot(lens, cand) + _half_cot(lens, g)
-        bad = (weight < -DELAUNAY_TOL) & (cand // 3 != g // 3)
+        bad = (weight < -_DELAUNAY_TOL) & (cand // 3 != g // 3)
         if not bad.any():
             break
         cand, weight = cand[bad], weight[bad]
