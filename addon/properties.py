@@ -22,7 +22,8 @@ MATCH_MODES = [
     ("INTRINSIC", "Intrinsic",
      "Different pose or proportions: match the surfaces by their intrinsic shape"),
 ]
-# Label and description of each basis the engine offers (engine.carrying.transfer.BASES).
+# Label and description of each basis the engine offers (engine.carrying.transfer.BASES), in the
+# order the menu lists them.
 _BASIS_LABELS = {
     "pointwise": ("Point to Point",
                   "Interpolate values through the point correspondence, unfiltered (most accurate on our measurements)"),
@@ -31,7 +32,7 @@ _BASIS_LABELS = {
     "laplacian": ("Eigenfunctions", "Filter through Laplace-Beltrami eigenfunctions only: smooth signals"),
     "products": ("Raw Products", "Filter through raw eigenfunction products fitted by least squares"),
 }
-BASES = [(name.upper(), *_BASIS_LABELS[name]) for name in ENGINE_BASES]
+BASES = [(name.upper(), *_BASIS_LABELS[name]) for name in sorted(ENGINE_BASES, key=list(_BASIS_LABELS).index)]
 
 
 class OvertoneSignalItem(bpy.types.PropertyGroup):

@@ -23,10 +23,10 @@ from ..common.arrays import ArrayLike, Array, check_coefficients, check_eigenvec
 __all__ = ["SPECTRAL_BASES", "check_basis_name", "Approximation", "Basis", "LaplacianBasis", "approximate",
            "relative_error"]
 
-# The names of the spectral bases, in the order the add-on lists them:
-# orthogonalised eigenfunction products, Laplacian eigenfunctions, raw products
-# fitted by least squares. ``engine.carrying.transfer.BASES`` adds "pointwise".
-SPECTRAL_BASES = ("orthoproducts", "laplacian", "products")
+# The names of the spectral bases: Laplacian eigenfunctions, orthogonalised
+# eigenfunction products, raw products fitted by least squares.
+# ``engine.carrying.transfer.BASES`` adds "pointwise".
+SPECTRAL_BASES = ("laplacian", "orthoproducts", "products")
 
 
 def check_basis_name(name: str, names: tuple[str, ...] = SPECTRAL_BASES) -> str:
