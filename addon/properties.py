@@ -11,6 +11,8 @@ import bpy
 from bpy.props import (BoolProperty, CollectionProperty, EnumProperty, FloatProperty,
                        IntProperty, PointerProperty, StringProperty)
 
+from .engine.carrying.transfer import BASES as ENGINE_BASES
+
 __all__ = ["OvertoneSignalItem", "OvertoneSignalReport", "OvertoneSettings", "MATCH_MODES", "BASES", "settings_of",
            "register", "unregister"]
 
@@ -38,6 +40,8 @@ BASES = [
      "Like Smoothed, Keep Detail, without balancing the combined patterns against each other: "
      "can ripple next to sharp edges"),
 ]
+if {item[0].lower() for item in BASES} != set(ENGINE_BASES):  # the engine's list is the one list
+    raise ImportError("the basis menu does not list engine.carrying.transfer.BASES")
 
 
 class OvertoneSignalItem(bpy.types.PropertyGroup):

@@ -21,7 +21,7 @@ from engine.spectra.shape import Shape  # noqa: E402
 from engine.carrying.transfer import Transfer  # noqa: E402
 from tests import pairs  # noqa: E402
 from tests.pairs import Pair, _along_y, _read, _shuffle, bend, landmarks_by_rest, rigid, twist  # noqa: E402
-from benchmarks.transfer_accuracy import map_error  # noqa: E402
+from tests.metrics import colour_rmse, map_error, mask_error  # noqa: E402
 
 
 def elephant_bent(b, t, angle, seed):
@@ -72,8 +72,8 @@ def measure(p, S, T, c):
     tr = Transfer(S, T, c, basis="pointwise")
     r = tr.transfer(pairs.colour(p.source_rest, sc)).values
     m = tr.transfer(pairs.mask(p.source_rest, sc), kind="mask").values
-    return (float(np.sqrt(((r - pairs.colour(p.target_rest, sc)) ** 2).mean())),
-            float((m != pairs.mask(p.target_rest, sc)).mean()), map_error(p, c))
+    return (colour_rmse(r, pairs.colour(p.target_rest, sc)), mask_error(m, pairs.mask(p.target_rest, sc)),
+            map_error(p, c))
 
 
 def main():

@@ -1,8 +1,7 @@
 """Accuracy of correspondence + transfer on the ground-truth pairs (tests/pairs.py).
 
 Prints, pair by pair and method by method, colour RMSE against the true
-colours, mask error (fraction of target vertices wrong) and map error (mean
-distance of the mapped point from the true one, over sqrt(source area)).
+colours, mask error and map error, as defined in tests/metrics.py.
 The closest-point baseline is measured in the same run; basis methods use one
 size (r columns) for the comparison: laplacian k = rank of the orthoproducts.
 
@@ -16,19 +15,12 @@ closest-point baselines never use either.
 import sys
 from pathlib import Path
 
-import numpy as np
-
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 from engine.matching.correspondence import correspond  # noqa: E402
 from engine.spectra.shape import Shape  # noqa: E402
 from engine.carrying.transfer import Transfer  # noqa: E402
 from tests import pairs  # noqa: E402
-
-
-def map_error(p, c):
-    pts = np.einsum("ij,ijk->ik", c.barycentric, p.source_rest[c.source.prepared.from_clean][c.source.faces[c.triangle]])
-    return float(np.mean(np.linalg.norm(pts - p.target_rest[c.target.prepared.from_clean], axis=1))
-                 / np.sqrt(c.source.area))
+from tests.metrics import colour_rmse, map_error, mask_error  # noqa: E402
 
 
 def main():
@@ -74,8 +66,8 @@ def main():
             tr = Transfer(S, T, corr, basis=b, k=rank)
             r = tr.transfer(src)
             m = tr.transfer(msrc, kind="mask").values
-            print(f"{p.name:22s} {label:16s} {corr.mode:10s} {np.sqrt(((r.values - tru) ** 2).mean()):11.4f} "
-                  f"{(m != mtru).mean():9.4f} {map_error(p, corr):8.4f} {r.source_error:8.4f}")
+            print(f"{p.name:22s} {label:16s} {corr.mode:10s} {colour_rmse(r.values, tru):11.4f} "
+                  f"{mask_error(m, mtru):9.4f} {map_error(p, corr):8.4f} {r.source_error:8.4f}")
 
 
 if __name__ == "__main__":

@@ -372,7 +372,10 @@ def test_interior_shift_inertia_matches_dense(noisy4):
     assert 0 < below < 30
     assert below == int((lam < sigma).sum()) - 1  # minus the zero eigenvalue
     assert int((E.eigenvalues[1:] < sigma).sum()) == below
-    np.testing.assert_allclose(E.eigenvalues, lam[:30], rtol=1e-8, atol=1e-12)
+    # The dense reference is backward stable: absolute errors of a modest multiple of
+    # eps * ||L|| (Golub and Van Loan, section 8.1, from memory), which is what its
+    # zero eigenvalue shows (5e-13 to 3e-12 here, with lambda_max about 1.2e3).
+    np.testing.assert_allclose(E.eigenvalues, lam[:30], rtol=1e-8, atol=64 * np.finfo(float).eps * lam.max())
 
 
 def test_interior_shift_falls_back(noisy4, monkeypatch):

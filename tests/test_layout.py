@@ -16,8 +16,6 @@ MAX_LINES, MAX_PARAMETERS = 80, 8
 # The goal is an empty list.
 KNOWN_LONG: set[str] = {
     "engine/matching/correspondence.py:correspond",
-    "engine/spectra/robust.py:_flip_to_delaunay",
-    "engine/intake/preparation.py:prepare_mesh",
     "engine/matching/correspondence.py:_align_refine",
     "engine/carrying/corners.py:carry_corners",
     "engine/matching/correspondence.py:_refine_aligned",

@@ -3,6 +3,7 @@
 import numpy as np
 import pytest
 
+import engine.intake.triangulation as triangulation_module
 from engine.intake.triangulation import triangulate
 from engine.intake.preparation import prepare_mesh, validate_mesh
 from tests import meshes
@@ -48,12 +49,22 @@ def check_polygon(xy, tris):
 
 # ---------------------------------------------------------------- triangulation
 
+@pytest.fixture(params=["library", "own"])
+def ear_cutter(request, monkeypatch):
+    """Run a test with the ear-cutting library (skipped when not installed) and with the own ear clipping."""
+    if request.param == "own":
+        monkeypatch.setattr(triangulation_module, "_earcut", None)
+    elif triangulation_module._earcut is None:
+        pytest.skip("mapbox_earcut is not installed")
+    return request.param
+
+
 # L-shaped hexagon, area 3 (shoelace), listed from the corner (1, 2) so that a
 # fan from the first corner leaves the polygon; the reflex corner is (1, 1).
 L_SHAPE = [(1, 2), (0, 2), (0, 0), (2, 0), (2, 1), (1, 1)]
 
 
-def test_l_shaped_hexagon_by_hand():
+def test_l_shaped_hexagon_by_hand(ear_cutter):
     assert shoelace(L_SHAPE) == 3.0
     v = flat(L_SHAPE)
     fan = np.array([[0, i, i + 1] for i in range(1, 5)])
@@ -63,7 +74,7 @@ def test_l_shaped_hexagon_by_hand():
     assert owner.tolist() == [0] * 4
 
 
-def test_l_shape_tilted_in_space_keeps_area_and_winding():
+def test_l_shape_tilted_in_space_keeps_area_and_winding(ear_cutter):
     rng = np.random.default_rng(3)
     q, _ = np.linalg.qr(rng.standard_normal((3, 3)))
     q *= np.sign(np.linalg.det(q))  # a rotation
@@ -75,7 +86,7 @@ def test_l_shape_tilted_in_space_keeps_area_and_winding():
     assert 0.5 * np.linalg.norm(normals, axis=1).sum() == pytest.approx(3.0, rel=1e-12)
 
 
-def test_reversed_winding_gives_reversed_triangles():
+def test_reversed_winding_gives_reversed_triangles(ear_cutter):
     v = flat(L_SHAPE[::-1])
     tris, _ = triangulate(v, np.arange(6), np.array([6]))
     a = signed_areas_2d(v, tris)
@@ -119,7 +130,7 @@ def test_quad_with_a_straight_corner_avoids_the_flat_triangle():
     assert (signed_areas_2d(v, tris) > 0).all()
 
 
-def test_pentagon_with_collinear_corner_keeps_it():
+def test_pentagon_with_collinear_corner_keeps_it(ear_cutter):
     square = [(0, 0), (1, 0), (2, 0), (2, 2), (0, 2)]  # (1, 0) on the bottom edge
     tris, _ = triangulate(flat(square), np.arange(5), np.array([5]))
     check_polygon(np.array(square, float), tris)
@@ -127,7 +138,7 @@ def test_pentagon_with_collinear_corner_keeps_it():
 
 
 @pytest.mark.parametrize("start", [0, 3, 7])
-def test_star_and_regular_polygons(start):
+def test_star_and_regular_polygons(start, ear_cutter):
     k = np.arange(20)
     r = np.where(k % 2 == 0, 1.0, 0.4)  # ten-pointed star: every other corner reflex
     star = np.roll(np.column_stack([r * np.cos(k * np.pi / 10), r * np.sin(k * np.pi / 10)]), -start, axis=0)
@@ -141,7 +152,21 @@ def test_star_and_regular_polygons(start):
     assert signed_areas_2d(flat(ring), tris).sum() == pytest.approx(32 * np.sin(2 * np.pi / 64), rel=1e-12)
 
 
-def test_collinear_polygon_does_not_crash():
+def test_many_concave_hexagons_in_one_call(ear_cutter):
+    # 500 copies of the L shape, each shifted and listed from a different corner.
+    rng = np.random.default_rng(1)
+    n = 500
+    shift = rng.uniform(0, 50, (n, 2))
+    start = rng.integers(0, 6, n)
+    rings = [np.roll(np.array(L_SHAPE, float), -s, axis=0) + d for s, d in zip(start, shift)]
+    tris, owner = triangulate(flat(np.concatenate(rings)), np.arange(6 * n), np.full(n, 6))
+    assert owner.tolist() == np.repeat(np.arange(n), 4).tolist()
+    for p in range(0, n, 50):
+        check_polygon(rings[p], tris[owner == p] - 6 * p)
+    assert signed_areas_2d(flat(np.concatenate(rings)), tris).sum() == pytest.approx(3.0 * n, rel=1e-12)
+
+
+def test_collinear_polygon_does_not_crash(ear_cutter):
     v = flat([(0, 0), (1, 0), (2, 0), (3, 0), (4, 0)])
     tris, owner = triangulate(v, np.arange(5), np.array([5]))
     assert tris.shape == (3, 3) and owner.tolist() == [0, 0, 0]
@@ -154,7 +179,7 @@ def test_collinear_polygon_does_not_crash():
     assert tris.shape == (4, 3)
 
 
-def test_mixed_sizes_are_ordered_by_polygon():
+def test_mixed_sizes_are_ordered_by_polygon(ear_cutter):
     v = flat([(0, 0), (1, 0), (1, 1), (0, 1), (2, 0), (3, 0), (3, 1), (2.5, 2), (2, 1)])
     corners = np.array([4, 5, 6, 7, 8, 0, 1, 2, 0, 1, 2, 3])
     tris, owner = triangulate(v, corners, np.array([5, 3, 4]))

@@ -16,13 +16,12 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
-from ..spectra.approximation import LaplacianBasis, relative_error
+from ..spectra.approximation import SPECTRAL_BASES, LaplacianBasis, check_basis_name, relative_error
 from ..spectra.products import least_squares_products, product_budget
-from .signals import BLENDED, Signal, signal_to_property, signals_from_properties
+from .signals import BLENDED, Signal, clamp, signal_to_property, signals_from_properties
 
-__all__ = ["BASIS_NAMES", "Preview", "basis_for", "approximate_properties", "approximate_signals"]
+__all__ = ["Preview", "basis_for", "approximate_properties", "approximate_signals"]
 
-BASIS_NAMES = ("laplacian", "products", "orthoproducts")
 DEFAULT_LAPLACIAN_SIZE = 100
 DEFAULT_PRODUCT_EIGENFUNCTIONS = 20
 
@@ -58,7 +57,8 @@ def basis_for(shape: Any, name: str, *, k: int | None = None, order: int = 3) ->
     Parameters
     ----------
     shape : Shape
-    name : {"laplacian", "products", "orthoproducts"}
+    name : str
+        One of :data:`engine.spectra.approximation.SPECTRAL_BASES`.
     k : int, optional
         Eigenfunctions: the basis size for ``"laplacian"`` (default 100), the
         eigenfunctions multiplied for the product bases (default 20, capped
@@ -66,8 +66,7 @@ def basis_for(shape: Any, name: str, *, k: int | None = None, order: int = 3) ->
     order : int
         Product order, 1 to 5.
     """
-    if name not in BASIS_NAMES:
-        raise ValueError(f"unknown basis {name!r}; expected one of {', '.join(BASIS_NAMES)}")
+    check_basis_name(name, SPECTRAL_BASES)
     n = shape.n_vertices
     if name == "laplacian":
         size = min(k or DEFAULT_LAPLACIAN_SIZE, n - 1)
@@ -103,9 +102,7 @@ def approximate_signals(shape: Any, signals: dict[str, Signal], *, basis: str = 
         else:
             f = shape.to_cleaned(sig.values)
             recon = b.reconstruct(b.project(f))
-            bounds = sig.bounds
-            assert bounds is not None  # blended kinds have bounds
-            recon = np.clip(recon, bounds[0], bounds[1])
+            recon = clamp(recon, sig.kind, sig.values)
             errors[name] = float(relative_error(recon, f, mass))
             values[name] = shape.restore(recon)
         props[name] = signal_to_property(sig, values[name])

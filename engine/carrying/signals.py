@@ -26,7 +26,8 @@ from numpy.typing import ArrayLike, NDArray
 
 from .color import decode_bytes, encode_bytes
 
-__all__ = ["KINDS", "Signal", "signals_from_properties", "signal_to_property", "check_signal"]
+__all__ = ["KINDS", "Signal", "signals_from_properties", "signal_to_property", "check_signal", "clamp_range",
+           "clamp"]
 
 KINDS = ("color", "weight", "float", "vector", "label", "mask")
 BLENDED = ("color", "weight", "float", "vector")
@@ -64,12 +65,28 @@ class Signal:
     @property
     def bounds(self) -> tuple[NDArray[Any], NDArray[Any]] | None:
         """Range a reconstruction is clamped to, per channel; None for labels/masks."""
-        if self.kind in ("color", "weight"):
-            shape = self.values.shape[1:]
-            return np.zeros(shape), np.ones(shape)
-        if self.kind in ("float", "vector"):
-            return self.values.min(axis=0), self.values.max(axis=0)
-        return None
+        return clamp_range(self.kind, self.values)
+
+
+def clamp_range(kind: str, reference: NDArray[Any]) -> tuple[NDArray[Any], NDArray[Any]] | None:
+    """Per-channel range a blended signal of ``kind`` is clamped to; None for labels and masks.
+
+    Colours and weights: [0, 1]. Floats and vectors: the per-channel range of
+    ``reference`` (the source's own values, (n,) or (n, c)), so filtering
+    never invents new extremes.
+    """
+    if kind in ("color", "weight"):
+        shape = reference.shape[1:]
+        return np.zeros(shape), np.ones(shape)
+    if kind in ("float", "vector"):
+        return reference.min(axis=0), reference.max(axis=0)
+    return None
+
+
+def clamp(values: NDArray[Any], kind: str, reference: NDArray[Any]) -> NDArray[Any]:
+    """``values`` clipped to :func:`clamp_range` of ``kind`` and ``reference``; unchanged for labels and masks."""
+    bounds = clamp_range(kind, reference)
+    return values if bounds is None else np.clip(values, bounds[0], bounds[1])
 
 
 def check_signal(name: str, values: ArrayLike, n: int, kind: str) -> NDArray[Any]:

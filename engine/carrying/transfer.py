@@ -20,9 +20,10 @@ benchmarks/transfer_accuracy.py the basis routes tie with it (smooth
 patterns, colour RMSE within 1e-4) or lose to it (real meshes: the basis's
 own source error of 1.5-2.5% adds to the map's), so none earns its cost yet.
 
-Colours are linear and, like weights, clamped to [0, 1]; floats and vectors
-are clamped to the source's own per-channel range; labels and masks are never
-blended (the weighted majority of the source triangle's corners).
+Blended values are clamped by :func:`engine.carrying.signals.clamp` (colours,
+linear, and weights to [0, 1]; floats and vectors to the source's own
+per-channel range); labels and masks are never blended (the weighted majority
+of the source triangle's corners).
 """
 
 from __future__ import annotations
@@ -34,14 +35,15 @@ from typing import Any, cast
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
+from ..spectra.approximation import SPECTRAL_BASES, check_basis_name
 from ..spectra.products import product_exponents, raw_products
 from ..matching.correspondence import Correspondence
 from ..spectra.shape import Shape
-from .signals import KINDS, check_signal
+from .signals import KINDS, check_signal, clamp
 
-__all__ = ["Transfer", "TransferResult"]
+__all__ = ["BASES", "Transfer", "TransferResult"]
 
-BASES = ("pointwise", "laplacian", "orthoproducts", "products")
+BASES = ("pointwise",) + SPECTRAL_BASES
 
 
 @dataclass(frozen=True)
@@ -70,7 +72,8 @@ class Transfer:
     ----------
     source, target : Shape
     correspondence : Correspondence
-    basis : {"pointwise", "laplacian", "orthoproducts", "products"}
+    basis : str
+        One of :data:`BASES` (the module docstring describes them).
     k : int
         Size of the Laplacian basis.
     K, order : int
@@ -81,8 +84,7 @@ class Transfer:
 
     def __init__(self, source: Shape, target: Shape, correspondence: Correspondence, *,
                  basis: str = "pointwise", k: int = 100, K: int | None = None, order: int = 3) -> None:
-        if basis not in BASES:
-            raise ValueError(f"unknown basis {basis!r}; expected one of {', '.join(BASES)}")
+        check_basis_name(basis, BASES)
         if correspondence.source is not source or correspondence.target is not target:
             raise ValueError("the correspondence was built for another source/target pair")
         self.source, self.target, self.correspondence, self.basis = source, target, correspondence, basis
@@ -166,11 +168,7 @@ class Transfer:
         den_c = np.sqrt((self.source.mass[:, None] * flat ** 2).sum(axis=0))
         den = float(np.sqrt((den_c ** 2).sum()))
         err = float(np.sqrt(((errors * den_c) ** 2).sum())) / den if den > 0 else 0.0
-        if kind in ("color", "weight"):
-            out = np.clip(out, 0.0, 1.0)
-        else:
-            out = np.clip(out, flat.min(axis=0), flat.max(axis=0))
-        out = out.reshape((len(out),) + f.shape[1:])
+        out = clamp(out, kind, flat).reshape((len(out),) + f.shape[1:])
         if not np.isfinite(out).all():  # never write NaN
             raise ValueError(f"transfer of {name!r} produced non-finite values")
         return TransferResult(self.target.restore(out), err,

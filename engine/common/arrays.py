@@ -2,12 +2,18 @@
 
 from __future__ import annotations
 
+from typing import Any
+
 import numpy as np
+from numpy.typing import ArrayLike, NDArray
 
-__all__ = ['check_coefficients', 'check_eigenvectors_mass', 'check_mass', 'check_vertex_signal', 'float_matrix', 'numeric_array']
+Array = NDArray[Any]
+"""Any NumPy array, for annotations (shapes and dtypes are given in the docstrings)."""
+
+__all__ = ['Array', 'ArrayLike', 'finite_float', 'check_coefficients', 'check_eigenvectors_mass', 'check_mass', 'check_vertex_signal', 'float_matrix', 'numeric_array']
 
 
-def numeric_array(a, name: str, *, allow_bool: bool = False) -> np.ndarray:
+def numeric_array(a: ArrayLike, name: str, *, allow_bool: bool = False) -> Array:
     x = np.asarray(a)
     ok = np.issubdtype(x.dtype, np.floating) or np.issubdtype(x.dtype, np.integer) or (
         allow_bool and x.dtype == bool)
@@ -16,19 +22,22 @@ def numeric_array(a, name: str, *, allow_bool: bool = False) -> np.ndarray:
     return x
 
 
-
-def float_matrix(a, name: str) -> np.ndarray:
+def float_matrix(a: ArrayLike, name: str) -> Array:
     x = numeric_array(a, name)
     if x.ndim != 2 or x.shape[0] == 0 or x.shape[1] == 0:
         raise ValueError(f"{name} must have shape (n, k) with n, k >= 1, got {x.shape}")
-    x = np.ascontiguousarray(x, dtype=np.float64)
+    return finite_float(x, name, "entries")
+
+
+def finite_float(a: ArrayLike, name: str, what: str = "values") -> Array:
+    """``a`` as a contiguous float64 array; ValueError counting the non-finite ``what`` otherwise."""
+    x = np.ascontiguousarray(a, dtype=np.float64)
     if not np.isfinite(x).all():
-        raise ValueError(f"{name} has {int((~np.isfinite(x)).sum())} non-finite entries")
+        raise ValueError(f"{name} has {int((~np.isfinite(x)).sum())} non-finite {what}")
     return x
 
 
-
-def check_mass(mass, n: int) -> np.ndarray:
+def check_mass(mass: ArrayLike, n: int) -> Array:
     m = numeric_array(mass, "mass")
     if m.shape != (n,):
         raise ValueError(f"mass must have shape ({n},) (one value per vertex), got {m.shape}")
@@ -40,25 +49,19 @@ def check_mass(mass, n: int) -> np.ndarray:
     return m
 
 
-
-def check_eigenvectors_mass(eigenvectors, mass) -> tuple[np.ndarray, np.ndarray]:
+def check_eigenvectors_mass(eigenvectors: ArrayLike, mass: ArrayLike) -> tuple[Array, Array]:
     phi = float_matrix(eigenvectors, "eigenvectors")
     return phi, check_mass(mass, phi.shape[0])
 
 
-
-def check_vertex_signal(signal, n: int) -> np.ndarray:
+def check_vertex_signal(signal: ArrayLike, n: int) -> Array:
     f = numeric_array(signal, "signal", allow_bool=True)
     if f.ndim not in (1, 2) or f.shape[0] != n:
         raise ValueError(f"signal must have shape ({n},) or ({n}, c), got {f.shape}")
-    f = np.asarray(f, dtype=np.float64)
-    if not np.isfinite(f).all():
-        raise ValueError(f"signal has {int((~np.isfinite(f)).sum())} non-finite values")
-    return f
+    return finite_float(f, "signal")
 
 
-
-def check_coefficients(coeffs, r: int) -> np.ndarray:
+def check_coefficients(coeffs: ArrayLike, r: int) -> Array:
     c = np.asarray(coeffs, dtype=np.float64)
     if c.ndim not in (1, 2) or c.shape[0] != r:
         raise ValueError(f"coefficients must have shape ({r},) or ({r}, c), got {c.shape}")

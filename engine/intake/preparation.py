@@ -17,9 +17,10 @@ import scipy.sparse as sp
 from scipy.sparse.csgraph import connected_components
 from scipy.spatial import cKDTree
 
+from ..common.arrays import Array, ArrayLike
 from .triangulation import triangulate
 
-__all__ = ["validate_mesh", "prepare_mesh", "PreparedMesh"]
+__all__ = ["validate_mesh", "prepare_mesh", "PreparedMesh", "mesh_topology", "EdgeGroups", "group_edges"]
 
 # Triangles with area <= _ZERO_AREA * (bounding-box diagonal)**2 are dropped.
 # The area comes from a cross product of edge vectors whose coordinates are at
@@ -32,7 +33,7 @@ __all__ = ["validate_mesh", "prepare_mesh", "PreparedMesh"]
 _ZERO_AREA = 1e-14
 
 
-def validate_mesh(vertices, faces) -> tuple[np.ndarray, np.ndarray]:
+def validate_mesh(vertices: ArrayLike, faces: ArrayLike) -> tuple[Array, Array]:
     """Check a triangle mesh and return it as contiguous float64 / int64 arrays.
 
     Parameters
@@ -72,7 +73,7 @@ def validate_mesh(vertices, faces) -> tuple[np.ndarray, np.ndarray]:
     return v, np.ascontiguousarray(f, dtype=np.int64)
 
 
-def validate_vertices(vertices) -> np.ndarray:
+def validate_vertices(vertices: ArrayLike) -> Array:
     """The vertex half of :func:`validate_mesh`: (n, 3) finite numbers, as float64."""
     v = np.asarray(vertices)
     if v.dtype == object or not (np.issubdtype(v.dtype, np.floating) or np.issubdtype(v.dtype, np.integer)):
@@ -90,7 +91,7 @@ def validate_vertices(vertices) -> np.ndarray:
     return v
 
 
-def validate_polygons(corners, sizes, n: int) -> tuple[np.ndarray, np.ndarray]:
+def validate_polygons(corners: ArrayLike, sizes: ArrayLike, n: int) -> tuple[Array, Array]:
     """Check polygons given as a flat corner list and per-polygon sizes.
 
     Parameters
@@ -174,21 +175,21 @@ class PreparedMesh:
         What the cleaning did, one short sentence each.
     """
 
-    vertices: np.ndarray
-    faces: np.ndarray
-    to_clean: np.ndarray
-    from_clean: np.ndarray
-    restore_index: np.ndarray
-    tri_polygon: np.ndarray
+    vertices: Array
+    faces: Array
+    to_clean: Array
+    from_clean: Array
+    restore_index: Array
+    tri_polygon: Array
     n_original: int
     n_components: int
-    component: np.ndarray
+    component: Array
     n_boundary_loops: int
     non_manifold_edges: int
     non_manifold_vertices: int
     notes: tuple[str, ...]
 
-    def restore(self, values) -> np.ndarray:
+    def restore(self, values: ArrayLike) -> Array:
         """Per-vertex values on the cleaned mesh, handed back to every original vertex.
 
         Parameters
@@ -209,7 +210,7 @@ class PreparedMesh:
                              f"got shape {a.shape}")
         return a[self.restore_index]
 
-    def to_cleaned(self, values) -> np.ndarray:
+    def to_cleaned(self, values: ArrayLike) -> Array:
         """Per-vertex values on the original mesh, taken to the cleaned vertices.
 
         Parameters
@@ -231,7 +232,8 @@ class PreparedMesh:
         return a[self.from_clean]
 
 
-def prepare_mesh(vertices, faces=None, *, corners=None, sizes=None, weld: bool = True) -> PreparedMesh:
+def prepare_mesh(vertices: ArrayLike, faces: ArrayLike | None = None, *, corners: ArrayLike | None = None,
+                 sizes: ArrayLike | None = None, weld: bool = True) -> PreparedMesh:
     """Validate, triangulate and clean a mesh, keeping the map back to it.
 
     Parameters
@@ -283,41 +285,8 @@ def prepare_mesh(vertices, faces=None, *, corners=None, sizes=None, weld: bool =
     n = len(v)
     notes: list[str] = []
 
-    # Weld exact duplicates onto the lowest original index of each group.
-    rep = np.arange(n, dtype=np.int64)
-    if weld and n > 1:
-        order = np.lexsort((v[:, 2], v[:, 1], v[:, 0]))
-        sv = v[order]
-        new_group = np.ones(n, dtype=bool)
-        new_group[1:] = (sv[1:] != sv[:-1]).any(axis=1)
-        group = np.cumsum(new_group) - 1
-        lowest = order[new_group]  # lexsort is stable: each group starts with its lowest index
-        rep[order] = lowest[group]
-        n_welded = int(n - len(lowest))
-        if n_welded:
-            notes.append(f"welded {n_welded} duplicate vertices")
-        tris = rep[tris]
-
-    # Drop zero-area triangles (including those welding collapsed).
-    used = np.flatnonzero(np.bincount(tris.reshape(-1), minlength=n))
-    span = v[used].max(axis=0) - v[used].min(axis=0)
-    diag2 = float(span @ span)
-    p0, p1, p2 = v[tris[:, 0]], v[tris[:, 1]], v[tris[:, 2]]
-    area = 0.5 * np.linalg.norm(np.cross(p1 - p0, p2 - p0), axis=1)
-    keep = area > _ZERO_AREA * diag2
-    keep &= (tris[:, 0] != tris[:, 1]) & (tris[:, 1] != tris[:, 2]) & (tris[:, 2] != tris[:, 0])
-    if not keep.any():
-        raise ValueError("mesh has no faces with non-zero area")
-    if not keep.all():
-        notes.append(f"dropped {int((~keep).sum())} zero-area faces")
-    tris, tri_polygon = tris[keep], tri_polygon[keep]
-
-    # Drop repeated triangles, keeping the first of each vertex set.
-    first = _first_of_rows(np.sort(tris, axis=1))
-    if len(first) < len(tris):
-        notes.append(f"dropped {len(tris) - len(first)} duplicate faces")
-        first.sort()
-        tris, tri_polygon = tris[first], tri_polygon[first]
+    rep = _weld(v, notes) if weld else np.arange(n, dtype=np.int64)
+    tris, tri_polygon = _drop_degenerate(v, rep[tris], tri_polygon, notes)
 
     # Compact: only referenced vertices, in original order.
     from_clean = np.flatnonzero(np.bincount(tris.reshape(-1), minlength=n))
@@ -351,7 +320,49 @@ def prepare_mesh(vertices, faces=None, *, corners=None, sizes=None, weld: bool =
         notes=tuple(notes))
 
 
-def mesh_topology(faces: np.ndarray, nv: int) -> tuple[int, int, int]:
+def _weld(v: Array, notes: list[str]) -> Array:
+    """Representative of each vertex: the lowest original index with exactly the same position."""
+    n = len(v)
+    rep = np.arange(n, dtype=np.int64)
+    if n < 2:
+        return rep
+    order = np.lexsort((v[:, 2], v[:, 1], v[:, 0]))
+    sv = v[order]
+    new_group = np.ones(n, dtype=bool)
+    new_group[1:] = (sv[1:] != sv[:-1]).any(axis=1)
+    group = np.cumsum(new_group) - 1
+    lowest = order[new_group]  # lexsort is stable: each group starts with its lowest index
+    rep[order] = lowest[group]
+    n_welded = int(n - len(lowest))
+    if n_welded:
+        notes.append(f"welded {n_welded} duplicate vertices")
+    return rep
+
+
+def _drop_degenerate(v: Array, tris: Array, tri_polygon: Array,
+                     notes: list[str]) -> tuple[Array, Array]:
+    """Drop zero-area triangles (including those welding collapsed), then repeated ones (first kept)."""
+    used = np.flatnonzero(np.bincount(tris.reshape(-1), minlength=len(v)))
+    span = v[used].max(axis=0) - v[used].min(axis=0)
+    diag2 = float(span @ span)
+    p0, p1, p2 = v[tris[:, 0]], v[tris[:, 1]], v[tris[:, 2]]
+    area = 0.5 * np.linalg.norm(np.cross(p1 - p0, p2 - p0), axis=1)
+    keep = area > _ZERO_AREA * diag2
+    keep &= (tris[:, 0] != tris[:, 1]) & (tris[:, 1] != tris[:, 2]) & (tris[:, 2] != tris[:, 0])
+    if not keep.any():
+        raise ValueError("mesh has no faces with non-zero area")
+    if not keep.all():
+        notes.append(f"dropped {int((~keep).sum())} zero-area faces")
+    tris, tri_polygon = tris[keep], tri_polygon[keep]
+    first = _first_of_rows(np.sort(tris, axis=1))
+    if len(first) < len(tris):
+        notes.append(f"dropped {len(tris) - len(first)} duplicate faces")
+        first.sort()
+        tris, tri_polygon = tris[first], tri_polygon[first]
+    return tris, tri_polygon
+
+
+def mesh_topology(faces: Array, nv: int) -> tuple[int, int, int]:
     """Boundary loops, non-manifold edges and non-manifold vertices of a triangle mesh.
 
     Half-edge ``t*3 + k`` runs from corner ``k`` to corner ``k + 1`` of triangle
@@ -370,11 +381,8 @@ def mesh_topology(faces: np.ndarray, nv: int) -> tuple[int, int, int]:
     m = len(faces)
     tail = faces.reshape(-1)
     head = faces[:, [1, 2, 0]].reshape(-1)
-    key = np.minimum(tail, head) * nv + np.maximum(tail, head)
-    order = np.argsort(key, kind="stable")
-    sk = key[order]
-    starts = np.flatnonzero(np.r_[True, sk[1:] != sk[:-1]])
-    counts = np.diff(np.r_[starts, len(sk)])
+    groups = group_edges(tail, head, nv)
+    order, starts, counts = groups.order, groups.starts, groups.counts
     nm_edges = int((counts > 2).sum())
 
     # Boundary loops.
@@ -403,7 +411,7 @@ def mesh_topology(faces: np.ndarray, nv: int) -> tuple[int, int, int]:
     # half-edges of the same undirected edge join the corners at a and at b.
     corner_at = np.arange(m * 3)  # half-edge h starts at corner h
     corner_head = (np.arange(m)[:, None] * 3 + np.array([1, 2, 0])).reshape(-1)
-    group = np.repeat(np.arange(len(starts)), counts)
+    group = groups.group_of()
     later = np.r_[False, group[1:] == group[:-1]]  # sorted position shares its edge with the one before
     h1, h0 = order[later], order[np.r_[later[1:], False]]
     # Join the corners at each end vertex of the shared edge.
@@ -419,7 +427,7 @@ def mesh_topology(faces: np.ndarray, nv: int) -> tuple[int, int, int]:
     return loops, nm_edges, nm_vertices
 
 
-def _first_of_rows(rows: np.ndarray) -> np.ndarray:
+def _first_of_rows(rows: Array) -> Array:
     """Indices of the first occurrence of each distinct row, ascending.
 
     A lexicographic sort of the integer columns; much faster than
@@ -430,3 +438,44 @@ def _first_of_rows(rows: np.ndarray) -> np.ndarray:
     new = np.ones(len(rows), dtype=bool)
     new[1:] = (sr[1:] != sr[:-1]).any(axis=1)
     return np.sort(order[new])  # lexsort is stable: each run starts with its lowest index
+
+
+@dataclass(frozen=True)
+class EdgeGroups:
+    """Face-edges grouped by the undirected edge they lie on.
+
+    Attributes
+    ----------
+    order : (3 m,) int64 array
+        Face-edge indices sorted by undirected edge (then by the secondary key
+        given to :func:`group_edges`, else stably by index).
+    starts : (g,) int64 array
+        Position in ``order`` where each edge's group begins.
+    counts : (g,) int64 array
+        Number of face-edges on each edge (1 on a boundary, 2 inside a
+        manifold, more on a non-manifold edge).
+    """
+
+    order: Array
+    starts: Array
+    counts: Array
+
+    def group_of(self) -> Array:
+        """(3 m,) group number of each sorted position."""
+        return np.repeat(np.arange(self.starts.size), self.counts)
+
+
+def group_edges(p: Array, q: Array, n: int, secondary: Array | None = None) -> EdgeGroups:
+    """Group directed edges ``p[i] -> q[i]`` over ``n`` vertices by the undirected edge {p, q}.
+
+    The edge key is ``min(p, q) * n + max(p, q)``; within a group the edges
+    are ordered by ``secondary`` when given, else by index.
+    """
+    key = np.minimum(p, q).astype(np.int64) * np.int64(n) + np.maximum(p, q)
+    order = np.argsort(key, kind="stable") if secondary is None else np.lexsort((secondary, key))
+    ks = key[order]
+    start = np.ones(ks.size, dtype=bool)
+    start[1:] = ks[1:] != ks[:-1]
+    starts = np.flatnonzero(start)
+    counts = np.diff(np.append(starts, ks.size))
+    return EdgeGroups(order.astype(np.int64), starts.astype(np.int64), counts.astype(np.int64))

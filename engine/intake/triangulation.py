@@ -1,12 +1,15 @@
-"""Polygons to triangles: quads all at once, larger polygons by ear clipping.
+"""Polygons to triangles: quads all at once, larger polygons by ear cutting.
 
 Polygons arrive the way mesh files and Blender store them: one flat list of
 corner vertex indices ``corners`` and the number of corners of each polygon
 ``sizes``. Triangles pass through unchanged. Quads are split along the diagonal
 that keeps both halves inside the quad (the shorter one when both do), all
-quads in one vectorised step. Polygons with more than four corners are rare and
-are ear-clipped one at a time in their best-fit plane, which is correct for
-concave polygons where a fan is not.
+quads in one vectorised step. Polygons with more than four corners are
+projected (all at once) onto their best-fit planes and ear-cut one at a time,
+which is correct for concave polygons where a fan is not: by the maintained
+``mapbox_earcut`` library when it is importable, by the ear clipping below
+when it is not or when it returns fewer than ``k - 2`` triangles (it drops
+collinear and repeated corners, which the mesh must keep).
 
 Every triangle keeps the winding of its polygon, so a consistently oriented
 polygon mesh gives a consistently oriented triangle mesh.
@@ -21,9 +24,27 @@ simple polygon with more than three corners has two non-overlapping ears.
 
 from __future__ import annotations
 
+from collections.abc import Callable
+
 import numpy as np
 
+from ..common.arrays import Array, ArrayLike
+
 __all__: list[str] = []
+
+
+def _load_earcut() -> Callable[[Array, Array], Array] | None:
+    """The ear cutter of ``mapbox_earcut`` (a maintained C++ library, bundled with the extension as a
+    wheel), or None when it is not installed."""
+    try:
+        from mapbox_earcut import triangulate_float64
+    except ImportError:  # pragma: no cover - depends on the environment
+        return None
+    cut: Callable[[Array, Array], Array] = triangulate_float64
+    return cut
+
+
+_earcut = _load_earcut()
 
 # Below this fraction of the squared polygon extent a signed area counts as
 # zero: the rounding error of a cross product of coordinates of size ``s`` is a
@@ -32,7 +53,7 @@ __all__: list[str] = []
 _REL_EPS = 1e-14
 
 
-def triangulate(vertices: np.ndarray, corners: np.ndarray, sizes: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def triangulate(vertices: Array, corners: Array, sizes: Array) -> tuple[Array, Array]:
     """Split polygons into triangles that keep each polygon's winding.
 
     The caller has validated the input (``sizes >= 3``,
@@ -63,8 +84,8 @@ def triangulate(vertices: np.ndarray, corners: np.ndarray, sizes: np.ndarray) ->
     corners = np.asarray(corners, dtype=np.int64)
     sizes = np.asarray(sizes, dtype=np.int64)
     starts = np.cumsum(sizes) - sizes
-    tris: list[np.ndarray] = []
-    owners: list[np.ndarray] = []
+    tris: list[Array] = []
+    owners: list[Array] = []
 
     which = np.flatnonzero(sizes == 3)
     if which.size:
@@ -77,11 +98,11 @@ def triangulate(vertices: np.ndarray, corners: np.ndarray, sizes: np.ndarray) ->
         tris.append(_split_quads(v, quads).reshape(-1, 3))
         owners.append(np.repeat(which, 2))
 
-    for p in np.flatnonzero(sizes > 4):
-        ring = corners[starts[p]:starts[p] + sizes[p]]
-        local = _ear_clip(v[ring])
-        tris.append(ring[local])
-        owners.append(np.full(len(local), p, dtype=np.int64))
+    which = np.flatnonzero(sizes > 4)
+    if which.size:
+        cut, owner = _cut_polygons(v, corners, starts, sizes, which)
+        tris.append(cut)
+        owners.append(owner)
 
     if not tris:
         return np.zeros((0, 3), np.int64), np.zeros(0, np.int64)
@@ -91,7 +112,7 @@ def triangulate(vertices: np.ndarray, corners: np.ndarray, sizes: np.ndarray) ->
     return np.ascontiguousarray(triangles[order]), tri_polygon[order]
 
 
-def _split_quads(v: np.ndarray, quads: np.ndarray) -> np.ndarray:
+def _split_quads(v: Array, quads: Array) -> Array:
     """Cut each quad ``abcd`` into two triangles, (q, 2, 3).
 
     Diagonal ``ac`` gives ``abc, acd``; diagonal ``bd`` gives ``abd, bcd``. A
@@ -106,8 +127,8 @@ def _split_quads(v: np.ndarray, quads: np.ndarray) -> np.ndarray:
     a, b, c, d = (v[quads[:, i]] for i in range(4))
     normal = np.cross(c - a, d - b)
 
-    def along(p, q, r):
-        return np.einsum("ij,ij->i", np.cross(q - p, r - p), normal)
+    def along(p: Array, q: Array, r: Array) -> Array:
+        return np.asarray(np.einsum("ij,ij->i", np.cross(q - p, r - p), normal))
 
     score_ac = np.minimum(along(a, b, c), along(a, c, d))
     score_bd = np.minimum(along(a, b, d), along(b, c, d))
@@ -123,46 +144,102 @@ def _split_quads(v: np.ndarray, quads: np.ndarray) -> np.ndarray:
     return out
 
 
-def _fan(k: int) -> np.ndarray:
+def _fan(k: int) -> Array:
     i = np.arange(1, k - 1)
     return np.column_stack([np.zeros_like(i), i, i + 1])
 
 
-def _ear_clip(points: np.ndarray) -> np.ndarray:
-    """Ear-clip one polygon given by its corner positions, (k - 2, 3) local indices.
+def _planar(v: Array, corners: Array, starts: Array, sizes: Array,
+            which: Array) -> tuple[Array, Array, Array]:
+    """Corners of polygons ``which`` in their best-fit planes, counter-clockwise.
 
-    The corners are projected onto the plane through their centroid
-    perpendicular to the Newell normal, with the in-plane axes chosen so that
-    the polygon winds counter-clockwise there; a corner is convex when the
-    signed area of (previous, corner, next) is positive. An ear is a convex
+    Each polygon is centred on its centroid and projected onto the plane
+    perpendicular to its Newell normal, with in-plane axes ``(u, w)`` such that
+    ``(u, w, normal)`` is right-handed, so the polygon winds counter-clockwise.
+
+    Returns
+    -------
+    xy : (c, 2) float64 array
+        Projected corners of the chosen polygons, one polygon after another.
+    flat : (len(which),) bool array
+        Polygons whose Newell normal is rounding noise (collinear or repeated
+        corners): to be cut as a fan.
+    eps : (len(which),) float64 array
+        Signed-area tolerance of each polygon (``_REL_EPS`` times its squared extent).
+    """
+    k = sizes[which]
+    offset = np.cumsum(k) - k
+    idx = np.repeat(starts[which] - offset, k) + np.arange(int(k.sum()))
+    pid = np.repeat(np.arange(which.size), k)
+    points = v[corners[idx]]
+    q = points - (np.add.reduceat(points, offset) / k[:, None])[pid]
+    following = np.arange(q.shape[0]) + 1
+    following[offset + k - 1] = offset
+    normal = np.add.reduceat(np.cross(q, q[following]), offset)
+    extent2 = np.maximum.reduceat(np.einsum("ij,ij->i", q, q), offset)
+    nn = np.linalg.norm(normal, axis=1)
+    flat = ~(nn > _REL_EPS * extent2)
+    n_hat = normal / np.where(flat, 1.0, nn)[:, None]
+    axis = np.zeros_like(n_hat)
+    axis[np.arange(which.size), np.argmin(np.abs(n_hat), axis=1)] = 1.0
+    u = np.cross(n_hat, axis)
+    u /= np.maximum(np.linalg.norm(u, axis=1, keepdims=True), np.finfo(float).tiny)
+    w = np.cross(n_hat, u)
+    xy = np.column_stack([np.einsum("ij,ij->i", q, u[pid]), np.einsum("ij,ij->i", q, w[pid])])
+    return xy, flat, _REL_EPS * extent2
+
+
+def _cut_polygons(v: Array, corners: Array, starts: Array, sizes: Array,
+                  which: Array) -> tuple[Array, Array]:
+    """Triangles (vertex indices, each polygon's winding) and their polygon, for the polygons ``which``."""
+    xy, flat, eps = _planar(v, corners, starts, sizes, which)
+    k_all = sizes[which]
+    offset = np.cumsum(k_all) - k_all
+    local: list[Array] = []
+    by_library = np.zeros(which.size, dtype=bool)
+    for i, (k, at) in enumerate(zip(k_all.tolist(), offset.tolist())):
+        pts = xy[at:at + k]
+        t = _fan(k) if flat[i] else _library_ears(pts)
+        by_library[i] = t is not None and not flat[i] and len(t) == k - 2
+        if not by_library[i] and not flat[i]:
+            t = _ear_clip(pts[:, 0], pts[:, 1], float(eps[i]))
+        local.append(t + at)
+    tri = np.concatenate(local)
+    # The library's triangles get the polygon's (counter-clockwise) winding.
+    a, b, c = xy[tri[:, 0]], xy[tri[:, 1]], xy[tri[:, 2]]
+    cw = (b[:, 0] - a[:, 0]) * (c[:, 1] - a[:, 1]) - (b[:, 1] - a[:, 1]) * (c[:, 0] - a[:, 0]) < 0
+    cw &= np.repeat(by_library, k_all - 2)
+    tri[cw] = tri[cw][:, [0, 2, 1]]
+    owner = np.repeat(np.arange(which.size), k_all - 2)
+    first = np.repeat(starts[which] - offset, k_all - 2)
+    return corners[tri + first[:, None]], which[owner]
+
+
+def _library_ears(pts: Array) -> Array | None:
+    """Ear cutting by ``mapbox_earcut`` (local indices, any winding); None when the library is missing."""
+    if _earcut is None:
+        return None
+    return np.asarray(_earcut(pts, np.array([len(pts)], dtype=np.uint32)), dtype=np.int64).reshape(-1, 3)
+
+
+def _ear_clip(x: Array, y: Array, eps: float) -> Array:
+    """Ear-clip one counter-clockwise planar polygon, (k - 2, 3) local indices.
+
+    A corner is convex when the signed area of (previous, corner, next) is
+    above ``eps``. An ear is a convex
     corner whose triangle contains no other remaining corner (closed test, so a
     corner touching the cut also blocks it). If no ear is found (a self-
     intersecting or numerically flat remainder), a corner with zero signed area
     is cut off instead, and failing that the remainder becomes a fan.
     """
-    k = len(points)
-    q = points - points.mean(axis=0)
-    normal = np.cross(q, np.roll(q, -1, axis=0)).sum(axis=0)
-    extent2 = float(np.max(np.einsum("ij,ij->i", q, q))) if k else 0.0
-    nn = float(np.linalg.norm(normal))
-    if not nn > _REL_EPS * extent2:
-        return _fan(k)
-    n_hat = normal / nn
-    axis = np.zeros(3)
-    axis[np.argmin(np.abs(n_hat))] = 1.0
-    u = np.cross(n_hat, axis)
-    u /= np.linalg.norm(u)
-    w = np.cross(n_hat, u)  # (u, w, n_hat) is right-handed: counter-clockwise in (u, w)
-    x, y = q @ u, q @ w
-    eps = _REL_EPS * extent2
-
+    k = len(x)
     prev = [(i - 1) % k for i in range(k)]
     nxt = [(i + 1) % k for i in range(k)]
     alive = np.ones(k, dtype=bool)
 
     def signed(i: int) -> float:
         a, c = prev[i], nxt[i]
-        return (x[i] - x[a]) * (y[c] - y[i]) - (y[i] - y[a]) * (x[c] - x[i])
+        return float((x[i] - x[a]) * (y[c] - y[i]) - (y[i] - y[a]) * (x[c] - x[i]))
 
     def is_ear(i: int) -> bool:
         a, c = prev[i], nxt[i]

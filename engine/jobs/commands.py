@@ -16,8 +16,8 @@ from pathlib import Path
 import numpy as np
 
 from ..common.atomic import atomic_write
+from ..spectra.approximation import SPECTRAL_BASES
 
-BASES = ("laplacian", "products", "orthoproducts")
 
 
 def _positive_int(text: str) -> int:
@@ -102,7 +102,7 @@ def run_basis(args: argparse.Namespace) -> int:
 def add_approximate(p: argparse.ArgumentParser) -> None:
     p.add_argument("mesh", help="mesh file with vertex properties (.ply)")
     p.add_argument("-o", "--output", required=True, help="output .ply")
-    p.add_argument("--basis", choices=BASES, default="orthoproducts")
+    p.add_argument("--basis", choices=SPECTRAL_BASES, default="orthoproducts")
     p.add_argument("--k", type=_positive_int, help="eigenfunctions: the basis size for 'laplacian' "
                    "(default 100); the eigenfunctions multiplied for the product bases (default: "
                    "chosen from the vertex count)")

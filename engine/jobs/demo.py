@@ -16,6 +16,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from ..common.arrays import Array, ArrayLike
+
 __all__ = ["Creature", "creature", "creature_signals"]
 
 
@@ -32,21 +34,21 @@ class Creature:
         ``v`` in [0, 1) around the body (the poles have v = 0).
     """
 
-    vertices: np.ndarray
-    faces: np.ndarray
-    uv: np.ndarray
+    vertices: Array
+    faces: Array
+    uv: Array
 
 
-def _radius(u: np.ndarray) -> np.ndarray:
+def _radius(u: Array) -> Array:
     # round head (u < 0.25), neck, body, tapering tail; zero at both tips so
     # the ends close like the poles of a sphere
     head = 0.30 * np.sqrt(np.clip(np.sin(np.pi * np.clip(u / 0.26, 0, 1)), 0, None))
     body = 0.24 * np.sqrt(np.clip(np.sin(np.pi * np.clip((u - 0.18) / 0.82, 0, 1)), 0, None)) \
         * (1 - 0.55 * np.clip((u - 0.45) / 0.55, 0, 1))
-    return np.maximum(head, body)
+    return np.asarray(np.maximum(head, body))
 
 
-def _centre_curve(u: np.ndarray, curl: float) -> tuple[np.ndarray, np.ndarray]:
+def _centre_curve(u: Array, curl: float) -> tuple[Array, Array]:
     """Points and unit tangents of the body's centre curve (length 3)."""
     length = 3.0
     s = u * length
@@ -60,7 +62,7 @@ def _centre_curve(u: np.ndarray, curl: float) -> tuple[np.ndarray, np.ndarray]:
 
 def creature(rings: int = 60, segments: int = 32, *, curl: float = 0.0, twist_offset: bool = False,
              bumps: float = 0.012, shuffle_seed: int | None = None,
-             offset=(0.0, 0.0, 0.0)) -> Creature:
+             offset: tuple[float, float, float] = (0.0, 0.0, 0.0)) -> Creature:
     """Generate the creature.
 
     Parameters
@@ -94,18 +96,18 @@ def creature(rings: int = 60, segments: int = 32, *, curl: float = 0.0, twist_of
 
     idx = 1 + np.arange(rings * segments).reshape(rings, segments)
     nxt = np.roll(idx, -1, axis=1)
-    faces = []
+    parts: list[Array] = []
     a, b, c, d = idx[:-1], nxt[:-1], nxt[1:], idx[1:]
     if twist_offset:
-        faces.append(np.column_stack([a.ravel(), d.ravel(), b.ravel()]))
-        faces.append(np.column_stack([b.ravel(), d.ravel(), c.ravel()]))
+        parts.append(np.column_stack([a.ravel(), d.ravel(), b.ravel()]))
+        parts.append(np.column_stack([b.ravel(), d.ravel(), c.ravel()]))
     else:
-        faces.append(np.column_stack([a.ravel(), d.ravel(), c.ravel()]))
-        faces.append(np.column_stack([a.ravel(), c.ravel(), b.ravel()]))
+        parts.append(np.column_stack([a.ravel(), d.ravel(), c.ravel()]))
+        parts.append(np.column_stack([a.ravel(), c.ravel(), b.ravel()]))
     last = rings * segments + 1
-    faces.append(np.column_stack([np.zeros(segments, int), idx[0], nxt[0]]))
-    faces.append(np.column_stack([np.full(segments, last), nxt[-1], idx[-1]]))
-    faces = np.vstack(faces).astype(np.int64)
+    parts.append(np.column_stack([np.zeros(segments, int), idx[0], nxt[0]]))
+    parts.append(np.column_stack([np.full(segments, last), nxt[-1], idx[-1]]))
+    faces = np.vstack(parts).astype(np.int64)
     # outward orientation: flip all if the signed volume is negative
     e1 = vertices[faces[:, 1]] - vertices[faces[:, 0]]
     e2 = vertices[faces[:, 2]] - vertices[faces[:, 0]]
@@ -119,7 +121,7 @@ def creature(rings: int = 60, segments: int = 32, *, curl: float = 0.0, twist_of
     return Creature(vertices + np.asarray(offset, float), faces, uv)
 
 
-def body_point(uv, *, curl: float = 0.0, bumps: float = 0.012) -> np.ndarray:
+def body_point(uv: ArrayLike, *, curl: float = 0.0, bumps: float = 0.012) -> Array:
     """Position of body coordinates ``uv`` (k, 2) on the creature posed by ``curl``."""
     uv = np.asarray(uv, dtype=np.float64)
     u, v = uv[:, 0], uv[:, 1]
@@ -134,17 +136,17 @@ def body_point(uv, *, curl: float = 0.0, bumps: float = 0.012) -> np.ndarray:
     r = _radius(u) * (1.0 + 0.15 * np.cos(2 * np.pi * v) * (u > 0.3))  # a flatter belly
     r = r * (1.0 + bumps / 0.25 * _scales(u, v))
     angle = 2 * np.pi * v
-    return centre + r[:, None] * (np.cos(angle)[:, None] * up + np.sin(angle)[:, None] * side)
+    return np.asarray(centre + r[:, None] * (np.cos(angle)[:, None] * up + np.sin(angle)[:, None] * side))
 
 
-def _scales(u: np.ndarray, v: np.ndarray) -> np.ndarray:
+def _scales(u: Array, v: Array) -> Array:
     # an egg-crate lattice of small bumps and dimples (zero mean, so the
     # bumps do not inflate the overall shape), fading out at the tips
     fade = np.sin(np.pi * np.clip(u, 0, 1)) ** 2
-    return fade * np.cos(2 * np.pi * 40 * u) * np.cos(2 * np.pi * 16 * v)
+    return np.asarray(fade * np.cos(2 * np.pi * 40 * u) * np.cos(2 * np.pi * 16 * v))
 
 
-def creature_signals(uv) -> dict[str, np.ndarray]:
+def creature_signals(uv: ArrayLike) -> dict[str, Array]:
     """The demo's painted data, as functions of body coordinates.
 
     Returns

@@ -32,6 +32,7 @@ from ..spectra.shape import Shape
 from ..carrying.signals import check_signal
 from ..carrying.transfer import BASES, Transfer, TransferResult
 from ..carrying.weights import WeightOptions, carry_weights
+from ..spectra.approximation import check_basis_name
 
 __all__ = ["Settings", "Pair", "weighted_centre_vertex", "load_landmarks", "run_transfer_job",
            "run_detail_job"]
@@ -48,7 +49,8 @@ class Settings:
     Attributes
     ----------
     match : {"auto", "aligned", "intrinsic"}
-    basis : {"pointwise", "laplacian", "orthoproducts", "products"}
+    basis : str
+        One of :data:`engine.carrying.transfer.BASES`.
     k : int
         Eigenfunctions of the Laplacian basis.
     K : int or None
@@ -83,8 +85,7 @@ class Settings:
     def __post_init__(self):
         if self.match not in MATCHES:
             raise ValueError(f"unknown match {self.match!r}; expected one of {', '.join(MATCHES)}")
-        if self.basis not in BASES:
-            raise ValueError(f"unknown basis {self.basis!r}; expected one of {', '.join(BASES)}")
+        check_basis_name(self.basis, BASES)
         if not 1 <= int(self.order) <= 5:
             raise ValueError(f"order must be between 1 and 5, got {self.order}")
         if int(self.k) < 1 or (self.K is not None and int(self.K) < 1):

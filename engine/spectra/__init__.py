@@ -1,5 +1,6 @@
 """Operators and spectra: from a triangle mesh to its Laplacian, eigenbasis, products and descriptors.
 
+geometry        areas, cotangents and lumped masses from edge lengths
 laplacian       cotangent stiffness and lumped mass
 robust          the intrinsic (tufted-cover, Delaunay) Laplacian for non-manifold meshes
 discretization  picks the plain or the robust operators for a mesh and says why

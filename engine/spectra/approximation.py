@@ -13,24 +13,38 @@ approximation ``g``, ``||g - f||_M / ||f||_M`` with ``||f||_M^2 = f^T M f``.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Protocol, runtime_checkable
+from collections.abc import Iterable
+from typing import Literal, Protocol, overload, runtime_checkable
 
 import numpy as np
 
-from ..common.arrays import check_coefficients, check_eigenvectors_mass, check_mass, check_vertex_signal
+from ..common.arrays import ArrayLike, Array, check_coefficients, check_eigenvectors_mass, check_mass, check_vertex_signal
 
-__all__ = ["Approximation", "Basis", "LaplacianBasis", "approximate", "relative_error"]
+__all__ = ["SPECTRAL_BASES", "check_basis_name", "Approximation", "Basis", "LaplacianBasis", "approximate",
+           "relative_error"]
+
+# The names of the spectral bases: Laplacian eigenfunctions, orthogonalised
+# eigenfunction products, raw products fitted by least squares.
+# ``engine.carrying.transfer.BASES`` adds "pointwise".
+SPECTRAL_BASES = ("laplacian", "orthoproducts", "products")
+
+
+def check_basis_name(name: str, names: tuple[str, ...] = SPECTRAL_BASES) -> str:
+    """Return ``name`` if it is one of ``names``; raise ValueError naming the choices otherwise."""
+    if name not in names:
+        raise ValueError(f"unknown basis {name!r}; expected one of {', '.join(names)}")
+    return name
 
 
 @runtime_checkable
 class Basis(Protocol):
     """What :func:`approximate` needs from a basis."""
 
-    def project(self, signal) -> np.ndarray:
+    def project(self, signal: ArrayLike) -> Array:
         """Coefficients of an ``(n,)`` or ``(n, c)`` signal."""
         ...
 
-    def reconstruct(self, coeffs) -> np.ndarray:
+    def reconstruct(self, coeffs: ArrayLike) -> Array:
         """The ``(n,)`` or ``(n, c)`` signal for coefficients."""
         ...
 
@@ -46,8 +60,8 @@ class LaplacianBasis:
     mass : (n,) float64 array
     """
 
-    eigenvectors: np.ndarray
-    mass: np.ndarray
+    eigenvectors: Array
+    mass: Array
 
     def __post_init__(self) -> None:
         phi, m = check_eigenvectors_mass(self.eigenvectors, self.mass)
@@ -58,12 +72,12 @@ class LaplacianBasis:
     def rank(self) -> int:
         return self.eigenvectors.shape[1]
 
-    def project(self, signal) -> np.ndarray:
+    def project(self, signal: ArrayLike) -> Array:
         """Coefficients ``phi^T M f``: (k,) or (k, c)."""
         f = check_vertex_signal(signal, self.eigenvectors.shape[0])
         return self.eigenvectors.T @ (self.mass[:, None] * f if f.ndim == 2 else self.mass * f)
 
-    def reconstruct(self, coeffs) -> np.ndarray:
+    def reconstruct(self, coeffs: ArrayLike) -> Array:
         """Signal ``phi @ coeffs``: (n,) or (n, c)."""
         return self.eigenvectors @ check_coefficients(coeffs, self.rank)
 
@@ -85,13 +99,13 @@ class Approximation:
         What the basis produced before reconstruction.
     """
 
-    values: np.ndarray
+    values: Array
     relative_error: float
-    channel_errors: np.ndarray
-    coefficients: np.ndarray
+    channel_errors: Array
+    coefficients: Array
 
 
-def approximate(signal, basis: Basis, mass, *, clamp: tuple[float, float] | None = None) -> Approximation:
+def approximate(signal: ArrayLike, basis: Basis, mass: ArrayLike, *, clamp: tuple[float, float] | None = None) -> Approximation:
     """Project a signal onto a basis, reconstruct it and measure the error.
 
     Parameters
@@ -125,7 +139,18 @@ def approximate(signal, basis: Basis, mass, *, clamp: tuple[float, float] | None
                          channel_errors=relative_error(values, f, m, per_channel=True), coefficients=coeffs)
 
 
-def relative_error(approx, exact, mass, *, per_channel: bool = False):
+@overload
+def relative_error(approx: ArrayLike, exact: ArrayLike, mass: ArrayLike, *,
+                   per_channel: Literal[False] = False) -> float: ...
+
+
+@overload
+def relative_error(approx: ArrayLike, exact: ArrayLike, mass: ArrayLike, *,
+                   per_channel: Literal[True]) -> Array: ...
+
+
+def relative_error(approx: ArrayLike, exact: ArrayLike, mass: ArrayLike, *,
+                   per_channel: bool = False) -> float | Array:
     """Mass-weighted relative L2 error ``||approx - exact||_M / ||exact||_M``.
 
     Parameters
@@ -156,14 +181,14 @@ def relative_error(approx, exact, mass, *, per_channel: bool = False):
     return float(_ratio(np.array([num.sum()]), np.array([den.sum()]))[0])
 
 
-def _length(a, name: str) -> int:
+def _length(a: ArrayLike, name: str) -> int:
     shape = np.shape(a)
     if len(shape) != 1:
         raise ValueError(f"{name} must be a 1-D array (one value per vertex), got shape {shape}")
     return shape[0]
 
 
-def _ratio(num: np.ndarray, den: np.ndarray) -> np.ndarray:
+def _ratio(num: Array, den: Array) -> Array:
     out = np.zeros_like(num)
     pos = den > 0
     out[pos] = np.sqrt(num[pos] / den[pos])
@@ -171,7 +196,7 @@ def _ratio(num: np.ndarray, den: np.ndarray) -> np.ndarray:
     return out
 
 
-def _check_clamp(clamp) -> tuple[float, float] | None:
+def _check_clamp(clamp: Iterable[float] | None) -> tuple[float, float] | None:
     if clamp is None:
         return None
     try:

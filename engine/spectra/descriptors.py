@@ -15,7 +15,7 @@ import math
 
 import numpy as np
 
-from ..common.arrays import float_matrix, numeric_array
+from ..common.arrays import ArrayLike, Array, float_matrix, numeric_array
 
 __all__ = ["heat_kernel_rows", "heat_kernel_signature", "heat_times", "wave_energies",
            "wave_kernel_signature"]
@@ -24,7 +24,7 @@ _ZERO = 1e-8
 """Eigenvalues at most this fraction of the largest count as zero."""
 
 
-def heat_times(eigenvalues, n: int = 16) -> np.ndarray:
+def heat_times(eigenvalues: ArrayLike, n: int = 16) -> Array:
     """Log-spaced diffusion times for the heat kernel signature.
 
     From ``4 ln 10 / lambda_max`` to ``4 ln 10 / lambda_1``, ``lambda_1`` the
@@ -54,7 +54,7 @@ def heat_times(eigenvalues, n: int = 16) -> np.ndarray:
     return np.geomspace(c / nz.max(), c / nz.min(), int(n))
 
 
-def heat_kernel_signature(eigenvalues, eigenvectors, times=None, *, n_times: int = 16) -> np.ndarray:
+def heat_kernel_signature(eigenvalues: ArrayLike, eigenvectors: ArrayLike, times: ArrayLike | None = None, *, n_times: int = 16) -> Array:
     """Heat kernel signature ``k_t(x, x) = sum_i exp(-lambda_i t) phi_i(x)^2``.
 
     Sun, Ovsjanikov and Guibas, SGP 2009. The zero eigenvalue contributes its
@@ -77,10 +77,10 @@ def heat_kernel_signature(eigenvalues, eigenvectors, times=None, *, n_times: int
     lam, phi = _check_pairs(eigenvalues, eigenvectors)
     t = heat_times(lam, n_times) if times is None else _check_positive(times, "times")
     weights = np.exp(-np.outer(np.clip(lam, 0.0, None), t))  # (k, T)
-    return (phi * phi) @ weights
+    return np.asarray((phi * phi) @ weights)
 
 
-def heat_kernel_rows(eigenvalues, eigenvectors, vertices_idx, times) -> np.ndarray:
+def heat_kernel_rows(eigenvalues: ArrayLike, eigenvectors: ArrayLike, vertices_idx: ArrayLike, times: ArrayLike) -> Array:
     """Heat kernel from a few landmark vertices to every vertex.
 
     ``H[x, l * T + j] = k_{t_j}(x, v_l) = sum_i exp(-lambda_i t_j) phi_i(x) phi_i(v_l)``.
@@ -111,10 +111,10 @@ def heat_kernel_rows(eigenvalues, eigenvectors, vertices_idx, times) -> np.ndarr
     t = _check_positive(times, "times")
     decay = np.exp(-np.outer(np.clip(lam, 0.0, None), t))  # (k, T)
     W = phi[idx].T[:, :, None] * decay[:, None, :]  # (k, L, T)
-    return phi @ W.reshape(lam.size, -1)
+    return np.asarray(phi @ W.reshape(lam.size, -1))
 
 
-def wave_energies(eigenvalues, n: int = 16) -> tuple[np.ndarray, float]:
+def wave_energies(eigenvalues: ArrayLike, n: int = 16) -> tuple[Array, float]:
     """Default log-energies and band width for the wave kernel signature.
 
     Energies ``e`` are evenly spaced over ``[log lambda_1, log lambda_max]``
@@ -148,8 +148,8 @@ def wave_energies(eigenvalues, n: int = 16) -> tuple[np.ndarray, float]:
     return np.linspace(lo, hi, int(n)), (hi - lo) / (n - 1)
 
 
-def wave_kernel_signature(eigenvalues, eigenvectors, energies=None, *, n_energies: int = 16,
-                          sigma: float | None = None) -> np.ndarray:
+def wave_kernel_signature(eigenvalues: ArrayLike, eigenvectors: ArrayLike, energies: ArrayLike | None = None, *, n_energies: int = 16,
+                          sigma: float | None = None) -> Array:
     """Wave kernel signature (Aubry, Schlickewei and Cremers, 2011).
 
     ``WKS(x, e) = sum_k phi_k(x)^2 g_k(e) / sum_k g_k(e)`` with
@@ -193,10 +193,10 @@ def wave_kernel_signature(eigenvalues, eigenvectors, energies=None, *, n_energie
     g = np.exp(-(d - d.min(axis=0)))  # shifted per energy; the normalisation cancels the shift
     g /= g.sum(axis=0)
     psi = phi[:, keep]
-    return (psi * psi) @ g
+    return np.asarray((psi * psi) @ g)
 
 
-def _check_eigenvalues(eigenvalues) -> np.ndarray:
+def _check_eigenvalues(eigenvalues: ArrayLike) -> Array:
     lam = numeric_array(eigenvalues, "eigenvalues")
     if lam.ndim != 1 or lam.size == 0:
         raise ValueError(f"eigenvalues must have shape (k,) with k >= 1, got {lam.shape}")
@@ -209,14 +209,14 @@ def _check_eigenvalues(eigenvalues) -> np.ndarray:
     return lam
 
 
-def _nonzero(lam: np.ndarray) -> np.ndarray:
+def _nonzero(lam: Array) -> Array:
     nz = lam[lam > _ZERO * lam.max()] if lam.max() > 0 else lam[:0]
     if nz.size == 0:
         raise ValueError("need at least one non-zero eigenvalue, all are zero")
     return nz
 
 
-def _check_pairs(eigenvalues, eigenvectors) -> tuple[np.ndarray, np.ndarray]:
+def _check_pairs(eigenvalues: ArrayLike, eigenvectors: ArrayLike) -> tuple[Array, Array]:
     lam = _check_eigenvalues(eigenvalues)
     phi = float_matrix(eigenvectors, "eigenvectors")
     if phi.shape[1] != lam.size:
@@ -224,7 +224,7 @@ def _check_pairs(eigenvalues, eigenvectors) -> tuple[np.ndarray, np.ndarray]:
     return lam, phi
 
 
-def _check_positive(values, name: str) -> np.ndarray:
+def _check_positive(values: ArrayLike, name: str) -> Array:
     t = np.asarray(values, dtype=np.float64).ravel()
     if t.size == 0 or not np.isfinite(t).all() or (t <= 0).any():
         raise ValueError(f"{name} must be a non-empty array of positive finite numbers")

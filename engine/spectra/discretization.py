@@ -17,23 +17,19 @@ holds:
    if each were alone and no longer discretises a surface Laplacian; the
    tufted cover does (Sharp and Crane 2020, section 4).
 2. **An angle below 1 degree.** Its cotangent exceeds 57, so one edge weight
-   dominates its row by orders of magnitude (8,500 on the glmark2 bunny,
-   smallest angle 0.007 degrees) and the weight of an edge depends on a
+   dominates its row by orders of magnitude and the weight of an edge depends on a
    detail far below the mesh resolution.
 3. **More than 10% of interior edges with a negative cotangent weight.** A
    negative weight breaks the maximum principle (Wardetzky, Mathur, Kaelberer
    and Grinspun, "Discrete Laplace operators: no free lunch", SGP 2007), so
    smoothing and interpolation can overshoot the input range; the intrinsic
-   Delaunay weights are all non-negative. Measured on the reference meshes
-   (first 20 eigenvalues, plain against robust): meshes above 10% (CGAL hand
-   16%, cow 16%, homer 12%, camel 12%, a jittered grid 17%) differ by
-   0.4-11%; clean meshes (icosphere 0%, the CGAL and pymeshlab bunnies
-   0.01-0.02%, elephant 0.2%) by under 3e-5; in between (noisy sphere 5%,
-   armadillo 9%) by 0.03-0.2%, where either operator serves.
+   Delaunay weights are all non-negative. On the reference meshes the low
+   eigenvalues of the two operators differ by percents above the 10% mark
+   and negligibly on clean meshes (figures in docs/measurements.md,
+   "Laplacian operators").
 
-The robust construction costs about the same as the plain one plus a second
-or so at 50k vertices, small beside an eigensolve, so the thresholds err
-towards it. On a mesh where it changes nothing (all triangles Delaunay and
+The robust construction costs little beside an eigensolve, so the
+thresholds err towards it. On a mesh where it changes nothing (all triangles Delaunay and
 well shaped) it equals the plain matrix up to mollification.
 """
 
@@ -44,9 +40,11 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.sparse as sp
 
-from .laplacian import cotangents, stiffness_from_cotangents, mass_matrix
-from ..intake.preparation import mesh_topology, validate_mesh
-from .robust import robust_operators
+from ..common.arrays import Array, ArrayLike
+from .geometry import check_mass_kind, cotangents_from_lengths, edge_lengths, face_edges, heron_areas, lumped_mass
+from .laplacian import stiffness_from_cotangents
+from ..intake.preparation import group_edges, mesh_topology, validate_mesh
+from .robust import check_mollify_factor, robust_operators
 
 __all__ = ["Operators", "mesh_operators", "MeshDefects", "mesh_defects"]
 
@@ -72,7 +70,7 @@ class Operators:
     """
 
     stiffness: sp.csr_matrix
-    mass: np.ndarray
+    mass: Array
     robust: bool
     reason: str
 
@@ -104,7 +102,7 @@ class MeshDefects:
         return out
 
 
-def mesh_defects(vertices, faces) -> MeshDefects:
+def mesh_defects(vertices: ArrayLike, faces: ArrayLike) -> MeshDefects:
     """Count the defects that make the plain cotangent Laplacian unreliable.
 
     Parameters
@@ -124,37 +122,51 @@ def mesh_defects(vertices, faces) -> MeshDefects:
         cotangent weight ``cot a + cot b``.
     """
     v, f = validate_mesh(vertices, faces)
-    cot = cotangents(v, f)
-    return _defects(v, f, cot)
+    return _defects(v, f)
 
 
-def _defects(v: np.ndarray, f: np.ndarray, cot: np.ndarray) -> MeshDefects:
+def _defects(v: Array, f: Array) -> MeshDefects:
     n = v.shape[0]
     _, nonmanifold_edges, nonmanifold_vertices = mesh_topology(f, n)
+    cot, degenerate = _corner_angle_cotangents(v, f)
     # Interior (two-face) edges and their cotangent weights; face-edge 3t + c
     # lies opposite corner c, from corner c+1 to corner c+2.
-    p, q = f[:, [1, 2, 0]].ravel(), f[:, [2, 0, 1]].ravel()
-    key = np.minimum(p, q) * np.int64(n) + np.maximum(p, q)
-    order = np.argsort(key, kind="stable")
-    ks = key[order]
-    start = np.ones(ks.size, dtype=bool)
-    start[1:] = ks[1:] != ks[:-1]
-    counts = np.diff(np.append(np.flatnonzero(start), ks.size))
-    first = start & (counts[np.cumsum(start) - 1] == 2)
-    x, y = order[first], order[np.flatnonzero(first) + 1]
+    p, q, _ = face_edges(f)
+    groups = group_edges(p, q, n)
+    pairs = groups.starts[groups.counts == 2]
+    x, y = groups.order[pairs], groups.order[pairs + 1]
     negative = int((cot.ravel()[x] + cot.ravel()[y] < 0).sum())
 
     angles = np.degrees(np.arctan2(1.0, cot))  # in (0, 180); 90 where the triangle is degenerate
-    e1 = v[f[:, 1]] - v[f[:, 0]]
-    e2 = v[f[:, 2]] - v[f[:, 0]]
-    degenerate = np.linalg.norm(np.cross(e1, e2), axis=1) == 0
     angles[degenerate] = 0.0
     smallest = angles.min(axis=1)
     return MeshDefects(nonmanifold_edges, nonmanifold_vertices, int((smallest < _SLIVER_DEGREES).sum()),
                        float(smallest.min()), negative, int(x.size))
 
 
-def mesh_operators(vertices, faces, *, robust: bool | str = "auto", mass: str = "barycentric",
+def _corner_angle_cotangents(v: Array, f: Array) -> tuple[Array, Array]:
+    """Corner cotangents from edge vectors (``dot / |cross|``), for the defect counts only, and the
+    triangles whose cross product is zero.
+
+    The operators take their cotangents from edge lengths (:mod:`geometry`).
+    The counts keep this form because their verdict on weights that are zero
+    in exact arithmetic (the opposite angles of a cocircular quad, such as the
+    isosceles trapezoids of a surface of revolution) is decided by rounding,
+    and it decides which operator a mesh gets: another formula would give some
+    existing meshes the other operator.
+    """
+    cot = np.empty(f.shape, dtype=np.float64)
+    for c in range(3):
+        a = v[f[:, (c + 1) % 3]] - v[f[:, c]]
+        b = v[f[:, (c + 2) % 3]] - v[f[:, c]]
+        dot = np.einsum("ij,ij->i", a, b)
+        cross = np.linalg.norm(np.cross(a, b), axis=1)
+        cot[:, c] = np.where(cross > 0, dot / np.where(cross > 0, cross, 1.0), 0.0)
+    e1, e2 = v[f[:, 1]] - v[f[:, 0]], v[f[:, 2]] - v[f[:, 0]]
+    return cot, np.linalg.norm(np.cross(e1, e2), axis=1) == 0
+
+
+def mesh_operators(vertices: ArrayLike, faces: ArrayLike, *, robust: bool | str = "auto", mass: str = "barycentric",
               mollify_factor: float = 1e-5) -> Operators:
     """Stiffness matrix and lumped mass of a triangle mesh, plain or robust.
 
@@ -184,17 +196,16 @@ def mesh_operators(vertices, faces, *, robust: bool | str = "auto", mass: str = 
     """
     if not (robust is True or robust is False or (isinstance(robust, str) and robust == "auto")):
         raise ValueError(f"robust must be 'auto', True or False, got {robust!r}")
-    if mass not in ("barycentric", "voronoi"):
-        raise ValueError(f"unknown mass kind {mass!r}; expected 'barycentric' or 'voronoi'")
-    if not (np.isfinite(mollify_factor) and mollify_factor >= 0):
-        raise ValueError(f"mollify_factor must be finite and non-negative, got {mollify_factor!r}")
+    check_mass_kind(mass)
+    check_mollify_factor(mollify_factor)
     v, f = validate_mesh(vertices, faces)
-    cot = cotangents(v, f)
-    found = "; ".join(_defects(v, f, cot).reasons())
+    found = "; ".join(_defects(v, f).reasons())
     use = bool(found) if robust == "auto" else bool(robust)
     if use:
         L, M = robust_operators(v, f, mollify_factor=mollify_factor, mass=mass)[:2]
         return Operators(L, M, True, found or "requested")
-    L = stiffness_from_cotangents(v.shape[0], f, cot)
-    M = mass_matrix(v, f, kind=mass)
+    lengths = edge_lengths(v, f)
+    area = heron_areas(lengths)
+    L = stiffness_from_cotangents(v.shape[0], f, cotangents_from_lengths(lengths, area))
+    M = lumped_mass(lengths, f, v.shape[0], mass, area)
     return Operators(L, M, False, f"plain requested despite {found}" if found else "")

@@ -22,7 +22,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from ..common.arrays import check_coefficients, check_eigenvectors_mass, check_vertex_signal, float_matrix
+from ..common.arrays import ArrayLike, Array, check_coefficients, check_eigenvectors_mass, check_vertex_signal, float_matrix
 import scipy.linalg as sla
 
 __all__ = [
@@ -43,23 +43,6 @@ MAX_ORDER = 5
 DEFAULT_PRODUCT_TOLERANCE = 1e-3
 """Floor of the default tolerance, see :func:`default_product_tolerance`.
 
-The default is ``max(1e-3, 2 / n)`` for ``n`` vertices. The measurements below
-show that the exact dependency ``x^2 + y^2 + z^2 = 1`` of degree-1 products
-leaves a remainder of about ``0.8 / n`` of a product's norm on an icosphere
-(1.3e-3, 3.1e-4, 7.8e-5 at 642, 2,562, 10,242 vertices: discretisation error,
-O(h^2)), so ``2 / n`` treats it as a dependency at every resolution with a
-margin of 2.5. The floor 1e-3 keeps a product only when at least a thousandth
-of it is new: on generic shapes, where there is no gap between dependent and
-independent products, a larger tolerance simply truncates content (fit
-errors below: 1.4e-3 at 0.05 against 2.0e-5 at 1e-3 on a 10k-vertex bumpy
-sphere). Higher-degree products of sphere harmonics have discretisation
-remainders up to about 3e-2 at 2.5k vertices; those are kept at the default
-(they are genuine discrete functions, and signals are reconstructed on the
-mesh they were computed on); pass ``tol=0.05`` to count them as dependent,
-as the calibration table shows.
-
-Calibration: the relative remaining norm below which a product counts as dependent.
-
 A product is kept when the part of it orthogonal (in the mass inner product)
 to every product accepted before it has a norm of at least ``tol`` times the
 product's own norm. The criterion is relative to each column's own norm, not
@@ -67,42 +50,17 @@ to the largest singular value of the whole set: raw products of degree ``d`` of
 mass-normalised eigenfunctions scale like ``area ** (-(d - 1) / 2)``, so a
 threshold relative to the largest column would depend on the size of the mesh.
 
-Measured with :func:`orthogonal_products` on cotangent / lumped-mass unit
-icospheres, eigenfunctions of degree <= l (K = 4, 9, 16, 25), products of
-order N (2, 3, 5; l*N <= 9), blocks of 32 and 128 columns. The exact span is
-the spherical harmonics of degree <= N*l ((N*l + 1)^2 functions; Gaunt
-coefficients), so every remainder of a product beyond that count is a
-discretisation-level dependency:
-
-=========  ====================================  ==================================
-vertices   largest remainder of a dependent one  smallest remainder of a kept one
-=========  ====================================  ==================================
-642        4.0e-2                                0.073
-2,562      3.4e-2                                0.075
-10,242     2.7e-3                                0.072
-=========  ====================================  ==================================
-
-With ``tol = 0.05`` the rank is exact in every case at 2,562 and 10,242
-vertices, and in all but one at 642 (K=16, N=3, blocks of 32: degree-9
-content on 642 vertices, 101 instead of 100). The dependency
-``x^2 + y^2 + z^2 = 1`` (first four eigenfunctions, order 2) leaves 1.3e-3,
-3.1e-4 and 7.8e-5 of a product's norm at these resolutions (about 2e-5 of the
-largest singular value at 10k vertices); discretisation error falls about 4x
-per subdivision (O(h^2)) and grows with the frequency of the products. A
-product whose new content is under 5% of its norm adds little to an
-approximation basis anyway. A much smaller ``tol`` keeps discretisation
-noise as basis functions and, below about 1e-6, costs orthogonality of about
-``eps / tol``.
-
-Where products have no exact dependencies there is no gap to find and
-``tol`` truncates a smoothly decaying spectrum. Measured on a 10k-vertex
-irregular bumpy sphere with the constant and nine random smooth functions
-``cos(w . x + b)``, ``|w| <= 3``, order 3 (286 products): ranks 107, 134, 167,
-211 and fit errors of ``exp(x) cos(2y)`` 1.4e-3, 1.6e-4, 2.0e-5, 1.2e-6 at
-``tol`` = 0.05, 0.01, 1e-3, 1e-5. Lower ``tol`` when the mesh is fine and the
-fit on this mesh matters more than dropping near-dependent products
-(a tolerance of 0.01 still gets the sphere ranks right at 10k vertices, not
-at 2.5k).
+The default is ``max(1e-3, 2 / n)`` for ``n`` vertices. An exact dependency
+between products (on the unit sphere ``x^2 + y^2 + z^2 = 1`` among the
+degree-1 products) leaves a discretisation remainder of about ``0.8 / n`` of a
+product's norm on an icosphere, falling like O(h^2), so ``2 / n`` treats it as
+a dependency at every resolution. The floor keeps a product only when at
+least a thousandth of it is new: where products have no exact dependencies
+there is no gap between dependent and independent ones, and a larger
+tolerance only truncates content. ``tol = 0.05`` also counts the
+discretisation remainders of higher-degree sphere-harmonic products as
+dependencies; below about 1e-6 orthogonality degrades like ``eps / tol``.
+The calibration figures are in docs/measurements.md ("Eigenfunction products").
 """
 
 DEFAULT_BLOCK_SIZE = 128
@@ -115,7 +73,7 @@ _BUDGET_ENTRIES = 5.0e7
 _BUDGET_WORK = 1.0e10
 
 
-def product_exponents(K: int, order: int) -> np.ndarray:
+def product_exponents(K: int, order: int) -> Array:
     """Exponent vectors of all monomials of degree <= ``order`` in ``K`` eigenfunctions.
 
     Parameters
@@ -142,7 +100,7 @@ def product_exponents(K: int, order: int) -> np.ndarray:
     return np.vstack(rows)
 
 
-def raw_products(eigenvectors, exponents) -> np.ndarray:
+def raw_products(eigenvectors: ArrayLike, exponents: ArrayLike) -> Array:
     """Pointwise products of eigenfunctions given by exponent vectors.
 
     Parameters
@@ -180,7 +138,7 @@ def raw_products(eigenvectors, exponents) -> np.ndarray:
     return out
 
 
-def _monomials(phi: np.ndarray, exps: np.ndarray) -> np.ndarray:
+def _monomials(phi: Array, exps: Array) -> Array:
     """Products for a block of exponents, without any parent columns (one block of memory)."""
     n, K = phi.shape
     deg = exps.sum(axis=1)
@@ -221,20 +179,20 @@ class ProductBasis:
     rank : int
     """
 
-    basis: np.ndarray
-    kept: np.ndarray
-    exponents: np.ndarray
-    coefficients: np.ndarray
-    mass: np.ndarray
+    basis: Array
+    kept: Array
+    exponents: Array
+    coefficients: Array
+    mass: Array
     tolerance: float
     rank: int
 
-    def project(self, signal) -> np.ndarray:
+    def project(self, signal: ArrayLike) -> Array:
         """Coefficients ``basis^T M f``: (rank,) or (rank, c) for an (n,) or (n, c) signal."""
         f = check_vertex_signal(signal, self.basis.shape[0])
         return self.basis.T @ (self.mass[:, None] * f if f.ndim == 2 else self.mass * f)
 
-    def reconstruct(self, coeffs) -> np.ndarray:
+    def reconstruct(self, coeffs: ArrayLike) -> Array:
         """Signal ``basis @ coeffs``: (n,) or (n, c)."""
         c = check_coefficients(coeffs, self.rank)
         return self.basis @ c
@@ -246,7 +204,7 @@ def default_product_tolerance(n_vertices: int) -> float:
     return max(DEFAULT_PRODUCT_TOLERANCE, 2.0 / max(int(n_vertices), 1))
 
 
-def orthogonal_products(eigenvectors, mass, order: int, *, K: int | None = None,
+def orthogonal_products(eigenvectors: ArrayLike, mass: ArrayLike, order: int, *, K: int | None = None,
                         tol: float | None = None,
                         block_size: int = DEFAULT_BLOCK_SIZE) -> ProductBasis:
     """Mass-orthonormal basis of the products of the first ``K`` eigenfunctions.
@@ -281,10 +239,10 @@ def orthogonal_products(eigenvectors, mass, order: int, *, K: int | None = None,
     tol : float
         Relative remaining norm below which a product is dependent, in (0, 1).
         The default, ``max(1e-3, 2 / n)`` (:func:`default_product_tolerance`),
-        treats discretisation-level dependencies as dependencies; see
-        :data:`DEFAULT_PRODUCT_TOLERANCE` for the measurements behind it. On the 10,242-vertex icosphere the
-        order-2 products of the first four eigenfunctions span 9 dimensions,
-        not 10 (x^2 + y^2 + z^2 = 1).
+        treats discretisation-level dependencies as dependencies (see
+        :data:`DEFAULT_PRODUCT_TOLERANCE`): on a unit icosphere the order-2
+        products of the first four eigenfunctions span 9 dimensions, not 10
+        (x^2 + y^2 + z^2 = 1).
     block_size : int
         Columns per block.
 
@@ -349,17 +307,16 @@ The Gram route resolves remaining norms to about ``sqrt(eps) ~ 1.5e-8`` of a
 column's norm, ample for tolerances of 1e-6 and above."""
 
 
-def _split_block(scaled: np.ndarray, m: np.ndarray, sw: np.ndarray, tol: float):
+def _split_block(scaled: Array, m: Array, sw: Array, tol: float) -> tuple[Array, Array, Array]:
     """Greedy rank-revealing split of a block already orthogonal to the accepted basis.
 
     Each column of ``scaled`` is divided by its original norm, so its
     remaining norm after the columns accepted so far is directly the relative
     remainder compared with ``tol``. Columns are accepted one at a time, always
-    the one with the largest remainder (column pivoting: on the 10k-vertex
-    sphere cases measured for :data:`DEFAULT_PRODUCT_TOLERANCE` the smallest
-    kept remainder is 26 times the largest dropped one; taking the columns in
-    their own order shrinks that factor to 1.1, leaving no room for a
-    tolerance); among remainders equal to within 1e-9 the earliest wins, so rounding does not decide
+    the one with the largest remainder (column pivoting: taken in their own
+    order, the gap between kept and dropped remainders on the sphere cases
+    shrinks until no tolerance separates them; figures in docs/measurements.md,
+    "Eigenfunction products"); among remainders equal to within 1e-9 the earliest wins, so rounding does not decide
     ties (the constant 1 is kept, not the constant eigenfunction).
 
     Returns
@@ -384,9 +341,9 @@ def _split_block(scaled: np.ndarray, m: np.ndarray, sw: np.ndarray, tol: float):
     acc: list[int] = []
     live = np.ones(b, dtype=bool)
     if tol >= _GRAM_TOLERANCE:
-        G = scaled.T @ (m[:, None] * scaled)
+        G: Array = scaled.T @ (m[:, None] * scaled)
         G = 0.5 * (G + G.T)
-        rest = np.diag(G).copy()  # squared remainders
+        rest: Array = np.diag(G).copy()  # squared remainders
         while live.any():
             j = _pivot(rest, live, tol * tol)
             if j < 0:
@@ -410,7 +367,7 @@ def _split_block(scaled: np.ndarray, m: np.ndarray, sw: np.ndarray, tol: float):
         U2 = sla.cholesky(0.5 * (G2 + G2.T), lower=False)
         new = sla.solve_triangular(U2, new.T, trans="T", lower=False).T
         return new, U2 @ tri, idx
-    W = sw[:, None] * scaled
+    W: Array = sw[:, None] * scaled
     Qw = np.empty((n, b))
     rest = np.einsum("ij,ij->j", W, W)
     while live.any():
@@ -418,7 +375,7 @@ def _split_block(scaled: np.ndarray, m: np.ndarray, sw: np.ndarray, tol: float):
         if j < 0:
             break
         a = len(acc)
-        w = W[:, j].copy()
+        w: Array = W[:, j].copy()
         for _ in range(2):
             if a:
                 c = Qw[:, :a].T @ w
@@ -450,7 +407,7 @@ def _split_block(scaled: np.ndarray, m: np.ndarray, sw: np.ndarray, tol: float):
     return new, tri[:a], idx
 
 
-def _pivot(rest: np.ndarray, live: np.ndarray, floor: float) -> int:
+def _pivot(rest: Array, live: Array, floor: float) -> int:
     """Live column with the largest squared remainder (earliest within 1e-9), or -1 below ``floor``."""
     cand = np.where(live, rest, -np.inf)
     best = cand.max()
@@ -478,9 +435,9 @@ class LeastSquaresProducts:
         precision times the largest dimension (the LAPACK default).
     """
 
-    products: np.ndarray
-    exponents: np.ndarray
-    mass: np.ndarray
+    products: Array
+    exponents: Array
+    mass: Array
     rcond: float | None
 
     @property
@@ -488,22 +445,22 @@ class LeastSquaresProducts:
         """Number of coefficients (the raw product count; dependent ones are not removed)."""
         return self.products.shape[1]
 
-    def project(self, signal) -> np.ndarray:
+    def project(self, signal: ArrayLike) -> Array:
         """Least-squares coefficients: (r,) or (r, c)."""
         f = check_vertex_signal(signal, self.products.shape[0])
         sw = np.sqrt(self.mass)
         A = sw[:, None] * self.products
         b = sw[:, None] * f if f.ndim == 2 else sw * f
         c, *_ = sla.lstsq(A, b, cond=self.rcond)
-        return c
+        return np.asarray(c)
 
-    def reconstruct(self, coeffs) -> np.ndarray:
+    def reconstruct(self, coeffs: ArrayLike) -> Array:
         """Signal ``P @ coeffs``: (n,) or (n, c)."""
         c = check_coefficients(coeffs, self.rank)
         return self.products @ c
 
 
-def least_squares_products(eigenvectors, mass, order: int, *, K: int | None = None,
+def least_squares_products(eigenvectors: ArrayLike, mass: ArrayLike, order: int, *, K: int | None = None,
                            rcond: float | None = None) -> LeastSquaresProducts:
     """Raw eigenfunction products with a mass-weighted least-squares fit.
 
@@ -536,8 +493,8 @@ def product_budget(n_vertices: int, K: int, order: int) -> tuple[int, int]:
     Rule: with ``r = C(K + order, order)`` products on ``n`` vertices, keep
     ``r * n <= 5e7`` (the basis in float64 stays under 400 MB) and
     ``r**2 * n <= 1e10`` (two Gram-Schmidt passes cost about ``4 n r^2``
-    flops; measured: 969 products on 10,242 vertices, none dependent, 6.7 s on
-    one busy core, i.e. about 1e10 in these units). ``K`` is lowered first,
+    flops: several seconds on one core at the bound, figure in
+    docs/measurements.md, "Eigenfunction products"). ``K`` is lowered first,
     down to 2 (the constant and one eigenfunction); then ``order``, down to 1.
 
     Parameters
@@ -572,7 +529,7 @@ def product_budget(n_vertices: int, K: int, order: int) -> tuple[int, int]:
 
 # --- validation shared with approximation.py and descriptors.py ---------------------------------
 
-def _check_K_order(K, order) -> tuple[int, int]:
+def _check_K_order(K: object, order: object) -> tuple[int, int]:
     if not isinstance(order, (int, np.integer)) or isinstance(order, bool) or not 1 <= order <= MAX_ORDER:
         raise ValueError(f"order must be an integer from 1 to {MAX_ORDER}, got {order!r}")
     if not isinstance(K, (int, np.integer)) or isinstance(K, bool) or K < 1:
@@ -580,7 +537,7 @@ def _check_K_order(K, order) -> tuple[int, int]:
     return int(K), int(order)
 
 
-def _resolve_K(K, order, phi: np.ndarray) -> int:
+def _resolve_K(K: int | None, order: int, phi: Array) -> int:
     k = phi.shape[1]
     if K is None:
         _check_K_order(k, order)
@@ -591,7 +548,7 @@ def _resolve_K(K, order, phi: np.ndarray) -> int:
     return K
 
 
-def _check_exponents(exponents, k: int) -> np.ndarray:
+def _check_exponents(exponents: ArrayLike, k: int) -> Array:
     e = np.asarray(exponents)
     if e.ndim != 2 or e.shape[0] == 0 or not np.issubdtype(e.dtype, np.integer):
         raise ValueError(f"exponents must be a non-empty (r, K) integer array, got {e.dtype} {e.shape}")

@@ -44,8 +44,10 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.sparse as sp
 
+from ..common.arrays import Array, ArrayLike
+from .geometry import check_mass_kind, check_lengths, cotangents_from_lengths, edge_lengths, face_edges, heron_areas, lumped_mass
 from .laplacian import intrinsic_laplacian
-from ..intake.preparation import validate_mesh
+from ..intake.preparation import group_edges, validate_mesh
 
 __all__ = ["robust_laplacian", "tufted_cover", "mollify_lengths", "intrinsic_delaunay", "IntrinsicTriangulation"]
 
@@ -73,26 +75,13 @@ class IntrinsicTriangulation:
         Number of edge flips performed to reach this triangulation.
     """
 
-    triangles: np.ndarray
-    twin: np.ndarray
-    lengths: np.ndarray
+    triangles: Array
+    twin: Array
+    lengths: Array
     flips: int = 0
 
 
-def _face_edges(f: np.ndarray):
-    """Per face-edge (row ``3t + c``): endpoints p -> q (corner c+1 -> c+2) and the opposite vertex."""
-    p = f[:, [1, 2, 0]].ravel()
-    q = f[:, [2, 0, 1]].ravel()
-    w = f.ravel()
-    return p, q, w
-
-
-def _edge_lengths(v: np.ndarray, f: np.ndarray) -> np.ndarray:
-    p, q, _ = _face_edges(f)
-    return np.linalg.norm(v[q] - v[p], axis=1).reshape(f.shape)
-
-
-def _clean_faces(f: np.ndarray) -> np.ndarray:
+def _clean_faces(f: Array) -> Array:
     """Drop faces with a repeated vertex: they have no area and no interior."""
     keep = (f[:, 0] != f[:, 1]) & (f[:, 1] != f[:, 2]) & (f[:, 2] != f[:, 0])
     if not keep.any():
@@ -100,7 +89,7 @@ def _clean_faces(f: np.ndarray) -> np.ndarray:
     return f if keep.all() else f[keep]
 
 
-def tufted_cover(vertices, faces) -> tuple[np.ndarray, np.ndarray]:
+def tufted_cover(vertices: ArrayLike, faces: ArrayLike) -> tuple[Array, Array]:
     """Connectivity of the tufted cover of a triangle mesh.
 
     Parameters
@@ -135,10 +124,10 @@ def tufted_cover(vertices, faces) -> tuple[np.ndarray, np.ndarray]:
     return _tufted_cover(v, f)
 
 
-def _tufted_cover(v: np.ndarray, f: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def _tufted_cover(v: Array, f: Array) -> tuple[Array, Array]:
     n, m = v.shape[0], f.shape[0]
     triangles = np.concatenate([f, f[:, [0, 2, 1]]])
-    p, q, w = _face_edges(f)
+    p, q, w = face_edges(f)
     he = np.arange(3 * m, dtype=np.int64)
     t, c = he // 3, he % 3
     front = he
@@ -166,15 +155,11 @@ def _tufted_cover(v: np.ndarray, f: np.ndarray) -> tuple[np.ndarray, np.ndarray]
     r = v[w] - v[u]
     theta = np.arctan2(np.einsum("ij,ij->i", r, b1), np.einsum("ij,ij->i", r, b0))
 
-    key = u * np.int64(n) + vv
-    order = np.lexsort((theta, key))
-    ks = key[order]
-    start = np.ones(ks.size, dtype=bool)
-    start[1:] = ks[1:] != ks[:-1]
-    group_start = np.flatnonzero(start)
-    group_of = np.cumsum(start) - 1
-    end = np.append(group_start[1:], ks.size)  # one past the last of each group
-    nxt = np.arange(ks.size) + 1
+    groups = group_edges(u, vv, n, secondary=theta)
+    order, group_start = groups.order, groups.starts
+    group_of = groups.group_of()
+    end = group_start + groups.counts  # one past the last of each group
+    nxt = np.arange(order.size) + 1
     last = nxt == end[group_of]
     nxt[last] = group_start[group_of[last]]
     Ps, Ns = P[order], N[order][nxt]
@@ -184,7 +169,13 @@ def _tufted_cover(v: np.ndarray, f: np.ndarray) -> tuple[np.ndarray, np.ndarray]
     return triangles, twin
 
 
-def mollify_lengths(lengths, faces, *, mollify_factor: float = 1e-5) -> tuple[np.ndarray, float]:
+def check_mollify_factor(mollify_factor: float) -> None:
+    """Raise ValueError unless the mollification factor is finite and non-negative."""
+    if not (np.isfinite(mollify_factor) and mollify_factor >= 0):
+        raise ValueError(f"mollify_factor must be finite and non-negative, got {mollify_factor!r}")
+
+
+def mollify_lengths(lengths: ArrayLike, faces: ArrayLike, *, mollify_factor: float = 1e-5) -> tuple[Array, float]:
     """Add one small length to every edge so all triangles are strictly valid.
 
     The rule of Sharp and Crane (2020, section 4.5): with
@@ -207,19 +198,13 @@ def mollify_lengths(lengths, faces, *, mollify_factor: float = 1e-5) -> tuple[np
     lengths : (m, 3) float64 array
     epsilon : float
     """
-    lengths = np.asarray(lengths, dtype=np.float64)
-    f = np.asarray(faces, dtype=np.int64)
-    if lengths.ndim != 2 or lengths.shape[1] != 3 or lengths.shape != f.shape:
-        raise ValueError(f"lengths must have the shape of faces (m, 3), got {lengths.shape} and {f.shape}")
-    if not np.isfinite(lengths).all() or (lengths < 0).any():
-        raise ValueError("edge lengths must be finite and non-negative")
-    if not (np.isfinite(mollify_factor) and mollify_factor >= 0):
-        raise ValueError(f"mollify_factor must be finite and non-negative, got {mollify_factor!r}")
+    lengths, f = check_lengths(lengths, faces)
+    check_mollify_factor(mollify_factor)
     if mollify_factor == 0 or lengths.size == 0:
         return lengths.copy(), 0.0
-    p, q, _ = _face_edges(f)
-    key = np.minimum(p, q) * (np.int64(f.max()) + 1) + np.maximum(p, q)
-    _, first = np.unique(key, return_index=True)
+    p, q, _ = face_edges(f)
+    groups = group_edges(p, q, int(f.max()) + 1)
+    first = groups.order[groups.starts]
     delta = mollify_factor * float(lengths.ravel()[first].mean())
     # slack of corner c's inequality: l_{c+1} + l_{c+2} - l_c
     slack = lengths[:, [1, 2, 0]] + lengths[:, [2, 0, 1]] - lengths
@@ -227,28 +212,13 @@ def mollify_lengths(lengths, faces, *, mollify_factor: float = 1e-5) -> tuple[np
     return lengths + epsilon, epsilon
 
 
-def _areas(l: np.ndarray) -> np.ndarray:
-    """Triangle areas from (k, 3) edge lengths, Heron's formula in Kahan's stable form."""
-    s = -np.sort(-l, axis=1)
-    x, y, z = s[:, 0], s[:, 1], s[:, 2]
-    prod = (x + (y + z)) * (z - (x - y)) * (z + (x - y)) * (x + (y - z))
-    return 0.25 * np.sqrt(np.clip(prod, 0.0, None))
-
-
-def _half_cot(lens: np.ndarray, h: np.ndarray) -> np.ndarray:
+def _half_cot(lens: Array, h: Array) -> Array:
     """Half the cotangent of the angle opposite each halfedge ``h`` (0 in a zero-area triangle)."""
-    t, c = h // 3, h % 3
-    tl = lens.reshape(-1, 3)[t]
-    rows = np.arange(h.size)
-    a = tl[rows, c]
-    b = tl[rows, (c + 1) % 3]
-    d = tl[rows, (c + 2) % 3]
-    area = _areas(tl)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        return np.where(area > 0, (b * b + d * d - a * a) / (8.0 * np.where(area > 0, area, 1.0)), 0.0)
+    tl = lens.reshape(-1, 3)[h // 3]
+    return np.asarray(0.5 * cotangents_from_lengths(tl, heron_areas(tl))[np.arange(h.size), h % 3])
 
 
-def intrinsic_delaunay(triangles, twin, lengths, *, max_flips: int | None = None) -> IntrinsicTriangulation:
+def intrinsic_delaunay(triangles: ArrayLike, twin: ArrayLike, lengths: ArrayLike, *, max_flips: int | None = None) -> IntrinsicTriangulation:
     """Flip edges of an intrinsic triangulation until every cotangent weight is non-negative.
 
     An edge is flipped while its weight ``(cot a + cot b) / 2`` is below
@@ -301,84 +271,34 @@ def intrinsic_delaunay(triangles, twin, lengths, *, max_flips: int | None = None
     return IntrinsicTriangulation(tri, tw, lens, flips)
 
 
-def _flip_to_delaunay(tri: np.ndarray, tw: np.ndarray, lens: np.ndarray, max_flips: int) -> int:
+def _flip_to_delaunay(tri: Array, tw: Array, lens: Array, max_flips: int) -> int:
     """Flip in place (``lens`` is a flat view, one entry per halfedge); returns the number of flips."""
     n_he = tw.size
-    n_tri = n_he // 3
-    remap = np.arange(n_he, dtype=np.int64)  # identity outside a round's update
-    none = np.iinfo(np.int64).max
-    owner = np.full(n_tri, none, dtype=np.int64)
+    owner = np.full(n_he // 3, _NONE, dtype=np.int64)
+    remap = np.arange(n_he, dtype=np.int64)
     cand = np.flatnonzero(np.arange(n_he) < tw)  # one halfedge per edge
     flips = 0
     while cand.size:
         g = tw[cand]
-        A, B = cand // 3, g // 3
         weight = _half_cot(lens, cand) + _half_cot(lens, g)
-        bad = (weight < -_DELAUNAY_TOL) & (A != B)
+        bad = (weight < -_DELAUNAY_TOL) & (cand // 3 != g // 3)
         if not bad.any():
             break
-        cand, g, A, B, weight = cand[bad], g[bad], A[bad], B[bad], weight[bad]
-
-        # An independent set: each triangle goes to its most negative edge.
-        rank = np.empty(cand.size, dtype=np.int64)
-        rank[np.argsort(weight, kind="stable")] = np.arange(cand.size)
-        np.minimum.at(owner, A, rank)
-        np.minimum.at(owner, B, rank)
-        sel = (owner[A] == rank) & (owner[B] == rank)
-        owner[A] = none
-        owner[B] = none
-
-        hh, gg, A, B = cand[sel], g[sel], A[sel], B[sel]
-        a, b = hh % 3, gg % 3
-        k = tri[A, a]
-        i = tri[A, (a + 1) % 3]
-        j = tri[A, (a + 2) % 3]
-        l = tri[B, b]
-        h_jk, h_ki = 3 * A + (a + 1) % 3, 3 * A + (a + 2) % 3
-        h_il, h_lj = 3 * B + (b + 1) % 3, 3 * B + (b + 2) % 3
-        l_ij, l_jk, l_ki, l_il, l_lj = lens[hh], lens[h_jk], lens[h_ki], lens[h_il], lens[h_lj]
-        # Planar layout: i at the origin, j at (l_ij, 0), k above, l below.
-        area_a = _areas(np.column_stack([l_ij, l_jk, l_ki]))
-        area_b = _areas(np.column_stack([l_ij, l_il, l_lj]))
-        with np.errstate(divide="ignore", invalid="ignore"):
-            dx = (l_ki * l_ki - l_jk * l_jk - l_il * l_il + l_lj * l_lj) / (2.0 * l_ij)
-            dy = 2.0 * (area_a + area_b) / l_ij
-        d = np.hypot(dx, dy)
-        ok = np.isfinite(d)
-        unflippable = cand[sel][~ok]
+        cand, weight = cand[bad], weight[bad]
+        sel = _independent(cand, tw[cand], weight, owner)
         rest = cand[~sel]
-        if not ok.all():
-            hh, A, B, k, i, j, l, d = hh[ok], A[ok], B[ok], k[ok], i[ok], j[ok], l[ok], d[ok]
-            h_jk, h_ki, h_il, h_lj = h_jk[ok], h_ki[ok], h_il[ok], h_lj[ok]
-            l_jk, l_ki, l_il, l_lj = l_jk[ok], l_ki[ok], l_il[ok], l_lj[ok]
-        if hh.size == 0:
+        hh = cand[sel]
+        d = _flipped_lengths(tw, lens, hh)
+        ok = np.isfinite(d)
+        unflippable = hh[~ok]
+        if not ok.any():
             # only unflippable edges were chosen: retire them and carry on
             cand = np.setdiff1d(rest, unflippable)  # sorted, unique, canonical
             continue
-
-        # New triangles A = (l, k, i), B = (k, l, j): halfedges
-        # 3A+0 = k->i, 3A+1 = i->l, 3A+2 = l->k; 3B+0 = l->j, 3B+1 = j->k, 3B+2 = k->l.
-        old_out = np.concatenate([h_ki, h_il, h_lj, h_jk])
-        new_out = np.concatenate([3 * A, 3 * A + 1, 3 * B, 3 * B + 1])
-        out_len = np.concatenate([l_ki, l_il, l_lj, l_jk])
-        out_twin = tw[old_out]
-        remap[old_out] = new_out
-        out_twin = remap[out_twin]
-        remap[old_out] = old_out
-        tri[A] = np.column_stack([l, k, i])
-        tri[B] = np.column_stack([k, l, j])
-        lens[new_out] = out_len
-        lens[3 * A + 2] = d
-        lens[3 * B + 2] = d
-        tw[new_out] = out_twin
-        tw[out_twin] = new_out
-        tw[3 * A + 2] = 3 * B + 2
-        tw[3 * B + 2] = 3 * A + 2
-
-        flips += hh.size
+        touched = _flip(tri, tw, lens, hh[ok], d[ok], remap)
+        flips += int(ok.sum())
         if flips > max_flips:
             raise RuntimeError(f"intrinsic Delaunay flips did not converge within {max_flips} flips")
-        touched = np.concatenate([3 * A, 3 * A + 1, 3 * A + 2, 3 * B, 3 * B + 1, 3 * B + 2])
         cand = np.concatenate([rest, touched])
         if unflippable.size:
             cand = np.setdiff1d(cand, unflippable)
@@ -386,15 +306,86 @@ def _flip_to_delaunay(tri: np.ndarray, tw: np.ndarray, lens: np.ndarray, max_fli
     return flips
 
 
-def _unique_sorted(x: np.ndarray) -> np.ndarray:
+_NONE = np.iinfo(np.int64).max
+
+
+def _independent(cand: Array, g: Array, weight: Array, owner: Array) -> Array:
+    """Mask of edges to flip in one round: each triangle goes to its most negative edge.
+
+    ``owner`` is scratch space, one entry per triangle, all ``_NONE`` on entry and on return.
+    """
+    A, B = cand // 3, g // 3
+    rank = np.empty(cand.size, dtype=np.int64)
+    rank[np.argsort(weight, kind="stable")] = np.arange(cand.size)
+    np.minimum.at(owner, A, rank)
+    np.minimum.at(owner, B, rank)
+    sel = (owner[A] == rank) & (owner[B] == rank)
+    owner[A] = _NONE
+    owner[B] = _NONE
+    return np.asarray(sel)
+
+
+def _flipped_lengths(tw: Array, lens: Array, hh: Array) -> Array:
+    """Length of the edge each halfedge ``hh`` would become after a flip (not finite where it cannot).
+
+    Planar layout of the two triangles: i at the origin, j at (l_ij, 0), the
+    opposite vertex k above and l below; the new edge joins k and l.
+    """
+    gg = tw[hh]
+    A, B, a, b = hh // 3, gg // 3, hh % 3, gg % 3
+    l_ij = lens[hh]
+    l_jk, l_ki = lens[3 * A + (a + 1) % 3], lens[3 * A + (a + 2) % 3]
+    l_il, l_lj = lens[3 * B + (b + 1) % 3], lens[3 * B + (b + 2) % 3]
+    area_a = heron_areas(np.column_stack([l_ij, l_jk, l_ki]))
+    area_b = heron_areas(np.column_stack([l_ij, l_il, l_lj]))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        dx = (l_ki * l_ki - l_jk * l_jk - l_il * l_il + l_lj * l_lj) / (2.0 * l_ij)
+        dy = 2.0 * (area_a + area_b) / l_ij
+    return np.asarray(np.hypot(dx, dy))
+
+
+def _flip(tri: Array, tw: Array, lens: Array, hh: Array, d: Array,
+          remap: Array) -> Array:
+    """Flip the edges of halfedges ``hh`` (pairwise disjoint triangles) to new length ``d``, in place.
+
+    ``remap`` is scratch space, the identity over halfedges on entry and on
+    return. Returns the halfedges of the changed triangles.
+    """
+    gg = tw[hh]
+    A, B, a, b = hh // 3, gg // 3, hh % 3, gg % 3
+    k, i, j, l = tri[A, a], tri[A, (a + 1) % 3], tri[A, (a + 2) % 3], tri[B, b]
+    h_jk, h_ki = 3 * A + (a + 1) % 3, 3 * A + (a + 2) % 3
+    h_il, h_lj = 3 * B + (b + 1) % 3, 3 * B + (b + 2) % 3
+    # New triangles A = (l, k, i), B = (k, l, j): halfedges
+    # 3A+0 = k->i, 3A+1 = i->l, 3A+2 = l->k; 3B+0 = l->j, 3B+1 = j->k, 3B+2 = k->l.
+    old_out = np.concatenate([h_ki, h_il, h_lj, h_jk])
+    new_out = np.concatenate([3 * A, 3 * A + 1, 3 * B, 3 * B + 1])
+    out_len = lens[old_out]
+    # Outer twins that are themselves moved (two flipped triangles adjacent) follow the move.
+    remap[old_out] = new_out
+    out_twin = remap[tw[old_out]]
+    remap[old_out] = old_out
+    tri[A] = np.column_stack([l, k, i])
+    tri[B] = np.column_stack([k, l, j])
+    lens[new_out] = out_len
+    lens[3 * A + 2] = d
+    lens[3 * B + 2] = d
+    tw[new_out] = out_twin
+    tw[out_twin] = new_out
+    tw[3 * A + 2] = 3 * B + 2
+    tw[3 * B + 2] = 3 * A + 2
+    return np.concatenate([3 * A, 3 * A + 1, 3 * A + 2, 3 * B, 3 * B + 1, 3 * B + 2])
+
+
+def _unique_sorted(x: Array) -> Array:
     x = np.sort(x)
     keep = np.ones(x.size, dtype=bool)
     keep[1:] = x[1:] != x[:-1]
-    return x[keep]
+    return np.asarray(x[keep])
 
 
-def robust_laplacian(vertices, faces, *, mollify_factor: float = 1e-5,
-                     mass: str = "barycentric") -> tuple[sp.csr_matrix, np.ndarray]:
+def robust_laplacian(vertices: ArrayLike, faces: ArrayLike, *, mollify_factor: float = 1e-5,
+                     mass: str = "barycentric") -> tuple[sp.csr_matrix, Array]:
     """Positive semidefinite Laplacian for any triangle mesh (Sharp and Crane 2020).
 
     Parameters
@@ -422,43 +413,25 @@ def robust_laplacian(vertices, faces, *, mollify_factor: float = 1e-5,
         Sums to the surface area (plus the small mollification increase).
         Vertices in no face get 0.
     """
-    return robust_operators(vertices, faces, mollify_factor=mollify_factor, mass=mass)[:2]
+    L, m, _, _ = robust_operators(vertices, faces, mollify_factor=mollify_factor, mass=mass)
+    return L, m
 
 
-def robust_operators(vertices, faces, *, mollify_factor: float, mass: str):
+def robust_operators(vertices: ArrayLike, faces: ArrayLike, *, mollify_factor: float,
+                     mass: str) -> tuple[sp.csr_matrix, Array, IntrinsicTriangulation, float]:
+    """:func:`robust_laplacian`, with the intrinsic triangulation reached and the mollification ``epsilon``."""
     v, f = validate_mesh(vertices, faces)
-    if mass not in ("barycentric", "voronoi"):
-        raise ValueError(f"unknown mass kind {mass!r}; expected 'barycentric' or 'voronoi'")
-    if not (np.isfinite(mollify_factor) and mollify_factor >= 0):
-        raise ValueError(f"mollify_factor must be finite and non-negative, got {mollify_factor!r}")
+    check_mass_kind(mass)
+    check_mollify_factor(mollify_factor)
     f = _clean_faces(f)
-    lengths, epsilon = mollify_lengths(_edge_lengths(v, f), f, mollify_factor=mollify_factor)
+    lengths, epsilon = mollify_lengths(edge_lengths(v, f), f, mollify_factor=mollify_factor)
     triangles, twin = _tufted_cover(v, f)
     lens = np.concatenate([lengths, lengths[:, [0, 2, 1]]])  # back sheet (f0, f2, f1)
     flips = _flip_to_delaunay(triangles, twin, lens.ravel(), 100 * twin.size + 1000)
     n = v.shape[0]
     L, m = intrinsic_laplacian(lens, triangles, n)
     if mass == "voronoi":
-        m = _mixed_voronoi_lengths(lens, triangles, n)
+        m = lumped_mass(lens, triangles, n, "voronoi")
     info = IntrinsicTriangulation(triangles, twin, lens, flips)
     return (0.5 * L).tocsr(), 0.5 * m, info, epsilon
 
-
-def _mixed_voronoi_lengths(lens: np.ndarray, tri: np.ndarray, n: int) -> np.ndarray:
-    """Mixed Voronoi areas (Meyer et al. 2003) per vertex, from edge lengths."""
-    area = _areas(lens)
-    sq = lens * lens
-    cot = np.zeros_like(lens)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        for c in range(3):
-            b, d = (c + 1) % 3, (c + 2) % 3
-            cot[:, c] = np.where(area > 0, (sq[:, b] + sq[:, d] - sq[:, c]) / (4.0 * np.where(area > 0, area, 1.0)), 0.0)
-    vor = np.empty_like(lens)
-    for c in range(3):
-        b, d = (c + 1) % 3, (c + 2) % 3
-        # the two edges at corner c lie opposite corners b and d
-        vor[:, c] = (sq[:, b] * cot[:, b] + sq[:, d] * cot[:, d]) / 8.0
-    obtuse = cot < 0
-    per_corner = np.where(obtuse.any(axis=1)[:, None],
-                          np.where(obtuse, area[:, None] / 2.0, area[:, None] / 4.0), vor)
-    return np.bincount(tri.ravel(), weights=per_corner.ravel(), minlength=n).astype(np.float64)
