@@ -42,6 +42,7 @@ from .engine.preview import approximate_signals
 from .engine.shape import Shape
 from .engine.signals import Signal as EngineSignal
 from .engine.signals import check_signal
+from .worker import limited_threads
 
 if TYPE_CHECKING:
     from numpy.typing import NDArray
@@ -186,8 +187,10 @@ def _nothing(fraction: float, text: str) -> None:
     return None
 
 
+@limited_threads()
 def run_job(inp: JobInput, progress: Progress | None = None) -> JobOutput:
-    """Run one job through the engine.
+    """Run one job through the engine, with the worker's BLAS thread rule
+    (:func:`.worker.limited_threads`) in this process too.
 
     Raises
     ------

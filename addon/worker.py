@@ -21,11 +21,14 @@ import subprocess
 import sys
 import tempfile
 import time
+from collections.abc import Iterator, Mapping
+from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-__all__ = ["Status", "Worker", "child_environment", "python_executable", "shared_worker", "stop_shared_worker"]
+__all__ = ["Status", "Worker", "child_environment", "limited_threads", "openblas_thread_controls",
+           "python_executable", "shared_worker", "stop_shared_worker", "thread_limits"]
 
 _PACKAGE = "_overtone_worker"
 
@@ -44,17 +47,83 @@ def python_executable() -> str:
 _THREAD_VARIABLES = ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS", "VECLIB_MAXIMUM_THREADS")
 
 
+def thread_limits(environ: Mapping[str, str]) -> dict[str, str]:
+    """The rule for every engine run, here or in the worker: the BLAS thread
+    variables the user left unset in ``environ``, each set to one thread."""
+    return {name: "1" for name in _THREAD_VARIABLES if name not in environ}
+
+
 def child_environment() -> dict[str, str]:
     """Environment of the worker process: this one's, with ``sys.path`` as
-    ``PYTHONPATH``, no user site-packages, and one BLAS thread unless the user
-    chose otherwise."""
+    ``PYTHONPATH``, no user site-packages, and :func:`thread_limits`."""
     env = dict(os.environ)
     paths = [p for p in sys.path if p and os.path.isdir(p)]
     env["PYTHONPATH"] = os.pathsep.join(paths)
     env["PYTHONNOUSERSITE"] = "1"
-    for name in _THREAD_VARIABLES:
-        env.setdefault(name, "1")
+    env.update(thread_limits(env))
     return env
+
+
+# In this process the variables come too late: OpenBLAS reads them once, when
+# it is loaded, and Blender (or the script) loaded numpy long before. The
+# OpenBLAS builds inside the numpy and SciPy wheels export a setter under one of
+# these names (prefix "scipy_" in the SciPy wheels, suffix "64_" for the 64-bit
+# integer builds; checked with ``nm -D`` on numpy 1.26.4 and 2.4.6 and SciPy
+# 1.17.1 for Linux). threadpoolctl does the same, but it is not in Blender.
+_OPENBLAS_SETTERS = tuple(f"{prefix}openblas_set_num_threads{suffix}"
+                          for prefix in ("", "scipy_") for suffix in ("", "64_", "_64"))
+
+
+def _loaded_library(path: Path) -> Any:
+    """``path`` as a ctypes library if this process has already loaded it, else None."""
+    import ctypes
+    try:
+        if sys.platform == "win32":
+            handle = ctypes.windll.kernel32.GetModuleHandleW(str(path))  # type: ignore[attr-defined]
+            return ctypes.CDLL(str(path), handle=handle) if handle else None
+        return ctypes.CDLL(str(path), mode=os.RTLD_NOLOAD | os.RTLD_NOW)
+    except OSError:  # not loaded (RTLD_NOLOAD), or not a library
+        return None
+
+
+def openblas_thread_controls() -> list[tuple[Any, Any]]:
+    """(set, get) function pairs of every OpenBLAS that the loaded numpy and
+    SciPy brought (their wheels keep it in ``numpy.libs`` / ``scipy.libs``,
+    or ``.dylibs`` inside the package on macOS). A numpy built without
+    OpenBLAS (other BLAS, or none) contributes nothing."""
+    controls = []
+    for name in ("numpy", "scipy"):
+        where = getattr(sys.modules.get(name), "__file__", None)
+        if not where:
+            continue
+        package = Path(where).parent
+        for folder in (package.parent / f"{name}.libs", package / ".dylibs", package / ".libs"):
+            for path in sorted(folder.glob("*openblas*")) if folder.is_dir() else ():
+                library = _loaded_library(path)
+                for setter in _OPENBLAS_SETTERS if library is not None else ():
+                    getter = setter.replace("_set_", "_get_")
+                    if hasattr(library, setter) and hasattr(library, getter):
+                        controls.append((getattr(library, setter), getattr(library, getter)))
+                        break
+    return controls
+
+
+@contextmanager
+def limited_threads() -> Iterator[None]:
+    """Run the enclosed engine work in this process under :func:`thread_limits`:
+    OpenBLAS (numpy's and SciPy's) at one thread unless the user set
+    ``OPENBLAS_NUM_THREADS``; the previous counts are restored afterwards.
+    Usable as a decorator."""
+    wanted = thread_limits(os.environ).get("OPENBLAS_NUM_THREADS")
+    controls = openblas_thread_controls() if wanted is not None else []
+    previous = [int(get()) for _, get in controls]
+    for set_threads, _ in controls:
+        set_threads(int(wanted or 1))
+    try:
+        yield
+    finally:
+        for (set_threads, _), count in zip(controls, previous):
+            set_threads(count)
 
 
 @dataclass(frozen=True)
