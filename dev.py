@@ -146,7 +146,7 @@ def cmd_test(extra: list[str]) -> int:
     runs = [
         (engine_py, ["tests", "--ignore=tests/blender", "-q", *extra], "engine tests, numpy 2"),
         (blender_py, ["tests", "-q", *extra],
-         "engine tests on numpy 1.26, and Blender tests in real bpy 5.0.1"),
+         f"engine tests on numpy 1.26, and Blender tests in real bpy {bpy_version('.venv-blender')}"),
     ]
     runs += [(python, ["tests/blender", "-m", "every_blender", "-q", *extra],
               f"Blender tests marked every_blender in real bpy {version}")

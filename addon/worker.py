@@ -86,25 +86,37 @@ def _loaded_library(path: Path) -> Any:
         return None
 
 
-def openblas_thread_controls() -> list[tuple[Any, Any]]:
-    """(set, get) function pairs of every OpenBLAS that the loaded numpy and
-    SciPy brought (their wheels keep it in ``numpy.libs`` / ``scipy.libs``,
-    or ``.dylibs`` inside the package on macOS). A numpy built without
-    OpenBLAS (other BLAS, or none) contributes nothing."""
-    controls = []
+def _openblas_files() -> list[Path]:
+    """OpenBLAS libraries the loaded numpy and SciPy brought (their wheels keep
+    it in ``numpy.libs`` / ``scipy.libs``, or ``.dylibs`` inside the package on
+    macOS) and, on Linux, any other this process has mapped (``/proc/self/maps``)."""
+    found: set[Path] = set()
     for name in ("numpy", "scipy"):
         where = getattr(sys.modules.get(name), "__file__", None)
-        if not where:
-            continue
-        package = Path(where).parent
-        for folder in (package.parent / f"{name}.libs", package / ".dylibs", package / ".libs"):
-            for path in sorted(folder.glob("*openblas*")) if folder.is_dir() else ():
-                library = _loaded_library(path)
-                for setter in _OPENBLAS_SETTERS if library is not None else ():
-                    getter = setter.replace("_set_", "_get_")
-                    if hasattr(library, setter) and hasattr(library, getter):
-                        controls.append((getattr(library, setter), getattr(library, getter)))
-                        break
+        if where:
+            package = Path(where).parent
+            for folder in (package.parent / f"{name}.libs", package / ".dylibs", package / ".libs"):
+                found.update(folder.glob("*openblas*") if folder.is_dir() else ())
+    try:
+        maps = Path("/proc/self/maps").read_text(encoding="utf-8", errors="replace")
+    except OSError:  # not Linux
+        maps = ""
+    found.update(Path(line[line.index("/"):]) for line in maps.splitlines()  # the path ends each line
+                 if "/" in line and "openblas" in line.rsplit("/", 1)[-1].lower())
+    return sorted({path.resolve() for path in found})
+
+
+def openblas_thread_controls() -> list[tuple[Any, Any]]:
+    """(set, get) function pairs of every loaded OpenBLAS (:func:`_openblas_files`).
+    A numpy built without OpenBLAS (other BLAS, or none) contributes nothing."""
+    controls = []
+    for path in _openblas_files():
+        library = _loaded_library(path)
+        for setter in _OPENBLAS_SETTERS if library is not None else ():
+            getter = setter.replace("_set_", "_get_")
+            if hasattr(library, setter) and hasattr(library, getter):
+                controls.append((getattr(library, setter), getattr(library, getter)))
+                break
     return controls
 
 
