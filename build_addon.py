@@ -1,23 +1,34 @@
 #!/usr/bin/env python3
-"""Assemble the Blender extension: ``python build_addon.py`` -> ``dist/overtone-<version>.zip``.
+"""Assemble the Blender extension: one zip per platform in ``dist/``.
 
-The zip holds ``blender_manifest.toml``, the add-on (``addon/*.py`` at the top
-level), the engine as the subpackage ``engine/``, and unmodified SciPy wheels
-under ``wheels/`` for linux-x64, windows-x64, macos-arm64 and macos-x64, each
-for CPython 3.11 (Blender 4.2-5.0) and CPython 3.13 (Blender 5.1). Blender's
-installer keeps only the wheels whose platform and Python tag match the running
-Blender (``bl_pkg/bl_extension_ops.py``, ``_extensions_wheel_filter_for_this_system``),
-so one zip serves every platform and both Python versions.
+``python build_addon.py`` writes ``dist/overtone-<version>-<platform>.zip`` for
+linux_x64, windows_x64, macos_arm64 and macos_x64. Each holds
+``blender_manifest.toml``, the add-on (``addon/*.py`` at the top level), the
+engine as the subpackage ``engine/``, and the unmodified SciPy wheels of its
+platform under ``wheels/``, for CPython 3.11 (Blender 4.2-5.0) and CPython
+3.13 (Blender 5.1).
+
+The split is the one Blender's own ``blender_ext.py build --split-platforms``
+makes (``bl_pkg/cli/blender_ext.py`` in the bpy wheel, 4.2 to 5.0): the same
+file names, the manifest as written plus a ``[build.generated]`` table naming
+the zip's one platform and its wheels (Blender 4.2+ reads that table in place
+of the top-level ``platforms`` and ``wheels``), and only that platform's wheels
+in the zip. It is done here rather than by calling that script so the build
+needs no Blender (standard library only) and stays reproducible; the tests
+compare the two.
+
+``--all-platforms`` writes the single ``dist/overtone-<version>.zip`` with every
+wheel instead (Blender's installer keeps the wheels matching its platform and
+Python: ``bl_pkg/bl_extension_ops.py``, ``_extensions_wheel_filter_for_this_system``).
 
 Wheels are fetched once with ``pip download`` into ``.cache/wheels/`` and
-reused. The zip is deterministic (sorted entries, fixed timestamps and
-permissions); a build whose inputs have not changed reuses the zip in ``dist/``
-(the digest of the inputs sits beside it). When ``bpy`` is importable here,
-Blender's own validator checks the result.
+reused. Each zip is deterministic (sorted entries, fixed timestamps and
+permissions); a zip whose inputs have not changed is reused from ``dist/`` (the
+digest of its inputs sits beside it). When ``bpy`` is importable here,
+Blender's own validator checks every zip written.
 
-Standard library only.
-
-    python build_addon.py [--output-dir DIR] [--force] [--no-validate] [--python 3.11 3.13]
+    python build_addon.py [--platform P ...] [--all-platforms] [--python 3.11 3.13]
+                          [--output-dir DIR] [--force] [--no-validate]
 """
 
 from __future__ import annotations
@@ -25,6 +36,7 @@ from __future__ import annotations
 import argparse
 import hashlib
 import importlib.util
+import platform as platform_module
 import re
 import subprocess
 import sys
@@ -113,11 +125,12 @@ def fetch_wheels(version: str, pythons: tuple[str, ...]) -> list[Path]:
     return sorted(wheels, key=lambda p: p.name)
 
 
-def manifest(version: str, wheels: list[Path]) -> str:
-    """``blender_manifest.toml`` text."""
-    def strings(items: list[str]) -> str:
-        return "[\n" + "".join(f'  "{item}",\n' for item in items) + "]"
+def _strings(items: list[str]) -> str:
+    return "[\n" + "".join(f'  "{item}",\n' for item in items) + "]"
 
+
+def manifest(version: str, wheels: list[Path]) -> str:
+    """``blender_manifest.toml`` text, naming every platform and wheel."""
     return "\n".join([
         'schema_version = "1.0.0"',
         "",
@@ -130,13 +143,46 @@ def manifest(version: str, wheels: list[Path]) -> str:
         'tags = ["Mesh", "Modeling"]',
         'blender_version_min = "4.2.0"',
         'license = ["SPDX:GPL-3.0-or-later"]',
-        f"platforms = {strings([p[0] for p in PLATFORMS])}",
-        f"wheels = {strings([f'./wheels/{w.name}' for w in wheels])}",
+        f"platforms = {_strings([p[0] for p in PLATFORMS])}",
+        f"wheels = {_strings([f'./wheels/{w.name}' for w in wheels])}",
         "",
         "[permissions]",
         f'files = "{PERMISSION_FILES}"',
         "",
     ])
+
+
+def platform_wheels(wheels: list[Path], platform: str) -> list[Path]:
+    """The wheels of one Blender platform (the tag the wheel was fetched for)."""
+    tag_end = {p[0]: p[2] for p in PLATFORMS}[platform]
+    return [w for w in wheels if w.stem.endswith(tag_end)]
+
+
+def generated_table(platform: str, wheels: list[Path]) -> str:
+    """The ``[build.generated]`` table Blender's ``build --split-platforms``
+    appends to the manifest of a one-platform zip (same text)."""
+    names = ", ".join(f'"./wheels/{w.name}"' for w in platform_wheels(wheels, platform))
+    return ("\n\n# BEGIN GENERATED CONTENT.\n# This must not be included in source manifests.\n"
+            f'[build.generated]\nplatforms = ["{platform}"]\nwheels = [{names}]\n'
+            "# END GENERATED CONTENT.\n")
+
+
+def this_platform() -> str:
+    """The Blender platform name of this machine (``linux-x64``, ...)."""
+    system = {"darwin": "macos", "win32": "windows"}.get(sys.platform, sys.platform)
+    machine = platform_module.machine().lower()
+    arch = {"x86_64": "x64", "amd64": "x64", "aarch64": "arm64"}.get(machine, machine)
+    name = f"{system}-{arch}"
+    if name not in {p[0] for p in PLATFORMS}:
+        raise BuildError(f"no extension build for this machine ({name}); "
+                         f"builds exist for {', '.join(p[0] for p in PLATFORMS)}")
+    return name
+
+
+def zip_name(version: str, platform: str | None) -> str:
+    """``overtone-<version>.zip``, or ``overtone-<version>-<platform>.zip`` (``-`` as ``_``)."""
+    suffix = f"-{platform.replace('-', '_')}" if platform else ""
+    return f"{EXTENSION_ID}-{version}{suffix}.zip"
 
 
 def _sources() -> list[tuple[str, Path]]:
@@ -179,13 +225,9 @@ def validate(zip_path: Path, validator: Path) -> None:
                          f"{(proc.stdout + proc.stderr).strip()}")
 
 
-def build(output_dir: Path = ROOT / "dist", *, force: bool = False,
-          pythons: tuple[str, ...] = PYTHONS) -> Path:
-    """Build (or reuse) the extension zip; return its path."""
-    version = engine_version()
-    wheels = fetch_wheels(scipy_pin(), pythons)
-    text = manifest(version, wheels)
-    sources = _sources()
+def _write_zip(target: Path, text: str, sources: list[tuple[str, Path]], wheels: list[Path],
+               *, force: bool) -> Path:
+    """Write one zip (or reuse it when the digest of its inputs is unchanged)."""
     digest = hashlib.sha256(Path(__file__).read_bytes())
     digest.update(text.encode())
     for name, path in sources:
@@ -193,15 +235,11 @@ def build(output_dir: Path = ROOT / "dist", *, force: bool = False,
     for wheel in wheels:
         digest.update(wheel.name.encode() + b"\0" + str(wheel.stat().st_size).encode())
     stamp = digest.hexdigest()
-
-    output_dir.mkdir(parents=True, exist_ok=True)
-    target = output_dir / f"{EXTENSION_ID}-{version}.zip"
     stamp_file = target.with_name(target.name + ".inputs")
     if (not force and target.exists() and stamp_file.exists()
             and stamp_file.read_text().strip() == stamp):
         print(f"build_addon: {target} is up to date")
         return target
-
     partial = target.with_name(target.name + ".part")
     with zipfile.ZipFile(partial, "w") as archive:
         archive.writestr(_info("blender_manifest.toml", zipfile.ZIP_DEFLATED), text)
@@ -217,6 +255,31 @@ def build(output_dir: Path = ROOT / "dist", *, force: bool = False,
     return target
 
 
+def build(output_dir: Path = ROOT / "dist", *, force: bool = False,
+          pythons: tuple[str, ...] = PYTHONS, platforms: tuple[str, ...] | None = None,
+          all_platforms: bool = False) -> list[Path]:
+    """Build (or reuse) the extension zips; return their paths.
+
+    One zip per platform in ``platforms`` (default: all four), or with
+    ``all_platforms`` the one zip carrying every platform's wheels.
+    """
+    chosen = tuple(p[0] for p in PLATFORMS) if platforms is None else platforms
+    unknown = set(chosen) - {p[0] for p in PLATFORMS}
+    if unknown:
+        raise BuildError(f"unknown platform(s) {', '.join(sorted(unknown))}; "
+                         f"choose from {', '.join(p[0] for p in PLATFORMS)}")
+    version = engine_version()
+    wheels = fetch_wheels(scipy_pin(), pythons)
+    text = manifest(version, wheels)
+    sources = _sources()
+    output_dir.mkdir(parents=True, exist_ok=True)
+    if all_platforms:
+        return [_write_zip(output_dir / zip_name(version, None), text, sources, wheels, force=force)]
+    return [_write_zip(output_dir / zip_name(version, platform), text + generated_table(platform, wheels),
+                       sources, platform_wheels(wheels, platform), force=force)
+            for platform in chosen]
+
+
 def main(argv: list[str]) -> int:
     parser = argparse.ArgumentParser(prog="build_addon.py", description=__doc__.split("\n\n")[0])
     parser.add_argument("--output-dir", type=Path, default=ROOT / "dist")
@@ -225,21 +288,29 @@ def main(argv: list[str]) -> int:
                         help="skip Blender's validator even when bpy is available")
     parser.add_argument("--python", nargs="+", default=list(PYTHONS), choices=PYTHONS,
                         help="Python versions to bundle SciPy wheels for")
+    which = parser.add_mutually_exclusive_group()
+    which.add_argument("--platform", nargs="+", choices=[p[0] for p in PLATFORMS],
+                       help="build the zips of these platforms only (default: all four)")
+    which.add_argument("--all-platforms", action="store_true",
+                       help="one zip with the wheels of every platform instead of one per platform")
     args = parser.parse_args(argv)
     started = time.perf_counter()
     try:
-        path = build(args.output_dir, force=args.force, pythons=tuple(args.python))
+        paths = build(args.output_dir, force=args.force, pythons=tuple(args.python),
+                      platforms=tuple(args.platform) if args.platform else None,
+                      all_platforms=args.all_platforms)
         validator = None if args.no_validate else find_validator()
-        if validator is not None:
+        for path in paths if validator is not None else ():
             validate(path, validator)
             print(f"build_addon: Blender's validator accepts {path.name}")
-        elif not args.no_validate:
+        if validator is None and not args.no_validate:
             print("build_addon: bpy not importable here, Blender's validator not run")
     except (BuildError, OSError) as error:
         print(f"build_addon: error: {error}", file=sys.stderr)
         return 1
-    size = path.stat().st_size / 1e6
-    print(f"build_addon: {path} ({size:.1f} MB, {time.perf_counter() - started:.1f} s)")
+    for path in paths:
+        print(f"build_addon: {path} ({path.stat().st_size / 1e6:.1f} MB)")
+    print(f"build_addon: {len(paths)} zip(s) in {time.perf_counter() - started:.1f} s")
     return 0
 
 

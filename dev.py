@@ -12,6 +12,10 @@ the pinned versions in ``requirements/``:
     .venv-blender   real Blender (bpy 5.0.1 from PyPI) on numpy 1.26, scipy,
                     the same test libraries: Blender tests and the engine on
                     numpy 1.26
+    .venv-blender42 real Blender 4.2 LTS (bpy 4.2.23) with the numpy its bpy
+                    declares and no SciPy (the extension's wheel brings it):
+                    the tests marked every_blender
+    .venv-blender45 the same for Blender 4.5 LTS (bpy 4.5.15)
     .venv-typing    mypy with the Blender API stubs (they cannot share an
                     environment with the real bpy)
 
@@ -35,8 +39,24 @@ REQ = ROOT / "requirements"
 ENVIRONMENTS = {
     ".venv": ["engine.txt", "test.txt"],
     ".venv-blender": ["blender.txt", "test.txt"],
+    ".venv-blender42": ["blender42.txt"],
+    ".venv-blender45": ["blender45.txt"],
     ".venv-typing": ["typing.txt"],
 }
+
+
+# Older Blender releases the extension supports: the tests marked every_blender
+# run in each (install, colour, detail, batch, SciPy with that bpy's numpy).
+OLDER_BLENDERS = [".venv-blender42", ".venv-blender45"]
+
+
+def bpy_version(name: str) -> str:
+    """The bpy version pinned for environment ``name``."""
+    for f in ENVIRONMENTS[name]:
+        found = re.search(r"^bpy==(\S+)", (REQ / f).read_text(), re.M)
+        if found:
+            return found.group(1)
+    raise ValueError(f"{name}: no bpy pin in {ENVIRONMENTS[name]}")
 
 
 def _python311() -> str:
@@ -117,6 +137,7 @@ def cmd_test(extra: list[str]) -> int:
     started = time.time()
     engine_py = env_python(".venv")
     blender_py = env_python(".venv-blender")
+    older = [(env_python(name), bpy_version(name)) for name in OLDER_BLENDERS]
     typing_py = env_python(".venv-typing")
     env = blender_sandbox_env()
     env["PYTHONDONTWRITEBYTECODE"] = "1"
@@ -124,8 +145,12 @@ def cmd_test(extra: list[str]) -> int:
     failures = 0
     runs = [
         (engine_py, ["tests", "--ignore=tests/blender", "-q", *extra], "engine tests, numpy 2"),
-        (blender_py, ["tests", "-q", *extra], "engine tests on numpy 1.26, and Blender tests in real bpy"),
+        (blender_py, ["tests", "-q", *extra],
+         f"engine tests on numpy 1.26, and Blender tests in real bpy {bpy_version('.venv-blender')}"),
     ]
+    runs += [(python, ["tests/blender", "-m", "every_blender", "-q", *extra],
+              f"Blender tests marked every_blender in real bpy {version}")
+             for python, version in older]
     for python, args, label in runs:
         code, counts = _pytest(python, args, label, env)
         failures += code != 0

@@ -25,7 +25,9 @@ flags ``as_shown``, ``replace_existing``, ``local_space``, ``keep_earlier``,
 Relative paths are relative to the job file. Everything is checked (objects exist,
 are meshes, carry the named signals) before the first pair runs. Exit codes: 0 every
 pair done; 1 some pair failed (the report says which and why; the others are kept);
-2 the job could not start or the file could not be saved.
+2 the job could not start or the file could not be saved. A named report is
+written whatever the exit code (``exit_code`` in it; ``error`` when nothing ran),
+as long as its path can be read from ``--report`` or from the job file.
 """
 
 from __future__ import annotations
@@ -261,6 +263,35 @@ def run_job(job: Job) -> tuple[int, dict[str, Any]]:
     return (1 if failed else 0), report
 
 
+def _report_path(args: argparse.Namespace) -> Path | None:
+    """Where the report goes even when the job does not load: ``--report``, else
+    the job file's own ``report`` if the file can be read that far."""
+    if args.report:
+        return Path(args.report)
+    job_path = Path(args.job)
+    try:
+        data = json.loads(job_path.read_text(encoding="utf-8"))
+        return _path(data["report"], job_path.resolve().parent, "'report'")
+    except (OSError, ValueError, KeyError, TypeError):  # JobError is a ValueError
+        return None
+
+
+def _write_report(path: Path | None, report: dict[str, Any], code: int) -> int:
+    """Write ``report`` (with ``exit_code``) whole or not at all; return the exit code."""
+    if path is None:
+        return code
+    report["exit_code"] = code
+    partial = path.with_name(f".{path.name}.part")
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        partial.write_text(json.dumps(report, indent=2) + "\n", encoding="utf-8")
+        partial.replace(path)
+    except OSError as error:
+        partial.unlink(missing_ok=True)
+        return _fail(f"cannot write report {str(path)!r}: {error.strerror}")
+    return code
+
+
 def main(argv: Sequence[str]) -> int:
     """The command-line handler: parse ``argv``, run the job, return the exit code."""
     parser = _parser()
@@ -277,8 +308,10 @@ def main(argv: Sequence[str]) -> int:
         elif args.save_as:
             job = replace(job, save="as", save_as=Path(args.save_as))
         job = check_job(job)
-    except JobError as error:
-        return _fail(str(error))
+    except JobError as error:  # nothing ran; the report, if one is named, says why
+        nothing: dict[str, Any] = {"file": bpy.data.filepath, "pairs": [], "failed": 0,
+                                   "saved": None, "error": str(error)}
+        return _write_report(_report_path(args), nothing, _fail(str(error)))
     code, report = run_job(job)
     try:
         if code == 0 or any(r["status"] == "done" for r in report["pairs"]):
@@ -286,13 +319,7 @@ def main(argv: Sequence[str]) -> int:
     except (JobError, RuntimeError, OSError) as error:
         report["save_error"] = str(error)
         code = _fail(f"could not save: {error}")
-    if job.report is not None:
-        try:
-            job.report.parent.mkdir(parents=True, exist_ok=True)
-            job.report.write_text(json.dumps(report, indent=2) + "\n", encoding="utf-8")
-        except OSError as error:
-            return _fail(f"cannot write report {str(job.report)!r}: {error.strerror}")
-    return code
+    return _write_report(job.report, report, code)
 
 
 _handle: Any = None

@@ -26,6 +26,7 @@ import numpy as np
 from .engine import (Cache, FaceHits, MeshData, Pair, Settings, Shape, Signal, approximate_signals,
                      carry_charted, carry_faces, check_signal, faces_under_centres, geometry_key,
                      vertex_average, weighted_centre_vertex)
+from .threads import limited_threads
 
 if TYPE_CHECKING:
     from numpy.typing import NDArray
@@ -179,8 +180,10 @@ def _nothing(fraction: float, text: str) -> None:
     return None
 
 
+@limited_threads()
 def run_job(inp: JobInput, progress: Progress | None = None) -> JobOutput:
-    """Run one job through the engine.
+    """Run one job through the engine, with the worker's BLAS thread rule
+    (:func:`.worker.limited_threads`) in this process too.
 
     Raises
     ------

@@ -47,6 +47,7 @@ import numpy as np  # noqa: E402  (after the package set-up above)
 from .engine import MeshData, Settings, Signal  # noqa: E402
 from .engine.common.atomic import atomic_write  # noqa: E402
 from .job import JobInput, JobOutput, run_job  # noqa: E402
+from .threads import thread_limits  # noqa: E402
 
 __all__ = ["Status", "Worker", "child_environment", "python_executable", "shared_worker", "stop_shared_worker",
            "save_input", "load_input", "save_output", "load_output"]
@@ -57,25 +58,14 @@ def python_executable() -> str:
     return sys.executable
 
 
-# BLAS thread pools of the worker, unless the user set them: one thread each.
-# The engine's eigensolver runs thousands of small dense blocks; with two
-# OpenBLAS threads on a machine busy with other work each call waits for a
-# descheduled thread, and the factor of a 30k-vertex mesh took 6 s instead of
-# 0.2 s. On an idle 2-core machine two threads gained nothing over one (100k
-# vertices, 100 eigenpairs: 7.25 s against 7.34 s, benchmarks/eigenbasis_speed.py).
-_THREAD_VARIABLES = ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS", "VECLIB_MAXIMUM_THREADS")
-
-
 def child_environment() -> dict[str, str]:
     """Environment of the worker process: this one's, with ``sys.path`` as
-    ``PYTHONPATH``, no user site-packages, and one BLAS thread unless the user
-    chose otherwise."""
+    ``PYTHONPATH``, no user site-packages, and :func:`thread_limits`."""
     env = dict(os.environ)
     paths = [p for p in sys.path if p and os.path.isdir(p)]
     env["PYTHONPATH"] = os.pathsep.join(paths)
     env["PYTHONNOUSERSITE"] = "1"
-    for name in _THREAD_VARIABLES:
-        env.setdefault(name, "1")
+    env.update(thread_limits(env))
     return env
 
 

@@ -159,7 +159,7 @@ def main(argv: list[str]) -> int:
         sys.path.insert(0, str(ROOT))
         import build_addon
 
-        zip_path = build_addon.build()
+        zip_path = build_addon.build(platforms=(build_addon.this_platform(),))[0]
         bpy.ops.wm.read_factory_settings(use_empty=True)
         bpy.ops.extensions.package_install_files(filepath=str(zip_path), repo='user_default',
                                                  enable_on_install=True)

@@ -45,15 +45,22 @@ def blender_ext_script() -> Path:
 
 
 @pytest.fixture(scope="session")
-def extension_zip() -> Path:
-    """The extension zip, built once (reused from dist/ when its inputs are unchanged)."""
+def platform_zips() -> dict[str, Path]:
+    """The four per-platform extension zips, built once (reused from dist/ when
+    their inputs are unchanged), by Blender platform name."""
     started = time.perf_counter()
     proc = subprocess.run([sys.executable, "build_addon.py", "--no-validate"], cwd=ROOT,
                           capture_output=True, text=True)
     assert proc.returncode == 0, proc.stderr
     print(f"\nbuild: {time.perf_counter() - started:.1f} s; {proc.stdout.strip()}")
-    from build_addon import engine_version
-    return ROOT / "dist" / f"overtone-{engine_version()}.zip"
+    from build_addon import PLATFORMS, engine_version, zip_name
+    return {p[0]: ROOT / "dist" / zip_name(engine_version(), p[0]) for p in PLATFORMS}
+
+
+@pytest.fixture(scope="session")
+def extension_zip(platform_zips) -> Path:
+    """The zip these tests install: the linux-x64 one."""
+    return platform_zips["linux-x64"]
 
 
 @pytest.fixture(scope="session")

@@ -2,6 +2,7 @@
 
 import importlib
 import json
+import re
 import runpy
 import sys
 
@@ -91,9 +92,31 @@ def test_objects_are_checked_before_any_work(batch, pair, tmp_path, capsys, pair
     path = job_file(tmp_path, {"pairs": [pair_data], "report": "r.json"})
     assert batch.main([str(path)]) == 2
     assert "overtone_batch: error: " in capsys.readouterr().err
-    assert not (tmp_path / "r.json").exists()
+    # nothing ran, and the report the job names says so and why
+    report = json.loads((tmp_path / "r.json").read_text())
+    assert report["exit_code"] == 2 and report["pairs"] == [] and report["saved"] is None
+    assert re.search(message, report["error"])
+    assert not list(tmp_path.glob(".*.part"))
     with pytest.raises(batch.JobError, match=message):
         batch.check_job(batch.load_job(path))
+
+
+@pytest.mark.parametrize("data,args,message", [
+    # the report named in a job file that fails its schema check
+    ({"pairs": [], "report": "out/r.json"}, [], "job needs a non-empty list 'pairs'"),
+    # a job file that is not JSON: only --report can name the report
+    ("{not json", ["--report", "out/r.json"], "is not valid JSON"),
+])
+def test_report_written_when_the_job_cannot_start(batch, pair, tmp_path, monkeypatch, data, args, message):
+    monkeypatch.chdir(tmp_path)
+    assert batch.main([str(job_file(tmp_path, data)), *args]) == 2
+    report = json.loads((tmp_path / "out" / "r.json").read_text())
+    assert report["exit_code"] == 2 and message in report["error"] and report["pairs"] == []
+
+
+def test_no_report_without_a_readable_path(batch, pair, tmp_path):
+    assert batch.main([str(job_file(tmp_path, "{not json"))]) == 2
+    assert [p.name for p in tmp_path.iterdir()] == ["job.json"]
 
 
 def test_all_signals_resolved_and_pair_hook_reported(batch, pair, tmp_path, capsys):
@@ -121,12 +144,14 @@ def test_a_failing_pair_is_reported_and_the_others_kept(batch, pair, tmp_path, c
     assert batch.main([str(path)]) == 1
     report = json.loads((tmp_path / "out" / "report.json").read_text())
     assert report["failed"] == 1 and [p["status"] for p in report["pairs"]] == ["failed", "done"]
+    assert report["exit_code"] == 1
     assert report["pairs"][0]["error"].startswith("'Crushed': ")
     assert report["saved"] == str(tmp_path / "out" / "result.blend")
     assert "Crushed -> LOD1: 'Crushed': " in capsys.readouterr().err
     assert "arm" in bpy.data.objects["LOD1"].vertex_groups
 
 
+@pytest.mark.every_blender
 def test_batch_carries_and_saves(batch, scene, tmp_path):
     """Generated creature pairs in a saved .blend; the job saves a copy; reopened, the
     results equal the engine's own Pair on the same arrays."""
@@ -147,6 +172,7 @@ def test_batch_carries_and_saves(batch, scene, tmp_path):
     report = json.loads((tmp_path / "out" / "report.json").read_text())
     entry = report["pairs"][0]
     assert entry["status"] == "done" and report["saved"] == str(tmp_path / "out" / "result.blend")
+    assert report["exit_code"] == 0
     assert entry["result"]["written"] == {"tint": "tint", "overtone_confidence": "overtone_confidence",
                                           "overtone_detail": "overtone_detail"}
     bridge = importlib.import_module(MODULE + ".bridge")

@@ -2,6 +2,8 @@
 
 import hashlib
 import importlib
+import importlib.util
+import shutil
 import subprocess
 import sys
 import tomllib
@@ -16,9 +18,33 @@ from .conftest import EXTENSIONS_SITE, MODULE, ROOT, blender_ext_script
 PLATFORMS = {"linux-x64", "windows-x64", "macos-arm64", "macos-x64"}
 
 
-def test_blender_validator_accepts_the_zip(extension_zip):
+def load_blender_ext():
+    """Blender's packaging script as a module (its platform helpers are the reference)."""
+    spec = importlib.util.spec_from_file_location("blender_ext", blender_ext_script())
+    module = importlib.util.module_from_spec(spec)
+    sys.modules.setdefault("blender_ext", module)
+    spec.loader.exec_module(module)
+    return module
+
+
+def read_manifest(path):
+    """The manifest of a zip as Blender reads it: ``[build.generated]`` replaces
+    ``platforms`` and ``wheels`` (``pkg_manifest_dict_apply_build_generated_table``
+    in blender_ext.py, 4.2 to 5.0)."""
+    with zipfile.ZipFile(path) as archive:
+        names = set(archive.namelist())
+        manifest = tomllib.loads(archive.read("blender_manifest.toml").decode())
+    generated = manifest.pop("build", {}).get("generated", {})
+    manifest.update(generated)
+    return manifest, names
+
+
+@pytest.mark.every_blender
+@pytest.mark.parametrize("platform", sorted(PLATFORMS))
+def test_blender_validator_accepts_each_zip(platform_zips, platform):
+    # this Blender's own validator (each environment runs its own bpy's script)
     proc = subprocess.run([sys.executable, str(blender_ext_script()), "validate",
-                           str(extension_zip)], capture_output=True, text=True)
+                           str(platform_zips[platform])], capture_output=True, text=True)
     assert proc.returncode == 0, proc.stdout + proc.stderr
 
 
@@ -35,11 +61,10 @@ def test_blender_validator_rejects_a_long_tagline(tmp_path, extension_zip):
     assert "tagline" in proc.stdout + proc.stderr
 
 
-def test_manifest_and_contents(extension_zip):
+@pytest.mark.parametrize("platform", sorted(PLATFORMS))
+def test_manifest_and_contents(platform_zips, platform):
     from build_addon import engine_version
-    with zipfile.ZipFile(extension_zip) as archive:
-        names = set(archive.namelist())
-        manifest = tomllib.loads(archive.read("blender_manifest.toml").decode())
+    manifest, names = read_manifest(platform_zips[platform])
     assert manifest["id"] == "overtone"
     assert manifest["version"] == engine_version()
     assert manifest["schema_version"] == "1.0.0"
@@ -47,16 +72,19 @@ def test_manifest_and_contents(extension_zip):
     assert manifest["blender_version_min"] == "4.2.0"
     assert manifest["license"] == ["SPDX:GPL-3.0-or-later"]
     assert len(manifest["tagline"]) <= 64 and manifest["tagline"][-1].isalnum()
-    assert set(manifest["platforms"]) == PLATFORMS
+    assert manifest["platforms"] == [platform]
     assert "files" in manifest["permissions"]
     wheels = [w.removeprefix("./") for w in manifest["wheels"]]
-    assert set(wheels) <= names
+    # exactly the listed wheels are in the zip, and Blender's own filter agrees
+    # they are this platform's (blender_ext.py, paths_filter_wheels_by_platform)
+    assert set(wheels) == {n for n in names if n.startswith("wheels/")}
+    assert load_blender_ext().paths_filter_wheels_by_platform(wheels, platform) == wheels
     scipy_pin = (ROOT / "requirements" / "engine.txt").read_text().split("scipy==")[1].split()[0]
-    # one wheel per platform and Python tag (Blender 4.2-5.0: cp311, 5.1: cp313)
+    # one wheel per Python tag (Blender 4.2-5.0: cp311, 5.1: cp313)
     for tag in ("cp311", "cp313"):
         mine = [w for w in wheels if f"-{tag}-{tag}-" in w]
-        assert len(mine) == 4, mine
-        assert all(w.startswith(f"wheels/scipy-{scipy_pin}-") for w in mine)
+        assert len(mine) == 1, mine
+        assert mine[0].startswith(f"wheels/scipy-{scipy_pin}-")
     for name in ("__init__.py", "bridge.py", "batch.py", "engine/__init__.py", "LICENSE"):
         assert name in names
     repo_engine = {f"engine/{p.relative_to(ROOT / 'engine').as_posix()}"
@@ -64,15 +92,50 @@ def test_manifest_and_contents(extension_zip):
     assert repo_engine == {n for n in names if n.startswith("engine/")}
 
 
-def test_build_is_deterministic(tmp_path, extension_zip):
+def test_split_matches_blenders_own_split(tmp_path, platform_zips):
+    """Blender's ``build --split-platforms`` on the all-platforms zip's files gives
+    the same file names and the same manifest text for every platform."""
+    full = tmp_path / "all"
+    proc = subprocess.run([sys.executable, "build_addon.py", "--no-validate", "--all-platforms",
+                           "--output-dir", str(full)], cwd=ROOT, capture_output=True, text=True)
+    assert proc.returncode == 0, proc.stderr
+    source, split = tmp_path / "source", tmp_path / "split"
+    split.mkdir()
+    (everything,) = full.glob("*.zip")
+    with zipfile.ZipFile(everything) as archive:
+        archive.extractall(source)
+        all_names = set(archive.namelist())
+    everything.unlink()  # 263 MB; pytest keeps old tmp folders around
+    proc = subprocess.run([sys.executable, str(blender_ext_script()), "build", "--source-dir",
+                           str(source), "--output-dir", str(split), "--split-platforms"],
+                          capture_output=True, text=True)
+    assert proc.returncode == 0, proc.stdout + proc.stderr
+    assert sorted(p.name for p in split.glob("*.zip")) == sorted(p.name for p in platform_zips.values())
+    union = set()
+    for ours in platform_zips.values():
+        with zipfile.ZipFile(ours) as a, zipfile.ZipFile(split / ours.name) as b:
+            assert sorted(a.namelist()) == sorted(b.namelist())
+            assert a.read("blender_manifest.toml") == b.read("blender_manifest.toml")
+            union |= set(a.namelist())
+    assert union == all_names  # every wheel of the all-platforms zip is in one platform zip
+    shutil.rmtree(source), shutil.rmtree(split)
+
+
+def test_build_is_deterministic(tmp_path, platform_zips):
     proc = subprocess.run([sys.executable, "build_addon.py", "--no-validate", "--force",
                            "--output-dir", str(tmp_path)], cwd=ROOT, capture_output=True, text=True)
     assert proc.returncode == 0, proc.stderr
-    again = tmp_path / extension_zip.name
     digest = lambda p: hashlib.sha256(p.read_bytes()).hexdigest()  # noqa: E731
-    same = digest(again) == digest(extension_zip)
-    again.unlink()  # 260 MB; pytest keeps old tmp folders around
-    assert same
+    for ours in platform_zips.values():
+        again = tmp_path / ours.name
+        same = digest(again) == digest(ours)
+        again.unlink()  # tens of MB; pytest keeps old tmp folders around
+        assert same, ours.name
+
+
+def test_this_platform_is_blenders_name_for_it():
+    from build_addon import this_platform
+    assert this_platform() == load_blender_ext().platform_from_this_system()
 
 
 def test_failed_download_is_a_clear_error(monkeypatch, tmp_path):
@@ -82,6 +145,7 @@ def test_failed_download_is_a_clear_error(monkeypatch, tmp_path):
         build_addon.fetch_wheels("0.0.1", ("3.11",))
 
 
+@pytest.mark.every_blender
 def test_installed_and_registered(overtone):
     assert overtone.__name__ == MODULE
     assert MODULE in {a.module for a in bpy.context.preferences.addons}
@@ -107,18 +171,53 @@ def test_engine_is_the_bundled_subpackage(overtone):
     assert engine.__version__ == engine_version()
 
 
+# In a fresh interpreter without site: the extension's site-packages first, then
+# this environment's (its numpy: the one this bpy declares, see the next test).
+# The path graph's Laplacian has eigenvalues 2 - 2 cos(pi j / n), j = 0..n-1
+# (common practice); points on a unit grid have nearest neighbours at distance 1.
+_SCIPY_CHECK = """
+import sys; sys.path[:0] = [sys.argv[1]]; sys.path.append(sys.argv[2])
+import numpy as np, scipy, scipy.sparse, scipy.sparse.linalg, scipy.spatial, scipy.linalg
+n = 40
+L = scipy.sparse.diags([np.r_[1, np.full(n - 2, 2.0), 1], -np.ones(n - 1), -np.ones(n - 1)],
+                       [0, -1, 1], format="csc")
+got = np.sort(scipy.sparse.linalg.eigsh(L, k=4, sigma=-0.1, which="LM")[0])
+want = 2 - 2 * np.cos(np.pi * np.arange(4) / n)
+assert np.allclose(got, want, atol=1e-10), (got, want)
+xs = np.stack(np.meshgrid(np.arange(5.0), np.arange(5.0)), -1).reshape(-1, 2)
+d, _ = scipy.spatial.cKDTree(xs).query(xs, k=2)
+assert np.allclose(d[:, 1], 1.0)
+print(scipy.__file__, scipy.__version__, np.__file__, np.__version__)
+"""
+
+
+@pytest.mark.every_blender
 def test_scipy_comes_from_the_extension_wheel(overtone):
-    # The test venv has its own scipy; import with the extension's site-packages
-    # first and the venv's numpy after it, in a fresh interpreter without site.
+    from importlib.metadata import version
     venv_site = Path(importlib.import_module("numpy").__file__).parents[1]
-    code = ("import sys; sys.path[:0] = [sys.argv[1]]; sys.path.append(sys.argv[2]);"
-            "import scipy, scipy.sparse.linalg; print(scipy.__file__, scipy.__version__)")
-    proc = subprocess.run([sys.executable, "-S", "-c", code, str(EXTENSIONS_SITE), str(venv_site)],
+    proc = subprocess.run([sys.executable, "-S", "-c", _SCIPY_CHECK, str(EXTENSIONS_SITE), str(venv_site)],
                           capture_output=True, text=True)
     assert proc.returncode == 0, proc.stderr
-    path, version = proc.stdout.split()
-    assert Path(path).is_relative_to(EXTENSIONS_SITE)
-    assert version == "1.17.1"
+    assert proc.stderr == ""  # no NumPy ABI warning either
+    scipy_path, scipy_version, numpy_path, numpy_version = proc.stdout.split()
+    assert Path(scipy_path).is_relative_to(EXTENSIONS_SITE)
+    assert scipy_version == "1.17.1"
+    assert Path(numpy_path).is_relative_to(venv_site) and numpy_version == version("numpy")
+
+
+@pytest.mark.every_blender
+def test_numpy_is_the_one_this_bpy_declares():
+    """The environment's numpy satisfies bpy's Requires-Dist, and the requirements
+    file that pins this bpy pins exactly that numpy."""
+    from importlib.metadata import requires, version
+    from pip._vendor.packaging.requirements import Requirement
+    declared = [Requirement(r) for r in requires("bpy") if Requirement(r).name == "numpy"]
+    assert len(declared) == 1
+    assert declared[0].specifier.contains(version("numpy"), prereleases=True)
+    pins = [f for f in (ROOT / "requirements").glob("blender*.txt")
+            if f"bpy=={version('bpy')}" in f.read_text().split()]
+    assert len(pins) == 1, pins
+    assert f"numpy=={version('numpy')}" in pins[0].read_text().split()
 
 
 def test_clear_cache_deletes_only_cache_files(overtone, scene):

@@ -22,7 +22,7 @@ from .test_bridge import snapshot
 
 @pytest.fixture
 def mod(overtone):
-    names = ("bridge", "job", "runs", "operators", "worker")
+    names = ("bridge", "job", "runs", "operators", "worker", "threads")
     return type("M", (), {n: importlib.import_module(f"{MODULE}.{n}") for n in names})
 
 
@@ -68,6 +68,7 @@ def read(mod, obj, name):
     return next(mod.bridge.read_signal(obj, s).values for s in mod.bridge.list_layers(obj) if s.name == name)
 
 
+@pytest.mark.every_blender
 def test_carry_signals_default_set_matches_the_engine(mod, scene):
     src, tgt = painted_pair(scene)
     before = snapshot(src)
@@ -166,6 +167,7 @@ def test_corner_colour_keeps_its_seams(mod, scene):
     assert (red & blue).sum() >= 10  # a seam ring around the body
 
 
+@pytest.mark.every_blender
 def test_detail_becomes_a_shape_key_in_object_space(mod, scene):
     demo = engine_module("jobs.demo")
     s = demo.creature(30, 16, bumps=0.03)
@@ -420,6 +422,33 @@ def test_worker_gets_one_blas_thread_unless_the_user_chose(mod, scene, monkeypat
     monkeypatch.setenv("OPENBLAS_NUM_THREADS", "3")
     env = mod.worker.child_environment()
     assert env["OPENBLAS_NUM_THREADS"] == "3" and env["MKL_NUM_THREADS"] == "1"
+
+
+def test_jobs_in_this_process_get_one_blas_thread_unless_the_user_chose(mod, scene, monkeypatch):
+    """The add-on's job function, run here (batch, scripts, background mode), follows
+    the worker's rule; threadpoolctl (a reference library) reads the thread counts."""
+    from threadpoolctl import threadpool_info, threadpool_limits
+
+    def openblas_threads():
+        return sorted((i["filepath"], i["num_threads"]) for i in threadpool_info()
+                      if i["internal_api"] == "openblas")
+
+    src, tgt = painted_pair(scene)
+    plan = mod.operators.plan_from_context(bpy.context, "transfer")
+    assert len(mod.threads.openblas_thread_controls()) == len(openblas_threads()) >= 1
+    seen = []
+    monkeypatch.delenv("OPENBLAS_NUM_THREADS", raising=False)
+    with threadpool_limits(limits=2, user_api="blas"):
+        mod.job.run_job(plan.inputs, lambda f, t: seen.append(openblas_threads()))
+        after = openblas_threads()
+        monkeypatch.setenv("OPENBLAS_NUM_THREADS", "2")
+        mod.job.forget_pairs()
+        mod.job.run_job(plan.inputs, lambda f, t: seen.append(openblas_threads()))
+    # during the first job one thread everywhere; the previous two restored after it;
+    # the user's own setting left alone in the second
+    first, second = seen[0], seen[-1]
+    assert {n for _, n in first} == {1} and {n for _, n in after} == {2}
+    assert {n for _, n in second} == {2}
 
 
 # ----------------------------------------------------------------------------- cache
