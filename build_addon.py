@@ -4,9 +4,10 @@
 ``python build_addon.py`` writes ``dist/overtone-<version>-<platform>.zip`` for
 linux_x64, windows_x64, macos_arm64 and macos_x64. Each holds
 ``blender_manifest.toml``, the add-on (``addon/*.py`` at the top level), the
-engine as the subpackage ``engine/``, and the unmodified SciPy wheels of its
-platform under ``wheels/``, for CPython 3.11 (Blender 4.2-5.0) and CPython
-3.13 (Blender 5.1).
+engine as the subpackage ``engine/``, and the unmodified wheels of the
+engine's dependencies Blender does not ship (:data:`BUNDLED`: SciPy,
+mapbox-earcut) for its platform under ``wheels/``, for CPython 3.11 (Blender
+4.2-5.0) and CPython 3.13 (Blender 5.1).
 
 The split is the one Blender's own ``blender_ext.py build --split-platforms``
 makes (``bl_pkg/cli/blender_ext.py`` in the bpy wheel, 4.2 to 5.0): the same
@@ -49,15 +50,15 @@ ROOT = Path(__file__).resolve().parent
 WHEEL_CACHE = ROOT / ".cache" / "wheels"
 EXTENSION_ID = "overtone"
 
-# (Blender platform, platform tag given to pip, how the chosen wheel's platform tag ends).
-# One wheel per platform and Python: Blender ignores the macOS version in the tag,
-# so two macOS wheels of one architecture would both be installed. The oldest
-# macOS builds SciPy publishes are chosen (arm64: 12.0, x86-64: 10.14).
+# (Blender platform, platform tag given to pip). pip picks the newest wheel whose
+# tag this platform accepts, one per package, platform and Python: Blender ignores
+# the macOS version in a tag, so two macOS wheels of one architecture would both be
+# installed. The tags are the oldest SciPy publishes (macOS arm64 12.0, x86-64 10.14).
 PLATFORMS = [
-    ("linux-x64", "manylinux_2_28_x86_64", "manylinux_2_28_x86_64"),
-    ("windows-x64", "win_amd64", "win_amd64"),
-    ("macos-arm64", "macosx_12_0_arm64", "macosx_12_0_arm64"),
-    ("macos-x64", "macosx_10_14_x86_64", "macosx_10_14_x86_64"),
+    ("linux-x64", "manylinux_2_28_x86_64"),
+    ("windows-x64", "win_amd64"),
+    ("macos-arm64", "macosx_12_0_arm64"),
+    ("macos-x64", "macosx_10_14_x86_64"),
 ]
 PYTHONS = ("3.11", "3.13")
 TAGLINE = "Carry colours, weights and detail between meshes by their shape"
@@ -82,46 +83,63 @@ def engine_version() -> str:
                    '__version__ = "X.Y.Z"')
 
 
-def scipy_pin() -> str:
-    return _pinned("requirements/engine.txt", r"^scipy==([\w.]+)\s*$", "scipy==X pin")
+BUNDLED = ("scipy", "mapbox-earcut")
+"""The engine's dependencies Blender does not ship (it ships NumPy), bundled as wheels."""
 
 
-def _wheel_glob(version: str, python: str, tag_end: str) -> str:
-    cp = "cp" + python.replace(".", "")
-    return f"scipy-{version}-{cp}-{cp}-*{tag_end}.whl"
+def bundled_pins() -> dict[str, str]:
+    """name -> pinned version of each :data:`BUNDLED` package, from ``requirements/engine.txt``."""
+    return {name: _pinned("requirements/engine.txt", rf"^{re.escape(name)}==([\w.]+)\s*$", f"{name}==X pin")
+            for name in BUNDLED}
 
 
-def fetch_wheels(version: str, pythons: tuple[str, ...]) -> list[Path]:
-    """The SciPy wheels, downloaded into ``.cache/wheels/`` on first use."""
-    WHEEL_CACHE.mkdir(parents=True, exist_ok=True)
+def wheel_platform(path: Path) -> str | None:
+    """The Blender platform a wheel's platform tag names; None for a pure-Python wheel."""
+    tag = path.stem.rsplit("-", 1)[-1]
+    if tag == "any":
+        return None
+    if "win_amd64" in tag:
+        return "windows-x64"
+    if "macosx" in tag:
+        return "macos-arm64" if "arm64" in tag else "macos-x64"
+    if "linux" in tag and "x86_64" in tag:
+        return "linux-x64"
+    raise BuildError(f"wheel {path.name} is for no platform this extension ships")
+
+
+def _download(name: str, version: str, python: str, platform: tuple[str, str], folder: Path) -> Path:
+    """One wheel of ``name==version`` for one platform and Python, into ``folder``."""
+    blender_platform, pip_platform = platform
+    folder.mkdir(parents=True, exist_ok=True)
+    with tempfile.TemporaryDirectory(dir=folder) as tmp:
+        cmd = [sys.executable, "-m", "pip", "download", "--disable-pip-version-check",
+               "-q", "--only-binary=:all:", "--python-version", python,
+               "--platform", pip_platform, "--no-deps", "-d", tmp, f"{name}=={version}"]
+        print(f"build_addon: downloading {name} {version} for {blender_platform}, Python {python}", flush=True)
+        proc = subprocess.run(cmd, capture_output=True, text=True)
+        got = sorted(Path(tmp).glob("*.whl"))
+        if proc.returncode != 0 or len(got) != 1:
+            tail = (proc.stderr or proc.stdout).strip().splitlines()[-3:]
+            raise BuildError(f"could not download {name}=={version} for {blender_platform} "
+                             f"(pip platform {pip_platform}, Python {python}): "
+                             + (" | ".join(tail) or "no wheel"))
+        return got[0].replace(folder / got[0].name)
+
+
+def fetch_wheels(pins: dict[str, str], pythons: tuple[str, ...]) -> list[Path]:
+    """The bundled wheels (:data:`BUNDLED`), downloaded into ``.cache/wheels/`` on first use:
+    one per package, platform and Python."""
     wheels = []
     for python in pythons:
-        for blender_platform, pip_platform, tag_end in PLATFORMS:
-            pattern = _wheel_glob(version, python, tag_end)
-            found = sorted(WHEEL_CACHE.glob(pattern))
-            if not found:
-                with tempfile.TemporaryDirectory(dir=WHEEL_CACHE) as tmp:
-                    cmd = [sys.executable, "-m", "pip", "download", "--disable-pip-version-check",
-                           "-q", "--only-binary=:all:", "--python-version", python,
-                           "--platform", pip_platform, "--no-deps", "-d", tmp,
-                           f"scipy=={version}"]
-                    print(f"build_addon: downloading scipy {version} for {blender_platform}, "
-                          f"Python {python}", flush=True)
-                    proc = subprocess.run(cmd, capture_output=True, text=True)
-                    got = sorted(Path(tmp).glob(pattern))
-                    if proc.returncode != 0 or not got:
-                        tail = (proc.stderr or proc.stdout).strip().splitlines()[-3:]
-                        raise BuildError(
-                            f"could not download scipy=={version} for {blender_platform} "
-                            f"(pip platform {pip_platform}, Python {python}): "
-                            + (" | ".join(tail) or f"no file matching {pattern}"))
-                    for path in got:
-                        path.replace(WHEEL_CACHE / path.name)
-                found = sorted(WHEEL_CACHE.glob(pattern))
-            if len(found) != 1:
-                raise BuildError(f"expected one wheel matching {pattern} in {WHEEL_CACHE}, "
-                                 f"found {[p.name for p in found]}")
-            wheels.append(found[0])
+        for platform in PLATFORMS:
+            folder = WHEEL_CACHE / f"py{python}" / platform[0]
+            for name, version in pins.items():
+                stem = f"{re.sub(r'[-_.]+', '_', name)}-{version}-"
+                found = sorted(folder.glob(stem + "*.whl")) if folder.is_dir() else []
+                if len(found) > 1:
+                    raise BuildError(f"expected one {name} {version} wheel in {folder}, "
+                                     f"found {[p.name for p in found]}")
+                wheels.append(found[0] if found else _download(name, version, python, platform, folder))
     return sorted(wheels, key=lambda p: p.name)
 
 
@@ -154,8 +172,7 @@ def manifest(version: str, wheels: list[Path]) -> str:
 
 def platform_wheels(wheels: list[Path], platform: str) -> list[Path]:
     """The wheels of one Blender platform (the tag the wheel was fetched for)."""
-    tag_end = {p[0]: p[2] for p in PLATFORMS}[platform]
-    return [w for w in wheels if w.stem.endswith(tag_end)]
+    return [w for w in wheels if wheel_platform(w) in (platform, None)]
 
 
 def generated_table(platform: str, wheels: list[Path]) -> str:
@@ -269,7 +286,7 @@ def build(output_dir: Path = ROOT / "dist", *, force: bool = False,
         raise BuildError(f"unknown platform(s) {', '.join(sorted(unknown))}; "
                          f"choose from {', '.join(p[0] for p in PLATFORMS)}")
     version = engine_version()
-    wheels = fetch_wheels(scipy_pin(), pythons)
+    wheels = fetch_wheels(bundled_pins(), pythons)
     text = manifest(version, wheels)
     sources = _sources()
     output_dir.mkdir(parents=True, exist_ok=True)

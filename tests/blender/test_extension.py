@@ -79,12 +79,13 @@ def test_manifest_and_contents(platform_zips, platform):
     # they are this platform's (blender_ext.py, paths_filter_wheels_by_platform)
     assert set(wheels) == {n for n in names if n.startswith("wheels/")}
     assert load_blender_ext().paths_filter_wheels_by_platform(wheels, platform) == wheels
-    scipy_pin = (ROOT / "requirements" / "engine.txt").read_text().split("scipy==")[1].split()[0]
-    # one wheel per Python tag (Blender 4.2-5.0: cp311, 5.1: cp313)
-    for tag in ("cp311", "cp313"):
-        mine = [w for w in wheels if f"-{tag}-{tag}-" in w]
-        assert len(mine) == 1, mine
-        assert mine[0].startswith(f"wheels/scipy-{scipy_pin}-")
+    from build_addon import bundled_pins
+    # one wheel per bundled package and Python tag (Blender 4.2-5.0: cp311, 5.1: cp313)
+    for name, version in bundled_pins().items():
+        stem = f"wheels/{name.replace('-', '_')}-{version}-"
+        for tag in ("cp311", "cp313"):
+            mine = [w for w in wheels if w.startswith(stem) and f"-{tag}-" in w]
+            assert len(mine) == 1, (name, tag, mine)
     for name in ("__init__.py", "bridge.py", "batch.py", "engine/__init__.py", "LICENSE"):
         assert name in names
     repo_engine = {f"engine/{p.relative_to(ROOT / 'engine').as_posix()}"
@@ -142,7 +143,7 @@ def test_failed_download_is_a_clear_error(monkeypatch, tmp_path):
     import build_addon
     monkeypatch.setattr(build_addon, "WHEEL_CACHE", tmp_path)
     with pytest.raises(build_addon.BuildError, match=r"could not download scipy==0\.0\.1 for linux-x64"):
-        build_addon.fetch_wheels("0.0.1", ("3.11",))
+        build_addon.fetch_wheels({"scipy": "0.0.1"}, ("3.11",))
 
 
 @pytest.mark.every_blender
@@ -187,20 +188,28 @@ assert np.allclose(got, want, atol=1e-10), (got, want)
 xs = np.stack(np.meshgrid(np.arange(5.0), np.arange(5.0)), -1).reshape(-1, 2)
 d, _ = scipy.spatial.cKDTree(xs).query(xs, k=2)
 assert np.allclose(d[:, 1], 1.0)
-print(scipy.__file__, scipy.__version__, np.__file__, np.__version__)
+import mapbox_earcut
+# a unit square (ring end index 4) is two triangles whose areas add to 1
+square = np.array([[0.0, 0.0], [1.0, 0.0], [1.0, 1.0], [0.0, 1.0]])
+tri = mapbox_earcut.triangulate_float64(square, np.array([4], dtype=np.uint32)).reshape(-1, 3)
+a, b, c = square[tri[:, 0]], square[tri[:, 1]], square[tri[:, 2]]
+area = 0.5 * np.abs((b - a)[:, 0] * (c - a)[:, 1] - (b - a)[:, 1] * (c - a)[:, 0])
+assert len(tri) == 2 and np.isclose(area.sum(), 1.0), tri
+print(scipy.__file__, scipy.__version__, np.__file__, np.__version__, mapbox_earcut.__file__)
 """
 
 
 @pytest.mark.every_blender
-def test_scipy_comes_from_the_extension_wheel(overtone):
+def test_bundled_wheels_load_with_this_blenders_numpy(overtone):
     from importlib.metadata import version
     venv_site = Path(importlib.import_module("numpy").__file__).parents[1]
     proc = subprocess.run([sys.executable, "-S", "-c", _SCIPY_CHECK, str(EXTENSIONS_SITE), str(venv_site)],
                           capture_output=True, text=True)
     assert proc.returncode == 0, proc.stderr
     assert proc.stderr == ""  # no NumPy ABI warning either
-    scipy_path, scipy_version, numpy_path, numpy_version = proc.stdout.split()
+    scipy_path, scipy_version, numpy_path, numpy_version, earcut_path = proc.stdout.split()
     assert Path(scipy_path).is_relative_to(EXTENSIONS_SITE)
+    assert Path(earcut_path).is_relative_to(EXTENSIONS_SITE)
     assert scipy_version == "1.17.1"
     assert Path(numpy_path).is_relative_to(venv_site) and numpy_version == version("numpy")
 
