@@ -48,7 +48,8 @@ Operators
 
 from .matching.closest_point import SurfaceLocator, SurfacePoints
 from .matching.correspondence import Correspondence, correspond
-from .jobs.pair import Pair, Settings, run_detail_job, run_transfer_job
+from .jobs.pair import Pair, Settings
+from .jobs.file_jobs import run_detail_job, run_transfer_job
 from .spectra.shape import Shape
 from .carrying.transfer import Transfer, TransferResult
 from .spectra.discretization import MeshDefects, Operators, mesh_defects, mesh_operators

@@ -28,7 +28,10 @@ import numpy as np
 from ..intake.preparation import validate_mesh
 
 __all__ = ["DetailLayer", "vertex_normals", "vertex_gradients", "tangent_frames",
-           "smooth_base", "split_detail", "apply_detail"]
+           "smooth_base", "split_detail", "apply_detail", "place_on_original", "check_strength",
+           "MAX_STRENGTH"]
+
+MAX_STRENGTH = 100.0  # |strength| accepted: a hundred times the source's detail is already a caricature
 
 
 @dataclass(frozen=True)
@@ -206,9 +209,52 @@ def apply_detail(layer: DetailLayer, offsets, *, strength: float = 1.0) -> np.nd
         raise ValueError(f"offsets must have shape {layer.base.shape}, got {o.shape}")
     if not np.isfinite(o).all():
         raise ValueError("offsets contain non-finite values")
-    if not np.isfinite(strength):
-        raise ValueError(f"strength must be finite, got {strength}")
-    return layer.base + strength * np.einsum("nji,nj->ni", layer.frames, o)
+    moved = layer.base + check_strength(strength) * np.einsum("nji,nj->ni", layer.frames, o)
+    if not np.isfinite(moved).all():
+        raise ValueError("detail gives non-finite positions")
+    return moved
+
+
+def check_strength(strength: float) -> float:
+    """``strength`` as a float when finite and at most :data:`MAX_STRENGTH` in size; else ValueError."""
+    try:
+        value = float(strength)
+    except (TypeError, ValueError, OverflowError):
+        raise ValueError(f"detail strength must be a number, got {strength!r}") from None
+    if not (np.isfinite(value) and abs(value) <= MAX_STRENGTH):
+        raise ValueError(f"detail strength must be between {-MAX_STRENGTH:g} and {MAX_STRENGTH:g}, got {strength}")
+    return value
+
+
+def place_on_original(original: np.ndarray, to_clean: np.ndarray, positions: np.ndarray) -> np.ndarray:
+    """New positions for every original vertex; vertices outside the surface stay where they were.
+
+    Parameters
+    ----------
+    original : (n, 3) float array
+        The original vertex positions.
+    to_clean : (n,) int array
+        Each original vertex's index in ``positions``, or -1 for a vertex
+        that belongs to no kept face (isolated, left by a hole, only in
+        zero-area faces): such vertices keep their original position.
+    positions : (n_clean, 3) float array
+        New positions of the surface's vertices.
+
+    Returns
+    -------
+    (n, 3) float64
+    """
+    v = np.asarray(original, dtype=np.float64)
+    idx = np.asarray(to_clean, dtype=np.int64)
+    p = np.asarray(positions, dtype=np.float64)
+    if v.ndim != 2 or v.shape[1] != 3 or idx.shape != (v.shape[0],):
+        raise ValueError(f"original {v.shape} and to_clean {idx.shape} do not fit")
+    if p.ndim != 2 or p.shape[1] != 3 or (idx.size and idx.max() >= p.shape[0]):
+        raise ValueError(f"positions {p.shape} do not fit the map to {int(idx.max(initial=-1)) + 1} vertices")
+    out = v.copy()
+    on = idx >= 0
+    out[on] = p[idx[on]]
+    return out
 
 
 def _unit(x: np.ndarray, *, fallback: np.ndarray) -> np.ndarray:
