@@ -39,7 +39,8 @@ from types import FrameType
 from typing import IO, Any
 
 __all__ = ["atomic_write", "atomic_writes", "Staging", "remove_leftovers", "terminate_as_interrupt",
-           "TEMP_SUFFIX", "is_temporary", "Terminated"]
+           "TEMP_SUFFIX", "is_temporary", "Terminated",
+           "quiet_interrupts_while_starting"]
 
 TEMP_SUFFIX = ".overtone-tmp"
 _TEMP_NAME = re.compile(r"^\..*\.(\d+)-[0-9a-f]{8}" + re.escape(TEMP_SUFFIX) + "$")
@@ -220,15 +221,35 @@ def _raise_terminated(signum: int, frame: FrameType | None) -> None:
     raise Terminated()
 
 
+def _exit_quietly(signum: int, frame: FrameType | None) -> None:
+    os._exit(128 + signum)
+
+
+def quiet_interrupts_while_starting() -> None:
+    """SIGINT and SIGTERM end the process at once, without a traceback.
+
+    For a command line while it imports its modules: nothing is written yet,
+    so there is nothing to clean up; :func:`terminate_as_interrupt` takes over
+    when the work starts.
+    """
+    for sig in (signal.SIGINT, signal.SIGTERM):
+        try:
+            signal.signal(sig, _exit_quietly)
+        except ValueError:  # not the main thread
+            return
+
+
 @contextmanager
 def terminate_as_interrupt() -> Iterator[None]:
-    """While in force, SIGTERM raises :class:`Terminated` (a ``KeyboardInterrupt``)."""
+    """While in force, SIGINT raises ``KeyboardInterrupt`` and SIGTERM :class:`Terminated` (one)."""
     try:
-        previous = signal.signal(signal.SIGTERM, _raise_terminated)
+        previous = {sig: signal.signal(sig, handler) for sig, handler in
+                    ((signal.SIGINT, signal.default_int_handler), (signal.SIGTERM, _raise_terminated))}
     except ValueError:  # not the main thread: leave signals alone
         yield
         return
     try:
         yield
     finally:
-        signal.signal(signal.SIGTERM, previous)
+        for sig, handler in previous.items():
+            signal.signal(sig, signal.SIG_DFL if handler is None else handler)

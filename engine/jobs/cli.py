@@ -89,10 +89,10 @@ def bad_input_message(exc: BaseException) -> str | None:
     return None
 
 
-def _save_details(exc: BaseException, caught: list[warnings.WarningMessage]) -> str:
+def _save_details(exc: BaseException, args: list[str], caught: list[warnings.WarningMessage]) -> str:
     fd, path = tempfile.mkstemp(prefix="overtone-error-", suffix=".log")
     with os.fdopen(fd, "w", encoding="utf-8", errors="replace") as fh:
-        fh.write(f"python -m engine {' '.join(sys.argv[1:])}\n{time.strftime('%Y-%m-%dT%H:%M:%S%z')}\n\n")
+        fh.write(f"python -m engine {' '.join(args)}\n{time.strftime('%Y-%m-%dT%H:%M:%S%z')}\n\n")
         fh.write("".join(traceback.format_exception(exc)))
         for w in caught:
             fh.write(f"\nwarning: {w.category.__name__}: {w.message} ({w.filename}:{w.lineno})")
@@ -118,7 +118,7 @@ def main(argv: Sequence[str] | None = None) -> int:
                 print(f"error: {message}", file=sys.stderr)
                 return EXIT_BAD_INPUT
             try:
-                where = f"details saved to {_save_details(exc, caught)}"
+                where = f"details saved to {_save_details(exc, args, caught)}"
             except OSError as log_error:
                 where = f"the details could not be saved ({log_error.strerror or log_error})"
             print(f"error: internal error ({type(exc).__name__}); {where}", file=sys.stderr)

@@ -111,22 +111,24 @@ def run_basis(args: argparse.Namespace) -> int:
     basis = shape.eigenbasis(args.k)
     prepared = shape.prepared
     mass = np.zeros(prepared.n_original)
-    mass[prepared.from_clean] = shape.mass * scale ** 2
-    arrays = {
-        "eigenvalues": basis.eigenvalues / scale ** 2,
-        "eigenvectors": prepared.restore(basis.eigenvectors) / scale,
-        "mass": mass,
-        "residuals": basis.residuals,
-    }
-    if not all(np.isfinite(a).all() for a in arrays.values()):
-        raise ValueError(f"{args.mesh}: the eigenbasis in the file's units is beyond the floating-point range")
+    with np.errstate(over="ignore", under="ignore"):  # out of range: refused below
+        mass[prepared.from_clean] = shape.mass * scale * scale
+        arrays = {
+            "eigenvalues": basis.eigenvalues / scale / scale,
+            "eigenvectors": prepared.restore(basis.eigenvectors) / scale,
+            "mass": mass,
+            "residuals": basis.residuals,
+        }
     line = (f"{basis.eigenvalues.shape[0]} eigenpairs of {prepared.n_original} vertices, eigenvalues "
             f"{basis.eigenvalues[0]:.3g}..{basis.eigenvalues[-1]:.4g}, worst residual {basis.residuals.max():.1e}")
     if args.order:
         products = shape.products(args.k, args.order)
-        arrays["products"] = prepared.restore(products.basis) / scale
+        with np.errstate(over="ignore"):
+            arrays["products"] = prepared.restore(products.basis) / scale
         arrays["product_exponents"] = products.exponents[products.kept]
         line += f"; {products.basis.shape[1]} of {products.exponents.shape[0]} products kept at order {args.order}"
+    if not all(np.isfinite(a).all() for a in arrays.values()):
+        raise ValueError(f"{args.mesh}: the eigenbasis in the file's units is beyond the floating-point range")
     save_npz(args.output, arrays)
     for note in prepared.notes:
         print(f"mesh: {note}")
