@@ -13,26 +13,28 @@ one Blender applies to byte colours.
 
 from __future__ import annotations
 
+from typing import Any
+
 import numpy as np
-from numpy.typing import ArrayLike, DTypeLike
+from numpy.typing import ArrayLike, DTypeLike, NDArray
 
 __all__ = ["srgb_to_linear", "linear_to_srgb", "decode_bytes", "encode_bytes", "is_colour_range",
            "decode_colour", "encode_colour"]
 
 
-def srgb_to_linear(c: ArrayLike) -> np.ndarray:
+def srgb_to_linear(c: ArrayLike) -> NDArray[Any]:
     """sRGB-encoded values in [0, 1] to linear, elementwise (IEC 61966-2-1)."""
     c = np.clip(np.asarray(c, dtype=np.float64), 0.0, 1.0)
     return np.where(c <= 0.04045, c / 12.92, ((c + 0.055) / 1.055) ** 2.4)
 
 
-def linear_to_srgb(c: ArrayLike) -> np.ndarray:
+def linear_to_srgb(c: ArrayLike) -> NDArray[Any]:
     """Linear values in [0, 1] to sRGB-encoded, elementwise (IEC 61966-2-1)."""
     c = np.clip(np.asarray(c, dtype=np.float64), 0.0, 1.0)
     return np.where(c <= 0.0031308, 12.92 * c, 1.055 * c ** (1 / 2.4) - 0.055)
 
 
-def _channels(a: np.ndarray) -> None:
+def _channels(a: NDArray[Any]) -> None:
     if a.ndim != 2 or a.shape[1] not in (3, 4):
         raise ValueError(f"colours must have shape (n, 3) or (n, 4), got {a.shape}")
 
@@ -49,7 +51,7 @@ def is_colour_range(values: ArrayLike) -> bool:
     return False
 
 
-def decode_colour(values: ArrayLike) -> np.ndarray:
+def decode_colour(values: ArrayLike) -> NDArray[Any]:
     """Colours (n, 3|4) of any integer or float type to linear float64 in [0, 1].
 
     Integers: divided by the type's maximum, RGB sRGB-decoded, alpha linear.
@@ -68,7 +70,7 @@ def decode_colour(values: ArrayLike) -> np.ndarray:
     return out
 
 
-def encode_colour(linear: ArrayLike, dtype: DTypeLike) -> np.ndarray:
+def encode_colour(linear: ArrayLike, dtype: DTypeLike) -> NDArray[Any]:
     """Linear colours (n, 3|4) to ``dtype``: the inverse of :func:`decode_colour`.
 
     Values are clamped to [0, 1]; integers are RGB sRGB-encoded and rounded to
@@ -86,16 +88,17 @@ def encode_colour(linear: ArrayLike, dtype: DTypeLike) -> np.ndarray:
         raise ValueError(f"colours cannot be stored as {dt}")
     out[:, :3] = linear_to_srgb(out[:, :3])
     top = int(np.iinfo(dt).max)
-    return np.round(out * top).astype(dt)
+    rounded: NDArray[Any] = np.round(out * top).astype(dt)
+    return rounded
 
 
-def decode_bytes(rgba: ArrayLike) -> np.ndarray:
+def decode_bytes(rgba: ArrayLike) -> NDArray[Any]:
     """8-bit colours (n, 3|4) uint8, RGB sRGB-encoded, to linear floats in [0, 1]."""
     a = np.asarray(rgba)
     _channels(a)
     return decode_colour(a.astype(np.uint8))
 
 
-def encode_bytes(linear: ArrayLike) -> np.ndarray:
+def encode_bytes(linear: ArrayLike) -> NDArray[Any]:
     """Linear colours (n, 3|4) in [0, 1] to 8-bit, RGB sRGB-encoded, alpha linear."""
     return encode_colour(linear, np.uint8)

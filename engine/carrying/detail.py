@@ -23,7 +23,10 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+from typing import Any
+
 import numpy as np
+from numpy.typing import ArrayLike, NDArray
 
 from ..intake.preparation import validate_mesh
 
@@ -48,18 +51,18 @@ class DetailLayer:
         ``x - base`` in the local frame: components along t1, t2 and n.
     """
 
-    base: np.ndarray
-    frames: np.ndarray
-    offsets: np.ndarray
+    base: NDArray[Any]
+    frames: NDArray[Any]
+    offsets: NDArray[Any]
 
 
-def vertex_normals(vertices, faces) -> np.ndarray:
+def vertex_normals(vertices: ArrayLike, faces: ArrayLike) -> NDArray[Any]:
     """Area-weighted unit vertex normals, (n, 3). Isolated vertices get +z."""
     v, f = validate_mesh(vertices, faces)
     return vertex_normals_unchecked(v, f)
 
 
-def vertex_normals_unchecked(v: np.ndarray, f: np.ndarray) -> np.ndarray:
+def vertex_normals_unchecked(v: NDArray[Any], f: NDArray[Any]) -> NDArray[Any]:
     """:func:`vertex_normals` of an already validated mesh (the alignment
     loop of engine.correspondence calls it on every step)."""
     fn = np.cross(v[f[:, 1]] - v[f[:, 0]], v[f[:, 2]] - v[f[:, 0]])  # length = 2 * area
@@ -70,7 +73,7 @@ def vertex_normals_unchecked(v: np.ndarray, f: np.ndarray) -> np.ndarray:
     return _unit(n, fallback=np.array([0.0, 0.0, 1.0]))
 
 
-def vertex_gradients(vertices, faces, field) -> np.ndarray:
+def vertex_gradients(vertices: ArrayLike, faces: ArrayLike, field: ArrayLike) -> NDArray[Any]:
     """Gradient of a per-vertex scalar field, averaged to vertices by area.
 
     Parameters
@@ -101,10 +104,11 @@ def vertex_gradients(vertices, faces, field) -> np.ndarray:
     for c in range(3):
         np.add.at(out, f[:, c], grad * dbl_area[:, None])
         np.add.at(w, f[:, c], dbl_area)
-    return out / np.where(w > 0, w, 1.0)[:, None]
+    gradients: NDArray[Any] = out / np.where(w > 0, w, 1.0)[:, None]
+    return gradients
 
 
-def tangent_frames(vertices, faces, guides) -> np.ndarray:
+def tangent_frames(vertices: ArrayLike, faces: ArrayLike, guides: ArrayLike) -> NDArray[Any]:
     """Orthonormal frames ``[t1, t2, n]`` per vertex, (n, 3, 3).
 
     Parameters
@@ -141,7 +145,7 @@ def tangent_frames(vertices, faces, guides) -> np.ndarray:
     return np.stack([t1, t2, n], axis=1)
 
 
-def smooth_base(vertices, stiffness, mass, *, wavelength: float) -> np.ndarray:
+def smooth_base(vertices: ArrayLike, stiffness: Any, mass: ArrayLike, *, wavelength: float) -> NDArray[Any]:
     """Coordinates low-passed by ``1 / (1 + t lambda)^2``, (n, 3).
 
     Parameters
@@ -171,7 +175,7 @@ def smooth_base(vertices, stiffness, mass, *, wavelength: float) -> np.ndarray:
     return b
 
 
-def split_detail(vertices, faces, base, *, guides) -> DetailLayer:
+def split_detail(vertices: ArrayLike, faces: ArrayLike, base: ArrayLike, *, guides: ArrayLike) -> DetailLayer:
     """Split a surface into a given smooth base and local-frame offsets.
 
     Parameters
@@ -192,7 +196,7 @@ def split_detail(vertices, faces, base, *, guides) -> DetailLayer:
     return DetailLayer(base, frames, offsets)
 
 
-def apply_detail(layer: DetailLayer, offsets, *, strength: float = 1.0) -> np.ndarray:
+def apply_detail(layer: DetailLayer, offsets: ArrayLike, *, strength: float = 1.0) -> NDArray[Any]:
     """New positions: ``layer.base`` plus ``strength * offsets`` in ``layer.frames``.
 
     Parameters
@@ -209,7 +213,7 @@ def apply_detail(layer: DetailLayer, offsets, *, strength: float = 1.0) -> np.nd
         raise ValueError(f"offsets must have shape {layer.base.shape}, got {o.shape}")
     if not np.isfinite(o).all():
         raise ValueError("offsets contain non-finite values")
-    moved = layer.base + check_strength(strength) * np.einsum("nji,nj->ni", layer.frames, o)
+    moved: NDArray[Any] = layer.base + check_strength(strength) * np.einsum("nji,nj->ni", layer.frames, o)
     if not np.isfinite(moved).all():
         raise ValueError("detail gives non-finite positions")
     return moved
@@ -226,7 +230,7 @@ def check_strength(strength: float) -> float:
     return value
 
 
-def place_on_original(original: np.ndarray, to_clean: np.ndarray, positions: np.ndarray) -> np.ndarray:
+def place_on_original(original: NDArray[Any], to_clean: NDArray[Any], positions: NDArray[Any]) -> NDArray[Any]:
     """New positions for every original vertex; vertices outside the surface stay where they were.
 
     Parameters
@@ -257,8 +261,8 @@ def place_on_original(original: np.ndarray, to_clean: np.ndarray, positions: np.
     return out
 
 
-def _unit(x: np.ndarray, *, fallback: np.ndarray) -> np.ndarray:
+def _unit(x: NDArray[Any], *, fallback: NDArray[Any]) -> NDArray[Any]:
     size = np.linalg.norm(x, axis=1, keepdims=True)
-    out = x / np.where(size > 0, size, 1.0)
+    out: NDArray[Any] = x / np.where(size > 0, size, 1.0)
     out[size[:, 0] == 0] = fallback
     return out

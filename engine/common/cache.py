@@ -19,7 +19,10 @@ import hashlib
 import os
 import zipfile
 
+from typing import Any
+
 import numpy as np
+from numpy.typing import NDArray
 
 from collections.abc import Iterable, Mapping
 
@@ -33,7 +36,7 @@ _META_VERSION = "__version__"
 _META_DIGEST = "__sha256__"
 
 
-def geometry_key(*arrays, **params) -> str:
+def geometry_key(*arrays: Any, **params: str | int | float | bool | None) -> str:
     """Stable sha256 hex digest of arrays and parameters.
 
     Parameters
@@ -78,7 +81,7 @@ def geometry_key(*arrays, **params) -> str:
 FieldSpec = tuple[int | str | None, ...] | None
 
 
-def _content_digest(arrays: dict[str, np.ndarray]) -> str:
+def _content_digest(arrays: dict[str, NDArray[Any]]) -> str:
     """sha256 over every field's name, dtype, shape and bytes, in name order."""
     h = hashlib.sha256()
     for name in sorted(arrays):
@@ -88,7 +91,7 @@ def _content_digest(arrays: dict[str, np.ndarray]) -> str:
     return h.hexdigest()
 
 
-def _stored_form(name: object, value: object) -> np.ndarray:
+def _stored_form(name: object, value: object) -> NDArray[Any]:
     """A field as it is stored: floats as float64, integers as int64."""
     if not isinstance(name, str) or not name or name.startswith("__"):
         raise ValueError(f"field name {name!r} is reserved or not a string")
@@ -104,7 +107,7 @@ def _stored_form(name: object, value: object) -> np.ndarray:
     raise ValueError(f"field {name!r} has dtype {a.dtype}; only float, integer, bool and str are stored")
 
 
-def _fits(a: np.ndarray, shape: FieldSpec, sizes: dict[str, int]) -> bool:
+def _fits(a: NDArray[Any], shape: FieldSpec, sizes: dict[str, int]) -> bool:
     """Whether ``a`` has the stored dtypes and the requested shape; named sizes must agree."""
     if a.dtype.kind == "f" and a.dtype != np.float64 or a.dtype.kind in "iu" and a.dtype != np.int64:
         return False
@@ -151,7 +154,7 @@ class Cache:
             raise ValueError(f"cache key must be a non-empty string of letters, digits, '-' or '_', got {key!r}")
         return os.path.join(self.folder, key + ".npz")
 
-    def load(self, key: str, fields: Iterable[str] | Mapping[str, FieldSpec]) -> dict[str, np.ndarray] | None:
+    def load(self, key: str, fields: Iterable[str] | Mapping[str, FieldSpec]) -> dict[str, NDArray[Any]] | None:
         """The stored arrays, or None on a miss.
 
         Parameters
@@ -192,7 +195,7 @@ class Cache:
         return out
 
     @staticmethod
-    def _read_valid(path: str, key: str, shapes: dict[str, FieldSpec]) -> dict[str, np.ndarray] | None:
+    def _read_valid(path: str, key: str, shapes: dict[str, FieldSpec]) -> dict[str, NDArray[Any]] | None:
         try:
             with np.load(path, allow_pickle=False) as z:
                 stored = {name: z[name] for name in z.files}
@@ -231,10 +234,10 @@ class Cache:
         data[_META_VERSION] = np.asarray(_FORMAT, dtype=np.int64)
         data[_META_DIGEST] = np.asarray(digest)
         with atomic_write(path) as fh:
-            np.savez(fh, **data)  # type: ignore[arg-type]
+            np.savez(fh, **data)
         return path
 
-    def _entries(self):
+    def _entries(self) -> list[tuple[float, int, str]]:
         out = []
         for name in os.listdir(self.folder):
             if name.endswith(".npz"):

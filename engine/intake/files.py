@@ -28,7 +28,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-from numpy.typing import ArrayLike
+from numpy.typing import ArrayLike, NDArray
 
 from ..common.atomic import atomic_write
 from .triangulation import triangulate
@@ -67,19 +67,19 @@ class MeshData:
         for OBJ and OFF.
     """
 
-    vertices: np.ndarray
-    corners: np.ndarray
-    sizes: np.ndarray
-    properties: dict = field(default_factory=dict)
+    vertices: NDArray[Any]
+    corners: NDArray[Any]
+    sizes: NDArray[Any]
+    properties: dict[str, NDArray[Any]] = field(default_factory=dict)
 
-    def triangles(self) -> np.ndarray:
+    def triangles(self) -> NDArray[Any]:
         """The polygons as triangles, (t, 3) int64, by ear clipping (``_triangulate``)."""
         return triangulate(self.vertices, self.corners, self.sizes)[0]
 
 
 # ---------------------------------------------------------------- reading
 
-def read_mesh(path) -> MeshData:
+def read_mesh(path: str | os.PathLike[str]) -> MeshData:
     """Read a ``.ply``, ``.obj`` or ``.off`` file.
 
     Parameters
@@ -120,6 +120,9 @@ def read_mesh(path) -> MeshData:
 _BOM = b"\xef\xbb\xbf"  # UTF-8 byte-order mark (Unicode standard, section 23.8, from memory)
 
 
+_Parts = tuple[NDArray[Any], NDArray[Any], NDArray[Any], dict[str, NDArray[Any]]]
+
+
 class _FormatError(Exception):
     """A problem in a file's content; read_mesh adds the file name."""
 
@@ -153,7 +156,7 @@ class _Element:
     def __init__(self, name: str, count: int):
         self.name, self.count = name, count
         # (name, dtype string) for scalars, (name, item dtype string, count dtype string) for lists
-        self.props: list[tuple] = []
+        self.props: list[tuple[str, ...]] = []
 
 
 def _parse_header(lines: list[str]) -> tuple[str, list[_Element]]:
@@ -198,7 +201,7 @@ def _ply_type(name: str, number: int) -> str:
     return _PLY_TYPES[name]
 
 
-def _read_ply(data: bytes):
+def _read_ply(data: bytes) -> _Parts:
     lines, pos = _split_header(data)
     fmt, elements = _parse_header(lines)
     names = [e.name for e in elements]
@@ -243,7 +246,7 @@ def _read_ply(data: bytes):
     return vertices, corners, sizes, props
 
 
-def _group_properties(cols: dict) -> dict:
+def _group_properties(cols: dict[str, NDArray[Any]]) -> dict[str, NDArray[Any]]:
     """Join red/green/blue[/alpha] into "color" and nx/ny/nz into "normal".
 
     Only when all members are present with one dtype; the group takes the
@@ -254,17 +257,17 @@ def _group_properties(cols: dict) -> dict:
         have = [p for p in parts if p in cols]
         if group not in cols and all(p in cols for p in parts[:3]) and len({cols[p].dtype for p in have}) == 1:
             members.update({p: group for p in have})
-    props: dict = {}
+    props: dict[str, NDArray[Any]] = {}
     for name, a in cols.items():
-        group = members.get(name)
-        if group is None:
+        member: str | None = members.get(name)
+        if member is None:
             props[name] = a
-        elif group not in props:
-            props[group] = np.column_stack([cols[p] for p in _GROUPS[group] if members.get(p) == group])
+        elif member not in props:
+            props[member] = np.column_stack([cols[p] for p in _GROUPS[member] if members.get(p) == member])
     return props
 
 
-def _native(a: np.ndarray) -> np.ndarray:
+def _native(a: NDArray[Any]) -> NDArray[Any]:
     return np.ascontiguousarray(a, dtype=a.dtype.newbyteorder("="))
 
 
@@ -275,7 +278,7 @@ class _BinaryBody:
         self.data, self.pos, self.endian = data, pos, endian
         self.buf = np.frombuffer(data, dtype=np.uint8)
 
-    def _dt(self, code: str) -> np.dtype:
+    def _dt(self, code: str) -> np.dtype[Any]:
         return np.dtype(self.endian + code)
 
     def check_end(self) -> None:
@@ -285,7 +288,7 @@ class _BinaryBody:
             raise _FormatError(f"{len(extra)} bytes after the last element: the header's element counts "
                                "are smaller than the file's data")
 
-    def element(self, e: _Element, keep: bool) -> dict:
+    def element(self, e: _Element, keep: bool) -> dict[str, Any]:
         smallest = sum(np.dtype(p[2] if len(p) == 3 else p[1]).itemsize for p in e.props)
         if any(len(p) == 3 for p in e.props) and e.count * smallest > len(self.data) - self.pos:
             raise _FormatError(f"truncated data: element {e.name!r} announces {e.count} records, "
@@ -299,7 +302,7 @@ class _BinaryBody:
             return {p[0]: (np.zeros(0, self._dt(p[1])), np.zeros(0, np.int64)) for p in lists}
         # Fast path: every record has the list lengths of the first record.
         first = self._lengths_at(e, self.pos)
-        fields = []
+        fields: list[tuple[Any, ...]] = []
         for i, p in enumerate(e.props):
             if len(p) == 2:
                 fields.append((f"p{i}", self._dt(p[1])))
@@ -313,7 +316,7 @@ class _BinaryBody:
                 self.pos += e.count * dt.itemsize
                 if not keep:
                     return {}
-                out = {}
+                out: dict[str, Any] = {}
                 for i, p in enumerate(e.props):
                     if len(p) == 3:
                         out[p[0]] = (_native(arr[f"p{i}"]).reshape(-1),
@@ -323,7 +326,7 @@ class _BinaryBody:
                 return out
         return self._walk(e, keep)
 
-    def _take(self, e: _Element, dt: np.dtype) -> np.ndarray:
+    def _take(self, e: _Element, dt: np.dtype[Any]) -> NDArray[Any]:
         need = e.count * dt.itemsize
         if self.pos + need > len(self.data):
             raise _FormatError(f"truncated data: element {e.name!r} needs {need} bytes, "
@@ -342,7 +345,7 @@ class _BinaryBody:
             raise _FormatError(f"negative list length {value}")
         return value
 
-    def _lengths_at(self, e: _Element, at: int) -> dict:
+    def _lengths_at(self, e: _Element, at: int) -> dict[int, int]:
         lengths = {}
         for i, p in enumerate(e.props):
             if len(p) == 2:
@@ -355,7 +358,7 @@ class _BinaryBody:
                     raise _FormatError(f"truncated data: a list of {k} items in element {e.name!r}")
         return lengths
 
-    def _walk(self, e: _Element, keep: bool) -> dict:
+    def _walk(self, e: _Element, keep: bool) -> dict[str, Any]:
         """Records of mixed list lengths: one Python pass finds where each starts."""
         n = e.count
         layout = [(np.dtype(p[1]).itemsize, np.dtype(p[2]).itemsize if len(p) == 3 else 0, p[2] if len(p) == 3 else "")
@@ -400,7 +403,7 @@ class _BinaryBody:
         self.pos = at
         if not keep:
             return {}
-        out = {}
+        out: dict[str, Any] = {}
         for j, p in enumerate(e.props):
             dt = self._dt(p[1])
             if len(p) == 2:
@@ -413,7 +416,7 @@ class _BinaryBody:
                 out[p[0]] = (_native(self._gather(pos, dt)), ln.copy())
         return out
 
-    def _list_lengths(self, e: _Element, at: int, pre: int, fixed: int, isize: int, ccode: str) -> np.ndarray:
+    def _list_lengths(self, e: _Element, at: int, pre: int, fixed: int, isize: int, ccode: str) -> NDArray[Any]:
         data, n = self.data, e.count
         ks = [0] * n
         r = 0
@@ -439,7 +442,7 @@ class _BinaryBody:
             raise _FormatError(f"truncated data in element {e.name!r} (record {n - 1} of {n})")
         return np.asarray(ks, dtype=np.int64)
 
-    def _gather(self, pos: np.ndarray, dt: np.dtype) -> np.ndarray:
+    def _gather(self, pos: NDArray[Any], dt: np.dtype[Any]) -> NDArray[Any]:
         idx = pos[:, None] + np.arange(dt.itemsize)
         return np.ascontiguousarray(self.buf[idx]).view(dt).reshape(-1)
 
@@ -451,7 +454,7 @@ class _AsciiBody:
         self.tokens = body.split()
         self.pos = 0
 
-    def _convert(self, toks, code: str, what: str) -> np.ndarray:
+    def _convert(self, toks: Any, code: str, what: str) -> NDArray[Any]:
         dt = np.dtype(code)
         try:
             a = np.array(toks, dtype="S")
@@ -472,7 +475,7 @@ class _AsciiBody:
             raise _FormatError(f"{len(self.tokens) - self.pos} values after the last element: the header's "
                                "element counts are smaller than the file's data")
 
-    def element(self, e: _Element, keep: bool) -> dict:
+    def element(self, e: _Element, keep: bool) -> dict[str, Any]:
         toks, n = self.tokens, e.count
         if any(len(p) == 3 for p in e.props) and n * len(e.props) > len(toks) - self.pos:
             raise _FormatError(f"truncated data: element {e.name!r} announces {n} records, "
@@ -488,7 +491,7 @@ class _AsciiBody:
             self.pos += need
             if not keep:
                 return {}
-            out = {}
+            out: dict[str, Any] = {}
             for i, p in enumerate(e.props):
                 out[p[0]] = self._convert(block[i::width], p[1], f"element {e.name!r} property {p[0]!r}")
             return out
@@ -541,10 +544,12 @@ class _AsciiBody:
         return out
 
 
-    def _same_lengths(self, e: _Element, keep: bool):
+    def _same_lengths(self, e: _Element, keep: bool) -> dict[str, Any] | None:
         """Fast path: every record has the list lengths of the first one, else None."""
         toks, n, at = self.tokens, e.count, self.pos
-        widths, cols = [], []
+        widths: list[int] = []
+        cols: list[tuple[int, int | None]] = []
+        k: int | None
         try:
             for p in e.props:
                 if len(p) == 3:
@@ -574,7 +579,7 @@ class _AsciiBody:
         self.pos += n * width
         if not keep:
             return {}
-        out = {}
+        out: dict[str, Any] = {}
         for (start, k), p in zip(cols, e.props):
             what = f"element {e.name!r} property {p[0]!r}"
             if k is None:
@@ -598,7 +603,7 @@ def _decode(data: bytes) -> str:
     return data.decode("utf-8-sig", errors="replace")
 
 
-def _indices(flat: list[str]) -> np.ndarray:
+def _indices(flat: list[str]) -> NDArray[Any]:
     """Face index tokens as int64; a token that is no whole number, or beyond int64, is refused."""
     try:
         return np.array(flat, dtype=np.int64) if flat else np.zeros(0, np.int64)
@@ -607,7 +612,7 @@ def _indices(flat: list[str]) -> np.ndarray:
         raise _FormatError(f"bad face index {bad!r} (not a whole number, or out of range)") from None
 
 
-def _read_obj(data: bytes):
+def _read_obj(data: bytes) -> _Parts:
     text = _decode(data)
     vlines: list[str] = []
     flines: list[str] = []
@@ -658,7 +663,7 @@ def _read_obj(data: bytes):
     return vertices, corners, sizes, {}
 
 
-def _read_off(data: bytes):
+def _read_off(data: bytes) -> _Parts:
     text = _decode(data)
     lines = []
     for line in text.splitlines():
@@ -790,7 +795,7 @@ def ply_chunks(vertices: ArrayLike, *, corners: ArrayLike | None = None, sizes: 
     return [head, *body]
 
 
-def _property_columns(name, value, n: int) -> list[tuple[str, np.ndarray]]:
+def _property_columns(name: Any, value: ArrayLike, n: int) -> list[tuple[str, NDArray[Any]]]:
     if not isinstance(name, str) or not name or any(ch.isspace() for ch in name) or not name.isascii():
         raise ValueError(f"property name {name!r} must be non-empty ASCII without spaces")
     a = np.asarray(value)
@@ -814,7 +819,8 @@ def _property_columns(name, value, n: int) -> list[tuple[str, np.ndarray]]:
     return [(cname, np.ascontiguousarray(col, dtype=col.dtype.newbyteorder("<"))) for cname, col in cols]
 
 
-def _binary_body(columns, c, s, count_type: str, index_type: str) -> list[bytes]:
+def _binary_body(columns: list[tuple[str, NDArray[Any]]], c: NDArray[Any], s: NDArray[Any], count_type: str,
+                 index_type: str) -> list[bytes]:
     dt = np.dtype([(cname, col.dtype.newbyteorder("<")) for cname, col in columns])
     block = np.empty(len(columns[0][1]), dtype=dt)
     for cname, col in columns:
@@ -835,7 +841,7 @@ def _binary_body(columns, c, s, count_type: str, index_type: str) -> list[bytes]
     return out
 
 
-def _ascii_body(columns, c, s) -> list[bytes]:
+def _ascii_body(columns: list[tuple[str, NDArray[Any]]], c: NDArray[Any], s: NDArray[Any]) -> list[bytes]:
     fmts, lists = [], []
     for _, col in columns:
         if col.dtype.kind == "f":

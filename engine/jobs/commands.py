@@ -15,6 +15,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
+from numpy.typing import NDArray
 
 from ..common.atomic import atomic_write
 
@@ -82,14 +83,14 @@ def _one_shape(path: str, output: str, cache_dir: str | None) -> tuple[MeshData,
     return data, read_shape(data, Cache(cache_dir) if cache_dir else None, frame), frame[1]
 
 
-def save_npz(path: str | os.PathLike[str], arrays: dict[str, np.ndarray]) -> None:
+def save_npz(path: str | os.PathLike[str], arrays: dict[str, NDArray[Any]]) -> None:
     """Write an ``.npz`` atomically: a temporary file in the same folder, then rename."""
     target = Path(path)
     folder = target.parent if str(target.parent) else Path(".")
     if not folder.is_dir():
         raise OSError(f"output folder {str(folder)!r} does not exist")
     with atomic_write(target) as fh:
-        np.savez(fh, **arrays)  # type: ignore[arg-type]
+        np.savez(fh, **arrays)
 
 
 # -- basis ---------------------------------------------------------------------
@@ -290,7 +291,7 @@ def run_demo(args: argparse.Namespace) -> int:
     path = out / "creature.ply"
     write_ply(path, c.vertices, faces=c.faces, properties=props)
     print(f"demo creature: {len(c.vertices)} vertices, {len(c.faces)} triangles -> {path}")
-    shape = Shape(c.vertices, c.faces)
+    shape = Shape(c.vertices, c.faces)  # type: ignore[no-untyped-call, unused-ignore]
     rows = []
     runs = [("orthoproducts", None), ("products", None), ("laplacian", 100)]
     for basis, k in runs:

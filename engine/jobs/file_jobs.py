@@ -25,6 +25,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+from numpy.typing import NDArray
 
 from ..common.atomic import atomic_writes, remove_leftovers
 from ..common.cache import Cache
@@ -108,7 +109,7 @@ def check_paths(inputs: Sequence[PathLike], outputs: Sequence[PathLike]) -> None
         remove_leftovers(folder)
 
 
-def unit_frame(*vertex_sets: np.ndarray) -> tuple[np.ndarray, float]:
+def unit_frame(*vertex_sets: NDArray[Any]) -> tuple[NDArray[Any], float]:
     """Centre and scale that map all the given points into [-1, 1]^3.
 
     Returns
@@ -129,13 +130,15 @@ def unit_frame(*vertex_sets: np.ndarray) -> tuple[np.ndarray, float]:
     return centre, scale
 
 
-def read_shape(data: MeshData, cache: Cache | None, frame: tuple[np.ndarray, float]) -> Shape:
+def read_shape(data: MeshData, cache: Cache | None, frame: tuple[NDArray[Any], float]) -> Shape:
     """The :class:`Shape` of a read mesh in the unit frame ``(centre, scale)``."""
     centre, scale = frame
-    return Shape((data.vertices - centre) / scale, corners=data.corners, sizes=data.sizes, cache=cache)
+    vertices = (data.vertices - centre) / scale
+    return Shape(vertices, corners=data.corners, sizes=data.sizes,  # type: ignore[no-untyped-call, unused-ignore]
+                 cache=cache)
 
 
-def _open_pair(files: JobFiles) -> tuple[MeshData, Shape, MeshData, Shape, tuple[np.ndarray, float]]:
+def _open_pair(files: JobFiles) -> tuple[MeshData, Shape, MeshData, Shape, tuple[NDArray[Any], float]]:
     check_paths(files.inputs(), files.outputs())
     src_data, tgt_data = read_mesh(files.source), read_mesh(files.target)
     cache = Cache(files.cache) if files.cache else None
@@ -157,7 +160,7 @@ def report_text(report: dict[str, Any]) -> str:
     return json.dumps(report, indent=2, allow_nan=False)
 
 
-def _finish(files: JobFiles, mesh: tuple[np.ndarray, MeshData, dict[str, Any]], report: dict[str, Any],
+def _finish(files: JobFiles, mesh: tuple[NDArray[Any], MeshData, dict[str, Any]], report: dict[str, Any],
             started: float) -> dict[str, Any]:
     """Write the output mesh (and the report) together; nothing is left if either fails."""
     vertices, data, props = mesh

@@ -24,6 +24,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+from numpy.typing import ArrayLike, NDArray
 
 from ..matching.correspondence import MATCHES, Correspondence, correspond
 from ..carrying.detail import apply_detail, check_strength, place_on_original, smooth_base, split_detail
@@ -69,11 +70,11 @@ class Settings:
     k: int = 100
     K: int | None = None
     order: int = 3
-    landmarks: tuple = ()
+    landmarks: tuple[tuple[int, int], ...] = ()
     detail_strength: float = 1.0
     detail_size: float = 0.05
 
-    def __post_init__(self):
+    def __post_init__(self) -> None:
         if self.match not in MATCHES:
             raise ValueError(f"unknown match {self.match!r}; expected one of {', '.join(MATCHES)}")
         if self.basis not in BASES:
@@ -88,7 +89,7 @@ class Settings:
                              f"got {self.detail_size}")
         object.__setattr__(self, "landmarks", tuple((int(a), int(b)) for a, b in self.landmarks))
 
-    def map_key(self) -> dict:
+    def map_key(self) -> dict[str, str | int]:
         """The settings the correspondence depends on."""
         return {"match": self.match, "landmarks": json.dumps([list(p) for p in self.landmarks]),
                 "version": CORRESPONDENCE_VERSION}
@@ -106,12 +107,12 @@ class Pair:
     def __init__(self, source: Shape, target: Shape, settings: Settings | None = None):
         self.source, self.target = source, target
         self.settings = settings or Settings()
-        self.timings: dict = {}
-        self.cache_hits: dict = {"correspondence": "computed"}
+        self.timings: dict[str, float] = {}
+        self.cache_hits: dict[str, Any] = {"correspondence": "computed"}
         t0 = time.perf_counter()
         self.correspondence = self._load_or_correspond()
         self.timings["correspondence"] = round(time.perf_counter() - t0, 4)
-        self._transfers: dict = {}
+        self._transfers: dict[str, Transfer] = {}
 
     # ----------------------------------------------------------------- map
     def _map_cache_key(self) -> str | None:
@@ -143,7 +144,7 @@ class Pair:
         return corr
 
     @property
-    def confidence(self) -> np.ndarray:
+    def confidence(self) -> NDArray[Any]:
         """(n_target_original,) float in [0, 1]: how sure the map is at each target vertex."""
         return np.clip(self.target.restore(self.correspondence.confidence), 0.0, 1.0)
 
@@ -155,9 +156,10 @@ class Pair:
             s = self.settings
             self._transfers[name] = Transfer(self.source, self.target, self.correspondence, basis=name,
                                              k=s.k, K=s.K, order=s.order)
-        return self._transfers[name]
+        transfer: Transfer = self._transfers[name]
+        return transfer
 
-    def carry(self, signals: dict, *, basis: str | None = None) -> dict[str, TransferResult]:
+    def carry(self, signals: dict[str, tuple[Any, str]], *, basis: str | None = None) -> dict[str, TransferResult]:
         """Carry several signals through one correspondence.
 
         Parameters
@@ -183,9 +185,10 @@ class Pair:
         self.timings["signals"] = round(time.perf_counter() - t0 - self.timings["bases"], 4)
         return out
 
-    def carry_corners(self, name: str, values, kind: str, source_corner_verts, source_face_sizes,
-                      target_corner_verts, target_face_sizes, *, basis: str | None = None,
-                      inset: float = 0.25):
+    def carry_corners(self, name: str, values: ArrayLike, kind: str, source_corner_verts: ArrayLike,
+                      source_face_sizes: ArrayLike, target_corner_verts: ArrayLike,
+                      target_face_sizes: ArrayLike, *, basis: str | None = None,
+                      inset: float = 0.25) -> Any:
         """Carry one per-corner signal, keeping its seams (``engine.corners.carry_corners``)."""
         from ..carrying.corners import carry_corners
         return carry_corners(self, name, values, kind, source_corner_verts, source_face_sizes,
@@ -193,7 +196,7 @@ class Pair:
 
     # ----------------------------------------------------------------- detail
     def detail(self, *, strength: float | None = None, size: float | None = None,
-               original: np.ndarray | None = None) -> np.ndarray:
+               original: NDArray[Any] | None = None) -> NDArray[Any]:
         """New target positions carrying the source's surface detail.
 
         Each mesh is split into a smooth base and offsets in the base's
@@ -225,7 +228,7 @@ class Pair:
         replace(s, detail_strength=strength, detail_size=size)  # validates both
         t0 = time.perf_counter()
         guides_s = self.source.eigenbasis(4).eigenvectors[:, 1:4]
-        P = self.correspondence.matrix()
+        P = self.correspondence.matrix()  # type: ignore[no-untyped-call, unused-ignore]
         wavelength = size * np.sqrt(self.source.area)
         scale = np.sqrt(self.target.area / self.source.area)
         base_s = smooth_base(self.source.vertices, self.source.stiffness, self.source.mass, wavelength=wavelength)
@@ -243,7 +246,7 @@ class Pair:
         return place_on_original(original, self.target.prepared.to_clean, positions)
 
     # ----------------------------------------------------------------- report
-    def report(self, results: dict[str, TransferResult] | None = None) -> dict:
+    def report(self, results: dict[str, TransferResult] | None = None) -> dict[str, Any]:
         """JSON-able account of the run: map, bases, signals, timings, cache."""
         corr = self.correspondence.report()
         out = {
@@ -266,10 +269,11 @@ class Pair:
         if results:
             out["signals"] = {name: {"kind": r.report.get("kind"), "source_error": r.source_error,
                                      "seconds": r.report.get("seconds")} for name, r in results.items()}
-        return _jsonable(out)
+        report: dict[str, Any] = _jsonable(out)
+        return report
 
 
-def _valid_map(stored: dict[str, np.ndarray], source: Shape, target: Shape) -> dict[str, Any] | None:
+def _valid_map(stored: dict[str, NDArray[Any]], source: Shape, target: Shape) -> dict[str, Any] | None:
     """The entry's meta when every field of a stored correspondence is usable, else None."""
     tri, bary, conf = stored["triangle"], stored["barycentric"], stored["confidence"]
     if tri.dtype.kind != "i" or bary.dtype.kind != "f" or conf.dtype.kind != "f" or stored["meta"].dtype.kind != "U":
@@ -289,7 +293,7 @@ def _valid_map(stored: dict[str, np.ndarray], source: Shape, target: Shape) -> d
     return meta
 
 
-def _jsonable(x):
+def _jsonable(x: Any) -> Any:
     if isinstance(x, dict):
         return {str(k): _jsonable(v) for k, v in x.items()}
     if isinstance(x, (list, tuple)):
@@ -303,7 +307,7 @@ def _jsonable(x):
     return x
 
 
-def weighted_centre_vertex(vertices, weights) -> int:
+def weighted_centre_vertex(vertices: ArrayLike, weights: ArrayLike) -> int:
     """The vertex nearest to the weight-averaged centre of a vertex group.
 
     Parameters
