@@ -151,10 +151,12 @@ def mesh_arrays(draw):
     exponent = draw(st.sampled_from([0, 0, 0, -100, 100, -300, 300, 8, -8]))
     v = v * 10.0 ** exponent + draw(st.sampled_from([0.0, 0.0, 1e3, -7.5])) * 10.0 ** exponent
     for edit in draw(st.lists(st.sampled_from(["isolated", "zero_area", "hole", "duplicate", "flip", "quad",
-                                                "nan", "out_of_range"]), max_size=3)):
+                                                "nan", "out_of_range", "far"]), max_size=3)):
         n = len(v)
         if edit == "isolated":
             v = np.vstack([v, v[:2] * 3.0])
+        elif edit == "far":  # a stray vertex at the end of the floating-point range
+            v = np.vstack([v, [[1e308, -1e308, 1e308]]])
         elif edit == "zero_area":
             v = np.vstack([v, v[0], (v[0] + v[1]) / 2, v[1]])
             f.append([n, n + 1, n + 2])
