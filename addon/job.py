@@ -282,7 +282,8 @@ def _transfer(inp: JobInput, progress: Progress) -> JobOutput:
     positions = None
     if inp.kind == "detail":
         progress(0.7, "carrying detail")
-        positions = pair.detail(strength=settings.detail_strength, size=settings.detail_size)
+        positions = pair.detail(strength=settings.detail_strength, size=settings.detail_size,
+                                original=inp.target.vertices)
         report = pair.report()
         moved = np.linalg.norm(positions - inp.target.vertices, axis=1)
         report["detail"] = {"strength": settings.detail_strength, "size": settings.detail_size,

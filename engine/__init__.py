@@ -33,7 +33,7 @@ Shapes, correspondence and transfer
     correspond            target vertex -> point on the source surface (Correspondence)
     Transfer              carries signals through a basis of choice (TransferResult)
     Pair, Settings        the whole job for one source/target pair (pipeline.py)
-    run_transfer_job, run_detail_job   file in, file out: one pair per call
+    run_transfer_job, run_detail_job   file in, file out: one pair per call (JobFiles, JobOptions)
     weighted_centre_vertex  the vertex at the weighted centre of a group (landmarks)
     Signal, check_signal  a per-vertex or per-corner signal, checked at the door
     vertex_average        per-vertex mean of a corner signal
@@ -53,9 +53,17 @@ Operators
     intrinsic_laplacian   the same operators from edge lengths alone
 """
 
+import sys as _sys
+
+if _sys.argv[:1] == ["-m"]:  # ``python -m engine`` is importing the package: see engine.jobs.cli
+    from .common.atomic import quiet_interrupts_while_starting
+
+    quiet_interrupts_while_starting()
+
 from .matching.closest_point import SurfaceLocator, SurfacePoints
 from .matching.correspondence import Correspondence, correspond
-from .jobs.pair import Pair, Settings, run_detail_job, run_transfer_job, weighted_centre_vertex
+from .jobs.pair import Pair, Settings, weighted_centre_vertex
+from .jobs.file_jobs import JobFiles, JobOptions, run_detail_job, run_transfer_job
 from .carrying.signals import Signal, check_signal
 from .carrying.corners import vertex_average
 from .carrying.weights import WeightOptions, carry_weights
@@ -97,6 +105,8 @@ __all__ = [
     "faces_under_centres",
     "carry_charted",
     "approximate_signals",
+    "JobFiles",
+    "JobOptions",
     "SurfaceLocator",
     "SurfacePoints",
     "validate_mesh",

@@ -163,3 +163,23 @@ def test_the_worker_serves_a_folder_and_says_why_it_failed(inputs, tmp_path):
     worker.serve_folder(failed)
     assert json.loads((failed / "error.json").read_text()) == {"error": "no signals to carry"}
     assert not (failed / "output.json").exists()
+
+
+def test_detail_leaves_vertices_outside_the_surface_where_they_were():
+    # A target with a loose vertex (in no face) far from the surface: the detail
+    # job moves surface vertices only; the loose one keeps its exact position
+    # (a vertex that belongs to no face has no surface detail to take).
+    source, target = _mesh(101, 51), _mesh(61, 31)
+    bumps = source.vertices.copy()
+    bumps[:, 2] = 0.02 * np.sin(20 * np.pi * bumps[:, 0]) * np.sin(20 * np.pi * bumps[:, 1])
+    source = replace(source, vertices=bumps)
+    loose = np.array([[5.0, -3.0, 2.0]])
+    target = replace(target, vertices=np.vstack([target.vertices, loose]))
+    job.forget_pairs()
+    out = job.run_job(job.JobInput("detail", source, target, (),
+                                   settings=engine.Settings(match="aligned", detail_size=0.1),
+                                   names=("Sculpt", "Game")))
+    assert out.positions is not None and out.positions.shape == target.vertices.shape
+    np.testing.assert_array_equal(out.positions[-1], loose[0])
+    assert np.isfinite(out.positions).all()
+    assert np.abs(out.positions[:-1, 2]).max() > 0.005  # the surface did take the bumps (amplitude 0.02)

@@ -13,7 +13,6 @@ from collections.abc import Iterable
 from dataclasses import dataclass
 from typing import Any
 
-import numpy as np
 from numpy.typing import NDArray
 
 from ..spectra.approximation import SPECTRAL_BASES, LaplacianBasis, check_basis_name, relative_error

@@ -25,6 +25,8 @@ No weight ever leaves [0, 1].
 
 from __future__ import annotations
 
+from collections.abc import Mapping
+
 import time
 from dataclasses import dataclass
 from typing import Any, cast
@@ -111,7 +113,7 @@ def limit_influences(weights: NDArray[np.float64], totals: NDArray[np.float64], 
     return np.clip(w, 0.0, 1.0)
 
 
-def _stack(groups: dict[str, ArrayLike], n: int) -> NDArray[np.float64]:
+def _stack(groups: Mapping[str, ArrayLike], n: int) -> NDArray[np.float64]:
     columns = []
     for name, values in groups.items():
         a = check_signal(name, values, n, "weight")
@@ -124,7 +126,7 @@ def _stack(groups: dict[str, ArrayLike], n: int) -> NDArray[np.float64]:
     return np.column_stack(columns)
 
 
-def carry_weights(transfer: Transfer, groups: dict[str, ArrayLike],
+def carry_weights(transfer: Transfer, groups: Mapping[str, ArrayLike],
                   options: WeightOptions | None = None) -> tuple[dict[str, TransferResult], dict[str, Any]]:
     """Carry vertex groups together (module docstring).
 

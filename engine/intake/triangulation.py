@@ -28,7 +28,7 @@ from collections.abc import Callable
 
 import numpy as np
 
-from ..common.arrays import Array, ArrayLike
+from ..common.arrays import Array
 
 __all__: list[str] = []
 
