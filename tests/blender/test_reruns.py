@@ -182,6 +182,45 @@ def test_non_uniform_scale_gives_what_the_applied_shape_gives(mod, scene):
     np.testing.assert_allclose(read(mod, late, "tint"), results["Applied"], atol=1e-5)
 
 
+def test_detail_on_rotated_non_uniformly_scaled_objects(mod, scene):
+    """Shape keys hold object-local positions: the detail's world offsets go back
+    through the inverse of the whole object matrix (rotation and non-uniform scale),
+    and a script's placement right before the run is seen (no stale matrix)."""
+    demo = engine_module("jobs.demo")
+    s = demo.creature(30, 16, bumps=0.03)
+    t = demo.creature(28, 18, bumps=0.0, twist_offset=True)
+    placements = {"source": ((0.2, 0.0, -0.5), (1.3, 0.7, 1.1), (-3.0, 1.0, 2.0)),
+                  "target": ((0.3, 0.0, 0.7), (1.0, 1.6, 0.8), (5.0, -3.0, 1.0))}
+    objects = {}
+    for role, mesh in (("source", s), ("target", t)):
+        euler, scale, location = placements[role]
+        matrix = np.array(mathutils.Matrix.LocRotScale(location, mathutils.Euler(euler), scale))
+        # mesh data such that the world shape is the creature where it was made:
+        # both meshes overlap in the world (aligned), whatever their own matrices
+        local = (np.asarray(mesh.vertices) - matrix[:3, 3]) @ np.linalg.inv(matrix[:3, :3]).T
+        objects[role] = obj = make_mesh(role.title(), local, mesh.faces)
+        obj.rotation_euler, obj.scale, obj.location = euler, scale, location   # as a script does
+    src, tgt = objects["source"], objects["target"]
+    request = mod.runs.PairRequest(detail=True, settings=mod.runs.engine_settings({"basis": "POINTWISE"}))
+    mod.runs.transfer_pair(src, tgt, request)
+    world = mod.bridge.read_mesh(tgt).vertices
+    np.testing.assert_allclose(world, t.vertices, atol=2e-5)   # the placement was read
+    shown = mod.bridge.read_mesh(tgt, evaluated=True).vertices
+    # the engine on the world arrays the bridge reads (the meshes' own data through
+    # their matrices)
+    expected = engine_pair(mod, src, tgt).detail(strength=1.0, size=0.05)
+    offsets = expected - world
+    assert np.abs(offsets).max() > 1e-3        # there is detail to carry
+    np.testing.assert_allclose(shown - world, offsets, atol=1e-3 * np.abs(offsets).max())
+    # divided by the scale alone (rotation ignored) the offsets would point elsewhere
+    key = tgt.data.shape_keys.key_blocks["overtone_detail"]
+    co = np.empty(len(key.data) * 3, np.float32)
+    key.data.foreach_get("co", co)
+    local_offsets = co.reshape(-1, 3) - np.array([v.co for v in tgt.data.vertices])
+    wrong = offsets / np.array(placements["target"][1])
+    assert np.abs(local_offsets - wrong).max() > 0.1 * np.abs(offsets).max()
+
+
 def test_ignore_placement_matches_copies_of_one_asset(mod, scene):
     src, _ = painted_pair(scene)
     a = mod.bridge.read_mesh(src)
