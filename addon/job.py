@@ -149,6 +149,7 @@ def _pair(inp: JobInput, settings: Settings, progress: Progress) -> tuple[Pair, 
     key = (mesh_digest(inp.source), mesh_digest(inp.target), settings)
     kept = PAIRS.get(key)
     if kept is not None:
+        kept.reuse()   # the report then gives this run's own times and cache use
         return kept, "memory"
     progress(0.1, "preparing meshes")
     source = _shape(inp.source, inp.names[0], inp.cache_folder)
