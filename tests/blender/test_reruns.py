@@ -112,6 +112,76 @@ def test_batch_rerun_refreshes_the_groups_it_wrote_as_the_ui_does(mod, scene, tm
     np.testing.assert_allclose(read(mod, tgt, "head"), expected["head"].values, atol=1e-6)
 
 
+def _batch(mod, tmp_path, settings, signals="all"):
+    path, report = tmp_path / "job.json", tmp_path / "report.json"
+    path.write_text(json.dumps({"settings": settings, "report": str(report),
+                                "pairs": [{"source": "Painted", "target": "Plain", "signals": signals}]}))
+    code = mod.batch.main([str(path)])
+    return code, json.loads(report.read_text())
+
+
+def _layers(mod, obj):
+    return sorted((s.name, s.domain, s.data_type) for s in mod.bridge.list_layers(obj))
+
+
+def test_ui_and_batch_alternating_with_replace_off_then_on(mod, scene, tmp_path):
+    """An artist's evening on one pair: the target has its own "tint" (corner bytes,
+    the active and render colour) and its own "head" weights. Runs alternate between
+    the panel and the batch handler, first keeping the target's layers, then
+    replacing them; no run adds a layer a previous one already wrote."""
+    src, tgt = painted_pair(scene)
+    mesh = tgt.data
+    own = mesh.color_attributes.new("tint", 'BYTE_COLOR', 'CORNER')
+    own.data.foreach_set("color", np.full(len(mesh.loops) * 4, 0.25, np.float32))
+    mesh.color_attributes.new("paint", 'FLOAT_COLOR', 'POINT')
+    mesh.color_attributes.active_color_name = "tint"
+    mesh.color_attributes.render_color_index = mesh.color_attributes.find("paint")
+    head = tgt.vertex_groups.new(name="head")
+    head.add(list(range(40)), 1.0, 'REPLACE')          # the target's own, real weights
+    scene.overtone.basis = "POINTWISE"
+    runs = []
+    for replace_on in (False, True):
+        scene.overtone.replace_existing = replace_on
+        for where in ("ui", "batch", "ui", "batch"):
+            if where == "ui":
+                assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
+                report = json.loads(scene.overtone.report_json)
+            else:
+                code, batch_report = _batch(mod, tmp_path, {"basis": "pointwise",
+                                                             "replace_existing": replace_on})
+                assert code == 0, batch_report
+                report = batch_report["pairs"][0]["result"]
+            own_tint = np.empty(len(mesh.loops) * 4, np.float32)
+            mesh.attributes["tint"].data.foreach_get("color", own_tint)
+            runs.append((replace_on, where, _layers(mod, tgt), report, own_tint))
+            # the target's colour choices are its own, whatever the run
+            assert mesh.color_attributes.active_color_name == "tint"
+            assert mesh.color_attributes.render_color_index == mesh.color_attributes.find("paint")
+            assert mesh.attributes["tint"].domain == 'CORNER' and mesh.attributes["tint"].data_type == 'BYTE_COLOR'
+    kept = [r for r in runs if not r[0]]
+    replaced = [r for r in runs if r[0]]
+    # keeping: the first run writes beside the target's layers; the re-runs refresh them
+    assert all(r[2] == kept[0][2] for r in kept), [r[1] for r in kept]
+    names = [n for n, _, _ in kept[0][2]]
+    assert "tint_ot1" in names and "tint_ot2" not in names
+    assert names.count("overtone_confidence") == 1 and "overtone_confidence_ot1" not in names
+    assert all(r[3]["landmarks"]["groups"] == ["head"] for r in kept)    # the target's own weights pin
+    # the target's own tint is untouched while Replace Existing is off
+    assert all(np.allclose(r[4], 0.25, atol=1 / 255) for r in kept)
+    # replacing: the same-named layers are overwritten in place (their domain and type
+    # kept); "head" is now a result, not a landmark; nothing is added run after run
+    assert all(r[2] == replaced[0][2] for r in replaced), [r[1] for r in replaced]
+    assert all(r[3]["landmarks"]["groups"] == [] for r in replaced)
+    assert all(r[3]["written"]["head"] == "head" and r[3]["written"]["tint"] == "tint" for r in replaced)
+    assert set(replaced[0][2]) == set(kept[0][2])
+    carried = read(mod, tgt, "tint_ot1")            # the carried colour, per vertex
+    corners = np.array([loop.vertex_index for loop in mesh.loops])
+    # replaced by the carried colour (8-bit sRGB per corner: within a step of 1/255 near 1)
+    np.testing.assert_allclose(read(mod, tgt, "tint"), carried[corners], atol=0.02)
+    expected = engine_pair(mod, src, tgt).carry({"head": (read(mod, src, "head"), "weight")})
+    np.testing.assert_allclose(read(mod, tgt, "head"), expected["head"].values, atol=1e-6)
+
+
 def test_empty_target_groups_are_filled_not_landmarks(mod, scene):
     src, tgt = painted_pair(scene)
     mesh = src.data
@@ -127,9 +197,44 @@ def test_empty_target_groups_are_filled_not_landmarks(mod, scene):
     np.testing.assert_allclose(read(mod, tgt, "head"), expected["head"].values, atol=1e-6)
 
 
+def test_parenting_with_empty_groups_then_carry(mod, scene, tmp_path):
+    """Ctrl+P > With Empty Groups: the target gets an empty group per bone and an
+    Armature modifier; carrying then fills the groups the source has, in the panel
+    and in batch alike, and leaves the other bones' groups empty."""
+    src, tgt = painted_pair(scene)
+    bpy.ops.object.select_all(action='DESELECT')
+    bpy.ops.object.armature_add(location=(0.0, 0.0, 0.0))
+    rig = bpy.context.active_object
+    bpy.ops.object.mode_set(mode='EDIT')
+    rig.data.edit_bones[0].name = "head"
+    rig.data.edit_bones.new("jaw").tail = (0.0, 0.0, 0.5)
+    bpy.ops.object.mode_set(mode='OBJECT')
+    tgt.select_set(True)
+    rig.select_set(True)
+    bpy.context.view_layer.objects.active = rig
+    assert bpy.ops.object.parent_set(type='ARMATURE_NAME') == {'FINISHED'}
+    assert sorted(g.name for g in tgt.vertex_groups) == ["head", "jaw"]
+    assert mod.bridge.read_vertex_groups(tgt, ["head"])["head"].max() == 0.0
+    bpy.ops.object.select_all(action='DESELECT')
+    select(src, tgt)
+    scene.overtone.basis = "POINTWISE"
+    expected = engine_pair(mod, src, tgt).carry({"head": (read(mod, src, "head"), "weight")})["head"].values
+    assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
+    report = json.loads(scene.overtone.report_json)
+    assert report["written"]["head"] == "head" and report["landmarks"]["groups"] == []
+    np.testing.assert_allclose(read(mod, tgt, "head"), expected, atol=1e-6)
+    assert mod.bridge.read_vertex_groups(tgt, ["jaw"])["jaw"].max() == 0.0
+    code, batch_report = _batch(mod, tmp_path, {"basis": "pointwise"})
+    assert code == 0, batch_report
+    result = batch_report["pairs"][0]["result"]
+    assert result["written"]["head"] == "head" and result["landmarks"]["groups"] == []
+    assert sorted(g.name for g in tgt.vertex_groups) == ["head", "jaw"]
+    np.testing.assert_allclose(read(mod, tgt, "head"), expected, atol=1e-6)
+
+
 def test_long_result_names_are_reported(mod, scene):
     src, tgt = painted_pair(scene)
-    long = "a" * 60
+    long = "a" * 64
     src.data.attributes["dirt"].name = long
     scene.overtone.basis = "LAPLACIAN"
     scene.overtone.eigenfunctions = 30
@@ -139,8 +244,49 @@ def test_long_result_names_are_reported(mod, scene):
     assert bpy.ops.overtone.preview_carry() == {'FINISHED'}
     report = json.loads(scene.overtone.report_json)
     written = report["written"][long + "_carried"]
-    assert written == "a" * 59 + "_ot1" and written in src.data.attributes
-    assert any("longer than Blender's 63 bytes" in n and written in n for n in report["notes"])
+    assert written == "a" * 63 + "_ot1" and written in src.data.attributes
+    assert any("longer than the 67 bytes Blender keeps" in n and written in n for n in report["notes"])
+
+
+def test_a_seventy_byte_name_in_the_panel_and_in_batch(mod, scene, tmp_path, capsys):
+    """Typed at 70 bytes, an attribute name keeps what Blender keeps (66 bytes here):
+    it is carried under that very name (Replace Existing overwrites the target's
+    layer of that name; re-runs refresh it); a batch job naming the 70 bytes is
+    refused with the name."""
+    src, tgt = painted_pair(scene)
+    typed = "é" * 35                                        # 70 bytes
+    src.data.attributes["tint"].name = typed
+    name = src.data.color_attributes[0].name
+    assert len(name.encode()) == 66 and typed.startswith(name)   # cut by Blender on a character
+    scene.overtone.basis = "POINTWISE"
+    assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
+    report = json.loads(scene.overtone.report_json)
+    assert report["written"][name] == name and report["notes"] == []   # was: cut to 63 bytes + "_ot1"
+    # the target's own layer of that name, then Replace Existing: overwritten in place
+    tgt.data.attributes.remove(tgt.data.attributes[name])
+    del tgt[mod.records.WRITTEN_PROPERTY]
+    tgt.data.color_attributes.new(name, 'FLOAT_COLOR', 'POINT')
+    scene.overtone.replace_existing = True
+    assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
+    report = json.loads(scene.overtone.report_json)
+    assert report["written"][name] == name and report["notes"] == []
+    np.testing.assert_allclose(read(mod, tgt, name), engine_pair(mod, src, tgt).carry(
+        {"t": (read(mod, src, name), "color")})["t"].values, atol=1e-6)
+    # re-runs without Replace Existing refresh the layer written above, in the panel and in batch
+    scene.overtone.replace_existing = False
+    layers = [_layers(mod, tgt)]
+    assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
+    assert json.loads(scene.overtone.report_json)["written"][name] == name
+    layers.append(_layers(mod, tgt))
+    code, result = _batch(mod, tmp_path, {"basis": "pointwise"})
+    assert code == 0 and result["pairs"][0]["result"]["written"][name] == name
+    layers.append(_layers(mod, tgt))
+    assert layers[0] == layers[1] == layers[2]
+    path = tmp_path / "named.json"
+    path.write_text(json.dumps({"pairs": [{"source": "Painted", "target": "Plain", "signals": [typed]}]}))
+    capsys.readouterr()
+    assert mod.batch.main([str(path)]) == 2
+    assert f"source 'Painted' has no signal {typed!r}" in capsys.readouterr().err
 
 
 # ----------------------------------------------------------------------------- transforms and modifiers
