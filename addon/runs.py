@@ -458,7 +458,7 @@ def finish(plan: Plan, out: job.JobOutput) -> dict[str, Any]:
         result does not fit, or the match failed (nothing is written then).
     """
     obj = _check_unchanged(plan)
-    warnings = list(plan.notes)
+    warnings = list(plan.notes) + handle_note(out.report)
     outputs = _outputs(plan, out)
     judged = None
     if plan.kind != "preview" and out.confidence is not None:
@@ -493,6 +493,18 @@ def finish(plan: Plan, out: job.JobOutput) -> dict[str, Any]:
         report["warnings"].append(note)
     report["summary"] = _summary(plan, report)
     return report
+
+
+def handle_note(report: dict[str, Any]) -> list[str]:
+    """A warning when meshes matched by shape differ in handles (a sphere and a
+    ring): no map between them is right everywhere, however sure it says it is."""
+    counts = report.get("handles") or {}
+    source, target = counts.get("source"), counts.get("target")
+    if source is None or target is None or source == target:
+        return []
+    return [f"the source has {source} and the target {target} handles (holes through the surface, as "
+            "in a ring): matched by shape, such meshes cannot correspond everywhere, whatever the "
+            "confidence says; check the result"]
 
 
 def material_note(obj: bpy.types.Object, written: dict[str, str], out: job.JobOutput) -> str:

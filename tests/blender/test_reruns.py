@@ -437,6 +437,18 @@ def test_a_failed_match_is_an_error_and_leaves_the_target(mod, scene):
     conf = read(mod, tgt, "overtone_confidence")[:, 1]
     marked = mod.bridge.read_vertex_groups(tgt, ["overtone_uncertain"])["overtone_uncertain"]
     np.testing.assert_array_equal(marked > 0, conf < 0.5)
+    # the artist, in Edit Mode with faces selected in face select mode, selects them
+    bpy.ops.object.select_all(action='DESELECT')
+    tgt.select_set(True)
+    bpy.context.view_layer.objects.active = tgt
+    bpy.ops.object.mode_set(mode='EDIT')
+    bpy.ops.mesh.select_mode(type='FACE')
+    bpy.ops.mesh.select_all(action='SELECT')
+    assert bpy.ops.overtone.select_uncertain() == {'FINISHED'}
+    assert tgt.mode == 'EDIT' and tuple(bpy.context.tool_settings.mesh_select_mode) == (True, False, False)
+    bpy.ops.object.mode_set(mode='OBJECT')
+    selected = np.array([v.select for v in tgt.data.vertices])
+    np.testing.assert_array_equal(selected, marked > 0)
 
 
 def tear_one_end(mod, tgt):
@@ -493,6 +505,43 @@ def test_an_uncertain_match_warns_marks_and_selects(mod, scene, capsys):
     assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
     cleared = mod.bridge.read_vertex_groups(tgt, ["overtone_uncertain"])["overtone_uncertain"]
     assert json.loads(scene.overtone.report_json)["outcome"] == "ok" and not cleared.any()
+
+
+def test_handles_count_the_holes_through_a_surface(mod, scene):
+    # genus per piece from Euler's formula V - E + F = 2 - 2g - b (common practice),
+    # on Blender's own primitives: a sphere 0, a ring 1, a cylinder (open tube) 0,
+    # two rings in one mesh 2; a vertex on three faces' edge: none
+    count = {}
+    for name, add in (("sphere", bpy.ops.mesh.primitive_uv_sphere_add), ("ring", bpy.ops.mesh.primitive_torus_add),
+                      ("tube", lambda: bpy.ops.mesh.primitive_cylinder_add(end_fill_type='NOTHING'))):
+        add()
+        count[name] = mod.job.handles(mod.bridge.read_mesh(bpy.context.active_object))
+    ring = mod.bridge.read_mesh(bpy.context.scene.objects["Torus"])
+    two = type(ring)(np.vstack([ring.vertices, ring.vertices + 5.0]),
+                     np.r_[ring.corners, ring.corners + len(ring.vertices)], np.r_[ring.sizes, ring.sizes])
+    fin = type(ring)(np.vstack([ring.vertices, [[9.0, 9.0, 9.0]]]),
+                     np.r_[ring.corners, ring.corners[:2], len(ring.vertices)], np.r_[ring.sizes, 3])
+    assert count == {"sphere": 0, "ring": 1, "tube": 0}
+    assert mod.job.handles(two) == 2 and mod.job.handles(fin) is None
+
+
+def test_a_sphere_matched_to_a_ring_is_not_called_sure(mod, scene):
+    """Matched by shape, a sphere and a ring get a consistent round trip (a high
+    confidence), yet no map between them is right everywhere: the run warns."""
+    bpy.ops.mesh.primitive_uv_sphere_add(segments=32, ring_count=16)
+    src = bpy.context.active_object
+    bpy.ops.mesh.primitive_torus_add()
+    tgt = bpy.context.active_object
+    colour = src.data.color_attributes.new("tint", 'FLOAT_COLOR', 'POINT')
+    colour.data.foreach_set("color", np.full(len(src.data.vertices) * 4, 0.5, np.float32))
+    bpy.ops.object.select_all(action='DESELECT')
+    select(src, tgt)
+    assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
+    report = json.loads(scene.overtone.report_json)
+    assert report["mode"] == "intrinsic" and report["handles"] == {"source": 0, "target": 1}
+    assert any("the source has 0 and the target 1 handles" in w for w in report["warnings"])
+    level, text = mod.runs.message_of(report)
+    assert level == {'WARNING'} and "cannot correspond everywhere" in text
 
 
 def test_batch_refuses_a_failed_match_unless_told(mod, scene, tmp_path):
