@@ -194,7 +194,8 @@ def check_job(job: Job) -> Job:
         request = pair.request
         if request.signals == ("*",):
             if objs[0].type == 'MESH' and objs[1].type == 'MESH':
-                listed = list(default_signals(objs[0], objs[1], evaluated=request.as_shown))
+                listed = list(default_signals(objs[0], objs[1], evaluated=request.as_shown,
+                                              replace_existing=request.replace_existing))
             else:
                 listed = []
             if not listed and request.detail:

@@ -60,6 +60,7 @@ __all__ = [
     "carryable",
     "not_carried_reason",
     "element_property",
+    "name_limit",
     "shape_modifiers",
     "layer_names",
     "select_group",
@@ -73,7 +74,8 @@ Kind = Literal["color", "float", "vector", "weight", "label", "mask"]
 SUFFIX = "_ot"
 """Results whose name is taken get ``<name>_ot1``, ``<name>_ot2``, ..."""
 
-_MAX_NAME_BYTES = 63  # Blender's attribute and vertex-group names hold 63 bytes (from memory)
+_LAYER_NAME_BYTES = 67   # attribute and UV map names (measured in bpy 5.0.1, docs/platform.md)
+_GROUP_NAME_BYTES = 63   # vertex-group and shape-key names (same)
 _COLOR_TYPES = ("BYTE_COLOR", "FLOAT_COLOR")
 _GENERIC_KIND: dict[str, Kind] = {
     "FLOAT": "float", "FLOAT_VECTOR": "vector", "INT": "label", "BOOLEAN": "mask",
@@ -445,9 +447,14 @@ def _validated(obj: bpy.types.Object, mesh: bpy.types.Mesh, sig: Signal,
     return values.astype(np.float32)
 
 
-def _fit(name: str, tail: str = "") -> str:
-    """``name`` shortened (on a character boundary) so ``name + tail`` fits Blender's limit."""
-    room = _MAX_NAME_BYTES - len(tail.encode())
+def name_limit(data_type: str) -> int:
+    """The most bytes Blender keeps in the name of a layer of ``data_type``."""
+    return _GROUP_NAME_BYTES if data_type in ("VERTEX_GROUP", "SHAPE_KEY") else _LAYER_NAME_BYTES
+
+
+def _fit(name: str, tail: str = "", limit: int = _GROUP_NAME_BYTES) -> str:
+    """``name`` shortened (on a character boundary) so ``name + tail`` fits in ``limit`` bytes."""
+    room = limit - len(tail.encode())
     while len(name.encode()) > room:
         name = name[:-1]
     return name + tail
@@ -481,27 +488,27 @@ class _Names:
             return self.protected - {_FACE_SETS}
         return self.protected
 
-    def home(self, base: str, protected: set[str]) -> str:
+    def home(self, base: str, protected: set[str], limit: int) -> str:
         """The first ``<base>_ot<k>`` that is not protected: where a result whose own
         name is protected goes, the same name on every run."""
         k = 1
-        while _fit(base, f"{SUFFIX}{k}") in protected:
+        while _fit(base, f"{SUFFIX}{k}", limit) in protected:
             k += 1
-        return _fit(base, f"{SUFFIX}{k}")
+        return _fit(base, f"{SUFFIX}{k}", limit)
 
     def taken(self, shape: bool) -> set[str]:
         return self.shapes if shape else self.layers
 
-    def fresh(self, base: str, shape: bool) -> str:
+    def fresh(self, base: str, shape: bool, limit: int) -> str:
         """``base``, or ``base_ot<k>`` with the smallest free k; a name over
-        Blender's 63 bytes is shortened and always gets a suffix, so two long
-        names that share their first 63 bytes stay apart."""
+        ``limit`` bytes is shortened and always gets a suffix, so two long
+        names that share their first bytes stay apart."""
         taken = self.taken(shape)
-        k = 0 if len(base.encode()) <= _MAX_NAME_BYTES else 1
-        name = _fit(base, f"{SUFFIX}{k}" if k else "")
+        k = 0 if len(base.encode()) <= limit else 1
+        name = _fit(base, f"{SUFFIX}{k}" if k else "", limit)
         while name in taken:
             k += 1
-            name = _fit(base, f"{SUFFIX}{k}")
+            name = _fit(base, f"{SUFFIX}{k}", limit)
         taken.add(name)
         return name
 
@@ -550,16 +557,17 @@ def _plan(obj: bpy.types.Object, mesh: bpy.types.Mesh, outputs: Sequence[Signal]
             raise ValueError(f"two results are called {wanted!r}")
         seen.add((shape, wanted))
         protected = names.protected_shapes if shape else names.protected_for(out)
-        if not shape and wanted in protected and may_replace(names.home(wanted, protected)):
-            wanted = names.home(wanted, protected)  # one name on every run, never Blender's layer
+        limit = name_limit(out.data_type)
+        if not shape and wanted in protected and may_replace(names.home(wanted, protected, limit)):
+            wanted = names.home(wanted, protected, limit)  # one name on every run, never Blender's layer
         fitted = None
         if wanted in names.taken(shape) and may_replace(wanted) and wanted not in protected:
             old = names.kinds.get(wanted)  # None: a layer type Overtone does not write, kept
             fitted = (out, values) if shape else None if old is None else _conformed(mesh, out, values, old)
         if fitted is not None:
-            plans.append(_Plan(fitted[0], fitted[1], wanted, names.fresh(wanted, shape), True))
+            plans.append(_Plan(fitted[0], fitted[1], wanted, names.fresh(wanted, shape, limit), True))
         else:
-            final = names.fresh(wanted, shape)
+            final = names.fresh(wanted, shape, limit)
             plans.append(_Plan(out, values, final, final, False))
     return plans
 

@@ -339,7 +339,8 @@ class OVERTONE_OT_refresh_signals(bpy.types.Operator):
         same = settings.signals_source == source.name
         ticks = {item.name: item.use for item in settings.signals} if same else {}
         target = _target if _target is not None and _target != source else None
-        ticked = set(default_signals(source, target, evaluated=settings.as_shown))
+        ticked = set(default_signals(source, target, evaluated=settings.as_shown,
+                                     replace_existing=settings.replace_existing))
         settings.signals.clear()
         for signal in bridge.list_layers(source, evaluated=settings.as_shown):
             item = settings.signals.add()

@@ -96,7 +96,8 @@ class OvertoneSettings(bpy.types.PropertyGroup):
     replace_existing: BoolProperty(  # type: ignore[valid-type]
         name="Replace Existing", default=False,
         description="Overwrite a target attribute or vertex group of the same name "
-                    "(off: write a new one with a numbered name)")
+                    "(off: write a new one with a numbered name, and vertex groups on both "
+                    "meshes line them up instead of being overwritten)")
     signals: CollectionProperty(type=OvertoneSignalItem)  # type: ignore[valid-type]
     signals_index: IntProperty(default=0)  # type: ignore[valid-type]
     signals_source: StringProperty(  # type: ignore[valid-type]

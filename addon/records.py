@@ -7,7 +7,8 @@ this module three things:
   group whose name the target also has, when the target's group holds weights
   and Overtone did not write it. A target group Overtone wrote is a result to
   refresh, and an empty one (what parenting with empty groups leaves) is a
-  place to fill: neither pins the match;
+  place to fill: neither pins the match. With Replace Existing no group pins
+  it: the target's groups of the source's names are overwritten like any layer;
 - under which name each result goes (:func:`names_for`): a result Overtone
   wrote before from the same source, and signal, is refreshed in place (a
   detail shape key is replaced, never stacked); Overtone's own layers
@@ -88,8 +89,12 @@ def written_on(target: bpy.types.Object) -> Written:
 
 
 def landmark_names(source: bpy.types.Object, target: bpy.types.Object, *,
-                   evaluated: bool = False) -> list[str]:
-    """Source vertex groups that pair up with the target's as landmarks (module docstring)."""
+                   evaluated: bool = False, replace_existing: bool = False) -> list[str]:
+    """Source vertex groups that pair up with the target's as landmarks (module docstring).
+    None with ``replace_existing``: the target's groups of the source's names are then
+    results to overwrite."""
+    if replace_existing:
+        return []
     ours = written_on(target).layers
     candidates = [g.name for g in source.vertex_groups
                   if g.name in target.vertex_groups and g.name not in ours]

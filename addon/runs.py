@@ -190,16 +190,18 @@ def _check_object(role: str, obj: bpy.types.Object) -> None:
 
 
 def default_signals(source: bpy.types.Object, target: bpy.types.Object | None = None, *,
-                    evaluated: bool = False) -> tuple[str, ...]:
+                    evaluated: bool = False, replace_existing: bool = False) -> tuple[str, ...]:
     """What is carried when nothing is chosen (the UI, batch ``"all"``, the preview):
     every colour attribute and vertex group of the source, except
 
     - the groups that pair up as landmarks (:func:`.records.landmark_names`:
-      groups the target also has and Overtone did not write);
+      groups the target also has and Overtone did not write, none with
+      ``replace_existing``);
     - preview layers ``<name>_carried`` next to their ``<name>``.
 
     Other attributes (numbers, vectors, integers, on/off) are carried only when named."""
-    pinned = set(landmark_names(source, target, evaluated=evaluated)) if target is not None else set()
+    pinned = (set(landmark_names(source, target, evaluated=evaluated, replace_existing=replace_existing))
+              if target is not None else set())
     listed = bridge.list_layers(source, evaluated=evaluated)
     names = {s.name for s in listed}
     return tuple(s.name for s in listed
@@ -295,14 +297,15 @@ def make_plan(kind: str, source: bpy.types.Object | None, target: bpy.types.Obje
     else:
         if source is not None and target is not None and source != target and not request.signals \
                 and not request.detail and source.type == 'MESH' and target.type == 'MESH':
-            request = replace(request, signals=default_signals(source, target,
-                                                                evaluated=request.as_shown))
+            request = replace(request, signals=default_signals(
+                source, target, evaluated=request.as_shown, replace_existing=request.replace_existing))
         signals = check_pair(source, target, request)
         assert source is not None and target is not None
         if kind == "detail":
             signals = []
         target_input = bridge.read_mesh(target, local=local)
-        pinned = landmark_names(source, target, evaluated=request.as_shown)
+        pinned = landmark_names(source, target, evaluated=request.as_shown,
+                                replace_existing=request.replace_existing)
         src_w = bridge.read_vertex_groups(source, pinned, evaluated=request.as_shown)
         tgt_w = bridge.read_vertex_groups(target, pinned)
         groups = {name: (src_w[name], tgt_w[name]) for name in pinned}
@@ -400,13 +403,14 @@ def _check_unchanged(plan: Plan) -> bpy.types.Object:
 
 
 def _write(plan: Plan, obj: bpy.types.Object, outputs: list[Signal],
-           asked: dict[str, str]) -> dict[str, str]:
+           asked: dict[str, tuple[str, int]]) -> dict[str, str]:
     """Write through the re-run rule (:mod:`.records`), in one all-or-nothing
     call; returns result name -> name written. ``asked`` receives result ->
-    the name it was meant to get, where that was not a layer Overtone wrote."""
+    the name it was meant to get, where that was not a layer Overtone wrote,
+    and the most bytes Blender keeps in such a name."""
     request = plan.request
     if plan.kind == "preview":
-        asked.update({o.name: o.name for o in outputs})
+        asked.update({o.name: (o.name, bridge.name_limit(o.data_type)) for o in outputs})
         return bridge.write_outputs(obj, outputs, replace=request.replace_existing)
     is_key = [o.data_type == "SHAPE_KEY" for o in outputs]
     rule = {"keep_earlier": request.keep_earlier, "replace_existing": request.replace_existing}
@@ -418,22 +422,23 @@ def _write(plan: Plan, obj: bpy.types.Object, outputs: list[Signal],
                                key_value=keys.key_value)
     written = {o.name: got[r.name] for o, r in zip(outputs, renamed)}
     earlier = written_on(obj)
-    asked.update({o.name: r.name for o, r in zip(outputs, renamed)
+    asked.update({o.name: (r.name, bridge.name_limit(o.data_type)) for o, r in zip(outputs, renamed)
                   if r.name not in earlier.layers and r.name not in earlier.shapes})
     record(obj, plan.source, {o.name: written[o.name] for o, k in zip(outputs, is_key) if not k})
     record(obj, plan.source, {o.name: written[o.name] for o, k in zip(outputs, is_key) if k}, shape=True)
     return written
 
 
-def _renamed_notes(written: dict[str, str], asked: dict[str, str]) -> list[str]:
+def _renamed_notes(written: dict[str, str], asked: dict[str, tuple[str, int]]) -> list[str]:
     """Why a result did not get the name it was meant to get."""
     notes = []
-    for result, meant in asked.items():
+    for result, (meant, limit) in asked.items():
         name = written[result]
         if name == meant:
             continue
-        if len(meant.encode()) > 63:
-            notes.append(f"{meant!r} is longer than Blender's 63 bytes: written as {name!r}")
+        if len(meant.encode()) > limit:
+            notes.append(f"{meant!r} is longer than the {limit} bytes Blender keeps in such a name: "
+                         f"written as {name!r}")
         else:
             notes.append(f"the target keeps its own {meant!r}: the result is written as {name!r}")
     return notes
@@ -453,7 +458,7 @@ def finish(plan: Plan, out: job.JobOutput) -> dict[str, Any]:
         result does not fit, or the match failed (nothing is written then).
     """
     obj = _check_unchanged(plan)
-    warnings = list(plan.notes)
+    warnings = list(plan.notes) + handle_note(out.report)
     outputs = _outputs(plan, out)
     judged = None
     if plan.kind != "preview" and out.confidence is not None:
@@ -467,7 +472,7 @@ def finish(plan: Plan, out: job.JobOutput) -> dict[str, Any]:
         elif judged.level == "warning":
             warnings.append(judged.text)
         outputs += _uncertain_output(obj, judged)
-    asked: dict[str, str] = {}
+    asked: dict[str, tuple[str, int]] = {}
     written = _write(plan, obj, outputs, asked)
     report = dict(out.report)
     if out.confidence is not None and len(out.confidence):
@@ -488,6 +493,18 @@ def finish(plan: Plan, out: job.JobOutput) -> dict[str, Any]:
         report["warnings"].append(note)
     report["summary"] = _summary(plan, report)
     return report
+
+
+def handle_note(report: dict[str, Any]) -> list[str]:
+    """A warning when meshes matched by shape differ in handles (a sphere and a
+    ring): no map between them is right everywhere, however sure it says it is."""
+    counts = report.get("handles") or {}
+    source, target = counts.get("source"), counts.get("target")
+    if source is None or target is None or source == target:
+        return []
+    return [f"the source has {source} and the target {target} handles (holes through the surface, as "
+            "in a ring): matched by shape, such meshes cannot correspond everywhere, whatever the "
+            "confidence says; check the result"]
 
 
 def material_note(obj: bpy.types.Object, written: dict[str, str], out: job.JobOutput) -> str:

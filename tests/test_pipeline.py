@@ -175,3 +175,23 @@ def test_results_do_not_depend_on_units(tmp_path):
     for scale in (2.0 ** -332, 2.0 ** 332):
         np.testing.assert_array_equal(got[scale][0], got[1.0][0])
         np.testing.assert_array_equal(got[scale][1], got[1.0][1])
+
+
+def test_a_reused_pair_reports_only_its_own_run():
+    # A pair kept for another run: its report carries that run's timings and cache
+    # use, not the first run's correspondence time and "computed" counts.
+    src, tgt = creature(24, 12), creature(26, 14, twist_offset=True)
+    pair = Pair(Shape(src.vertices, src.faces), Shape(tgt.vertices, tgt.faces),
+                Settings(match="aligned", basis="laplacian", k=20))
+    values = creature_signals(src.uv)["tint"]
+    first = pair.carry({"t": (values, "color")})["t"].values
+    report = pair.report()
+    assert report["cache_hits"]["correspondence"] == "computed"
+    assert "correspondence" in report["timings"] and report["cache_hits"]["source"]["computed"] > 0
+    pair.reuse()
+    again = pair.carry({"t": (values, "color")})["t"].values
+    report = pair.report()
+    np.testing.assert_array_equal(again, first)          # the kept transfer, unchanged
+    assert report["cache_hits"]["correspondence"] == "memory"
+    assert "correspondence" not in report["timings"] and set(report["timings"]) == {"bases", "signals"}
+    assert report["cache_hits"]["source"]["computed"] == 0 == report["cache_hits"]["target"]["computed"]

@@ -157,6 +157,14 @@ class Pair:
                              "confidence": corr.confidence, "fmap": corr.fmap, "meta": np.array(meta_text)})
         return corr
 
+    def reuse(self) -> None:
+        """Start another run on this kept pair: timings and cache counts restart,
+        and the correspondence counts as kept in memory (``"memory"``)."""
+        self.timings = {}
+        self.cache_hits = {"correspondence": "memory"}
+        for shape in (self.source, self.target):
+            shape.hits = dict.fromkeys(shape.hits, 0)
+
     @property
     def confidence(self) -> NDArray[Any]:
         """(n_target_original,) float in [0, 1]: how sure the map is at each target vertex."""

@@ -279,17 +279,25 @@ def test_blender_layers_are_never_replaced(bridge, grid):
 
 
 def test_long_names_are_shortened_uniquely(bridge, grid):
-    # Blender keeps 63 bytes of an attribute or group name (docs/platform.md); a
-    # longer result name is shortened and always suffixed, so two names sharing
-    # their first 63 bytes never land on one layer
-    first, second = "n" * 60 + "_carried", "n" * 60 + "_carriedX"
+    # Blender keeps 67 bytes of an attribute name and 63 of a vertex-group or
+    # shape-key name (measured, docs/platform.md); a longer result name is
+    # shortened and always suffixed, so two names sharing their first bytes never
+    # land on one layer
+    first, second = "n" * 64 + "_carried", "n" * 64 + "_carriedX"
     out = bridge.write_outputs(grid, [bridge.Layer(first, "POINT", "FLOAT").signal(np.zeros(30, np.float32)),
                                       bridge.Layer(second, "POINT", "FLOAT").signal(np.ones(30, np.float32))])
-    assert out == {first: "n" * 59 + "_ot1", second: "n" * 59 + "_ot2"}
-    assert all(len(name.encode()) == 63 and name in grid.data.attributes for name in out.values())
-    short = "m" * 63  # fits: written as it is
+    assert out == {first: "n" * 63 + "_ot1", second: "n" * 63 + "_ot2"}
+    assert all(len(name.encode()) == 67 and name in grid.data.attributes for name in out.values())
+    short = "m" * 67  # fits: written as it is (a 63-byte limit cut it)
     assert bridge.write_outputs(grid, [bridge.Layer(short, "POINT", "FLOAT").signal(np.zeros(30, np.float32))]) \
         == {short: short}
+    group = "g" * 64   # one byte over a group's limit
+    out = bridge.write_outputs(grid, [bridge.Layer(group, "POINT", "VERTEX_GROUP").signal(np.zeros(30, np.float32))])
+    assert out == {group: "g" * 59 + "_ot1"} and out[group] in grid.vertex_groups
+    key = "k" * 64
+    vertices = np.array([v.co for v in grid.data.vertices], dtype=np.float64)
+    out = bridge.write_outputs(grid, [bridge.shape_key_output(key, vertices)])
+    assert out == {key: "k" * 59 + "_ot1"} and out[key] in grid.data.shape_keys.key_blocks
 
 
 def test_refresh_replaces_without_the_replace_option(bridge, grid):

@@ -22,6 +22,7 @@ import pytest
 
 from ..pairs import rig
 from .conftest import MODULE, engine_module, make_mesh, select
+from .test_operators import read
 
 BONES = 11
 
@@ -218,18 +219,27 @@ def test_uncarried_layers_are_named_with_a_reason(mod, scene):
                                atol=1e-6)  # a unit quaternion again
 
 
-def test_a_colour_named_like_a_target_uv_map_keeps_one_name(mod, scene):
+@pytest.mark.parametrize("replace", [True, False])
+def test_a_colour_named_like_a_target_uv_map_keeps_one_name(mod, scene, replace):
+    """The first run writes beside the UV map (under a name of its own); every
+    re-run, with or without Replace Existing, refreshes that layer."""
     src, tgt = textured_pair(scene)
     colour = src.data.color_attributes.new("UVMap_paint", 'FLOAT_COLOR', 'POINT')
     colour.data.foreach_set("color", np.full(len(src.data.vertices) * 4, 0.5, np.float32))
     tgt.data.uv_layers.new(name="UVMap_paint")
     _tick(scene, {"UVMap_paint"})
-    scene.overtone.replace_existing = True
-    names = []
-    for _ in range(3):
+    scene.overtone.replace_existing = replace
+    names, values = [], []
+    for run in range(3):
+        colour.data.foreach_set("color", np.full(len(src.data.vertices) * 4, 0.2 + 0.3 * run, np.float32))
         assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
         names.append(sorted(a.name for a in tgt.data.color_attributes))
+        written = json.loads(scene.overtone.report_json)["written"]["UVMap_paint"]
+        values.append(float(read(mod, tgt, written)[:, 0].mean()))
     assert names[0] == names[1] == names[2]
+    assert len([n for n in names[0] if n.startswith("UVMap_paint")]) == 1
+    # each run's colour is in that one layer (the refresh happened)
+    np.testing.assert_allclose(values, [0.2, 0.5, 0.8], atol=1e-5)
     assert "UVMap_paint" in [uv.name for uv in tgt.data.uv_layers]  # the UV map is never replaced
 
 

@@ -199,6 +199,13 @@ def test_after_a_carry_the_report_says_what_to_act_on(ui, scene):
     assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
     again = json.loads(scene.overtone.report_json)
     assert again["pair"] == "memory"
+    # the stored report (what batch writes and the panel reads) is this run's own:
+    # the kept match is not "computed" again, and no first-run time comes along
+    assert again["cache_hits"] == {"correspondence": "memory",
+                                   "source": {"memory": 0, "disk": 0, "computed": 0},
+                                   "target": {"memory": 0, "disk": 0, "computed": 0}}
+    assert "correspondence" not in again["timings"]
+    assert set(again["timings"]) == {"bases", "signals", "total", "wall"}
     words = texts(draw_all())
     assert "Reused the match of the last run on these meshes (kept in memory)." in " ".join(words)
     assert "the match," not in " ".join(words)

@@ -112,6 +112,76 @@ def test_batch_rerun_refreshes_the_groups_it_wrote_as_the_ui_does(mod, scene, tm
     np.testing.assert_allclose(read(mod, tgt, "head"), expected["head"].values, atol=1e-6)
 
 
+def _batch(mod, tmp_path, settings, signals="all"):
+    path, report = tmp_path / "job.json", tmp_path / "report.json"
+    path.write_text(json.dumps({"settings": settings, "report": str(report),
+                                "pairs": [{"source": "Painted", "target": "Plain", "signals": signals}]}))
+    code = mod.batch.main([str(path)])
+    return code, json.loads(report.read_text())
+
+
+def _layers(mod, obj):
+    return sorted((s.name, s.domain, s.data_type) for s in mod.bridge.list_layers(obj))
+
+
+def test_ui_and_batch_alternating_with_replace_off_then_on(mod, scene, tmp_path):
+    """An artist's evening on one pair: the target has its own "tint" (corner bytes,
+    the active and render colour) and its own "head" weights. Runs alternate between
+    the panel and the batch handler, first keeping the target's layers, then
+    replacing them; no run adds a layer a previous one already wrote."""
+    src, tgt = painted_pair(scene)
+    mesh = tgt.data
+    own = mesh.color_attributes.new("tint", 'BYTE_COLOR', 'CORNER')
+    own.data.foreach_set("color", np.full(len(mesh.loops) * 4, 0.25, np.float32))
+    mesh.color_attributes.new("paint", 'FLOAT_COLOR', 'POINT')
+    mesh.color_attributes.active_color_name = "tint"
+    mesh.color_attributes.render_color_index = mesh.color_attributes.find("paint")
+    head = tgt.vertex_groups.new(name="head")
+    head.add(list(range(40)), 1.0, 'REPLACE')          # the target's own, real weights
+    scene.overtone.basis = "POINTWISE"
+    runs = []
+    for replace_on in (False, True):
+        scene.overtone.replace_existing = replace_on
+        for where in ("ui", "batch", "ui", "batch"):
+            if where == "ui":
+                assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
+                report = json.loads(scene.overtone.report_json)
+            else:
+                code, batch_report = _batch(mod, tmp_path, {"basis": "pointwise",
+                                                             "replace_existing": replace_on})
+                assert code == 0, batch_report
+                report = batch_report["pairs"][0]["result"]
+            own_tint = np.empty(len(mesh.loops) * 4, np.float32)
+            mesh.attributes["tint"].data.foreach_get("color", own_tint)
+            runs.append((replace_on, where, _layers(mod, tgt), report, own_tint))
+            # the target's colour choices are its own, whatever the run
+            assert mesh.color_attributes.active_color_name == "tint"
+            assert mesh.color_attributes.render_color_index == mesh.color_attributes.find("paint")
+            assert mesh.attributes["tint"].domain == 'CORNER' and mesh.attributes["tint"].data_type == 'BYTE_COLOR'
+    kept = [r for r in runs if not r[0]]
+    replaced = [r for r in runs if r[0]]
+    # keeping: the first run writes beside the target's layers; the re-runs refresh them
+    assert all(r[2] == kept[0][2] for r in kept), [r[1] for r in kept]
+    names = [n for n, _, _ in kept[0][2]]
+    assert "tint_ot1" in names and "tint_ot2" not in names
+    assert names.count("overtone_confidence") == 1 and "overtone_confidence_ot1" not in names
+    assert all(r[3]["landmarks"]["groups"] == ["head"] for r in kept)    # the target's own weights pin
+    # the target's own tint is untouched while Replace Existing is off
+    assert all(np.allclose(r[4], 0.25, atol=1 / 255) for r in kept)
+    # replacing: the same-named layers are overwritten in place (their domain and type
+    # kept); "head" is now a result, not a landmark; nothing is added run after run
+    assert all(r[2] == replaced[0][2] for r in replaced), [r[1] for r in replaced]
+    assert all(r[3]["landmarks"]["groups"] == [] for r in replaced)
+    assert all(r[3]["written"]["head"] == "head" and r[3]["written"]["tint"] == "tint" for r in replaced)
+    assert set(replaced[0][2]) == set(kept[0][2])
+    carried = read(mod, tgt, "tint_ot1")            # the carried colour, per vertex
+    corners = np.array([loop.vertex_index for loop in mesh.loops])
+    # replaced by the carried colour (8-bit sRGB per corner: within a step of 1/255 near 1)
+    np.testing.assert_allclose(read(mod, tgt, "tint"), carried[corners], atol=0.02)
+    expected = engine_pair(mod, src, tgt).carry({"head": (read(mod, src, "head"), "weight")})
+    np.testing.assert_allclose(read(mod, tgt, "head"), expected["head"].values, atol=1e-6)
+
+
 def test_empty_target_groups_are_filled_not_landmarks(mod, scene):
     src, tgt = painted_pair(scene)
     mesh = src.data
@@ -127,9 +197,44 @@ def test_empty_target_groups_are_filled_not_landmarks(mod, scene):
     np.testing.assert_allclose(read(mod, tgt, "head"), expected["head"].values, atol=1e-6)
 
 
+def test_parenting_with_empty_groups_then_carry(mod, scene, tmp_path):
+    """Ctrl+P > With Empty Groups: the target gets an empty group per bone and an
+    Armature modifier; carrying then fills the groups the source has, in the panel
+    and in batch alike, and leaves the other bones' groups empty."""
+    src, tgt = painted_pair(scene)
+    bpy.ops.object.select_all(action='DESELECT')
+    bpy.ops.object.armature_add(location=(0.0, 0.0, 0.0))
+    rig = bpy.context.active_object
+    bpy.ops.object.mode_set(mode='EDIT')
+    rig.data.edit_bones[0].name = "head"
+    rig.data.edit_bones.new("jaw").tail = (0.0, 0.0, 0.5)
+    bpy.ops.object.mode_set(mode='OBJECT')
+    tgt.select_set(True)
+    rig.select_set(True)
+    bpy.context.view_layer.objects.active = rig
+    assert bpy.ops.object.parent_set(type='ARMATURE_NAME') == {'FINISHED'}
+    assert sorted(g.name for g in tgt.vertex_groups) == ["head", "jaw"]
+    assert mod.bridge.read_vertex_groups(tgt, ["head"])["head"].max() == 0.0
+    bpy.ops.object.select_all(action='DESELECT')
+    select(src, tgt)
+    scene.overtone.basis = "POINTWISE"
+    expected = engine_pair(mod, src, tgt).carry({"head": (read(mod, src, "head"), "weight")})["head"].values
+    assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
+    report = json.loads(scene.overtone.report_json)
+    assert report["written"]["head"] == "head" and report["landmarks"]["groups"] == []
+    np.testing.assert_allclose(read(mod, tgt, "head"), expected, atol=1e-6)
+    assert mod.bridge.read_vertex_groups(tgt, ["jaw"])["jaw"].max() == 0.0
+    code, batch_report = _batch(mod, tmp_path, {"basis": "pointwise"})
+    assert code == 0, batch_report
+    result = batch_report["pairs"][0]["result"]
+    assert result["written"]["head"] == "head" and result["landmarks"]["groups"] == []
+    assert sorted(g.name for g in tgt.vertex_groups) == ["head", "jaw"]
+    np.testing.assert_allclose(read(mod, tgt, "head"), expected, atol=1e-6)
+
+
 def test_long_result_names_are_reported(mod, scene):
     src, tgt = painted_pair(scene)
-    long = "a" * 60
+    long = "a" * 64
     src.data.attributes["dirt"].name = long
     scene.overtone.basis = "LAPLACIAN"
     scene.overtone.eigenfunctions = 30
@@ -139,8 +244,49 @@ def test_long_result_names_are_reported(mod, scene):
     assert bpy.ops.overtone.preview_carry() == {'FINISHED'}
     report = json.loads(scene.overtone.report_json)
     written = report["written"][long + "_carried"]
-    assert written == "a" * 59 + "_ot1" and written in src.data.attributes
-    assert any("longer than Blender's 63 bytes" in n and written in n for n in report["notes"])
+    assert written == "a" * 63 + "_ot1" and written in src.data.attributes
+    assert any("longer than the 67 bytes Blender keeps" in n and written in n for n in report["notes"])
+
+
+def test_a_seventy_byte_name_in_the_panel_and_in_batch(mod, scene, tmp_path, capsys):
+    """Typed at 70 bytes, an attribute name keeps what Blender keeps (66 bytes here):
+    it is carried under that very name (Replace Existing overwrites the target's
+    layer of that name; re-runs refresh it); a batch job naming the 70 bytes is
+    refused with the name."""
+    src, tgt = painted_pair(scene)
+    typed = "é" * 35                                        # 70 bytes
+    src.data.attributes["tint"].name = typed
+    name = src.data.color_attributes[0].name
+    assert len(name.encode()) == 66 and typed.startswith(name)   # cut by Blender on a character
+    scene.overtone.basis = "POINTWISE"
+    assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
+    report = json.loads(scene.overtone.report_json)
+    assert report["written"][name] == name and report["notes"] == []   # was: cut to 63 bytes + "_ot1"
+    # the target's own layer of that name, then Replace Existing: overwritten in place
+    tgt.data.attributes.remove(tgt.data.attributes[name])
+    del tgt[mod.records.WRITTEN_PROPERTY]
+    tgt.data.color_attributes.new(name, 'FLOAT_COLOR', 'POINT')
+    scene.overtone.replace_existing = True
+    assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
+    report = json.loads(scene.overtone.report_json)
+    assert report["written"][name] == name and report["notes"] == []
+    np.testing.assert_allclose(read(mod, tgt, name), engine_pair(mod, src, tgt).carry(
+        {"t": (read(mod, src, name), "color")})["t"].values, atol=1e-6)
+    # re-runs without Replace Existing refresh the layer written above, in the panel and in batch
+    scene.overtone.replace_existing = False
+    layers = [_layers(mod, tgt)]
+    assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
+    assert json.loads(scene.overtone.report_json)["written"][name] == name
+    layers.append(_layers(mod, tgt))
+    code, result = _batch(mod, tmp_path, {"basis": "pointwise"})
+    assert code == 0 and result["pairs"][0]["result"]["written"][name] == name
+    layers.append(_layers(mod, tgt))
+    assert layers[0] == layers[1] == layers[2]
+    path = tmp_path / "named.json"
+    path.write_text(json.dumps({"pairs": [{"source": "Painted", "target": "Plain", "signals": [typed]}]}))
+    capsys.readouterr()
+    assert mod.batch.main([str(path)]) == 2
+    assert f"source 'Painted' has no signal {typed!r}" in capsys.readouterr().err
 
 
 # ----------------------------------------------------------------------------- transforms and modifiers
@@ -180,6 +326,45 @@ def test_non_uniform_scale_gives_what_the_applied_shape_gives(mod, scene):
     request = mod.runs.PairRequest(signals=("tint",), settings=mod.runs.engine_settings({"basis": "POINTWISE"}))
     mod.runs.transfer_pair(src, late, request)
     np.testing.assert_allclose(read(mod, late, "tint"), results["Applied"], atol=1e-5)
+
+
+def test_detail_on_rotated_non_uniformly_scaled_objects(mod, scene):
+    """Shape keys hold object-local positions: the detail's world offsets go back
+    through the inverse of the whole object matrix (rotation and non-uniform scale),
+    and a script's placement right before the run is seen (no stale matrix)."""
+    demo = engine_module("jobs.demo")
+    s = demo.creature(30, 16, bumps=0.03)
+    t = demo.creature(28, 18, bumps=0.0, twist_offset=True)
+    placements = {"source": ((0.2, 0.0, -0.5), (1.3, 0.7, 1.1), (-3.0, 1.0, 2.0)),
+                  "target": ((0.3, 0.0, 0.7), (1.0, 1.6, 0.8), (5.0, -3.0, 1.0))}
+    objects = {}
+    for role, mesh in (("source", s), ("target", t)):
+        euler, scale, location = placements[role]
+        matrix = np.array(mathutils.Matrix.LocRotScale(location, mathutils.Euler(euler), scale))
+        # mesh data such that the world shape is the creature where it was made:
+        # both meshes overlap in the world (aligned), whatever their own matrices
+        local = (np.asarray(mesh.vertices) - matrix[:3, 3]) @ np.linalg.inv(matrix[:3, :3]).T
+        objects[role] = obj = make_mesh(role.title(), local, mesh.faces)
+        obj.rotation_euler, obj.scale, obj.location = euler, scale, location   # as a script does
+    src, tgt = objects["source"], objects["target"]
+    request = mod.runs.PairRequest(detail=True, settings=mod.runs.engine_settings({"basis": "POINTWISE"}))
+    mod.runs.transfer_pair(src, tgt, request)
+    world = mod.bridge.read_mesh(tgt).vertices
+    np.testing.assert_allclose(world, t.vertices, atol=2e-5)   # the placement was read
+    shown = mod.bridge.read_mesh(tgt, evaluated=True).vertices
+    # the engine on the world arrays the bridge reads (the meshes' own data through
+    # their matrices)
+    expected = engine_pair(mod, src, tgt).detail(strength=1.0, size=0.05)
+    offsets = expected - world
+    assert np.abs(offsets).max() > 1e-3        # there is detail to carry
+    np.testing.assert_allclose(shown - world, offsets, atol=1e-3 * np.abs(offsets).max())
+    # divided by the scale alone (rotation ignored) the offsets would point elsewhere
+    key = tgt.data.shape_keys.key_blocks["overtone_detail"]
+    co = np.empty(len(key.data) * 3, np.float32)
+    key.data.foreach_get("co", co)
+    local_offsets = co.reshape(-1, 3) - np.array([v.co for v in tgt.data.vertices])
+    wrong = offsets / np.array(placements["target"][1])
+    assert np.abs(local_offsets - wrong).max() > 0.1 * np.abs(offsets).max()
 
 
 def test_ignore_placement_matches_copies_of_one_asset(mod, scene):
@@ -252,6 +437,18 @@ def test_a_failed_match_is_an_error_and_leaves_the_target(mod, scene):
     conf = read(mod, tgt, "overtone_confidence")[:, 1]
     marked = mod.bridge.read_vertex_groups(tgt, ["overtone_uncertain"])["overtone_uncertain"]
     np.testing.assert_array_equal(marked > 0, conf < 0.5)
+    # the artist, in Edit Mode with faces selected in face select mode, selects them
+    bpy.ops.object.select_all(action='DESELECT')
+    tgt.select_set(True)
+    bpy.context.view_layer.objects.active = tgt
+    bpy.ops.object.mode_set(mode='EDIT')
+    bpy.ops.mesh.select_mode(type='FACE')
+    bpy.ops.mesh.select_all(action='SELECT')
+    assert bpy.ops.overtone.select_uncertain() == {'FINISHED'}
+    assert tgt.mode == 'EDIT' and tuple(bpy.context.tool_settings.mesh_select_mode) == (True, False, False)
+    bpy.ops.object.mode_set(mode='OBJECT')
+    selected = np.array([v.select for v in tgt.data.vertices])
+    np.testing.assert_array_equal(selected, marked > 0)
 
 
 def tear_one_end(mod, tgt):
@@ -308,6 +505,43 @@ def test_an_uncertain_match_warns_marks_and_selects(mod, scene, capsys):
     assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
     cleared = mod.bridge.read_vertex_groups(tgt, ["overtone_uncertain"])["overtone_uncertain"]
     assert json.loads(scene.overtone.report_json)["outcome"] == "ok" and not cleared.any()
+
+
+def test_handles_count_the_holes_through_a_surface(mod, scene):
+    # genus per piece from Euler's formula V - E + F = 2 - 2g - b (common practice),
+    # on Blender's own primitives: a sphere 0, a ring 1, a cylinder (open tube) 0,
+    # two rings in one mesh 2; a vertex on three faces' edge: none
+    count = {}
+    for name, add in (("sphere", bpy.ops.mesh.primitive_uv_sphere_add), ("ring", bpy.ops.mesh.primitive_torus_add),
+                      ("tube", lambda: bpy.ops.mesh.primitive_cylinder_add(end_fill_type='NOTHING'))):
+        add()
+        count[name] = mod.job.handles(mod.bridge.read_mesh(bpy.context.active_object))
+    ring = mod.bridge.read_mesh(bpy.context.scene.objects["Torus"])
+    two = type(ring)(np.vstack([ring.vertices, ring.vertices + 5.0]),
+                     np.r_[ring.corners, ring.corners + len(ring.vertices)], np.r_[ring.sizes, ring.sizes])
+    fin = type(ring)(np.vstack([ring.vertices, [[9.0, 9.0, 9.0]]]),
+                     np.r_[ring.corners, ring.corners[:2], len(ring.vertices)], np.r_[ring.sizes, 3])
+    assert count == {"sphere": 0, "ring": 1, "tube": 0}
+    assert mod.job.handles(two) == 2 and mod.job.handles(fin) is None
+
+
+def test_a_sphere_matched_to_a_ring_is_not_called_sure(mod, scene):
+    """Matched by shape, a sphere and a ring get a consistent round trip (a high
+    confidence), yet no map between them is right everywhere: the run warns."""
+    bpy.ops.mesh.primitive_uv_sphere_add(segments=32, ring_count=16)
+    src = bpy.context.active_object
+    bpy.ops.mesh.primitive_torus_add()
+    tgt = bpy.context.active_object
+    colour = src.data.color_attributes.new("tint", 'FLOAT_COLOR', 'POINT')
+    colour.data.foreach_set("color", np.full(len(src.data.vertices) * 4, 0.5, np.float32))
+    bpy.ops.object.select_all(action='DESELECT')
+    select(src, tgt)
+    assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
+    report = json.loads(scene.overtone.report_json)
+    assert report["mode"] == "intrinsic" and report["handles"] == {"source": 0, "target": 1}
+    assert any("the source has 0 and the target 1 handles" in w for w in report["warnings"])
+    level, text = mod.runs.message_of(report)
+    assert level == {'WARNING'} and "cannot correspond everywhere" in text
 
 
 def test_batch_refuses_a_failed_match_unless_told(mod, scene, tmp_path):
