@@ -302,7 +302,9 @@ class Bounds:
         axis = self.axis[ids]
         h = np.einsum("ij,ij->i", d, axis)
         rho = np.linalg.norm(d - h[:, None] * axis, axis=1)
-        return np.hypot(np.maximum(np.abs(h) - self.thickness[ids], 0.0), np.maximum(rho - self.radius[ids], 0.0))
+        out: FloatArray = np.hypot(np.maximum(np.abs(h) - self.thickness[ids], 0.0),
+                                   np.maximum(rho - self.radius[ids], 0.0))
+        return out
 
 
 @dataclass(frozen=True)
