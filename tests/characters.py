@@ -96,7 +96,7 @@ def _surface_out(u: float, th: float, out: float) -> np.ndarray:
     return p + out * radial
 
 
-def character(res: float = 1.0, *, seed: int = 0, pieces=("eyes", "teeth", "ring", "shell")):
+def character(res: float = 1.0, *, seed: int = 0, pieces=("eyes", "teeth", "ring", "shell"), teeth: int = TEETH):
     """Rest-frame character: vertices, faces, piece id per vertex (0 body, 1-2 eyes,
     3.. teeth, then ring, then shell). ``res`` scales every piece's resolution;
     odd seeds turn and jitter the triangulations."""
@@ -110,8 +110,9 @@ def character(res: float = 1.0, *, seed: int = 0, pieces=("eyes", "teeth", "ring
             c = _surface_out(0.86, np.pi / 2 - side * 0.75, 0.5 * EYE_RADIUS)
             parts.append(sphere(c, EYE_RADIUS, n(8), n(12), turn=turn))
     if "teeth" in pieces:
-        for k in range(TEETH):
-            c = _surface_out(0.83 + 0.022 * k, -np.pi / 2, 0.3 * TOOTH_RADIUS)
+        for k in range(teeth):
+            c = _surface_out(0.83 + 0.132 * k / teeth, -np.pi / 2 + 0.5 * (k % 2 - 0.5) * (teeth > TEETH),
+                             0.3 * TOOTH_RADIUS)
             parts.append(sphere(c, TOOTH_RADIUS, max(4, n(5)), max(5, n(7)), squash=(0.6, 0.6, 1.6), turn=turn))
     if "ring" in pieces:
         r_body = float(np.abs(pairs._creature_point(np.full(64, 0.2), np.linspace(0, 2 * np.pi, 64))[:, 1:]).max())
@@ -140,13 +141,13 @@ def _piece_pair(name, src, tgt, pose, seed, kind="pose") -> PiecePair:
 
 
 def character_posed(res_s: float = 1.0, res_t: float = 0.8, *, angle: float = 0.9, move: bool = True,
-                    pieces=("eyes", "teeth", "ring", "shell")) -> PiecePair:
+                    pieces=("eyes", "teeth", "ring", "shell"), teeth: int = TEETH) -> PiecePair:
     """Character vs a bent, remeshed (other resolution and triangulation), moved copy."""
     def pose(v):
         v = pairs.bend(v, angle)
         return pairs.rigid(v, angle=0.9, shift=(4.0, 1.0, -2.0)) if move else v
-    return _piece_pair("character-posed", character(res_s, seed=0, pieces=pieces),
-                       character(res_t, seed=1, pieces=pieces), pose, 21)
+    return _piece_pair("character-posed", character(res_s, seed=0, pieces=pieces, teeth=teeth),
+                       character(res_t, seed=1, pieces=pieces, teeth=teeth), pose, 21)
 
 
 def character_remeshed(res_s: float = 1.0, res_t: float = 1.3, pieces=("eyes", "teeth", "ring", "shell")) -> PiecePair:

@@ -33,6 +33,8 @@ mapped more than two edge lengths away (1 is perfect, 0.5 is chance).
 
 from __future__ import annotations
 
+from collections.abc import Callable
+from dataclasses import replace
 from typing import Any
 
 import numpy as np
@@ -43,14 +45,15 @@ from ..carrying.detail import vertex_normals_unchecked
 from ..spectra.descriptors import heat_kernel_signature, heat_times
 from ..spectra.shape import Shape
 
-__all__ = ["separation_auc", "facing", "signature_agreement", "assess", "POOR_MEAN"]
+__all__ = ["separation_auc", "facing", "signature_agreement", "assess", "confidence_summary", "warning",
+           "with_confidence", "checked_auto", "POOR_MEAN"]
 
 Array = NDArray[Any]
 
 FACING_POWER = 2.0
 """Sharpness of the facing check: at 90 degrees it gives 0.25, opposite 0."""
 
-SIGNATURE_SCALE = 0.5
+SIGNATURE_SCALE = 0.1
 """Mean absolute log ratio of heat kernel signatures that lowers the signature check to 1/e."""
 
 SIGNATURE_BASIS = 30
@@ -61,6 +64,13 @@ SIGNATURE_TIMES = 8
 
 POOR_MEAN = 0.5
 """Mean confidence under which a result is called poor."""
+
+DIFFERENT_KIND = 0.065
+"""Median signature difference above which two shapes are probably not the same kind of object."""
+
+DISAGREE = 1.0
+"""Median distance, in mean edge lengths, between the aligned and the intrinsic
+maps' points above which auto mode keeps the one with the higher mean confidence."""
 
 
 def separation_auc(confidence: Array, error: Array, unit: float, *, good: float = 1.0,
@@ -135,6 +145,7 @@ def assess(c: Any, *, signature: bool | None = None) -> tuple[Array, dict[str, A
     """
     conf = np.asarray(c.confidence, dtype=np.float64).copy()
     parts = {"round_trip": float(conf.mean())}
+    summary: dict[str, Any] = {}
     if c.mode == "aligned":
         cos = facing(c.source.vertices, c.source.faces, c.triangle, c.target.vertices, c.target.faces)
         f = ((1.0 + cos) / 2.0) ** FACING_POWER
@@ -145,7 +156,55 @@ def assess(c: Any, *, signature: bool | None = None) -> tuple[Array, dict[str, A
         s = np.exp(-(e / SIGNATURE_SCALE) ** 2)
         conf *= s
         parts["signature"] = float(s.mean())
-    mean = float(conf.mean())
-    return conf, {"mean": round(mean, 4), "poor": mean < POOR_MEAN,
-                  "uncertain_share": round(float(np.mean(conf < 0.5)), 4),
-                  "checks": {k: round(v, 4) for k, v in parts.items()}}
+        median = float(np.median(e))
+        summary["median_signature_difference"] = round(median, 4)
+        summary["different_kind"] = median > DIFFERENT_KIND
+    summary.update(confidence_summary(conf))
+    summary["checks"] = {k: round(v, 4) for k, v in parts.items()}
+    return conf, summary
+
+
+def confidence_summary(conf: Array) -> dict[str, Any]:
+    """``mean``, ``poor`` (mean below :data:`POOR_MEAN`) and ``uncertain_share`` (below 0.5) of a confidence."""
+    mean = float(np.mean(conf))
+    return {"mean": round(mean, 4), "poor": mean < POOR_MEAN, "uncertain_share": round(float(np.mean(conf < 0.5)), 4)}
+
+
+def warning(summary: dict[str, Any]) -> str:
+    """One sentence for the artist when the result is doubtful, else ``""``."""
+    if summary.get("different_kind"):
+        return (f"the two meshes are probably not the same kind of object (their shapes differ at "
+                f"{summary['median_signature_difference']:.3f} > {DIFFERENT_KIND:g}); check the result")
+    if summary.get("poor"):
+        return f"poor match: mean confidence {summary['mean']:.2f} < {POOR_MEAN:g}; check the result"
+    return ""
+
+
+def with_confidence(c: Any) -> Any:
+    """``c`` with the checked confidence of :func:`assess` and ``stats["confidence"]`` (plus ``warning``)."""
+    conf, summary = assess(c)
+    summary["warning"] = warning(summary)
+    return replace(c, confidence=conf, stats={**c.stats, "confidence": summary})
+
+
+def checked_auto(aligned: Any, intrinsic: Callable[[], Any]) -> Any:
+    """Auto mode's check of an aligned answer (both arguments with :func:`with_confidence` applied).
+
+    Where the aligned surfaces coincide the closest points stand. Elsewhere
+    the intrinsic answer is made too; if the two put the median target vertex
+    more than :data:`DISAGREE` mean edge lengths apart, the one with the
+    higher mean confidence is kept and the reason says why.
+    """
+    checked = aligned.stats.get("aligned_refine", {})
+    if checked.get("closest_distance_over_h", 0.0) < checked.get("coincide_below", np.inf):
+        return aligned
+    other = intrinsic()
+    h = max(aligned.source.mean_edge, aligned.target.mean_edge)
+    apart = float(np.median(np.linalg.norm(aligned.points() - other.points(), axis=1)) / h)
+    ma, mi = aligned.stats["confidence"]["mean"], other.stats["confidence"]["mean"]
+    keep = other if apart > DISAGREE and mi > ma else aligned
+    why = (f"self-check: the intrinsic answer lies {apart:.2f} mean edge lengths from the aligned one "
+           f"(median); mean confidence aligned {ma:.2f}, intrinsic {mi:.2f}: kept {keep.mode}")
+    stats = {**keep.stats, "self_check": {"apart_over_h": round(apart, 4), "aligned_mean": ma,
+                                          "intrinsic_mean": mi, "kept": keep.mode}}
+    return replace(keep, reason=f"{keep.reason}; {why}", stats=stats)

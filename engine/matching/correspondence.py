@@ -42,9 +42,11 @@ from scipy.spatial import cKDTree
 from ..spectra.shape import Shape
 from .aligned import match_aligned
 from .closest_point import SurfaceLocator, barycentric_matrix
+from .confidence import checked_auto, with_confidence
 from .embedding import ProductSettings
 from .intrinsic import match_intrinsic
 from .modes import MatchOptions, ModeResult
+from .pieces import correspond_in_pieces
 
 __all__ = ["Correspondence", "correspond", "MatchOptions", "MATCHES"]
 
@@ -188,6 +190,24 @@ def correspond(source: Shape, target: Shape, *, match: str = "auto", landmarks: 
     if match not in MATCHES:
         raise ValueError(f"unknown match {match!r}; expected one of {', '.join(MATCHES)}")
     opts = MatchOptions() if options is None else options
+    if source.prepared.n_components > 1 or target.prepared.n_components > 1:
+        return correspond_in_pieces(source, target, lambda s, t, lm: _checked(s, t, match, lm, refine, opts),
+                                    landmarks=landmarks)
+    return _checked(source, target, match, landmarks, refine, opts)
+
+
+def _checked(source: Shape, target: Shape, match: str, landmarks: ArrayLike | None, refine: bool | None,
+             opts: MatchOptions) -> Correspondence:
+    """One surface each: :func:`_surface` with the checked confidence and auto mode's self-check."""
+    c = with_confidence(_surface(source, target, match, landmarks, refine, opts))
+    if match == "auto" and c.mode == "aligned":
+        c = checked_auto(c, lambda: with_confidence(_surface(source, target, "intrinsic", landmarks, refine, opts)))
+    return c
+
+
+def _surface(source: Shape, target: Shape, match: str, landmarks: ArrayLike | None, refine: bool | None,
+             opts: MatchOptions) -> Correspondence:
+    """The correspondence of one mode (or the overlap's choice) with its round-trip confidence."""
     lm = _check_landmarks(landmarks, source, target)
     t0 = time.perf_counter()
     loc_s = SurfaceLocator(source.vertices, source.faces)

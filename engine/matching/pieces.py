@@ -62,6 +62,7 @@ from scipy.spatial import cKDTree
 from ..spectra.discretization import mesh_operators
 from ..spectra.shape import Shape
 from .closest_point import SurfaceLocator
+from .confidence import confidence_summary, warning
 
 __all__ = ["Pieces", "PieceMatch", "find_pieces", "piece_spectrum", "follow_body", "match_pieces",
            "correspond_in_pieces", "BodyMatcher"]
@@ -386,6 +387,11 @@ def correspond_in_pieces(source: Shape, target: Shape, body_matcher: BodyMatcher
     pm = _pair_pieces(source, target, ps, pt, moved, forced, has_body)
     _carry_pieces(source, ps, pt, pm, moved, (tri, bary, conf, near), 0 if has_body else -1)
     stats["pieces"] = pieces_report(ps, pt, pm, conf)
+    body_summary = stats.get("confidence", {})
+    stats["confidence"] = {**body_summary, **confidence_summary(conf),
+                           "body_mean": body_summary.get("mean", round(float(conf[pt.label == 0].mean()), 4))}
+    stats["confidence"]["warning"] = "; ".join(w for w in (warning(stats["confidence"]),
+                                                          _pieces_warning(stats["pieces"])) if w)
     reason = f"{reason}; {stats['pieces']['summary']}"
     return Correspondence(source, target, mode, reason, tri, bary, conf, fmap, stats)
 
@@ -479,6 +485,15 @@ def whole_frame(source: Shape, target: Shape, iterations: int = 8, sample: int =
     shift = float(np.median(np.linalg.norm(moved - vt, axis=1)))
     h = max(source.mean_edge, target.mean_edge)
     return moved, {"moved": bool(shift > h), "median_distance_over_h": round(dist / h, 4)}
+
+
+def _pieces_warning(report: dict[str, Any]) -> str:
+    """A sentence naming target pieces without a counterpart, or ``""``."""
+    lost = report["unmatched_target"]
+    if not lost:
+        return ""
+    return (f"{len(lost)} piece(s) found nothing like them on the source (first vertices "
+            f"{', '.join(str(e['first_vertex']) for e in lost)}): their data is a guess, confidence 0")
 
 
 def _describe(p: Pieces, i: int) -> dict[str, Any]:
