@@ -7,8 +7,8 @@ round trip
     Target vertex -> source point -> back to the target by the reverse map;
     ``exp(-(d / 4h)^2)`` (computed by the correspondence itself).
 facing
-    In aligned mode, the target's vertex normal against the source surface's
-    normal at the mapped point: ``((1 + cos) / 2) ** FACING_POWER``. A copy
+    In aligned mode, the target's vertex normal against the source's
+    (blended vertex normals) at the mapped point: ``((1 + cos) / 2) ** FACING_POWER``. A copy
     turned in place maps many points onto surface facing elsewhere.
 signature
     Where the shapes' eigenbases are known (intrinsic mode; in aligned mode
@@ -35,7 +35,7 @@ from __future__ import annotations
 
 from collections.abc import Callable
 from dataclasses import replace
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 from numpy.typing import NDArray
@@ -47,6 +47,9 @@ from ..spectra.shape import Shape
 
 __all__ = ["separation_auc", "facing", "signature_agreement", "assess", "confidence_summary", "warning",
            "with_confidence", "checked_auto", "POOR_MEAN"]
+
+if TYPE_CHECKING:
+    from .correspondence import Correspondence
 
 Array = NDArray[Any]
 
@@ -101,11 +104,15 @@ def separation_auc(confidence: Array, error: Array, unit: float, *, good: float 
     return float((r[:ng].sum() - ng * (ng + 1) / 2) / (ng * nb))
 
 
-def facing(source_vertices: Array, source_faces: Array, triangle: Array, target_vertices: Array,
-           target_faces: Array) -> Array:
-    """Cosine between each target vertex normal and the normal of its mapped source triangle, (n_t,)."""
-    a = source_vertices[source_faces[triangle]]
-    fn = np.cross(a[:, 1] - a[:, 0], a[:, 2] - a[:, 0])
+def facing(source_vertices: Array, source_faces: Array, triangle: Array, barycentric: Array,
+           target_vertices: Array, target_faces: Array) -> Array:
+    """Cosine between each target vertex normal and the source normal at its mapped point, (n_t,).
+
+    The source normal is the barycentric blend of the source vertex normals
+    (area-weighted), so a coarse mesh's facets do not count as turns.
+    """
+    ns = vertex_normals_unchecked(source_vertices, source_faces)
+    fn = np.einsum("ij,ijk->ik", barycentric, ns[source_faces[triangle]])
     fn /= np.maximum(np.linalg.norm(fn, axis=1, keepdims=True), 1e-300)
     nt = vertex_normals_unchecked(target_vertices, target_faces)
     out: Array = np.clip(np.einsum("ij,ij->i", fn, nt), -1.0, 1.0)
@@ -126,7 +133,7 @@ def signature_agreement(source: Shape, target: Shape, triangle: Array, barycentr
     return out
 
 
-def assess(c: Any, *, signature: bool | None = None) -> tuple[Array, dict[str, Any]]:
+def assess(c: Correspondence, *, signature: bool | None = None) -> tuple[Array, dict[str, Any]]:
     """Confidence of a correspondence and its summary.
 
     Parameters
@@ -147,7 +154,8 @@ def assess(c: Any, *, signature: bool | None = None) -> tuple[Array, dict[str, A
     parts = {"round_trip": float(conf.mean())}
     summary: dict[str, Any] = {}
     if c.mode == "aligned":
-        cos = facing(c.source.vertices, c.source.faces, c.triangle, c.target.vertices, c.target.faces)
+        cos = facing(c.source.vertices, c.source.faces, c.triangle, c.barycentric, c.target.vertices,
+                     c.target.faces)
         f = ((1.0 + cos) / 2.0) ** FACING_POWER
         conf *= f
         parts["facing"] = float(f.mean())
@@ -180,14 +188,14 @@ def warning(summary: dict[str, Any]) -> str:
     return ""
 
 
-def with_confidence(c: Any) -> Any:
+def with_confidence(c: Correspondence) -> Correspondence:
     """``c`` with the checked confidence of :func:`assess` and ``stats["confidence"]`` (plus ``warning``)."""
     conf, summary = assess(c)
     summary["warning"] = warning(summary)
     return replace(c, confidence=conf, stats={**c.stats, "confidence": summary})
 
 
-def checked_auto(aligned: Any, intrinsic: Callable[[], Any]) -> Any:
+def checked_auto(aligned: Correspondence, intrinsic: Callable[[], Correspondence]) -> Correspondence:
     """Auto mode's check of an aligned answer (both arguments with :func:`with_confidence` applied).
 
     Where the aligned surfaces coincide the closest points stand. Elsewhere
@@ -207,4 +215,5 @@ def checked_auto(aligned: Any, intrinsic: Callable[[], Any]) -> Any:
            f"(median); mean confidence aligned {ma:.2f}, intrinsic {mi:.2f}: kept {keep.mode}")
     stats = {**keep.stats, "self_check": {"apart_over_h": round(apart, 4), "aligned_mean": ma,
                                           "intrinsic_mean": mi, "kept": keep.mode}}
-    return replace(keep, reason=f"{keep.reason}; {why}", stats=stats)
+    first = aligned.reason.split("; ")[0]       # the overlap test's sentence
+    return replace(keep, reason=f"{aligned.reason if keep is aligned else first}; {why}", stats=stats)

@@ -49,7 +49,7 @@ from __future__ import annotations
 
 from collections.abc import Callable
 from dataclasses import dataclass
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import scipy.linalg as sla
@@ -66,6 +66,9 @@ from .confidence import confidence_summary, warning
 
 __all__ = ["Pieces", "PieceMatch", "find_pieces", "piece_spectrum", "follow_body", "match_pieces",
            "correspond_in_pieces", "BodyMatcher"]
+
+if TYPE_CHECKING:
+    from .correspondence import Correspondence
 
 Array = NDArray[Any]
 
@@ -93,7 +96,7 @@ UNMATCHED_COST = 9.0
 DENSE_LIMIT = 400
 """Pieces up to this many vertices get their spectrum from a dense solve."""
 
-BodyMatcher = Callable[[Shape, Shape, Any], Any]
+BodyMatcher = Callable[[Shape, Shape, Any], "Correspondence"]
 """``(source_body, target_body, landmarks) -> Correspondence`` between two single-piece shapes;
 landmarks are (source, target) vertex pairs in the bodies' input numbering, or None."""
 
@@ -331,7 +334,7 @@ def _body_shape(shape: Shape, pieces: Pieces) -> tuple[Shape, Array, Array]:
 
 
 def correspond_in_pieces(source: Shape, target: Shape, body_matcher: BodyMatcher, *,
-                         landmarks: Any = None) -> Any:
+                         landmarks: Any = None) -> Correspondence:
     """Correspondence of two meshes made of pieces: bodies by ``body_matcher``, pieces by pairing.
 
     When either mesh has no body (its largest piece holds less than
