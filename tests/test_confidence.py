@@ -1,5 +1,7 @@
 """Confidence: does it predict the real error, and does auto mode check itself (tests/pairs.py, tests/characters.py)."""
 
+import json
+
 import numpy as np
 import pytest
 from scipy.stats import mannwhitneyu
@@ -47,6 +49,7 @@ def test_auto_mode_rejects_an_overlapping_but_rolled_copy():
     assert (ch.map_error(p, c) / T.mean_edge).mean() < 0.5
     # the aligned answer put most vertices far off; its confidence was lower
     assert c.stats["self_check"]["aligned_mean"] < c.stats["self_check"]["intrinsic_mean"]
+    json.dumps(c.report())       # the job writes the report as JSON
 
 
 def test_a_blob_against_a_plane_is_called_a_different_kind_of_object():
@@ -58,6 +61,7 @@ def test_a_blob_against_a_plane_is_called_a_different_kind_of_object():
     assert c.confidence.mean() < 0.5
     assert c.stats["confidence"]["different_kind"]
     assert "not the same kind" in c.stats["confidence"]["warning"]
+    json.dumps(c.report())
     same = correspond(Shape(v, f), Shape(v * 1.01, f))
     assert same.confidence.mean() > 0.9 and same.stats["confidence"]["warning"] == ""
 

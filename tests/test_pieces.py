@@ -1,5 +1,7 @@
 """Pieces: finding, pairing and mapping separate parts of a character (tests/characters.py)."""
 
+import json
+
 import numpy as np
 import pytest
 import scipy.linalg as sla
@@ -76,6 +78,7 @@ def test_posed_character_pieces_land_on_their_counterparts():
     assert not rep["unmatched_target"] and not rep["unused_source"]
     err = ch.map_error(p, c) / np.sqrt(S.area)
     assert err.mean() < 0.04
+    json.dumps(c.report())       # the job writes the report as JSON
 
 
 def test_remeshed_character_in_place_keeps_pieces_apart():

@@ -166,7 +166,7 @@ def assess(c: Correspondence, *, signature: bool | None = None) -> tuple[Array, 
         parts["signature"] = float(s.mean())
         median = float(np.median(e))
         summary["median_signature_difference"] = round(median, 4)
-        summary["different_kind"] = median > DIFFERENT_KIND
+        summary["different_kind"] = bool(median > DIFFERENT_KIND)
     summary.update(confidence_summary(conf))
     summary["checks"] = {k: round(v, 4) for k, v in parts.items()}
     return conf, summary
