@@ -48,7 +48,7 @@ from .intrinsic import match_intrinsic
 from .modes import MatchOptions, ModeResult
 from .pieces import correspond_in_pieces
 
-__all__ = ["Correspondence", "correspond", "MatchOptions", "MATCHES"]
+__all__ = ["Correspondence", "correspond", "correspond_surface", "MatchOptions", "MATCHES"]
 
 MATCHES = ("auto", "aligned", "intrinsic")
 
@@ -163,7 +163,8 @@ def _check_values(values: ArrayLike, n: int, what: str) -> NDArray[Any]:
 
 
 def correspond(source: Shape, target: Shape, *, match: str = "auto", landmarks: ArrayLike | None = None,
-               refine: bool | None = None, options: MatchOptions | None = None) -> Correspondence:
+               refine: bool | None = None, options: MatchOptions | None = None,
+               pieces: bool = True) -> Correspondence:
     """Correspondence from every target vertex to the source surface.
 
     Parameters
@@ -180,17 +181,25 @@ def correspond(source: Shape, target: Shape, *, match: str = "auto", landmarks: 
         surfaces differ; ``True``: always; ``False``: never.
     options : MatchOptions, optional
         Sizes and weights (defaults: :class:`MatchOptions`).
+    pieces : bool
+        When either mesh has several connected pieces, pair the pieces and
+        map each onto its counterpart (:mod:`engine.matching.pieces`);
+        False matches each mesh as one surface.
 
     Returns
     -------
     Correspondence
+        Its confidence is the round trip times the checks of
+        :mod:`engine.matching.confidence`; ``stats["confidence"]`` summarises
+        it (with a ``warning`` sentence, empty when nothing is doubtful), and
+        ``stats["pieces"]`` describes the pieces and their counterparts.
     """
     if not isinstance(source, Shape) or not isinstance(target, Shape):
         raise ValueError("source and target must be Shape objects")
     if match not in MATCHES:
         raise ValueError(f"unknown match {match!r}; expected one of {', '.join(MATCHES)}")
     opts = MatchOptions() if options is None else options
-    if source.prepared.n_components > 1 or target.prepared.n_components > 1:
+    if pieces and (source.prepared.n_components > 1 or target.prepared.n_components > 1):
         return correspond_in_pieces(source, target, lambda s, t, lm: _checked(s, t, match, lm, refine, opts),
                                     landmarks=landmarks)
     return _checked(source, target, match, landmarks, refine, opts)
@@ -199,15 +208,17 @@ def correspond(source: Shape, target: Shape, *, match: str = "auto", landmarks: 
 def _checked(source: Shape, target: Shape, match: str, landmarks: ArrayLike | None, refine: bool | None,
              opts: MatchOptions) -> Correspondence:
     """One surface each: :func:`_surface` with the checked confidence and auto mode's self-check."""
-    c = with_confidence(_surface(source, target, match, landmarks, refine, opts))
+    c = with_confidence(correspond_surface(source, target, match, landmarks, refine, opts))
     if match == "auto" and c.mode == "aligned":
-        c = checked_auto(c, lambda: with_confidence(_surface(source, target, "intrinsic", landmarks, refine, opts)))
+        c = checked_auto(c, lambda: with_confidence(correspond_surface(source, target, "intrinsic", landmarks,
+                                                                       refine, opts)))
     return c
 
 
-def _surface(source: Shape, target: Shape, match: str, landmarks: ArrayLike | None, refine: bool | None,
-             opts: MatchOptions) -> Correspondence:
-    """The correspondence of one mode (or the overlap's choice) with its round-trip confidence."""
+def correspond_surface(source: Shape, target: Shape, match: str, landmarks: ArrayLike | None,
+                       refine: bool | None, opts: MatchOptions) -> Correspondence:
+    """The correspondence of one mode (or the overlap's choice), each mesh as one surface,
+    with the round-trip confidence only (no checks, no self-check, no pieces)."""
     lm = _check_landmarks(landmarks, source, target)
     t0 = time.perf_counter()
     loc_s = SurfaceLocator(source.vertices, source.faces)
