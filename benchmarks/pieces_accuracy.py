@@ -10,7 +10,7 @@ matched alone (no pieces in either mesh), and the same pair matched as one
 surface (``pieces=False``) where that runs.
 
 Part 2 (confidence): per pair the mean confidence, the share of vertices
-mapped more than 2 mean edge lengths (target) from their true partner, the
+mapped more than 2 mean edge lengths (of the coarser mesh) from their true partner, the
 ROC AUC of the confidence separating vertices within 1 edge length from
 those beyond 2 (round-trip confidence alone -> the checked one), and the
 mean error (in edge lengths) of vertices at confidence >= 0.5 and below.
@@ -133,7 +133,7 @@ def part_confidence():
         c = correspond(S, T, landmarks=p.landmarks or None, match=match)
         rt = correspondence.correspond_surface(S, T, c.mode, p.landmarks or None, None, MatchOptions()).confidence \
             if T.prepared.n_components == 1 else None
-        e = ch.map_error(p, c) / T.mean_edge
+        e = ch.map_error(p, c) / max(S.mean_edge, T.mean_edge)     # in the coarser mesh's edge lengths
         auc = separation_auc(c.confidence, e, 1.0)
         auc_rt = separation_auc(rt, e, 1.0) if rt is not None else None
         hi, lo = c.confidence >= 0.5, c.confidence < 0.5

@@ -18,12 +18,15 @@ intrinsic
 vertices within as much of the target; both at least ``overlap_threshold``
 picks aligned.
 
-Confidence per target vertex is the round-trip agreement: target vertex ->
-source point -> (reverse map: closest points from the (deformed) source onto
-the target, or the spectral embedding without alignment) -> target vertex;
-``exp(-(d / 4h)^2)`` with ``d`` the distance between start and end and ``h``
-the target's mean edge length (1 is a perfect round trip, 0.5 about 3.3 edge
-lengths off).
+Confidence per target vertex starts from the round-trip agreement: target
+vertex -> source point -> (reverse map: closest points from the (deformed)
+source onto the target, or the spectral embedding without alignment) ->
+target vertex; ``exp(-(d / 4h)^2)`` with ``d`` the distance between start and
+end and ``h`` the coarser mesh's mean edge length (1 is a perfect round trip,
+0.5 about 3.3 edge lengths off). :func:`correspond` multiplies in the checks
+of :mod:`engine.matching.confidence` and, in auto mode, checks an aligned
+answer against the intrinsic one; meshes of several pieces are paired piece
+by piece (:mod:`engine.matching.pieces`).
 
 Accuracy of each mode and of each choice behind the defaults:
 docs/measurements.md, "Correspondence and transfer accuracy".
@@ -262,7 +265,7 @@ def _finish(source: Shape, target: Shape, mode: str, reason: str, result: ModeRe
     t0 = time.perf_counter()
     end = result.back[result.vertex]
     d = np.linalg.norm(target.vertices[end] - target.vertices, axis=1)
-    conf = np.exp(-(d / (4 * target.mean_edge)) ** 2)
+    conf = np.exp(-(d / (4 * max(source.mean_edge, target.mean_edge))) ** 2)   # in the coarser mesh's edges
     coverage = _coverage(source, np.einsum("ij,ijk->ik", bary, source.vertices[source.faces[tri]]),
                          2 * max(source.mean_edge, target.mean_edge * np.sqrt(source.area / target.area)))
     timings = {**result.timings, "confidence": time.perf_counter() - t0}
