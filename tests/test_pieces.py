@@ -133,3 +133,26 @@ def test_forced_pair_by_landmark():
     assert list(m.counterpart) == [0, 1, 2]
     m2 = match_pieces(pt, pt, sp, sp, pt.centroid, forced=[(1, 2)])
     assert list(m2.counterpart) == [0, 2, 1]
+
+
+def test_clarity_is_low_only_where_the_place_does_not_decide():
+    # a body and a row of 4 identical pieces 1 place unit apart (unit: 0.1 sqrt(body area) = 1)
+    from engine.matching.pieces import Pieces
+    row = np.array([[0, 0, 0]] + [[x, 0, 0] for x in range(4)], dtype=float)
+    ones = np.ones(5)
+    ps = Pieces(np.zeros(1), np.zeros(1), np.array([100.0, 1, 1, 1, 1]), row, ones, ones)
+    sp = np.ones((5, 6))
+    exact = match_pieces(ps, ps, sp, sp, row + [0, 0.05, 0])
+    assert list(exact.counterpart) == [0, 1, 2, 3, 4]
+    assert exact.clarity[1:].min() > 0.99
+    # carried half-way between neighbours but for the row's end: the end still decides the row
+    halfway = row.copy()
+    halfway[1:4, 0] += 0.5
+    chain = match_pieces(ps, ps, sp, sp, halfway)
+    assert list(chain.counterpart) == [0, 1, 2, 3, 4] and chain.clarity[1:].min() > 0.6
+    # two pieces both carried to the middle between their candidates: a swap costs almost nothing
+    two = Pieces(np.zeros(1), np.zeros(1), np.array([100.0, 1, 1]), row[:3], ones[:3], ones[:3])
+    mid = match_pieces(two, two, sp[:3], sp[:3], np.array([[0, 0, 0], [0.45, 0, 0], [0.55, 0, 0]]))
+    assert list(mid.counterpart) == [0, 1, 2]
+    # regret 0.55^2 * 2 - 0.45^2 * 2 = 0.2 against 4 x 0.45^2 = 0.81: clarity 1 - exp(-0.247) (by hand)
+    np.testing.assert_allclose(mid.clarity[1:], 1 - np.exp(-0.2 / 0.81), rtol=1e-9)

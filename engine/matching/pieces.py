@@ -39,9 +39,9 @@ Each target piece vertex then takes the closest point, on its counterpart's
 triangles only, of its carried position. Its confidence is the product of
 the body's confidence near it, how well the carried piece lies on the
 counterpart (``exp(-(d / 4h)^2)``, ``d`` the distance to the counterpart,
-``h`` the larger mean edge length), how clearly this counterpart beats the
-next best source piece of plausible size and shape by place
-(:attr:`PieceMatch.clarity`) and how cheap the pair is
+``h`` the larger mean edge length), how clearly this pair beats every
+other assignment (:attr:`PieceMatch.clarity`: how much the best assignment's
+cost rises when this pair is forbidden) and how cheap the pair is
 (``exp(-cost / 8)``).
 """
 
@@ -89,6 +89,17 @@ SPECTRUM_COUNT = 6
 
 BODY_SHARE = 0.3
 """The largest piece is a body when it holds at least this share of the area on both sides."""
+
+REGRET_SCALE = 4.0
+"""A regret of this many times the transport's precision (the median squared
+place residual of the chosen pairs, at least :data:`PLACE_FLOOR` squared) sets
+a pair's clarity to ``1 - 1/e``."""
+
+PLACE_FLOOR = 0.05
+"""Smallest place residual (in place units) taken as the transport's precision."""
+
+REGRET_LIMIT = 200
+"""Above this many target pieces the regret is not measured (clarity 1)."""
 
 UNMATCHED_COST = 9.0
 """A pair costing more than this (three units on one term) is no pair."""
@@ -244,9 +255,10 @@ class PieceMatch:
     cost : (p_t,) float64 array
         Cost of the chosen pair (``inf`` for none).
     clarity : (p_t,) float64 array in [0, 1]
-        ``1 - (d1 / d2)^2`` with ``d1`` the place distance to the chosen
-        source piece and ``d2`` the nearest other source piece of plausible
-        size and shape (1 when there is none): how clearly the place decides.
+        How clearly the pair is decided: ``1 - exp(-regret / u)`` with the
+        regret the rise of the whole assignment's cost when this pair is
+        forbidden and ``u`` :data:`REGRET_SCALE` times the transport's
+        precision (the median squared place residual of the chosen pairs).
     costs : (p_t, p_s) float64 array
         All pair costs (body row and column included, infinite off the body pair).
     """
@@ -300,14 +312,27 @@ def match_pieces(ps: Pieces, pt: Pieces, spectra_s: Array, spectra_t: Array,
         # a "none" column per target piece at the unmatched cost
         padded = np.hstack([np.minimum(sub, 1e12), np.full((m, m), UNMATCHED_COST)])
         rows, cols = linear_sum_assignment(padded)
-        for r, c in zip(rows, cols):
-            if c < ns - f and sub[r, c] <= UNMATCHED_COST:
-                counterpart[r + f], cost[r + f] = c + f, sub[r, c]
-                rival = (form[r + f, f:] <= UNMATCHED_COST) & (np.arange(ns - f) != c)
-                if rival.any():
-                    d2 = float(place[r + f, f:][rival].min())
-                    clarity[r + f] = float(np.clip(1.0 - (place[r + f, c + f] / max(d2, 1e-12)) ** 2, 0.0, 1.0))
+        total = float(padded[rows, cols].sum())
+        kept = [(r, c) for r, c in zip(rows, cols) if c < ns - f and sub[r, c] <= UNMATCHED_COST]
+        # the transport's precision: the median squared place residual of the pairs
+        unit = max(float(np.median([place[r + f, c + f] ** 2 for r, c in kept])) if kept else 0.0,
+                   PLACE_FLOOR ** 2)
+        for r, c in kept:
+            counterpart[r + f], cost[r + f] = c + f, sub[r, c]
+            clarity[r + f] = _clarity(padded, r, c, total, REGRET_SCALE * unit)
     return PieceMatch(counterpart=counterpart, cost=cost, clarity=clarity, costs=costs)
+
+
+def _clarity(padded: Array, r: int, c: int, total: float, unit: float) -> float:
+    """``1 - exp(-regret / unit)``, the regret being how much the best assignment's
+    cost rises when row ``r`` may not take column ``c``."""
+    if padded.shape[0] > REGRET_LIMIT:
+        return 1.0
+    forbidden = padded.copy()
+    forbidden[r, c] = 1e12
+    rows, cols = linear_sum_assignment(forbidden)
+    regret = float(forbidden[rows, cols].sum()) - total
+    return float(1.0 - np.exp(-max(regret, 0.0) / unit))
 
 
 def _piece_landmarks(landmarks: Any, source: Shape, target: Shape, ps: Pieces,
