@@ -120,6 +120,12 @@ def test_many_small_pieces_without_a_body_are_not_refused():
     assert "no body" in c.reason
     assert ch.piece_landing(p, c) == 1.0
     assert c.stats["pieces"]["target_pieces"] == 40
+    # the driver in intrinsic mode takes the same path instead of refusing the mesh
+    c2 = correspond(S, T, match="intrinsic")
+    assert "no body" in c2.reason and ch.piece_landing(p, c2) == 1.0
+    # aligned on request: the pieces stay where they are (here in the wrong place, so nothing pairs)
+    c3 = correspond(S, T, match="aligned")
+    assert c3.mode == "aligned" and c3.stats["pieces"]["unmatched_target"]
 
 
 def test_forced_pair_by_landmark():

@@ -204,7 +204,7 @@ def correspond(source: Shape, target: Shape, *, match: str = "auto", landmarks: 
     opts = MatchOptions() if options is None else options
     if pieces and (source.prepared.n_components > 1 or target.prepared.n_components > 1):
         return correspond_in_pieces(source, target, lambda s, t, lm: _checked(s, t, match, lm, refine, opts),
-                                    landmarks=landmarks)
+                                    landmarks=landmarks, match=match)
     return _checked(source, target, match, landmarks, refine, opts)
 
 

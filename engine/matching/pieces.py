@@ -359,7 +359,7 @@ def _body_shape(shape: Shape, pieces: Pieces) -> tuple[Shape, Array, Array]:
 
 
 def correspond_in_pieces(source: Shape, target: Shape, body_matcher: BodyMatcher, *,
-                         landmarks: Any = None) -> Correspondence:
+                         landmarks: Any = None, match: str = "auto") -> Correspondence:
     """Correspondence of two meshes made of pieces: bodies by ``body_matcher``, pieces by pairing.
 
     When either mesh has no body (its largest piece holds less than
@@ -377,6 +377,9 @@ def correspond_in_pieces(source: Shape, target: Shape, body_matcher: BodyMatcher
     landmarks : list of (source_vertex, target_vertex), optional
         Original vertex indices; pairs on two bodies go to ``body_matcher``,
         pairs joining two pieces force that pair.
+    match : {"auto", "aligned", "intrinsic"}
+        Used where there is no body: "aligned" keeps the pieces where they
+        are; otherwise :func:`whole_frame` places them.
 
     Returns
     -------
@@ -406,7 +409,7 @@ def correspond_in_pieces(source: Shape, target: Shape, body_matcher: BodyMatcher
             near[others] = cb.confidence[nbr].mean(axis=1)
         mode, reason, fmap, stats = cb.mode, cb.reason, cb.fmap, dict(cb.stats)
     else:
-        moved, residual = whole_frame(source, target)
+        moved, residual = (target.vertices, {"moved": False}) if match == "aligned" else whole_frame(source, target)
         moved_any = residual["moved"]
         mode = "intrinsic" if moved_any else "aligned"
         reason = (f"no body (largest piece under {BODY_SHARE:.0%} of the area): pieces placed by "
