@@ -50,26 +50,6 @@ def colour_rmse(p, c):
     return float(np.sqrt(((got - pairs.colour(p.target_rest, sc)) ** 2).mean()))
 
 
-def rolled() -> pairs.Pair:
-    """The creature and a copy turned 90 degrees about its long axis in place, shuffled."""
-    vs, fs, _ = pairs.creature(40, 24, seed=0)
-    c = vs.mean(0)
-    vt = pairs.rigid(vs - c, angle=np.pi / 2, axis=(1, 0, 0)) + c
-    vt, ft, rt = pairs._shuffle(vt, fs, vs.copy(), 3)
-    return pairs.Pair("creature-rolled", vs, fs, vt, ft, vs.copy(), rt, kind="wrong")
-
-
-def blob(n=(24, 36)):
-    v, f = ch.sphere(np.zeros(3), 1.0, *n)
-    r = 1 + 0.15 * np.sin(3 * v[:, 0]) * np.cos(2 * v[:, 1]) + 0.1 * v[:, 2]
-    return v * r[:, None], f
-
-
-def plane(n=30):
-    x, y = np.meshgrid(np.linspace(-1.5, 1.5, n), np.linspace(-1.5, 1.5, n), indexing="ij")
-    return np.column_stack([x.ravel(), y.ravel(), 0.1 * np.sin(2 * x.ravel())]), ch._grid_faces(n, n, False)
-
-
 def piece_pairs():
     yield ch.character_posed()
     yield ch.character_remeshed()
@@ -124,8 +104,8 @@ def part_confidence():
     makers = [pairs.creature_pose, pairs.creature_resolution, pairs.creature_proportion, pairs.creature_rigid,
               pairs.creature_thicker, pairs.creature_reposed, pairs.creature_pinched, pairs.cow_rigid,
               pairs.elephant_resolution, pairs.elephant_bent, pairs.elephant_proportion, pairs.elephant_deformed,
-              rolled, ch.character_posed, ch.character_remeshed]
-    forced = [(rolled, "aligned"), (pairs.creature_reposed, "aligned"), (pairs.elephant_deformed, "aligned"),
+              ch.rolled, ch.character_posed, ch.character_remeshed]
+    forced = [(ch.rolled, "aligned"), (pairs.creature_reposed, "aligned"), (pairs.elephant_deformed, "aligned"),
               (pairs.creature_thicker, "intrinsic"), (pairs.creature_pose, "aligned")]
     for make, match in [(m, "auto") for m in makers] + forced:
         p = make()
@@ -142,9 +122,9 @@ def part_confidence():
               f"{f(e[hi].mean() if hi.any() else None)} {f(e[lo].mean() if lo.any() else None)}  "
               f"{c.stats['confidence'].get('warning', '')[:90]}", flush=True)
     swapped_piece()
-    B = Shape(*blob())
-    for name, (v, f_) in [("blob-torus", ch.ring(0.0, 1.0, 0.4, 48, 20)), ("blob-plane", plane()),
-                          ("blob-blob", blob((20, 30)))]:
+    B = Shape(*ch.blob())
+    for name, (v, f_) in [("blob-torus", ch.ring(0.0, 1.0, 0.4, 48, 20)), ("blob-plane", ch.plane()),
+                          ("blob-blob", ch.blob((20, 30)))]:
         c = correspond(B, Shape(v, f_))
         print(f"{name:22s} {c.mode:9s} {c.confidence.mean():5.3f}  {'':34s}"
               f"{c.stats['confidence'].get('warning', '')[:90]}", flush=True)

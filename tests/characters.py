@@ -50,7 +50,7 @@ def sphere(centre, radius, n_lat: int, n_lon: int, *, squash=(1.0, 1.0, 1.0), tu
     return centre + radius * pts, np.vstack(f).astype(np.int64)
 
 
-def _grid_faces(rows: int, cols: int, closed_cols: bool, flip: bool = False) -> np.ndarray:
+def grid_faces(rows: int, cols: int, closed_cols: bool, flip: bool = False) -> np.ndarray:
     idx = np.arange(rows * cols).reshape(rows, cols)
     if closed_cols:
         a, b = idx[:-1], idx[1:]
@@ -86,7 +86,7 @@ def shell(u0: float, u1: float, grow: float, n_u: int, n_th: int, *, turn: float
     U, T = np.meshgrid(us, ths, indexing="ij")
     p = pairs._creature_point(U.ravel(), T.ravel())
     p[:, 1:] *= grow
-    return p, _grid_faces(n_u, n_th, True)
+    return p, grid_faces(n_u, n_th, True)
 
 
 def _surface_out(u: float, th: float, out: float) -> np.ndarray:
@@ -128,16 +128,43 @@ def character(res: float = 1.0, *, seed: int = 0, pieces=("eyes", "teeth", "ring
     return np.vstack(verts), np.vstack(faces), np.concatenate(label)
 
 
+def shuffled(v, f, seed, *rows):
+    """Vertices, faces and any per-vertex ``rows`` in a random vertex order."""
+    perm = np.random.default_rng(seed).permutation(len(v))
+    inv = np.empty_like(perm)
+    inv[perm] = np.arange(len(perm))
+    return (v[perm], inv[f]) + tuple(r[perm] for r in rows)
+
+
 def _piece_pair(name, src, tgt, pose, seed, kind="pose") -> PiecePair:
     vs, fs, ls = src
     vt, ft, lt = tgt
     rs, rt = vs.copy(), vt.copy()
-    vt = pose(vt)
-    perm = np.random.default_rng(seed).permutation(len(vt))
-    inv = np.empty_like(perm)
-    inv[perm] = np.arange(len(perm))
-    vt, ft, rt, lt = vt[perm], inv[ft], rt[perm], lt[perm]
+    vt, ft, rt, lt = shuffled(pose(vt), ft, seed, rt, lt)
     return PiecePair(name, vs, fs, vt, ft, rs, rt, kind=kind, source_piece=ls, target_piece=lt)
+
+
+def rolled(n=(40, 24), *, angle: float = np.pi / 2, seed: int = 3) -> pairs.Pair:
+    """The creature and a copy turned ``angle`` about its long axis in place, shuffled:
+    the two overlap, yet almost every point of the copy is elsewhere on the original."""
+    vs, fs, _ = pairs.creature(*n, seed=0)
+    c = vs.mean(0)
+    vt = pairs.rigid(vs - c, angle=angle, axis=(1, 0, 0)) + c
+    vt, ft, rt = shuffled(vt, fs, seed, vs.copy())
+    return pairs.Pair("creature-rolled", vs, fs, vt, ft, vs.copy(), rt, kind="wrong")
+
+
+def blob(n=(24, 36)):
+    """A lumpy ball (vertices, faces)."""
+    v, f = sphere(np.zeros(3), 1.0, *n)
+    r = 1 + 0.15 * np.sin(3 * v[:, 0]) * np.cos(2 * v[:, 1]) + 0.1 * v[:, 2]
+    return v * r[:, None], f
+
+
+def plane(n=30):
+    """A gently waved square sheet of ``n`` x ``n`` vertices (vertices, faces)."""
+    x, y = np.meshgrid(np.linspace(-1.5, 1.5, n), np.linspace(-1.5, 1.5, n), indexing="ij")
+    return np.column_stack([x.ravel(), y.ravel(), 0.1 * np.sin(2 * x.ravel())]), grid_faces(n, n, False)
 
 
 def character_posed(res_s: float = 1.0, res_t: float = 0.8, *, angle: float = 0.9, move: bool = True,

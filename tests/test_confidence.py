@@ -29,16 +29,8 @@ def test_separation_auc_is_the_mann_whitney_statistic():
     assert separation_auc(conf, np.zeros(500), 1.0) is None
 
 
-def _rolled(n=(24, 16)):
-    vs, fs, _ = pairs.creature(*n, seed=0)
-    c = vs.mean(0)
-    vt = pairs.rigid(vs - c, angle=np.pi / 2, axis=(1, 0, 0)) + c
-    vt, ft, rt = pairs._shuffle(vt, fs, vs.copy(), 3)
-    return pairs.Pair("rolled", vs, fs, vt, ft, vs.copy(), rt)
-
-
 def test_auto_mode_rejects_an_overlapping_but_rolled_copy():
-    p = _rolled()
+    p = ch.rolled((24, 16))
     S, T = _shapes(p)
     c = correspond(S, T)
     # the copy overlaps its original, so the overlap test alone picks aligned ...
@@ -53,11 +45,8 @@ def test_auto_mode_rejects_an_overlapping_but_rolled_copy():
 
 
 def test_a_blob_against_a_plane_is_called_a_different_kind_of_object():
-    v, f = ch.sphere(np.zeros(3), 1.0, 14, 20)
-    v = v * (1 + 0.15 * np.sin(3 * v[:, 0]))[:, None]
-    x, y = np.meshgrid(np.linspace(-1.5, 1.5, 16), np.linspace(-1.5, 1.5, 16), indexing="ij")
-    plane = np.column_stack([x.ravel(), y.ravel(), 0.1 * np.sin(2 * x.ravel())])
-    c = correspond(Shape(v, f), Shape(plane, ch._grid_faces(16, 16, False)))
+    v, f = ch.blob((14, 20))
+    c = correspond(Shape(v, f), Shape(*ch.plane(16)))
     assert c.confidence.mean() < 0.5
     assert c.stats["confidence"]["different_kind"]
     assert "not the same kind" in c.stats["confidence"]["warning"]
