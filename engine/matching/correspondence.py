@@ -18,12 +18,15 @@ intrinsic
 vertices within as much of the target; both at least ``overlap_threshold``
 picks aligned.
 
-Confidence per target vertex is the round-trip agreement: target vertex ->
-source point -> (reverse map: closest points from the (deformed) source onto
-the target, or the spectral embedding without alignment) -> target vertex;
-``exp(-(d / 4h)^2)`` with ``d`` the distance between start and end and ``h``
-the target's mean edge length (1 is a perfect round trip, 0.5 about 3.3 edge
-lengths off).
+Confidence per target vertex starts from the round-trip agreement: target
+vertex -> source point -> (reverse map: closest points from the (deformed)
+source onto the target, or the spectral embedding without alignment) ->
+target vertex; ``exp(-(d / 4h)^2)`` with ``d`` the distance between start and
+end and ``h`` the coarser mesh's mean edge length (1 is a perfect round trip,
+0.5 about 3.3 edge lengths off). :func:`correspond` multiplies in the checks
+of :mod:`engine.matching.confidence` and, in auto mode, checks an aligned
+answer against the intrinsic one; meshes of several pieces are paired piece
+by piece (:mod:`engine.matching.pieces`).
 
 Accuracy of each mode and of each choice behind the defaults:
 docs/measurements.md, "Correspondence and transfer accuracy".
@@ -42,11 +45,13 @@ from scipy.spatial import cKDTree
 from ..spectra.shape import Shape
 from .aligned import match_aligned
 from .closest_point import SurfaceLocator, barycentric_matrix
+from .confidence import checked_auto, with_confidence
 from .embedding import ProductSettings
 from .intrinsic import match_intrinsic
 from .modes import MatchOptions, ModeResult
+from .pieces import correspond_in_pieces
 
-__all__ = ["Correspondence", "correspond", "MatchOptions", "MATCHES"]
+__all__ = ["Correspondence", "correspond", "correspond_surface", "MatchOptions", "MATCHES"]
 
 MATCHES = ("auto", "aligned", "intrinsic")
 
@@ -161,7 +166,8 @@ def _check_values(values: ArrayLike, n: int, what: str) -> NDArray[Any]:
 
 
 def correspond(source: Shape, target: Shape, *, match: str = "auto", landmarks: ArrayLike | None = None,
-               refine: bool | None = None, options: MatchOptions | None = None) -> Correspondence:
+               refine: bool | None = None, options: MatchOptions | None = None,
+               pieces: bool = True) -> Correspondence:
     """Correspondence from every target vertex to the source surface.
 
     Parameters
@@ -178,16 +184,44 @@ def correspond(source: Shape, target: Shape, *, match: str = "auto", landmarks: 
         surfaces differ; ``True``: always; ``False``: never.
     options : MatchOptions, optional
         Sizes and weights (defaults: :class:`MatchOptions`).
+    pieces : bool
+        When either mesh has several connected pieces, pair the pieces and
+        map each onto its counterpart (:mod:`engine.matching.pieces`);
+        False matches each mesh as one surface.
 
     Returns
     -------
     Correspondence
+        Its confidence is the round trip times the checks of
+        :mod:`engine.matching.confidence`; ``stats["confidence"]`` summarises
+        it (with a ``warning`` sentence, empty when nothing is doubtful), and
+        ``stats["pieces"]`` describes the pieces and their counterparts.
     """
     if not isinstance(source, Shape) or not isinstance(target, Shape):
         raise ValueError("source and target must be Shape objects")
     if match not in MATCHES:
         raise ValueError(f"unknown match {match!r}; expected one of {', '.join(MATCHES)}")
     opts = MatchOptions() if options is None else options
+    if pieces and (source.prepared.n_components > 1 or target.prepared.n_components > 1):
+        return correspond_in_pieces(source, target, lambda s, t, lm: _checked(s, t, match, lm, refine, opts),
+                                    landmarks=landmarks, match=match)
+    return _checked(source, target, match, landmarks, refine, opts)
+
+
+def _checked(source: Shape, target: Shape, match: str, landmarks: ArrayLike | None, refine: bool | None,
+             opts: MatchOptions) -> Correspondence:
+    """One surface each: :func:`_surface` with the checked confidence and auto mode's self-check."""
+    c = with_confidence(correspond_surface(source, target, match, landmarks, refine, opts))
+    if match == "auto" and c.mode == "aligned":
+        c = checked_auto(c, lambda: with_confidence(correspond_surface(source, target, "intrinsic", landmarks,
+                                                                       refine, opts)))
+    return c
+
+
+def correspond_surface(source: Shape, target: Shape, match: str, landmarks: ArrayLike | None,
+                       refine: bool | None, opts: MatchOptions) -> Correspondence:
+    """The correspondence of one mode (or the overlap's choice), each mesh as one surface,
+    with the round-trip confidence only (no checks, no self-check, no pieces)."""
     lm = _check_landmarks(landmarks, source, target)
     t0 = time.perf_counter()
     loc_s = SurfaceLocator(source.vertices, source.faces)
@@ -231,7 +265,7 @@ def _finish(source: Shape, target: Shape, mode: str, reason: str, result: ModeRe
     t0 = time.perf_counter()
     end = result.back[result.vertex]
     d = np.linalg.norm(target.vertices[end] - target.vertices, axis=1)
-    conf = np.exp(-(d / (4 * target.mean_edge)) ** 2)
+    conf = np.exp(-(d / (4 * max(source.mean_edge, target.mean_edge))) ** 2)   # in the coarser mesh's edges
     coverage = _coverage(source, np.einsum("ij,ijk->ik", bary, source.vertices[source.faces[tri]]),
                          2 * max(source.mean_edge, target.mean_edge * np.sqrt(source.area / target.area)))
     timings = {**result.timings, "confidence": time.perf_counter() - t0}
