@@ -354,7 +354,7 @@ def _piece_landmarks(landmarks: Any, source: Shape, target: Shape, ps: Pieces,
 def _body_shape(shape: Shape, pieces: Pieces) -> tuple[Shape, Array, Array]:
     """The body as its own Shape; its vertices' and triangles' indices in ``shape``."""
     faces = pieces.faces_of(0)
-    body = Shape(shape.vertices, shape.faces[faces], cache=shape.cache)  # type: ignore[no-untyped-call]
+    body = Shape(shape.vertices, shape.faces[faces], cache=shape.cache)
     return body, np.asarray(body.prepared.from_clean, dtype=np.int64), faces[body.prepared.tri_polygon]
 
 
