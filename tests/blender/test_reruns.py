@@ -49,6 +49,7 @@ def detail_strength(mod, tgt, expected):
 # ----------------------------------------------------------------------------- detail twice
 
 
+@pytest.mark.every_blender
 def test_carry_detail_twice_keeps_strength_one(mod, scene):
     src, tgt = bumpy_pair(scene)
     expected = engine_pair(mod, src, tgt).detail(strength=1.0, size=0.05)
@@ -78,6 +79,7 @@ def test_carry_detail_twice_in_the_background_keeps_strength_one(mod, scene):
     assert detail_strength(mod, tgt, expected) == pytest.approx(1.0, abs=1e-4)
 
 
+@pytest.mark.every_blender
 def test_batch_detail_twice_keeps_strength_one(mod, scene, tmp_path):
     src, tgt = bumpy_pair(scene)
     expected = engine_pair(mod, src, tgt).detail(strength=1.0, size=0.05)
@@ -93,6 +95,7 @@ def test_batch_detail_twice_keeps_strength_one(mod, scene, tmp_path):
 # ----------------------------------------------------------------------------- re-runs and names
 
 
+@pytest.mark.every_blender
 def test_batch_rerun_refreshes_the_groups_it_wrote_as_the_ui_does(mod, scene, tmp_path):
     src, tgt = painted_pair(scene)
     scene.overtone.basis = "POINTWISE"
@@ -124,6 +127,7 @@ def _layers(mod, obj):
     return sorted((s.name, s.domain, s.data_type) for s in mod.bridge.list_layers(obj))
 
 
+@pytest.mark.every_blender
 def test_ui_and_batch_alternating_with_replace_off_then_on(mod, scene, tmp_path):
     """An artist's evening on one pair: the target has its own "tint" (corner bytes,
     the active and render colour) and its own "head" weights. Runs alternate between
@@ -420,6 +424,7 @@ def test_outcome_levels_follow_the_thresholds(mod):
     assert runs.outcome(np.r_[np.full(98, 0.99), np.full(2, 0.1)]).level == "ok"   # 2 %: not over
 
 
+@pytest.mark.every_blender
 def test_a_failed_match_is_an_error_and_leaves_the_target(mod, scene):
     src, tgt = painted_pair(scene)
     tgt.location = (50.0, 0.0, 0.0)          # far away, yet matched as if overlapping
@@ -474,6 +479,7 @@ def test_the_background_run_warns_too(mod, scene):
     assert reports[0][0] == {'WARNING'} and "uncertain match: mean confidence" in reports[0][1]
 
 
+@pytest.mark.every_blender
 def test_an_uncertain_match_warns_marks_and_selects(mod, scene, capsys):
     src, tgt = painted_pair(scene)
     far_end = tear_one_end(mod, tgt)
