@@ -83,11 +83,13 @@ class OVERTONE_UL_layers(bpy.types.UIList):
                   active_property: str | None, index: int | None = 0,
                   flt_flag: int | None = 0) -> None:
         kind = str(getattr(item, "kind"))
+        if (getattr(item, "domain"), getattr(item, "data_type")) == ("CORNER", "FLOAT2"):
+            kind = "uv"  # Blender keeps UV maps as 2D values per face corner
         word, kind_icon = KIND_WORDS.get(kind, (kind, 'DOT'))
         row = layout.row(align=True)
         row.prop(item, "use", text="")
         row.label(text=str(getattr(item, "name")), icon=kind_icon)
-        if kind != "weight":
+        if kind not in ("weight", "uv"):
             word = f"{word}, {DOMAIN_WORDS.get(str(getattr(item, 'domain')), '')}".rstrip(", ")
         sub = row.row()
         sub.active = False

@@ -134,6 +134,20 @@ def test_a_pair_selected_and_its_layers_read(ui, scene):
     assert lists == {c.__name__ for c in registered(bpy.types.UIList)}
 
 
+def test_uv_maps_and_face_attributes_are_named_as_blender_names_them(ui, scene):
+    src, tgt = painted_pair(scene)
+    src.data.uv_layers.new(name="UVMap")
+    src.data.attributes.new("material_index", 'INT', 'FACE')
+    assert bpy.ops.overtone.refresh_signals() == {'FINISHED'}
+    main = draw_all()["OVERTONE_PT_main"]
+    words = main.texts()
+    # a UV map is a UV map to an artist, not "a vector per face corner"
+    assert words[words.index("UVMap") + 1] == "UV map"
+    assert words[words.index("material_index") + 1] == "whole number, per face"
+    icons = {b.get("text"): b.get("icon") for f, b in main.log if f == "label"}
+    assert icons["UVMap"] == 'GROUP_UVS'
+
+
 def test_the_main_flow_speaks_of_attributes_not_methods(ui, scene):
     painted_pair(scene)
     bpy.ops.overtone.refresh_signals()
