@@ -227,11 +227,11 @@ def check_pair(source: bpy.types.Object | None, target: bpy.types.Object | None,
     available = {s.name: s for s in bridge.list_layers(source, evaluated=request.as_shown)}
     missing = [name for name in request.signals if name not in available]
     if missing:
-        raise ValueError(f"source {source.name!r} has no signal {', '.join(map(repr, missing))}"
-                         f" (it has {', '.join(map(repr, available)) or 'none'})")
+        raise ValueError(f"source {source.name!r} has no attribute or vertex group "
+                         f"{', '.join(map(repr, missing))} (it has {', '.join(map(repr, available)) or 'none'})")
     if not request.signals and not request.detail:
         raise ValueError(f"nothing to carry: source {source.name!r} has no colour attributes or "
-                         "vertex groups (tick a signal)")
+                         "vertex groups (read its layers and tick one to carry)")
     return [available[name] for name in request.signals]
 
 
@@ -255,7 +255,7 @@ def _modifier_notes(source: bpy.types.Object, target: bpy.types.Object | None,
         changed = bridge.shape_modifiers(source)
         if changed:
             notes.append(f"source {source.name!r}: its modifiers ({', '.join(changed)}) change its shape, "
-                         "but Overtone read the mesh without them; tick As Shown to carry from what "
+                         "but Overtone read the mesh without them; tick Source With Modifiers to carry from what "
                          "the viewport shows")
     if target is not None and target != source:
         changed = bridge.shape_modifiers(target)
@@ -271,10 +271,10 @@ def _preview_layers(source: bpy.types.Object, request: PairRequest) -> list[brid
     names = request.signals or default_signals(source, evaluated=request.as_shown)
     missing = [n for n in names if n not in listed]
     if missing:
-        raise ValueError(f"source {source.name!r} has no signal {', '.join(map(repr, missing))}"
-                         f" (it has {', '.join(map(repr, listed)) or 'none'})")
+        raise ValueError(f"source {source.name!r} has no attribute or vertex group "
+                         f"{', '.join(map(repr, missing))} (it has {', '.join(map(repr, listed)) or 'none'})")
     if not names:
-        raise ValueError(f"source {source.name!r} has no signals to preview")
+        raise ValueError(f"source {source.name!r} has no attributes or vertex groups to preview")
     return [listed[n] for n in names]
 
 

@@ -290,7 +290,7 @@ def test_a_seventy_byte_name_in_the_panel_and_in_batch(mod, scene, tmp_path, cap
     path.write_text(json.dumps({"pairs": [{"source": "Painted", "target": "Plain", "signals": [typed]}]}))
     capsys.readouterr()
     assert mod.batch.main([str(path)]) == 2
-    assert f"source 'Painted' has no signal {typed!r}" in capsys.readouterr().err
+    assert f"source 'Painted' has no attribute or vertex group {typed!r}" in capsys.readouterr().err
 
 
 # ----------------------------------------------------------------------------- transforms and modifiers
@@ -404,7 +404,9 @@ def test_modifiers_the_run_does_not_see_are_warned_about(mod, scene, capsys):
     scene.overtone.basis = "POINTWISE"
     assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
     warnings = json.loads(scene.overtone.report_json)["warnings"]
-    assert any("source 'Painted'" in w and "(mirror)" in w and "As Shown" in w for w in warnings)
+    # the warning names the checkbox as the panel shows it
+    label = scene.overtone.bl_rna.properties["as_shown"].name
+    assert any("source 'Painted'" in w and "(mirror)" in w and f"tick {label}" in w for w in warnings)
     assert "Warning: Overtone:" in capsys.readouterr().out
     scene.overtone.as_shown = True          # asked for what is shown: nothing to warn about
     assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
