@@ -44,7 +44,7 @@ if TYPE_CHECKING:
 __all__ = ["PairRequest", "Plan", "BackgroundRun", "selected_pair", "pick_pair", "check_pair",
            "default_signals", "make_plan", "run_plan", "finish", "transfer_pair", "engine_settings",
            "outcome", "Outcome", "message_of", "ENGINE_NAMES", "CONFIDENCE_NAME", "DETAIL_NAME",
-           "PREVIEW_SUFFIX", "UNCERTAIN_BELOW", "WARN_SHARE", "FAIL_SHARE", "not_carried", "material_note"]
+           "PREVIEW_SUFFIX", "MODE_WORDS", "UNCERTAIN_BELOW", "WARN_SHARE", "FAIL_SHARE", "not_carried", "material_note"]
 
 PREVIEW_SUFFIX = "_carried"
 UNCERTAIN_BELOW = 0.5
@@ -529,16 +529,22 @@ def message_of(report: dict[str, Any]) -> tuple[set[str], str]:
     return ({'WARNING'} if warnings else {'INFO'}), text
 
 
+MODE_WORDS = {"aligned": "matched by position", "intrinsic": "matched by shape"}
+"""How a run's matching mode reads in the report."""
+
+
 def _summary(plan: Plan, report: dict[str, Any]) -> str:
     if plan.kind == "preview":
-        errors = ", ".join(f"{n} {v['source_error']:.3f}" for n, v in report.get("signals", {}).items())
-        return f"previewed on {plan.source!r} ({report.get('description', '')}): error {errors}"
+        count = len(report.get("signals", {}))
+        return (f"previewed {count} layer{'s' if count != 1 else ''} on {plan.source!r}, "
+                f"written beside them as <name>{PREVIEW_SUFFIX}")
     conf = report.get("mean_confidence")
     conf_text = f"{conf:.2f}" if isinstance(conf, float) else "?"
     what = "detail" if plan.kind == "detail" else f"{len(plan.inputs.signals)} layers"
     skipped = f"; not carried: {', '.join(name for name, _ in plan.not_carried)}" if plan.not_carried else ""
+    mode = MODE_WORDS.get(str(report.get("mode")), str(report.get("mode")))
     return (f"carried {what} from {plan.source!r} to {plan.target!r} "
-            f"({report.get('mode')}, mean confidence {conf_text}){skipped}")
+            f"({mode}, mean confidence {conf_text}){skipped}")
 
 
 # --------------------------------------------------------------------------- running

@@ -200,6 +200,12 @@ def test_after_a_carry_the_report_says_what_to_act_on(ui, scene):
     assert "Nothing carried yet" not in words
     assert "carried 3 layers from 'Painted' to 'Plain'" in joined
     assert "Matched by position" in joined
+    # why, in words: the share of the target on the source, no engine figures
+    near = report["correspondence"]["overlap"]["target_near_source"]
+    assert scene.overtone.report_reason == (
+        f"The meshes sit on top of each other ({near:.0%} of the target lies on the source): "
+        "each target vertex took what lies closest to it on the source.")
+    assert "(matched by position, mean confidence" in scene.overtone.report_text
     share = report["uncertain_share"]
     assert f"{ui.percent_words(share)} of vertices uncertain (confidence under " \
            f"{report['uncertain_below']:.2f})" in joined
@@ -234,6 +240,26 @@ def test_after_a_carry_the_report_says_what_to_act_on(ui, scene):
     assert f"Took {ui.duration_words(scene.overtone.report_seconds)}" in words
 
 
+def test_copies_placed_apart_are_told_about_ignore_placement(ui, scene):
+    src, tgt = painted_pair(scene)
+    tgt.location = (0.0, 6.0, 0.0)
+    assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
+    reason = scene.overtone.report_reason
+    assert reason.startswith("The meshes do not sit on top of each other (only 0% of the target lies on")
+    label = scene.overtone.bl_rna.properties["local_space"].name
+    assert f"{label} ticked" in reason and "edge length" not in reason and "intrinsic" not in reason
+    assert "(matched by shape, mean confidence" in scene.overtone.report_text
+    words = " ".join(draw_all()["OVERTONE_PT_report"].texts())
+    assert "Matched by shape" in words and label in words
+    scene.overtone.local_space = True   # ticked: matched in place, and no hint
+    assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
+    assert scene.overtone.report_reason.startswith("The meshes sit on top of each other (100% of")
+    scene.overtone.local_space, scene.overtone.match_mode = False, "INTRINSIC"
+    assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
+    assert scene.overtone.report_reason == ("Matched by shape, as chosen under Method "
+                                           "(0% of the target lies on the source).")
+
+
 def test_after_a_smoothed_carry_the_loss_per_layer_shows(ui, scene):
     painted_pair(scene)
     scene.overtone.basis = "LAPLACIAN"
@@ -249,7 +275,9 @@ def test_after_a_preview_and_a_detail_run(ui, scene):
     assert bpy.ops.overtone.preview_carry() == {'FINISHED'}
     report = draw_all()["OVERTONE_PT_report"]
     joined = " ".join(report.texts())
-    assert joined.startswith("previewed on 'Painted'")
+    assert joined.startswith("previewed 3 layers on 'Painted', written beside them as <name>_carried")
+    for word in ("products", "K=", "order", "error"):  # no method figures in the first line
+        assert word not in scene.overtone.report_text
     assert "Direct values arrive as they are." in joined
     assert "Lost by smoothing (on the source)" in report.texts()
     assert "report_confidence" not in {n for _, n in report.props()}  # nothing was matched
