@@ -141,6 +141,9 @@ class Plan:
     not_carried: tuple[tuple[str, str], ...] = ()
     """The source's layers Overtone cannot carry, with the reason (reported)."""
     notes: tuple[str, ...] = ()
+    """Warnings known before the run (modifiers that change the source's shape unseen)."""
+    remarks: tuple[str, ...] = ()
+    """Information known before the run (the target's own modifiers)."""
 
     @property
     def written_on(self) -> str:
@@ -248,8 +251,10 @@ def _cache_settings() -> tuple[str | None, int]:
 
 
 def _modifier_notes(source: bpy.types.Object, target: bpy.types.Object | None,
-                    request: PairRequest) -> tuple[str, ...]:
-    """Warnings for modifiers that change a mesh's shape the run does not see."""
+                    request: PairRequest) -> tuple[tuple[str, ...], tuple[str, ...]]:
+    """(warnings, remarks) on modifiers that change a mesh's shape the run does not see: a
+    warning for the source's (the values come from a shape the artist does not see), a
+    remark for the target's (results go on its mesh, under its modifiers, as they should)."""
     notes = []
     if not request.as_shown:
         changed = bridge.shape_modifiers(source)
@@ -257,12 +262,13 @@ def _modifier_notes(source: bpy.types.Object, target: bpy.types.Object | None,
             notes.append(f"source {source.name!r}: its modifiers ({', '.join(changed)}) change its shape, "
                          "but Overtone read the mesh without them; tick Source With Modifiers to carry from what "
                          "the viewport shows")
+    remarks = []
     if target is not None and target != source:
         changed = bridge.shape_modifiers(target)
         if changed:
-            notes.append(f"target {target.name!r}: its modifiers ({', '.join(changed)}) change its shape; "
-                         "Overtone matched and wrote its mesh before them")
-    return tuple(notes)
+            remarks.append(f"target {target.name!r}: its modifiers ({', '.join(changed)}) change its "
+                           "shape; Overtone matched and wrote its mesh before them")
+    return tuple(notes), tuple(remarks)
 
 
 def _preview_layers(source: bpy.types.Object, request: PairRequest) -> list[bridge.Layer]:
@@ -315,9 +321,9 @@ def make_plan(kind: str, source: bpy.types.Object | None, target: bpy.types.Obje
                           tuple(bridge.read_signal(source, s, evaluated=request.as_shown) for s in signals),
                           groups, request.settings, (source.name, (target or source).name), folder, limit)
     skipped = () if kind == "detail" else not_carried(source, request.as_shown)
-    notes = _modifier_notes(source, None if kind == "preview" else target, request)
+    notes, remarks = _modifier_notes(source, None if kind == "preview" else target, request)
     return Plan(kind, source.name, (target or source).name, request, inputs,
-                not_carried=skipped, notes=notes)
+                not_carried=skipped, notes=notes, remarks=remarks)
 
 
 def not_carried(source: bpy.types.Object, evaluated: bool) -> tuple[tuple[str, str], ...]:
@@ -481,7 +487,7 @@ def finish(plan: Plan, out: job.JobOutput) -> dict[str, Any]:
     report["written"] = written
     report["object"] = plan.written_on
     report["warnings"] = warnings
-    report["notes"] = _renamed_notes(written, asked)
+    report["notes"] = list(plan.remarks) + _renamed_notes(written, asked)
     if judged is not None:
         report["outcome"] = judged.level
         report["uncertain_vertices"] = int(judged.uncertain.sum())

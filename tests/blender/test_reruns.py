@@ -411,6 +411,16 @@ def test_modifiers_the_run_does_not_see_are_warned_about(mod, scene, capsys):
     scene.overtone.as_shown = True          # asked for what is shown: nothing to warn about
     assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
     assert json.loads(scene.overtone.report_json)["warnings"] == []
+    # the target's own modifiers (a Subdivision on most characters) are mentioned, not warned
+    # about: the results go on its mesh, under them, as they should
+    capsys.readouterr()
+    tgt.modifiers.new("smooth", 'SUBSURF')
+    assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
+    report = json.loads(scene.overtone.report_json)
+    assert report["warnings"] == []
+    assert any("target 'Plain'" in n and "(smooth)" in n for n in report["notes"])
+    out = capsys.readouterr().out
+    assert "Info: Overtone:" in out and "Warning: Overtone:" not in out and "(smooth)" in out
 
 
 # ----------------------------------------------------------------------------- honest outcomes
