@@ -186,6 +186,30 @@ def test_ui_and_batch_alternating_with_replace_off_then_on(mod, scene, tmp_path)
     np.testing.assert_allclose(read(mod, tgt, "head"), expected["head"].values, atol=1e-6)
 
 
+def test_a_second_source_refreshes_overtones_own_layers(mod, scene):
+    # confidence and uncertain vertices are Overtone's own: one of each on the target, whichever
+    # source wrote last, while the second source's colour goes beside the first one's
+    src, tgt = painted_pair(scene)
+    scene.overtone.write_anyway = True
+    assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
+    other = src.copy()
+    other.data = src.data.copy()
+    other.name = "Painted Again"
+    other.location = (0.0, 0.0, 5.0)     # elsewhere: a match by shape, with its own confidence
+    scene.collection.objects.link(other)
+    tgt.vertex_groups.new(name=mod.records.UNCERTAIN_NAME)  # an earlier mark, to be cleared or refreshed
+    select(other, tgt)
+    assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
+    report = json.loads(scene.overtone.report_json)
+    names = [s.name for s in mod.bridge.list_layers(tgt)]
+    assert names.count("overtone_confidence") == 1 and not [n for n in names if n.startswith("overtone_confidence_")]
+    assert report["written"]["overtone_confidence"] == "overtone_confidence"
+    assert not [n for n in names if n.startswith(mod.records.UNCERTAIN_NAME + "_")]
+    assert report["written"]["tint"] == "tint_ot1" and "tint" in names   # the first source's kept
+    confidence = read(mod, tgt, "overtone_confidence")[:, 1]   # stored (1, c, c, c)
+    assert float(confidence.mean()) == pytest.approx(report["mean_confidence"], abs=1e-5)
+
+
 def test_empty_target_groups_are_filled_not_landmarks(mod, scene):
     src, tgt = painted_pair(scene)
     mesh = src.data
