@@ -159,6 +159,8 @@ def store_report(settings: Any, report: dict[str, Any]) -> None:
     settings.report_seconds = float(timings.get("wall", timings.get("total", 0.0)))
     settings.report_cache = cache_words(report)
     settings.report_skipped = "\n".join(skipped_lines(report))
+    settings.report_warnings = "\n".join(str(w) for w in report.get("warnings", ()))
+    settings.report_notes = "\n".join(str(n) for n in report.get("notes", ()))
     settings.report_smoothed = str(report.get("basis", "pointwise")) != "pointwise"
     written = report.get("written", {})
     settings.report_written = len(written)
@@ -176,6 +178,8 @@ def store_error(settings: Any, message: str) -> None:
     settings.report_text = message
     settings.report_signals.clear()
     settings.report_skipped = ""
+    settings.report_warnings = ""
+    settings.report_notes = ""
     settings.report_cache = ""
     settings.report_json = ""
 

@@ -183,10 +183,15 @@ class OVERTONE_PT_report(_Sidebar):
         if not settings.report_text:
             layout.label(text="Nothing carried yet")
             return
-        _wrapped(layout, context, settings.report_text,
-                 icon='CHECKMARK' if settings.report_ok else 'ERROR')
+        fine = settings.report_ok and not settings.report_warnings
+        _wrapped(layout, context, settings.report_text, icon='CHECKMARK' if fine else 'ERROR')
         if not settings.report_ok:
             return
+        if settings.report_warnings:
+            box = layout.box()
+            box.label(text="Check", icon='ERROR')
+            for line in settings.report_warnings.splitlines():
+                _wrapped(box, context, line)
         if settings.report_mode:
             layout.label(text=settings.report_mode, icon='VIEWZOOM')
         _draw_certainty(layout, context, settings)
@@ -199,6 +204,11 @@ class OVERTONE_PT_report(_Sidebar):
             box.label(text="Not carried", icon='INFO')
             for line in settings.report_skipped.splitlines():
                 _wrapped(box, context, line)
+        if settings.report_notes:
+            notes = layout.column()
+            notes.active = False
+            for line in settings.report_notes.splitlines():
+                _wrapped(notes, context, line, icon='INFO')
         col = layout.column(align=True)
         col.label(text=f"Took {duration_words(settings.report_seconds)}", icon='TIME')
         if settings.report_cache:

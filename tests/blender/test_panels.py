@@ -260,6 +260,36 @@ def test_copies_placed_apart_are_told_about_ignore_placement(ui, scene):
                                            "(0% of the target lies on the source).")
 
 
+def test_warnings_and_notes_stay_in_the_panel(ui, scene):
+    # the status bar forgets a warning within seconds: the Last Run panel keeps it
+    src, tgt = painted_pair(scene)
+    src.modifiers.new("mirror", 'MIRROR')
+    tgt.data.color_attributes.new("tint", 'FLOAT_COLOR', 'POINT')   # the target's own "tint"
+    assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
+    report = json.loads(scene.overtone.report_json)
+    [warning] = report["warnings"]
+    [note] = [n for n in report["notes"] if "'tint'" in n]
+    drawn = draw_all()["OVERTONE_PT_report"]
+    lines, chars = drawn.texts(), ui.wrap_width(Context(region=None))
+    labels = [(b.get("text"), b.get("icon")) for f, b in drawn.log if f == "label"]
+    assert labels[0][1] == 'ERROR' and ("Check", 'ERROR') in labels
+    for text in (warning, note):
+        wrapped = textwrap.wrap(text, chars)
+        start = lines.index(wrapped[0])
+        assert lines[start:start + len(wrapped)] == wrapped
+    # a clean run: no box, a tick
+    src.modifiers.clear()
+    assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
+    drawn = draw_all()["OVERTONE_PT_report"]
+    assert "Check" not in drawn.texts()
+    assert [b.get("icon") for f, b in drawn.log if f == "label"][0] == 'CHECKMARK'
+    # an error clears what the last run left
+    make_grid("Extra").select_set(True)
+    with pytest.raises(RuntimeError):
+        bpy.ops.overtone.transfer_attributes()
+    assert scene.overtone.report_warnings == scene.overtone.report_notes == ""
+
+
 def test_after_a_smoothed_carry_the_loss_per_layer_shows(ui, scene):
     painted_pair(scene)
     scene.overtone.basis = "LAPLACIAN"
