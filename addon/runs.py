@@ -44,7 +44,8 @@ if TYPE_CHECKING:
 __all__ = ["PairRequest", "Plan", "BackgroundRun", "selected_pair", "pick_pair", "check_pair",
            "default_signals", "make_plan", "run_plan", "finish", "transfer_pair", "engine_settings",
            "outcome", "Outcome", "message_of", "ENGINE_NAMES", "CONFIDENCE_NAME", "DETAIL_NAME",
-           "PREVIEW_SUFFIX", "MODE_WORDS", "UNCERTAIN_BELOW", "WARN_SHARE", "FAIL_SHARE", "not_carried", "material_note"]
+           "PREVIEW_SUFFIX", "MODE_WORDS", "COPY_TOLERANCE", "is_placed_copy", "copy_note",
+           "UNCERTAIN_BELOW", "WARN_SHARE", "FAIL_SHARE", "not_carried", "material_note"]
 
 PREVIEW_SUFFIX = "_carried"
 UNCERTAIN_BELOW = 0.5
@@ -144,6 +145,9 @@ class Plan:
     """Warnings known before the run (modifiers that change the source's shape unseen)."""
     remarks: tuple[str, ...] = ()
     """Information known before the run (the target's own modifiers)."""
+    placed_copy: bool = False
+    """The target has the source's own size and shape where each object sits
+    (:func:`is_placed_copy`): if it is matched by shape, the artist is warned."""
 
     @property
     def written_on(self) -> str:
@@ -271,6 +275,27 @@ def _modifier_notes(source: bpy.types.Object, target: bpy.types.Object | None,
     return tuple(notes), tuple(remarks)
 
 
+COPY_TOLERANCE = 0.02
+"""How close (a share of the source's bounding-box diagonal) the two meshes'
+own bounding boxes must be for the target to count as a placed copy."""
+
+
+def is_placed_copy(source_local: NDArray[np.floating[Any]], target_local: NDArray[np.floating[Any]]) -> bool:
+    """Whether two meshes, as stored (object space), fill the same box: copies of
+    one asset, or one asset re-meshed, whatever each object's place, turn and scale.
+
+    A shape match cannot tell such a copy from its mirror image or flipped self
+    when the asset is nearly symmetric (a body, a cylinder): the map then comes
+    back sure of itself and wrong, which matching in place avoids."""
+    if not len(source_local) or not len(target_local):
+        return False
+    lo_s, hi_s = source_local.min(axis=0), source_local.max(axis=0)
+    lo_t, hi_t = target_local.min(axis=0), target_local.max(axis=0)
+    diagonal = float(np.linalg.norm(hi_s - lo_s))
+    apart = max(float(np.abs(lo_s - lo_t).max()), float(np.abs(hi_s - hi_t).max()))
+    return diagonal > 0.0 and apart <= COPY_TOLERANCE * diagonal
+
+
 def _preview_layers(source: bpy.types.Object, request: PairRequest) -> list[bridge.Layer]:
     _check_object("source", source)
     listed = {s.name: s for s in bridge.list_layers(source, evaluated=request.as_shown)}
@@ -322,8 +347,11 @@ def make_plan(kind: str, source: bpy.types.Object | None, target: bpy.types.Obje
                           groups, request.settings, (source.name, (target or source).name), folder, limit)
     skipped = () if kind == "detail" else not_carried(source, request.as_shown)
     notes, remarks = _modifier_notes(source, None if kind == "preview" else target, request)
+    copy = (kind != "preview" and not local and target is not None
+            and is_placed_copy(bridge.read_mesh(source, evaluated=request.as_shown, local=True).vertices,
+                            bridge.read_mesh(target, local=True).vertices))
     return Plan(kind, source.name, (target or source).name, request, inputs,
-                not_carried=skipped, notes=notes, remarks=remarks)
+                not_carried=skipped, notes=notes, remarks=remarks, placed_copy=copy)
 
 
 def not_carried(source: bpy.types.Object, evaluated: bool) -> tuple[tuple[str, str], ...]:
@@ -464,7 +492,7 @@ def finish(plan: Plan, out: job.JobOutput) -> dict[str, Any]:
         result does not fit, or the match failed (nothing is written then).
     """
     obj = _check_unchanged(plan)
-    warnings = list(plan.notes) + handle_note(out.report)
+    warnings = list(plan.notes) + handle_note(out.report) + copy_note(plan, out.report)
     outputs = _outputs(plan, out)
     judged = None
     if plan.kind != "preview" and out.confidence is not None:
@@ -511,6 +539,15 @@ def handle_note(report: dict[str, Any]) -> list[str]:
     return [f"the source has {source} and the target {target} handles (holes through the surface, as "
             "in a ring): matched by shape, such meshes cannot correspond everywhere, whatever the "
             "confidence says; check the result"]
+
+
+def copy_note(plan: Plan, report: dict[str, Any]) -> list[str]:
+    """A warning when a placed copy (:func:`is_placed_copy`) was matched by shape on its own."""
+    if not plan.placed_copy or report.get("mode") != "intrinsic" or plan.request.settings.match != "auto":
+        return []
+    return [f"{plan.target!r} has the size and shape of {plan.source!r} where each object sits, as a "
+            "copy placed elsewhere has: matched by shape, such a copy can come out mirrored or "
+            "upside down however sure the match says it is; tick Ignore Placement to match them in place"]
 
 
 def material_note(obj: bpy.types.Object, written: dict[str, str], out: job.JobOutput) -> str:

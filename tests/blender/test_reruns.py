@@ -422,6 +422,60 @@ def test_ignore_placement_matches_copies_of_one_asset(mod, scene):
     np.testing.assert_allclose(co.reshape(-1, 3), pair.detail(strength=1.0, size=0.05), atol=2e-5)
 
 
+def test_a_copy_placed_apart_and_matched_by_shape_is_warned_about(mod, scene):
+    """A copy of a nearly symmetric asset (a re-meshed capped cylinder: the same from
+    either end) placed elsewhere: matched by shape the map can come back upside down
+    although it is sure of itself, so the artist is told to match the copy in place."""
+    bpy.ops.mesh.primitive_cylinder_add(vertices=16, radius=0.5, depth=3.0)
+    src = bpy.context.active_object
+    src.name = "Post"
+    bpy.ops.object.mode_set(mode='EDIT')
+    bpy.ops.mesh.subdivide(number_cuts=6)
+    bpy.ops.object.mode_set(mode='OBJECT')
+    height = np.array([v.co.z for v in src.data.vertices]) / 3.0 + 0.5       # 0 at the bottom, 1 at the top
+    rgba = np.column_stack([height, height, height, np.ones_like(height)]).astype(np.float32)
+    src.data.color_attributes.new("height", 'FLOAT_COLOR', 'POINT').data.foreach_set("color", rgba.ravel())
+    tgt = src.copy()
+    tgt.data = src.data.copy()
+    tgt.name = "Post Copy"
+    scene.collection.objects.link(tgt)
+    tgt.data.color_attributes.remove(tgt.data.color_attributes["height"])
+    select(tgt, tgt)
+    bpy.ops.object.mode_set(mode='EDIT')
+    bpy.ops.mesh.quads_convert_to_tris()                                     # another triangulation
+    bpy.ops.object.mode_set(mode='OBJECT')
+    tgt.location = (3.0, 0.0, 0.0)
+    select(src, tgt)
+    assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
+    report = json.loads(scene.overtone.report_json)
+    assert report["mode"] == "intrinsic"
+    assert any("'Post Copy' has the size and shape of 'Post'" in w and "Ignore Placement" in w
+               for w in report["warnings"])
+    # matched in place, as the warning says: each vertex gets its own height back
+    scene.overtone.local_space = True
+    assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
+    report = json.loads(scene.overtone.report_json)
+    assert report["mode"] == "aligned" and not [w for w in report["warnings"] if "Ignore Placement" in w]
+    truth = np.array([v.co.z for v in tgt.data.vertices]) / 3.0 + 0.5
+    np.testing.assert_allclose(read(mod, tgt, "height")[:, 0], truth, atol=1e-5)
+
+
+def test_a_re_posed_character_elsewhere_is_not_called_a_copy(mod, scene):
+    demo = engine_module("jobs.demo")
+    s, t = demo.creature(30, 16), demo.creature(26, 18, curl=1.4, twist_offset=True)
+    src, tgt = make_mesh("Straight", s.vertices, s.faces), make_mesh("Bent", t.vertices, t.faces)
+    src.data.color_attributes.new("tint", 'FLOAT_COLOR', 'POINT')
+    tgt.location = (0.0, 4.0, 0.0)
+    select(src, tgt)
+    assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
+    report = json.loads(scene.overtone.report_json)
+    assert report["mode"] == "intrinsic"
+    assert not [w for w in report["warnings"] if "Ignore Placement" in w]
+    # the rule itself: boxes within 2% of the diagonal, in object space
+    box = np.array([[0.0, 0.0, 0.0], [1.0, 2.0, 3.0]])
+    assert mod.runs.is_placed_copy(box, box * 1.005) and not mod.runs.is_placed_copy(box, box * 1.05)
+
+
 def test_modifiers_the_run_does_not_see_are_warned_about(mod, scene, capsys):
     src, tgt = painted_pair(scene)
     src.modifiers.new("mirror", 'MIRROR')
