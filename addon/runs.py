@@ -545,9 +545,10 @@ def copy_note(plan: Plan, report: dict[str, Any]) -> list[str]:
     """A warning when a placed copy (:func:`is_placed_copy`) was matched by shape on its own."""
     if not plan.placed_copy or report.get("mode") != "intrinsic" or plan.request.settings.match != "auto":
         return []
-    return [f"{plan.target!r} has the size and shape of {plan.source!r} where each object sits, as a "
-            "copy placed elsewhere has: matched by shape, such a copy can come out mirrored or "
-            "upside down however sure the match says it is; tick Ignore Placement to match them in place"]
+    return [f"{plan.target!r} looks like a copy of {plan.source!r} placed elsewhere (the same size "
+            "and shape before each object's move, turn and scale): matched by shape, such a copy can "
+            "come out mirrored or upside down however sure the match says it is; tick Ignore "
+            "Placement to match them in place"]
 
 
 def material_note(obj: bpy.types.Object, written: dict[str, str], out: job.JobOutput) -> str:

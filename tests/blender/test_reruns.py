@@ -449,7 +449,7 @@ def test_a_copy_placed_apart_and_matched_by_shape_is_warned_about(mod, scene):
     assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
     report = json.loads(scene.overtone.report_json)
     assert report["mode"] == "intrinsic"
-    assert any("'Post Copy' has the size and shape of 'Post'" in w and "Ignore Placement" in w
+    assert any("'Post Copy' looks like a copy of 'Post' placed elsewhere" in w and "Ignore Placement" in w
                for w in report["warnings"])
     # matched in place, as the warning says: each vertex gets its own height back
     scene.overtone.local_space = True
