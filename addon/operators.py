@@ -98,10 +98,12 @@ def cache_words(report: dict[str, Any]) -> str:
                     for where in _WHERE if where in found)
 
 
-def match_words(report: dict[str, Any], placement_ignored: bool = False) -> str:
+def match_words(report: dict[str, Any], hint: bool = True) -> str:
     """Why the meshes were matched the way they were, in words (empty when unknown).
 
-    Read from the report's overlap: the share of each mesh lying on the other."""
+    Read from the report's overlap: the share of each mesh lying on the other.
+    With ``hint``, a shape match automatically chosen ends with a pointer to
+    Ignore Placement."""
     corr = report.get("correspondence") or {}
     overlap = corr.get("overlap") or {}
     mode = str(report.get("mode", corr.get("mode", "")))
@@ -114,10 +116,9 @@ def match_words(report: dict[str, Any], placement_ignored: bool = False) -> str:
     if mode == "aligned":
         return (f"The meshes sit on top of each other ({lies}): each target vertex took what "
                 "lies closest to it on the source.")
-    hint = "" if placement_ignored else (" Copies of one asset placed apart match best with "
-                                         "Ignore Placement ticked.")
+    pointer = " Copies of one asset placed apart match best with Ignore Placement ticked." if hint else ""
     return (f"The meshes do not sit on top of each other (only {lies}): they were matched by "
-            f"the shape of their surfaces, wherever each one is.{hint}")
+            f"the shape of their surfaces, wherever each one is.{pointer}")
 
 
 def skipped_lines(report: dict[str, Any]) -> list[str]:
@@ -141,7 +142,8 @@ def store_report(settings: Any, report: dict[str, Any]) -> None:
     settings.report_ok = True
     settings.report_text = str(report.get("summary", "done"))
     settings.report_mode = "" if preview else MODE_WORDS.get(str(report.get("mode")), "").capitalize()
-    reason = match_words(report, bool(getattr(settings, "local_space", False)))
+    warned = any("Ignore Placement" in str(w) for w in report.get("warnings", ()))  # said there already
+    reason = match_words(report, hint=not (warned or getattr(settings, "local_space", False)))
     if preview:
         shown = {key.lower(): label for key, label, _ in properties.BASES}.get(
             str(report.get("basis")), str(report.get("description", "smoothing")))

@@ -246,11 +246,23 @@ def test_copies_placed_apart_are_told_about_ignore_placement(ui, scene):
     assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
     reason = scene.overtone.report_reason
     assert reason.startswith("The meshes do not sit on top of each other (only 0% of the target lies on")
-    label = scene.overtone.bl_rna.properties["local_space"].name
-    assert f"{label} ticked" in reason and "edge length" not in reason and "intrinsic" not in reason
+    assert "edge length" not in reason and "intrinsic" not in reason
     assert "(matched by shape, mean confidence" in scene.overtone.report_text
+    # the same creature re-meshed is a copy placed apart: the warning says what to tick, once
+    label = scene.overtone.bl_rna.properties["local_space"].name
     words = " ".join(draw_all()["OVERTONE_PT_report"].texts())
-    assert "Matched by shape" in words and label in words
+    assert "Matched by shape" in words and words.count(label) == 1
+    assert label in scene.overtone.report_warnings and label not in reason
+    # not a copy (its own mesh is larger): no warning, the reason points to the option
+    positions = np.empty(len(tgt.data.vertices) * 3, np.float32)
+    tgt.data.attributes["position"].data.foreach_get("vector", positions)
+    tgt.data.attributes["position"].data.foreach_set("vector", positions * 1.2)
+    tgt.data.update()
+    assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
+    assert label not in scene.overtone.report_warnings
+    assert scene.overtone.report_reason.endswith(f"Copies of one asset placed apart match best with {label} ticked.")
+    tgt.data.attributes["position"].data.foreach_set("vector", positions)
+    tgt.data.update()
     scene.overtone.local_space = True   # ticked: matched in place, and no hint
     assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
     assert scene.overtone.report_reason.startswith("The meshes sit on top of each other (100% of")
