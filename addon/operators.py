@@ -27,8 +27,8 @@ from . import bridge, preferences, properties
 from .job import forget_pairs
 from .engine import Cache
 from .records import UNCERTAIN_NAME
-from .runs import (BackgroundRun, PairRequest, Plan, default_signals, make_plan, message_of, pick_pair,
-                   run_plan, selected_pair)
+from .runs import (MODE_WORDS, BackgroundRun, PairRequest, Plan, default_signals, make_plan, message_of,
+                   pick_pair, run_plan, selected_pair)
 from .worker import stop_shared_worker
 
 if TYPE_CHECKING:
@@ -38,7 +38,7 @@ __all__ = ["OVERTONE_OT_transfer_attributes", "OVERTONE_OT_transfer_detail",
            "OVERTONE_OT_preview_carry", "OVERTONE_OT_refresh_signals", "OVERTONE_OT_clear_cache",
            "OVERTONE_OT_select_uncertain",
            "plan_from_context", "store_report", "store_error", "step_run", "cancel_run",
-           "runs_modal", "cache_words", "skipped_lines", "PREVIEW_BASIS",
+           "runs_modal", "cache_words", "skipped_lines", "match_words", "PREVIEW_BASIS",
            "register", "unregister"]
 
 Reporter = Callable[[set[str], str], Any]
@@ -48,7 +48,6 @@ PREVIEW_BASIS = "ORTHOPRODUCTS"
 """What Preview on Source shows when values are carried directly (the default):
 direct values arrive as they are, so the preview shows what smoothing would keep."""
 
-_MODE_WORDS = {"aligned": "Matched by position", "intrinsic": "Matched by shape"}
 _WHERE = {"memory": "kept in memory", "disk": "read from the cache folder", "computed": "computed now"}
 
 
@@ -99,6 +98,29 @@ def cache_words(report: dict[str, Any]) -> str:
                     for where in _WHERE if where in found)
 
 
+def match_words(report: dict[str, Any], hint: bool = True) -> str:
+    """Why the meshes were matched the way they were, in words (empty when unknown).
+
+    Read from the report's overlap: the share of each mesh lying on the other.
+    With ``hint``, a shape match automatically chosen ends with a pointer to
+    Ignore Placement."""
+    corr = report.get("correspondence") or {}
+    overlap = corr.get("overlap") or {}
+    mode = str(report.get("mode", corr.get("mode", "")))
+    near = overlap.get("target_near_source")
+    if mode not in MODE_WORDS or not isinstance(near, (int, float)):
+        return ""
+    lies = f"{near:.0%} of the target lies on the source"
+    if str(report.get("settings", {}).get("match", "auto")) != "auto":
+        return f"{MODE_WORDS[mode].capitalize()}, as chosen under Method ({lies})."
+    if mode == "aligned":
+        return (f"The meshes sit on top of each other ({lies}): each target vertex took what "
+                "lies closest to it on the source.")
+    pointer = " Copies of one asset placed apart match best with Ignore Placement ticked." if hint else ""
+    return (f"The meshes do not sit on top of each other (only {lies}): they were matched by "
+            f"the shape of their surfaces, wherever each one is.{pointer}")
+
+
 def skipped_lines(report: dict[str, Any]) -> list[str]:
     """What was not carried and why, one line each."""
     lines = []
@@ -119,8 +141,9 @@ def store_report(settings: Any, report: dict[str, Any]) -> None:
     preview = "description" in report
     settings.report_ok = True
     settings.report_text = str(report.get("summary", "done"))
-    settings.report_mode = "" if preview else _MODE_WORDS.get(str(report.get("mode")), "")
-    reason = str(report.get("reason") or "")
+    settings.report_mode = "" if preview else MODE_WORDS.get(str(report.get("mode")), "").capitalize()
+    warned = any("Ignore Placement" in str(w) for w in report.get("warnings", ()))  # said there already
+    reason = match_words(report, hint=not (warned or getattr(settings, "local_space", False)))
     if preview:
         shown = {key.lower(): label for key, label, _ in properties.BASES}.get(
             str(report.get("basis")), str(report.get("description", "smoothing")))
@@ -138,6 +161,8 @@ def store_report(settings: Any, report: dict[str, Any]) -> None:
     settings.report_seconds = float(timings.get("wall", timings.get("total", 0.0)))
     settings.report_cache = cache_words(report)
     settings.report_skipped = "\n".join(skipped_lines(report))
+    settings.report_warnings = "\n".join(str(w) for w in report.get("warnings", ()))
+    settings.report_notes = "\n".join(str(n) for n in report.get("notes", ()))
     settings.report_smoothed = str(report.get("basis", "pointwise")) != "pointwise"
     written = report.get("written", {})
     settings.report_written = len(written)
@@ -155,6 +180,8 @@ def store_error(settings: Any, message: str) -> None:
     settings.report_text = message
     settings.report_signals.clear()
     settings.report_skipped = ""
+    settings.report_warnings = ""
+    settings.report_notes = ""
     settings.report_cache = ""
     settings.report_json = ""
 

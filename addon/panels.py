@@ -83,11 +83,13 @@ class OVERTONE_UL_layers(bpy.types.UIList):
                   active_property: str | None, index: int | None = 0,
                   flt_flag: int | None = 0) -> None:
         kind = str(getattr(item, "kind"))
+        if (getattr(item, "domain"), getattr(item, "data_type")) == ("CORNER", "FLOAT2"):
+            kind = "uv"  # Blender keeps UV maps as 2D values per face corner
         word, kind_icon = KIND_WORDS.get(kind, (kind, 'DOT'))
         row = layout.row(align=True)
         row.prop(item, "use", text="")
         row.label(text=str(getattr(item, "name")), icon=kind_icon)
-        if kind != "weight":
+        if kind not in ("weight", "uv"):
             word = f"{word}, {DOMAIN_WORDS.get(str(getattr(item, 'domain')), '')}".rstrip(", ")
         sub = row.row()
         sub.active = False
@@ -181,10 +183,15 @@ class OVERTONE_PT_report(_Sidebar):
         if not settings.report_text:
             layout.label(text="Nothing carried yet")
             return
-        _wrapped(layout, context, settings.report_text,
-                 icon='CHECKMARK' if settings.report_ok else 'ERROR')
+        fine = settings.report_ok and not settings.report_warnings
+        _wrapped(layout, context, settings.report_text, icon='CHECKMARK' if fine else 'ERROR')
         if not settings.report_ok:
             return
+        if settings.report_warnings:
+            box = layout.box()
+            box.label(text="Check", icon='ERROR')
+            for line in settings.report_warnings.splitlines():
+                _wrapped(box, context, line)
         if settings.report_mode:
             layout.label(text=settings.report_mode, icon='VIEWZOOM')
         _draw_certainty(layout, context, settings)
@@ -197,6 +204,11 @@ class OVERTONE_PT_report(_Sidebar):
             box.label(text="Not carried", icon='INFO')
             for line in settings.report_skipped.splitlines():
                 _wrapped(box, context, line)
+        if settings.report_notes:
+            notes = layout.column()
+            notes.active = False
+            for line in settings.report_notes.splitlines():
+                _wrapped(notes, context, line, icon='INFO')
         col = layout.column(align=True)
         col.label(text=f"Took {duration_words(settings.report_seconds)}", icon='TIME')
         if settings.report_cache:

@@ -118,6 +118,11 @@ class OvertoneSettings(bpy.types.PropertyGroup):
         description="Confidence under which a vertex counts as uncertain (negative: not reported)")
     report_skipped: StringProperty(  # type: ignore[valid-type]
         name="Skipped", description="What was not carried and why, one entry per line")
+    report_warnings: StringProperty(  # type: ignore[valid-type]
+        name="Check", description="What to check in the result, one warning per line")
+    report_notes: StringProperty(  # type: ignore[valid-type]
+        name="Notes", description="Worth knowing about the run (a result written under another name), "
+                                  "one per line")
     report_smoothed: BoolProperty(  # type: ignore[valid-type]
         name="Smoothed", default=False,
         description="The values were smoothed, so the loss per layer means something")

@@ -44,7 +44,8 @@ if TYPE_CHECKING:
 __all__ = ["PairRequest", "Plan", "BackgroundRun", "selected_pair", "pick_pair", "check_pair",
            "default_signals", "make_plan", "run_plan", "finish", "transfer_pair", "engine_settings",
            "outcome", "Outcome", "message_of", "ENGINE_NAMES", "CONFIDENCE_NAME", "DETAIL_NAME",
-           "PREVIEW_SUFFIX", "UNCERTAIN_BELOW", "WARN_SHARE", "FAIL_SHARE", "not_carried", "material_note"]
+           "PREVIEW_SUFFIX", "MODE_WORDS", "COPY_TOLERANCE", "is_placed_copy", "copy_note",
+           "UNCERTAIN_BELOW", "WARN_SHARE", "FAIL_SHARE", "not_carried", "material_note"]
 
 PREVIEW_SUFFIX = "_carried"
 UNCERTAIN_BELOW = 0.5
@@ -141,6 +142,12 @@ class Plan:
     not_carried: tuple[tuple[str, str], ...] = ()
     """The source's layers Overtone cannot carry, with the reason (reported)."""
     notes: tuple[str, ...] = ()
+    """Warnings known before the run (modifiers that change the source's shape unseen)."""
+    remarks: tuple[str, ...] = ()
+    """Information known before the run (the target's own modifiers)."""
+    placed_copy: bool = False
+    """The target has the source's own size and shape where each object sits
+    (:func:`is_placed_copy`): if it is matched by shape, the artist is warned."""
 
     @property
     def written_on(self) -> str:
@@ -227,11 +234,11 @@ def check_pair(source: bpy.types.Object | None, target: bpy.types.Object | None,
     available = {s.name: s for s in bridge.list_layers(source, evaluated=request.as_shown)}
     missing = [name for name in request.signals if name not in available]
     if missing:
-        raise ValueError(f"source {source.name!r} has no signal {', '.join(map(repr, missing))}"
-                         f" (it has {', '.join(map(repr, available)) or 'none'})")
+        raise ValueError(f"source {source.name!r} has no attribute or vertex group "
+                         f"{', '.join(map(repr, missing))} (it has {', '.join(map(repr, available)) or 'none'})")
     if not request.signals and not request.detail:
         raise ValueError(f"nothing to carry: source {source.name!r} has no colour attributes or "
-                         "vertex groups (tick a signal)")
+                         "vertex groups (read its layers and tick one to carry)")
     return [available[name] for name in request.signals]
 
 
@@ -248,21 +255,45 @@ def _cache_settings() -> tuple[str | None, int]:
 
 
 def _modifier_notes(source: bpy.types.Object, target: bpy.types.Object | None,
-                    request: PairRequest) -> tuple[str, ...]:
-    """Warnings for modifiers that change a mesh's shape the run does not see."""
+                    request: PairRequest) -> tuple[tuple[str, ...], tuple[str, ...]]:
+    """(warnings, remarks) on modifiers that change a mesh's shape the run does not see: a
+    warning for the source's (the values come from a shape the artist does not see), a
+    remark for the target's (results go on its mesh, under its modifiers, as they should)."""
     notes = []
     if not request.as_shown:
         changed = bridge.shape_modifiers(source)
         if changed:
             notes.append(f"source {source.name!r}: its modifiers ({', '.join(changed)}) change its shape, "
-                         "but Overtone read the mesh without them; tick As Shown to carry from what "
+                         "but Overtone read the mesh without them; tick Source With Modifiers to carry from what "
                          "the viewport shows")
+    remarks = []
     if target is not None and target != source:
         changed = bridge.shape_modifiers(target)
         if changed:
-            notes.append(f"target {target.name!r}: its modifiers ({', '.join(changed)}) change its shape; "
-                         "Overtone matched and wrote its mesh before them")
-    return tuple(notes)
+            remarks.append(f"target {target.name!r}: its modifiers ({', '.join(changed)}) change its "
+                           "shape; Overtone matched and wrote its mesh before them")
+    return tuple(notes), tuple(remarks)
+
+
+COPY_TOLERANCE = 0.02
+"""How close (a share of the source's bounding-box diagonal) the two meshes'
+own bounding boxes must be for the target to count as a placed copy."""
+
+
+def is_placed_copy(source_local: NDArray[np.floating[Any]], target_local: NDArray[np.floating[Any]]) -> bool:
+    """Whether two meshes, as stored (object space), fill the same box: copies of
+    one asset, or one asset re-meshed, whatever each object's place, turn and scale.
+
+    A shape match cannot tell such a copy from its mirror image or flipped self
+    when the asset is nearly symmetric (a body, a cylinder): the map then comes
+    back sure of itself and wrong, which matching in place avoids."""
+    if not len(source_local) or not len(target_local):
+        return False
+    lo_s, hi_s = source_local.min(axis=0), source_local.max(axis=0)
+    lo_t, hi_t = target_local.min(axis=0), target_local.max(axis=0)
+    diagonal = float(np.linalg.norm(hi_s - lo_s))
+    apart = max(float(np.abs(lo_s - lo_t).max()), float(np.abs(hi_s - hi_t).max()))
+    return diagonal > 0.0 and apart <= COPY_TOLERANCE * diagonal
 
 
 def _preview_layers(source: bpy.types.Object, request: PairRequest) -> list[bridge.Layer]:
@@ -271,10 +302,10 @@ def _preview_layers(source: bpy.types.Object, request: PairRequest) -> list[brid
     names = request.signals or default_signals(source, evaluated=request.as_shown)
     missing = [n for n in names if n not in listed]
     if missing:
-        raise ValueError(f"source {source.name!r} has no signal {', '.join(map(repr, missing))}"
-                         f" (it has {', '.join(map(repr, listed)) or 'none'})")
+        raise ValueError(f"source {source.name!r} has no attribute or vertex group "
+                         f"{', '.join(map(repr, missing))} (it has {', '.join(map(repr, listed)) or 'none'})")
     if not names:
-        raise ValueError(f"source {source.name!r} has no signals to preview")
+        raise ValueError(f"source {source.name!r} has no attributes or vertex groups to preview")
     return [listed[n] for n in names]
 
 
@@ -315,9 +346,12 @@ def make_plan(kind: str, source: bpy.types.Object | None, target: bpy.types.Obje
                           tuple(bridge.read_signal(source, s, evaluated=request.as_shown) for s in signals),
                           groups, request.settings, (source.name, (target or source).name), folder, limit)
     skipped = () if kind == "detail" else not_carried(source, request.as_shown)
-    notes = _modifier_notes(source, None if kind == "preview" else target, request)
+    notes, remarks = _modifier_notes(source, None if kind == "preview" else target, request)
+    copy = (kind != "preview" and not local and target is not None
+            and is_placed_copy(bridge.read_mesh(source, evaluated=request.as_shown, local=True).vertices,
+                            bridge.read_mesh(target, local=True).vertices))
     return Plan(kind, source.name, (target or source).name, request, inputs,
-                not_carried=skipped, notes=notes)
+                not_carried=skipped, notes=notes, remarks=remarks, placed_copy=copy)
 
 
 def not_carried(source: bpy.types.Object, evaluated: bool) -> tuple[tuple[str, str], ...]:
@@ -458,7 +492,7 @@ def finish(plan: Plan, out: job.JobOutput) -> dict[str, Any]:
         result does not fit, or the match failed (nothing is written then).
     """
     obj = _check_unchanged(plan)
-    warnings = list(plan.notes) + handle_note(out.report)
+    warnings = list(plan.notes) + handle_note(out.report) + copy_note(plan, out.report)
     outputs = _outputs(plan, out)
     judged = None
     if plan.kind != "preview" and out.confidence is not None:
@@ -481,7 +515,7 @@ def finish(plan: Plan, out: job.JobOutput) -> dict[str, Any]:
     report["written"] = written
     report["object"] = plan.written_on
     report["warnings"] = warnings
-    report["notes"] = _renamed_notes(written, asked)
+    report["notes"] = list(plan.remarks) + _renamed_notes(written, asked)
     if judged is not None:
         report["outcome"] = judged.level
         report["uncertain_vertices"] = int(judged.uncertain.sum())
@@ -507,6 +541,16 @@ def handle_note(report: dict[str, Any]) -> list[str]:
             "confidence says; check the result"]
 
 
+def copy_note(plan: Plan, report: dict[str, Any]) -> list[str]:
+    """A warning when a placed copy (:func:`is_placed_copy`) was matched by shape on its own."""
+    if not plan.placed_copy or report.get("mode") != "intrinsic" or plan.request.settings.match != "auto":
+        return []
+    return [f"{plan.target!r} looks like a copy of {plan.source!r} placed elsewhere (the same size "
+            "and shape before each object's move, turn and scale): matched by shape, such a copy can "
+            "come out mirrored or upside down however sure the match says it is; tick Ignore "
+            "Placement to match them in place"]
+
+
 def material_note(obj: bpy.types.Object, written: dict[str, str], out: job.JobOutput) -> str:
     """A warning when carried material indices name slots the target does not have."""
     if written.get("material_index") != "material_index" or "material_index" not in out.values:
@@ -529,16 +573,22 @@ def message_of(report: dict[str, Any]) -> tuple[set[str], str]:
     return ({'WARNING'} if warnings else {'INFO'}), text
 
 
+MODE_WORDS = {"aligned": "matched by position", "intrinsic": "matched by shape"}
+"""How a run's matching mode reads in the report."""
+
+
 def _summary(plan: Plan, report: dict[str, Any]) -> str:
     if plan.kind == "preview":
-        errors = ", ".join(f"{n} {v['source_error']:.3f}" for n, v in report.get("signals", {}).items())
-        return f"previewed on {plan.source!r} ({report.get('description', '')}): error {errors}"
+        count = len(report.get("signals", {}))
+        return (f"previewed {count} layer{'s' if count != 1 else ''} on {plan.source!r}, "
+                f"written beside them as <name>{PREVIEW_SUFFIX}")
     conf = report.get("mean_confidence")
     conf_text = f"{conf:.2f}" if isinstance(conf, float) else "?"
     what = "detail" if plan.kind == "detail" else f"{len(plan.inputs.signals)} layers"
     skipped = f"; not carried: {', '.join(name for name, _ in plan.not_carried)}" if plan.not_carried else ""
+    mode = MODE_WORDS.get(str(report.get("mode")), str(report.get("mode")))
     return (f"carried {what} from {plan.source!r} to {plan.target!r} "
-            f"({report.get('mode')}, mean confidence {conf_text}){skipped}")
+            f"({mode}, mean confidence {conf_text}){skipped}")
 
 
 # --------------------------------------------------------------------------- running

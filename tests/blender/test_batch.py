@@ -82,7 +82,7 @@ def test_missing_job_file(batch, tmp_path, capsys):
     ({"source": "Nope", "target": "LOD1"}, "pair 0: source object 'Nope' not found"),
     ({"source": "Scan", "target": "Camera"}, r"pair 0: target 'Camera' is not a mesh \(type CAMERA\)"),
     ({"source": "Scan", "target": "LOD1", "signals": ["AO", "dirt"]},
-     "pair 0: source 'Scan' has no signal 'dirt' \\(it has 'AO', 'arm'\\)"),
+     "pair 0: source 'Scan' has no attribute or vertex group 'dirt' \\(it has 'AO', 'arm'\\)"),
     ({"source": "Scan", "target": "Scan"}, "source and target are the same object 'Scan'"),
     ({"source": "Scan", "target": "LOD1", "signals": []}, "nothing to carry"),
 ])

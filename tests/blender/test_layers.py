@@ -54,6 +54,7 @@ def target_weights(mod, obj):
     return np.column_stack([groups[f"bone{b:02d}"] for b in range(BONES)]).astype(np.float64)
 
 
+@pytest.mark.every_blender
 @pytest.mark.parametrize("basis", ["POINTWISE", "LAPLACIAN"])
 def test_rig_weights_keep_their_sums_and_four_influences(mod, scene, basis):
     src, tgt, ws, truth = rigged_pair()
@@ -156,6 +157,7 @@ def _in_source_frame(src, tgt):
     return points @ to_source[:3, :3].T + to_source[:3, 3], sizes
 
 
+@pytest.mark.every_blender
 def test_uv_map_and_material_index_arrive_on_a_remeshed_copy(mod, scene):
     src, tgt = textured_pair(scene)
     points, _ = _corner_points(src)

@@ -22,6 +22,10 @@ from .standins import Context, Event, Screen, StandIn, WindowManager
 from .test_operators import _scene_state, painted_pair, read
 
 
+# every panel draws, and the click path runs, on each Blender the manifest claims
+pytestmark = pytest.mark.every_blender
+
+
 @pytest.fixture
 def ops(overtone):
     return importlib.import_module(MODULE + ".operators")

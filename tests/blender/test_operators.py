@@ -293,7 +293,7 @@ def _bad_missing_signal(scene):
     bpy.ops.overtone.refresh_signals()
     scene.overtone.signals["dirt"].use = True  # numbers are carried only when ticked
     src.data.attributes.remove(src.data.attributes["dirt"])
-    return r"source 'Painted' has no signal 'dirt' \(it has 'tint', 'tint_bytes', 'flow', 'head'\)"
+    return r"source 'Painted' has no attribute or vertex group 'dirt' \(it has 'tint', 'tint_bytes', 'flow', 'head'\)"
 
 
 def _bad_three_selected(scene):

@@ -56,6 +56,10 @@ def texts(drawn):
     return [t for layout in drawn.values() for t in layout.texts()]
 
 
+# every panel draws, and the click path runs, on each Blender the manifest claims
+pytestmark = pytest.mark.every_blender
+
+
 @pytest.fixture
 def ui(overtone):
     return importlib.import_module(MODULE + ".panels")
@@ -130,6 +134,20 @@ def test_a_pair_selected_and_its_layers_read(ui, scene):
     assert lists == {c.__name__ for c in registered(bpy.types.UIList)}
 
 
+def test_uv_maps_and_face_attributes_are_named_as_blender_names_them(ui, scene):
+    src, tgt = painted_pair(scene)
+    src.data.uv_layers.new(name="UVMap")
+    src.data.attributes.new("material_index", 'INT', 'FACE')
+    assert bpy.ops.overtone.refresh_signals() == {'FINISHED'}
+    main = draw_all()["OVERTONE_PT_main"]
+    words = main.texts()
+    # a UV map is a UV map to an artist, not "a vector per face corner"
+    assert words[words.index("UVMap") + 1] == "UV map"
+    assert words[words.index("material_index") + 1] == "whole number, per face"
+    icons = {b.get("text"): b.get("icon") for f, b in main.log if f == "label"}
+    assert icons["UVMap"] == 'GROUP_UVS'
+
+
 def test_the_main_flow_speaks_of_attributes_not_methods(ui, scene):
     painted_pair(scene)
     bpy.ops.overtone.refresh_signals()
@@ -182,6 +200,12 @@ def test_after_a_carry_the_report_says_what_to_act_on(ui, scene):
     assert "Nothing carried yet" not in words
     assert "carried 3 layers from 'Painted' to 'Plain'" in joined
     assert "Matched by position" in joined
+    # why, in words: the share of the target on the source, no engine figures
+    near = report["correspondence"]["overlap"]["target_near_source"]
+    assert scene.overtone.report_reason == (
+        f"The meshes sit on top of each other ({near:.0%} of the target lies on the source): "
+        "each target vertex took what lies closest to it on the source.")
+    assert "(matched by position, mean confidence" in scene.overtone.report_text
     share = report["uncertain_share"]
     assert f"{ui.percent_words(share)} of vertices uncertain (confidence under " \
            f"{report['uncertain_below']:.2f})" in joined
@@ -189,7 +213,10 @@ def test_after_a_carry_the_report_says_what_to_act_on(ui, scene):
     assert all(len(line) <= ui.wrap_width(Context(region=None)) for line in
                draw_all()["OVERTONE_PT_report"].texts())
     assert "snout: vertex group on both meshes, used to line them up" in joined
-    assert f"Took {ui.duration_words(report['timings']['wall'])}" in words
+    # the panel draws the stored (single-precision) seconds: the same time, which may round
+    # to the other side of a millisecond than the report's double
+    assert scene.overtone.report_seconds == pytest.approx(report["timings"]["wall"], abs=1e-6)
+    assert f"Took {ui.duration_words(scene.overtone.report_seconds)}" in words
     first = {"computed": "Computed now", "disk": "Read from the cache folder"}[
         report["cache_hits"]["correspondence"]]
     assert f"{first}: the match" in joined and "Reused" not in joined
@@ -209,8 +236,70 @@ def test_after_a_carry_the_report_says_what_to_act_on(ui, scene):
     words = texts(draw_all())
     assert "Reused the match of the last run on these meshes (kept in memory)." in " ".join(words)
     assert "the match," not in " ".join(words)
-    assert f"Took {ui.duration_words(again['timings']['wall'])}" in words
     assert scene.overtone.report_seconds == pytest.approx(again["timings"]["wall"], abs=1e-6)
+    assert f"Took {ui.duration_words(scene.overtone.report_seconds)}" in words
+
+
+def test_copies_placed_apart_are_told_about_ignore_placement(ui, scene):
+    src, tgt = painted_pair(scene)
+    tgt.location = (0.0, 6.0, 0.0)
+    assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
+    reason = scene.overtone.report_reason
+    assert reason.startswith("The meshes do not sit on top of each other (only 0% of the target lies on")
+    assert "edge length" not in reason and "intrinsic" not in reason
+    assert "(matched by shape, mean confidence" in scene.overtone.report_text
+    # the same creature re-meshed is a copy placed apart: the warning says what to tick, once
+    label = scene.overtone.bl_rna.properties["local_space"].name
+    words = " ".join(draw_all()["OVERTONE_PT_report"].texts())
+    assert "Matched by shape" in words and words.count(label) == 1
+    assert label in scene.overtone.report_warnings and label not in reason
+    # not a copy (its own mesh is larger): no warning, the reason points to the option
+    positions = np.empty(len(tgt.data.vertices) * 3, np.float32)
+    tgt.data.attributes["position"].data.foreach_get("vector", positions)
+    tgt.data.attributes["position"].data.foreach_set("vector", positions * 1.2)
+    tgt.data.update()
+    assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
+    assert label not in scene.overtone.report_warnings
+    assert scene.overtone.report_reason.endswith(f"Copies of one asset placed apart match best with {label} ticked.")
+    tgt.data.attributes["position"].data.foreach_set("vector", positions)
+    tgt.data.update()
+    scene.overtone.local_space = True   # ticked: matched in place, and no hint
+    assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
+    assert scene.overtone.report_reason.startswith("The meshes sit on top of each other (100% of")
+    scene.overtone.local_space, scene.overtone.match_mode = False, "INTRINSIC"
+    assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
+    assert scene.overtone.report_reason == ("Matched by shape, as chosen under Method "
+                                           "(0% of the target lies on the source).")
+
+
+def test_warnings_and_notes_stay_in_the_panel(ui, scene):
+    # the status bar forgets a warning within seconds: the Last Run panel keeps it
+    src, tgt = painted_pair(scene)
+    src.modifiers.new("mirror", 'MIRROR')
+    tgt.data.color_attributes.new("tint", 'FLOAT_COLOR', 'POINT')   # the target's own "tint"
+    assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
+    report = json.loads(scene.overtone.report_json)
+    [warning] = report["warnings"]
+    [note] = [n for n in report["notes"] if "'tint'" in n]
+    drawn = draw_all()["OVERTONE_PT_report"]
+    lines, chars = drawn.texts(), ui.wrap_width(Context(region=None))
+    labels = [(b.get("text"), b.get("icon")) for f, b in drawn.log if f == "label"]
+    assert labels[0][1] == 'ERROR' and ("Check", 'ERROR') in labels
+    for text in (warning, note):
+        wrapped = textwrap.wrap(text, chars)
+        start = lines.index(wrapped[0])
+        assert lines[start:start + len(wrapped)] == wrapped
+    # a clean run: no box, a tick
+    src.modifiers.clear()
+    assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
+    drawn = draw_all()["OVERTONE_PT_report"]
+    assert "Check" not in drawn.texts()
+    assert [b.get("icon") for f, b in drawn.log if f == "label"][0] == 'CHECKMARK'
+    # an error clears what the last run left
+    make_grid("Extra").select_set(True)
+    with pytest.raises(RuntimeError):
+        bpy.ops.overtone.transfer_attributes()
+    assert scene.overtone.report_warnings == scene.overtone.report_notes == ""
 
 
 def test_after_a_smoothed_carry_the_loss_per_layer_shows(ui, scene):
@@ -228,7 +317,9 @@ def test_after_a_preview_and_a_detail_run(ui, scene):
     assert bpy.ops.overtone.preview_carry() == {'FINISHED'}
     report = draw_all()["OVERTONE_PT_report"]
     joined = " ".join(report.texts())
-    assert joined.startswith("previewed on 'Painted'")
+    assert joined.startswith("previewed 3 layers on 'Painted', written beside them as <name>_carried")
+    for word in ("products", "K=", "order", "error"):  # no method figures in the first line
+        assert word not in scene.overtone.report_text
     assert "Direct values arrive as they are." in joined
     assert "Lost by smoothing (on the source)" in report.texts()
     assert "report_confidence" not in {n for _, n in report.props()}  # nothing was matched

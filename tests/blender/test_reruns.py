@@ -49,6 +49,7 @@ def detail_strength(mod, tgt, expected):
 # ----------------------------------------------------------------------------- detail twice
 
 
+@pytest.mark.every_blender
 def test_carry_detail_twice_keeps_strength_one(mod, scene):
     src, tgt = bumpy_pair(scene)
     expected = engine_pair(mod, src, tgt).detail(strength=1.0, size=0.05)
@@ -78,6 +79,7 @@ def test_carry_detail_twice_in_the_background_keeps_strength_one(mod, scene):
     assert detail_strength(mod, tgt, expected) == pytest.approx(1.0, abs=1e-4)
 
 
+@pytest.mark.every_blender
 def test_batch_detail_twice_keeps_strength_one(mod, scene, tmp_path):
     src, tgt = bumpy_pair(scene)
     expected = engine_pair(mod, src, tgt).detail(strength=1.0, size=0.05)
@@ -93,6 +95,7 @@ def test_batch_detail_twice_keeps_strength_one(mod, scene, tmp_path):
 # ----------------------------------------------------------------------------- re-runs and names
 
 
+@pytest.mark.every_blender
 def test_batch_rerun_refreshes_the_groups_it_wrote_as_the_ui_does(mod, scene, tmp_path):
     src, tgt = painted_pair(scene)
     scene.overtone.basis = "POINTWISE"
@@ -124,6 +127,7 @@ def _layers(mod, obj):
     return sorted((s.name, s.domain, s.data_type) for s in mod.bridge.list_layers(obj))
 
 
+@pytest.mark.every_blender
 def test_ui_and_batch_alternating_with_replace_off_then_on(mod, scene, tmp_path):
     """An artist's evening on one pair: the target has its own "tint" (corner bytes,
     the active and render colour) and its own "head" weights. Runs alternate between
@@ -180,6 +184,30 @@ def test_ui_and_batch_alternating_with_replace_off_then_on(mod, scene, tmp_path)
     np.testing.assert_allclose(read(mod, tgt, "tint"), carried[corners], atol=0.02)
     expected = engine_pair(mod, src, tgt).carry({"head": (read(mod, src, "head"), "weight")})
     np.testing.assert_allclose(read(mod, tgt, "head"), expected["head"].values, atol=1e-6)
+
+
+def test_a_second_source_refreshes_overtones_own_layers(mod, scene):
+    # confidence and uncertain vertices are Overtone's own: one of each on the target, whichever
+    # source wrote last, while the second source's colour goes beside the first one's
+    src, tgt = painted_pair(scene)
+    scene.overtone.write_anyway = True
+    assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
+    other = src.copy()
+    other.data = src.data.copy()
+    other.name = "Painted Again"
+    other.location = (0.0, 0.0, 5.0)     # elsewhere: a match by shape, with its own confidence
+    scene.collection.objects.link(other)
+    tgt.vertex_groups.new(name=mod.records.UNCERTAIN_NAME)  # an earlier mark, to be cleared or refreshed
+    select(other, tgt)
+    assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
+    report = json.loads(scene.overtone.report_json)
+    names = [s.name for s in mod.bridge.list_layers(tgt)]
+    assert names.count("overtone_confidence") == 1 and not [n for n in names if n.startswith("overtone_confidence_")]
+    assert report["written"]["overtone_confidence"] == "overtone_confidence"
+    assert not [n for n in names if n.startswith(mod.records.UNCERTAIN_NAME + "_")]
+    assert report["written"]["tint"] == "tint_ot1" and "tint" in names   # the first source's kept
+    confidence = read(mod, tgt, "overtone_confidence")[:, 1]   # stored (1, c, c, c)
+    assert float(confidence.mean()) == pytest.approx(report["mean_confidence"], abs=1e-5)
 
 
 def test_empty_target_groups_are_filled_not_landmarks(mod, scene):
@@ -286,7 +314,7 @@ def test_a_seventy_byte_name_in_the_panel_and_in_batch(mod, scene, tmp_path, cap
     path.write_text(json.dumps({"pairs": [{"source": "Painted", "target": "Plain", "signals": [typed]}]}))
     capsys.readouterr()
     assert mod.batch.main([str(path)]) == 2
-    assert f"source 'Painted' has no signal {typed!r}" in capsys.readouterr().err
+    assert f"source 'Painted' has no attribute or vertex group {typed!r}" in capsys.readouterr().err
 
 
 # ----------------------------------------------------------------------------- transforms and modifiers
@@ -394,17 +422,83 @@ def test_ignore_placement_matches_copies_of_one_asset(mod, scene):
     np.testing.assert_allclose(co.reshape(-1, 3), pair.detail(strength=1.0, size=0.05), atol=2e-5)
 
 
+def test_a_copy_placed_apart_and_matched_by_shape_is_warned_about(mod, scene):
+    """A copy of a nearly symmetric asset (a re-meshed capped cylinder: the same from
+    either end) placed elsewhere: matched by shape the map can come back upside down
+    although it is sure of itself, so the artist is told to match the copy in place."""
+    bpy.ops.mesh.primitive_cylinder_add(vertices=16, radius=0.5, depth=3.0)
+    src = bpy.context.active_object
+    src.name = "Post"
+    bpy.ops.object.mode_set(mode='EDIT')
+    bpy.ops.mesh.subdivide(number_cuts=6)
+    bpy.ops.object.mode_set(mode='OBJECT')
+    height = np.array([v.co.z for v in src.data.vertices]) / 3.0 + 0.5       # 0 at the bottom, 1 at the top
+    rgba = np.column_stack([height, height, height, np.ones_like(height)]).astype(np.float32)
+    src.data.color_attributes.new("height", 'FLOAT_COLOR', 'POINT').data.foreach_set("color", rgba.ravel())
+    tgt = src.copy()
+    tgt.data = src.data.copy()
+    tgt.name = "Post Copy"
+    scene.collection.objects.link(tgt)
+    tgt.data.color_attributes.remove(tgt.data.color_attributes["height"])
+    select(tgt, tgt)
+    bpy.ops.object.mode_set(mode='EDIT')
+    bpy.ops.mesh.quads_convert_to_tris()                                     # another triangulation
+    bpy.ops.object.mode_set(mode='OBJECT')
+    tgt.location = (3.0, 0.0, 0.0)
+    select(src, tgt)
+    assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
+    report = json.loads(scene.overtone.report_json)
+    assert report["mode"] == "intrinsic"
+    assert any("'Post Copy' looks like a copy of 'Post' placed elsewhere" in w and "Ignore Placement" in w
+               for w in report["warnings"])
+    # matched in place, as the warning says: each vertex gets its own height back
+    scene.overtone.local_space = True
+    assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
+    report = json.loads(scene.overtone.report_json)
+    assert report["mode"] == "aligned" and not [w for w in report["warnings"] if "Ignore Placement" in w]
+    truth = np.array([v.co.z for v in tgt.data.vertices]) / 3.0 + 0.5
+    np.testing.assert_allclose(read(mod, tgt, "height")[:, 0], truth, atol=1e-5)
+
+
+def test_a_re_posed_character_elsewhere_is_not_called_a_copy(mod, scene):
+    demo = engine_module("jobs.demo")
+    s, t = demo.creature(30, 16), demo.creature(26, 18, curl=1.4, twist_offset=True)
+    src, tgt = make_mesh("Straight", s.vertices, s.faces), make_mesh("Bent", t.vertices, t.faces)
+    src.data.color_attributes.new("tint", 'FLOAT_COLOR', 'POINT')
+    tgt.location = (0.0, 4.0, 0.0)
+    select(src, tgt)
+    assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
+    report = json.loads(scene.overtone.report_json)
+    assert report["mode"] == "intrinsic"
+    assert not [w for w in report["warnings"] if "Ignore Placement" in w]
+    # the rule itself: boxes within 2% of the diagonal, in object space
+    box = np.array([[0.0, 0.0, 0.0], [1.0, 2.0, 3.0]])
+    assert mod.runs.is_placed_copy(box, box * 1.005) and not mod.runs.is_placed_copy(box, box * 1.05)
+
+
 def test_modifiers_the_run_does_not_see_are_warned_about(mod, scene, capsys):
     src, tgt = painted_pair(scene)
     src.modifiers.new("mirror", 'MIRROR')
     scene.overtone.basis = "POINTWISE"
     assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
     warnings = json.loads(scene.overtone.report_json)["warnings"]
-    assert any("source 'Painted'" in w and "(mirror)" in w and "As Shown" in w for w in warnings)
+    # the warning names the checkbox as the panel shows it
+    label = scene.overtone.bl_rna.properties["as_shown"].name
+    assert any("source 'Painted'" in w and "(mirror)" in w and f"tick {label}" in w for w in warnings)
     assert "Warning: Overtone:" in capsys.readouterr().out
     scene.overtone.as_shown = True          # asked for what is shown: nothing to warn about
     assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
     assert json.loads(scene.overtone.report_json)["warnings"] == []
+    # the target's own modifiers (a Subdivision on most characters) are mentioned, not warned
+    # about: the results go on its mesh, under them, as they should
+    capsys.readouterr()
+    tgt.modifiers.new("smooth", 'SUBSURF')
+    assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
+    report = json.loads(scene.overtone.report_json)
+    assert report["warnings"] == []
+    assert any("target 'Plain'" in n and "(smooth)" in n for n in report["notes"])
+    out = capsys.readouterr().out
+    assert "Info: Overtone:" in out and "Warning: Overtone:" not in out and "(smooth)" in out
 
 
 # ----------------------------------------------------------------------------- honest outcomes
@@ -420,6 +514,7 @@ def test_outcome_levels_follow_the_thresholds(mod):
     assert runs.outcome(np.r_[np.full(98, 0.99), np.full(2, 0.1)]).level == "ok"   # 2 %: not over
 
 
+@pytest.mark.every_blender
 def test_a_failed_match_is_an_error_and_leaves_the_target(mod, scene):
     src, tgt = painted_pair(scene)
     tgt.location = (50.0, 0.0, 0.0)          # far away, yet matched as if overlapping
@@ -474,6 +569,7 @@ def test_the_background_run_warns_too(mod, scene):
     assert reports[0][0] == {'WARNING'} and "uncertain match: mean confidence" in reports[0][1]
 
 
+@pytest.mark.every_blender
 def test_an_uncertain_match_warns_marks_and_selects(mod, scene, capsys):
     src, tgt = painted_pair(scene)
     far_end = tear_one_end(mod, tgt)
