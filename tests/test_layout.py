@@ -97,3 +97,12 @@ def test_no_module_shares_a_name_with_a_function():
 @pytest.mark.parametrize("other", ["runs", "operators", "panels", "bridge", "batch"])
 def test_addon_and_engine_module_names_differ(other):
     assert not list(ENGINE.rglob(f"{other}.py"))
+
+
+def test_engine_docstring_indexes_every_public_name():
+    # DEVELOPERS.md: engine/__init__.py's docstring is the API index, so it names all of __all__.
+    import engine
+
+    doc = engine.__doc__ or ""
+    unlisted = [n for n in engine.__all__ if not re.search(rf"(?<![\w.]){re.escape(n)}(?!\w)", doc)]
+    assert unlisted == []
