@@ -74,14 +74,35 @@ def test_functions_fit_in_a_head():
     assert KNOWN_LONG - offenders == set(), "split functions: remove them from KNOWN_LONG"
 
 
+def _private(name):
+    return name.startswith("_") and not name.startswith("__")
+
+
+def _private_uses(tree):
+    """Underscore names imported from a project module, or read as ``module._name`` off one."""
+    imported = set()
+    for node in ast.walk(tree):
+        if isinstance(node, ast.ImportFrom) and node.level > 0:
+            imported |= {a.asname or a.name for a in node.names}
+            yield from (f"{node.lineno}: {a.name}" for a in node.names if _private(a.name))
+    for node in ast.walk(tree):
+        if isinstance(node, ast.Attribute) and _private(node.attr) and isinstance(node.value, ast.Name) \
+                and node.value.id in imported:
+            yield f"{node.lineno}: {node.value.id}.{node.attr}"
+
+
 def test_no_private_names_cross_modules():
-    pattern = re.compile(r"^\s*from\s+\.+[\w.]*\s+import\s+\(?([^)\n]*)", re.M)
     offenders = []
     for path in _python_files():
-        for names in pattern.findall(path.read_text(encoding="utf-8")):
-            offenders += [f"{path.relative_to(ROOT)}: {n.strip()}" for n in names.split(",")
-                          if n.strip().startswith("_") and not n.strip().startswith("__")]
+        tree = ast.parse(path.read_text(encoding="utf-8"))
+        offenders += [f"{path.relative_to(ROOT)}:{use}" for use in _private_uses(tree)]
     assert offenders == []
+
+
+def test_private_name_check_sees_every_form():
+    # The forms the check must catch: one line, several lines in brackets, an attribute of a module.
+    source = "from .a import (\n    b,\n    _c)\nfrom . import d\nx = d._e\nfrom .f import _g\n"
+    assert sorted(_private_uses(ast.parse(source))) == ["1: _c", "5: d._e", "6: _g"]
 
 
 def test_no_module_shares_a_name_with_a_function():
