@@ -17,15 +17,17 @@ MAX_LINES, MAX_PARAMETERS = 80, 8
 KNOWN_LONG: set[str] = {
     "engine/matching/correspondence.py:correspond",
     "engine/matching/correspondence.py:_align_refine",
-    "engine/carrying/corners.py:carry_corners",
     "engine/matching/correspondence.py:_refine_aligned",
     "engine/matching/correspondence.py:_product_embedding",
     "engine/matching/functional_map.py:zoomout",
     "engine/matching/functional_map.py:fmap_from_descriptors",
     "engine/matching/correspondence.py:_refine_products",
-    "addon/panels.py:draw_item",
-    "engine/jobs/pair.py:carry_corners",
 }
+
+# Signatures Blender fixes: UIList.draw_item is called with nine arguments
+# (Blender Python API, bpy.types.UIList.draw_item, as in the stubs .venv-typing checks against),
+# so it cannot take fewer.
+BLENDER_SIGNATURES: set[str] = {"addon/panels.py:draw_item"}
 
 
 def _python_files():
@@ -70,8 +72,9 @@ def test_functions_fit_in_a_head():
         for node in _functions(path):
             if _code_lines(node) > MAX_LINES or _parameters(node) > MAX_PARAMETERS:
                 offenders.add(f"{rel}:{node.name}")
-    assert offenders - KNOWN_LONG == set(), "new long functions"
+    assert offenders - KNOWN_LONG - BLENDER_SIGNATURES == set(), "new long functions"
     assert KNOWN_LONG - offenders == set(), "split functions: remove them from KNOWN_LONG"
+    assert BLENDER_SIGNATURES <= offenders, "a Blender signature no longer over the limit: remove it"
 
 
 def _private(name):

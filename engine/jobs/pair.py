@@ -219,14 +219,12 @@ class Pair:
         self.timings["signals"] = round(time.perf_counter() - t0 - self.timings["bases"], 4)
         return {name: out[name] for name in checked}
 
-    def carry_corners(self, name: str, values: ArrayLike, kind: str, source_corner_verts: ArrayLike,
-                      source_face_sizes: ArrayLike, target_corner_verts: ArrayLike,
-                      target_face_sizes: ArrayLike, *, basis: str | None = None,
+    def carry_corners(self, name: str, values: ArrayLike, kind: str, source_polygons: tuple[ArrayLike, ArrayLike],
+                      target_polygons: tuple[ArrayLike, ArrayLike], *, basis: str | None = None,
                       inset: float = 0.25) -> Any:
-        """Carry one per-corner signal, keeping its seams (``engine.corners.carry_corners``)."""
+        """Carry one per-corner signal, keeping its seams (``engine.carrying.corners.carry_corners``)."""
         from ..carrying.corners import carry_corners
-        return carry_corners(self, name, values, kind, source_corner_verts, source_face_sizes,
-                             target_corner_verts, target_face_sizes, basis=basis, inset=inset)
+        return carry_corners(self, name, values, kind, source_polygons, target_polygons, basis=basis, inset=inset)
 
     # ----------------------------------------------------------------- detail
     def detail(self, *, strength: float | None = None, size: float | None = None,
