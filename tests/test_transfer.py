@@ -7,6 +7,7 @@ from engine.matching.correspondence import correspond
 from engine.spectra.shape import Shape
 from engine.carrying.transfer import Transfer
 from tests import pairs
+from tests.metrics import unblended_labels
 
 
 @pytest.fixture(scope="module")
@@ -44,10 +45,12 @@ def test_warm_transfer_is_linear_and_reuses_bases(pair):
 def test_labels_and_masks_never_blended(pair):
     p, S, T, c = pair
     tr = Transfer(S, T, c, basis="laplacian", k=30)
-    lab = tr.transfer(np.arange(S.n_original) % 7, kind="label").values
-    assert set(np.unique(lab)) <= set(range(7))
-    m = tr.transfer(np.arange(S.n_original) % 2 == 0, kind="mask").values
-    assert m.dtype == bool
+    labels = np.arange(S.n_original) % 7
+    lab = tr.transfer(labels, kind="label").values
+    assert unblended_labels(c, labels, lab).all()
+    mask = np.arange(S.n_original) % 2 == 0
+    m = tr.transfer(mask, kind="mask").values
+    assert m.dtype == bool and unblended_labels(c, mask, m).all()
 
 
 def test_errors(pair):
