@@ -2,6 +2,7 @@
 
 import numpy as np
 import pytest
+from scipy.spatial import cKDTree
 
 from engine.matching.correspondence import correspond
 from engine.spectra.shape import Shape
@@ -35,7 +36,10 @@ def test_aligned_two_resolutions_picks_aligned_and_is_close():
     S, T = _shapes(p)
     c = correspond(S, T)
     assert c.mode == "aligned"
-    assert _map_error(p, c).mean() < 0.01
+    # reference: how far the source vertex nearest each true partner lies from it (scipy
+    # cKDTree on the ground truth); a map that interpolates on triangles lands closer
+    nearest = cKDTree(p.source_rest).query(p.target_rest[T.prepared.from_clean])[0] / np.sqrt(S.area)
+    assert _map_error(p, c).mean() < nearest.mean()
     assert c.confidence.min() >= 0 and c.confidence.max() <= 1
     assert c.fmap.shape[0] == c.fmap.shape[1]
 
@@ -52,7 +56,9 @@ def test_posed_pair_with_landmarks_beats_closest_points():
     err0 = np.sqrt(((base.pull(pairs.colour(p.source_rest, sc)) - truth) ** 2).mean())
     assert err < 0.33 * err0   # goal: posed pairs >= 3x lower colour RMSE than closest points
     mask = c.pull_labels(pairs.mask(p.source_rest, sc))
-    assert mask.dtype == bool and (mask != pairs.mask(p.target_rest, sc)).mean() < 0.15
+    mask0 = base.pull_labels(pairs.mask(p.source_rest, sc))
+    truth_mask = pairs.mask(p.target_rest, sc)
+    assert mask.dtype == bool and (mask != truth_mask).mean() < (mask0 != truth_mask).mean() / 3   # the same goal
 
 
 def test_pull_and_labels_shapes_and_errors():
