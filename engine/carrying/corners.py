@@ -24,7 +24,7 @@ from numpy.typing import ArrayLike, NDArray
 
 from ..matching.closest_point import SurfaceLocator
 from .faces import polygon_arrays
-from .signals import check_signal
+from .signals import check_signal, clamp
 
 __all__ = ["CornerResult", "Polygons", "carry_corners", "vertex_average", "seam_vertices", "triangle_corners"]
 
@@ -152,6 +152,4 @@ def _corners_near_seams(pair: Any, name: str, vals: NDArray[np.float64], kind: s
     hit = SurfaceLocator(S.vertices, S.faces).closest(at + inset * (centroids[faces[chosen]] - at))
     slot_corner = triangle_corners(S, s_cv, s_sizes, hit.triangle, name)
     carried: NDArray[np.float64] = np.einsum("qj,qjc->qc", hit.barycentric, vals[slot_corner])
-    if kind in ("color", "weight"):
-        return np.clip(carried, 0.0, 1.0)
-    return np.clip(carried, vals.min(axis=0), vals.max(axis=0))
+    return clamp(carried, kind, vals)
