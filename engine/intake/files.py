@@ -574,7 +574,7 @@ class _AsciiBody:
                 try:
                     if not (block[:, start].astype(np.int64) == k).all():
                         return None
-                except ValueError:
+                except (ValueError, OverflowError):   # the record-by-record path names the problem
                     return None
         self.pos += n * width
         if not keep:
