@@ -225,7 +225,7 @@ def _ply_bytes(v, f, props, draw, binary: bool) -> bytes:
 
 
 def _damage(data: bytes, draw) -> bytes:
-    how = draw(st.sampled_from(["none", "none", "none", "truncate", "flip", "huge", "header_count",
+    how = draw(st.sampled_from(["none", "none", "none", "truncate", "flip", "huge", "huge_count", "header_count",
                                 "comment_end_header", "list_in_vertex", "scalar_indices", "append"]))
     if how == "truncate" and data:
         return data[:draw(st.integers(0, len(data) - 1))]
@@ -234,6 +234,9 @@ def _damage(data: bytes, draw) -> bytes:
         return data[:i] + bytes([data[i] ^ draw(st.integers(1, 255))]) + data[i + 1:]
     if how == "huge":
         return data.replace(b" 1 ", b" 99999999999999999999999 ", 1)
+    if how == "huge_count":   # the last face's corner count in an ASCII PLY or OFF
+        head, sep, tail = data.rpartition(b"\n3 ")
+        return head + b"\n99999999999999999999999 " + tail if sep else data
     if how == "header_count" and b"element face " in data:
         head, _, rest = data.partition(b"element face ")
         count, _, tail = rest.partition(b"\n")
