@@ -73,7 +73,7 @@ class MeshData:
     properties: dict[str, NDArray[Any]] = field(default_factory=dict)
 
     def triangles(self) -> NDArray[Any]:
-        """The polygons as triangles, (t, 3) int64, by ear clipping (``_triangulate``)."""
+        """The polygons as triangles, (t, 3) int64, by ``engine.intake.triangulation``."""
         return triangulate(self.vertices, self.corners, self.sizes)[0]
 
 

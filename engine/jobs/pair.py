@@ -189,7 +189,7 @@ class Pair:
         ----------
         signals : dict name -> (values, kind)
             ``values`` per original source vertex; ``kind`` one of
-            ``engine.signals.KINDS``. All are validated before any is carried.
+            ``engine.carrying.signals.KINDS``. All are validated before any is carried.
             Every signal of kind ``"weight"`` is carried together with the
             others as vertex groups (:func:`engine.carrying.weights.carry_weights`);
             what happened to them is in :attr:`weights_report`.
@@ -232,7 +232,7 @@ class Pair:
         """New target positions carrying the source's surface detail.
 
         Each mesh is split into a smooth base and offsets in the base's
-        local frames (:mod:`engine.detail`), features shorter than ``size``
+        local frames (:mod:`engine.carrying.detail`), features shorter than ``size``
         times the square root of the source's area counting as detail. The
         source's offsets are pulled to the target, scaled by the square root
         of the area ratio (so detail keeps its size relative to the shape),
