@@ -320,8 +320,8 @@ def carry_by_face(inp: JobInput, pair: Pair, sig: Signal, basis: str,
                                 hits[0])
         return charted.values, {"kind": sig.kind, "domain": "CORNER", "route": "UV islands",
                                 "source_error": 0.0}
-    carried = pair.carry_corners(sig.name, sig.values, sig.kind, src.corners, src.sizes, tgt.corners,
-                                 tgt.sizes, basis=basis, inset=CORNER_INSET)
+    carried = pair.carry_corners(sig.name, sig.values, sig.kind, (src.corners, src.sizes),
+                                 (tgt.corners, tgt.sizes), basis=basis, inset=CORNER_INSET)
     return carried.values, {"kind": sig.kind, "domain": "CORNER", "source_error": carried.source_error}
 
 

@@ -22,9 +22,9 @@ __all__ = ["thread_limits", "openblas_thread_controls", "limited_threads"]
 # BLAS thread pools of the worker, unless the user set them: one thread each.
 # The engine's eigensolver runs thousands of small dense blocks; with two
 # OpenBLAS threads on a machine busy with other work each call waits for a
-# descheduled thread, and the factor of a 30k-vertex mesh took 6 s instead of
-# 0.2 s. On an idle 2-core machine two threads gained nothing over one (100k
-# vertices, 100 eigenpairs: 7.25 s against 7.34 s, benchmarks/eigenbasis_speed.py).
+# descheduled thread and the factor takes many times longer; on an idle 2-core
+# machine two threads gained nothing over one (figures: docs/measurements.md,
+# "Add-on: Blender data access and BLAS threads").
 _THREAD_VARIABLES = ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS", "VECLIB_MAXIMUM_THREADS")
 
 

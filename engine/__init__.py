@@ -2,7 +2,7 @@
 
 Imports only the standard library, numpy and scipy. Public API index:
 
-Mesh intake
+Mesh intake (engine/intake)
     validate_mesh         the one validator at the door
     prepare_mesh          triangulate, clean, keep the map back to every original vertex
     PreparedMesh          the cleaned mesh and its maps (restore / to_cleaned)
@@ -10,40 +10,43 @@ Mesh intake
     write_ply             PLY writer, atomic, lossless
     MeshData              what read_mesh returns
 
-Eigenbasis and cache
+Eigenbasis and cache (engine/spectra/eigensolver, engine/common/cache.py)
     eigenbasis            k smallest eigenpairs of L phi = lambda M phi (Eigenbasis)
     Cache                 on-disk .npz cache, atomic, validated, never trusted blindly
     geometry_key          stable hash of arrays and parameters
 
-Eigenfunction products (products.py)
+Eigenfunction products (engine/spectra/products.py)
     product_exponents     monomials of the first K eigenfunctions up to an order
     raw_products          their pointwise products
     orthogonal_products   mass-orthonormal products, dependent ones dropped (ProductBasis)
     least_squares_products  the raw-products baseline with a least-squares fit
     product_budget        caps (K, order) by the vertex count
+    LeastSquaresProducts  what least_squares_products returns
+    DEFAULT_PRODUCT_TOLERANCE  floor of the relative norm under which a product counts as dependent
 
-Approximation and descriptors
+Approximation and descriptors (engine/spectra)
     approximate           project a signal on a basis and reconstruct it (Approximation)
     relative_error        mass-weighted relative L2 error
+    Basis                 what approximate accepts: any mass-orthonormal basis
     LaplacianBasis        the eigenbasis as an approximation basis
     heat_kernel_signature, wave_kernel_signature, heat_kernel_rows, heat_times, wave_energies
 
-Shapes, correspondence and transfer
+Shapes, correspondence and transfer (engine/spectra, engine/matching, engine/carrying, engine/jobs)
     Shape                 one mesh: operators, eigenbasis, products, descriptors, computed once
     correspond            target vertex -> point on the source surface (Correspondence)
     Transfer              carries signals through a basis of choice (TransferResult)
-    Pair, Settings        the whole job for one source/target pair (pipeline.py)
+    Pair, Settings        the whole job for one source/target pair (engine/jobs/pair.py)
     run_transfer_job, run_detail_job   file in, file out: one pair per call (JobFiles, JobOptions)
     weighted_centre_vertex  the vertex at the weighted centre of a group (landmarks)
     Signal, check_signal  a per-vertex or per-corner signal, checked at the door
     vertex_average        per-vertex mean of a corner signal
     WeightOptions, carry_weights   vertex groups carried together (sums, influences)
-    faces_under_centres, carry_faces   face values by the source face under each target face
+    faces_under_centres, carry_faces   face values by the source face under each target face (FaceHits)
     carry_charted         UV maps with their seams
     approximate_signals   what a basis can carry, shown on the source (Preview)
-    SurfaceLocator        closest points on a triangle mesh
+    SurfaceLocator        closest points on a triangle mesh (SurfacePoints)
 
-Operators
+Operators (engine/spectra)
     mesh_operators        stiffness and mass, robust variant when the mesh needs it (Operators)
     robust_laplacian      non-manifold Laplacian: tufted cover, mollification, intrinsic Delaunay
     mesh_defects          what makes a mesh need the robust variant (MeshDefects)

@@ -46,3 +46,21 @@ def map_errors(p, c) -> np.ndarray:
 def map_error(p, c) -> float:
     """Mean of :func:`map_errors` over the target's vertices."""
     return float(map_errors(p, c).mean())
+
+
+def unblended_labels(c, labels, carried) -> np.ndarray:
+    """Per target vertex: is ``carried`` the heaviest label among the corners of its source triangle?
+
+    The definition of carrying a label without blending (common practice): each
+    target vertex takes the label with the largest summed barycentric weight over
+    the corners of the source triangle it maps to, so it is always one of those
+    corners' labels and never a value in between. ``c`` is the Correspondence,
+    ``labels`` the per-original-source-vertex labels, ``carried`` per original
+    target vertex.
+    """
+    tri = c.target.restore(c.triangle)
+    bary = c.target.restore(c.barycentric)
+    corner = labels[c.source.prepared.from_clean[c.source.faces[tri]]]
+    weight = np.array([(bary * (corner == corner[:, [j]])).sum(axis=1) for j in range(3)]).T
+    mine = (bary * (corner == np.asarray(carried)[:, None])).sum(axis=1)
+    return mine >= weight.max(axis=1) - 1e-9

@@ -226,3 +226,37 @@ def test_write_ply_replaces_the_old_mesh(tmp_path):
     m = read_mesh(path)
     assert m.vertices.tolist() == np.eye(3).tolist() and m.sizes.tolist() == [3]
     assert os.listdir(tmp_path) == ["m.ply"]
+
+
+def _interrupt_after_creating(monkeypatch):
+    # An interrupt that lands just after a temporary file was created, before the
+    # writer took charge of it (a signal handler runs between any two steps).
+    real = _atomic._create
+
+    def create_then_interrupt(target):
+        fd, tmp = real(target)
+        os.close(fd)
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(_atomic, "_create", create_then_interrupt)
+
+
+def test_an_interrupt_between_steps_is_cleaned_up_at_the_end(tmp_path, monkeypatch):
+    _interrupt_after_creating(monkeypatch)
+    with pytest.raises(KeyboardInterrupt):
+        _write_json(tmp_path / "r.json", {"a": 1})
+    assert [_atomic.is_temporary(p.name) for p in tmp_path.iterdir()] == [True]  # the writer could not remove it
+    assert _atomic.remove_own_temporaries() == 1
+    assert list(tmp_path.iterdir()) == []
+    assert _atomic.remove_own_temporaries() == 0
+
+
+def test_an_interrupted_command_leaves_no_temporary_file(tmp_path, monkeypatch):
+    from engine.jobs.cli import EXIT_INTERRUPTED, main
+    from tests.meshes import icosphere
+
+    v, f = icosphere(2)
+    write_ply(tmp_path / "s.ply", v, faces=f)
+    _interrupt_after_creating(monkeypatch)
+    assert main(["basis", str(tmp_path / "s.ply"), "-o", str(tmp_path / "b.npz"), "--k", "8"]) == EXIT_INTERRUPTED
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["s.ply"]

@@ -164,3 +164,17 @@ def test_failed_run_leaves_no_output(files):
     (files / "rdir").mkdir(exist_ok=True)
     code, _, err = run("transfer", "src.ply", "tgt.ply", "-o", "new.ply", "--report", "rdir", cwd=files)
     assert code == 2 and not (files / "new.ply").exists() and "overtone-tmp" not in err
+
+
+def test_meshes_of_very_different_sizes_are_named(files, tmp_path):
+    # 1e-100 beside a mesh of size 1: in the common frame the small one's
+    # coordinates fall below the rounding of the frame's centre (float64 keeps
+    # about 16 digits, IEEE 754, common practice), so its faces vanish; the
+    # message says why instead of only "no faces with non-zero area".
+    c = creature(30, 16)
+    write_ply(tmp_path / "tiny.ply", c.vertices * 1e-100, faces=c.faces,
+              properties={"dirt": np.linspace(0, 1, len(c.vertices)).astype(np.float32)})
+    code, _, err = run("transfer", "tiny.ply", files / "tgt.ply", "-o", "o.ply", cwd=tmp_path)
+    assert code == 2 and len(err.strip().splitlines()) == 1
+    assert "tiny.ply: about 1e-100 times the size of the other mesh" in err, err
+    assert not (tmp_path / "o.ply").exists()

@@ -35,7 +35,7 @@ def test_identical_mesh_keeps_a_hard_seam_exactly():
     S = Shape(v, corners=cv, sizes=sizes)
     T = Shape(v, corners=cv, sizes=sizes)
     pair = Pair(S, T, Settings(match="aligned"))
-    out = carry_corners(pair, "c", per_corner, "color", cv, sizes, cv, sizes)
+    out = carry_corners(pair, "c", per_corner, "color", (cv, sizes), (cv, sizes))
     np.testing.assert_allclose(out.values, per_corner, atol=1e-12)
     # the point transfer alone would blur the seam to purple
     point = pair.carry({"c": (vertex_average(per_corner, cv, len(v)), "color")})["c"].values[cv]
@@ -48,7 +48,7 @@ def test_seamless_corner_data_equals_the_point_transfer():
     colour = np.column_stack([v[:, 0] / 2, v[:, 1], 0.5 + 0 * v[:, 0]])
     S, T = Shape(v, corners=cv, sizes=sizes), Shape(v * 1.0, corners=cv, sizes=sizes)
     pair = Pair(S, T, Settings(match="aligned"))
-    out = carry_corners(pair, "c", colour[cv], "color", cv, sizes, cv, sizes)
+    out = carry_corners(pair, "c", colour[cv], "color", (cv, sizes), (cv, sizes))
     point = pair.carry({"c": (colour, "color")})["c"].values
     np.testing.assert_allclose(out.values, point[cv])
 
@@ -57,8 +57,8 @@ def test_errors():
     v, cv, sizes = _quads(2, 2)
     pair = Pair(Shape(v, corners=cv, sizes=sizes), Shape(v, corners=cv, sizes=sizes), Settings(match="aligned"))
     with pytest.raises(ValueError, match="must have 16 rows"):
-        carry_corners(pair, "c", np.zeros((5, 3)), "color", cv, sizes, cv, sizes)
+        carry_corners(pair, "c", np.zeros((5, 3)), "color", (cv, sizes), (cv, sizes))
     with pytest.raises(ValueError, match="labels and masks are carried per vertex"):
-        carry_corners(pair, "c", np.zeros(16), "label", cv, sizes, cv, sizes)
+        carry_corners(pair, "c", np.zeros(16), "label", (cv, sizes), (cv, sizes))
     with pytest.raises(ValueError, match="do not add up"):
-        carry_corners(pair, "c", np.zeros((16, 3)), "color", cv, sizes[:-1], cv, sizes)
+        carry_corners(pair, "c", np.zeros((16, 3)), "color", (cv, sizes[:-1]), (cv, sizes))

@@ -3,6 +3,7 @@
 import igl  # reference library, test environment only
 import numpy as np
 import pytest
+from scipy.spatial import cKDTree
 
 from engine.matching.correspondence import correspond
 from engine.spectra.shape import Shape
@@ -154,7 +155,6 @@ def test_elephant_with_other_proportions_clearly_beats_the_landmark_warp():
 
 @pytest.mark.parametrize("dims", [3, 40])
 def test_nearest_rows_matches_kdtree(dims):
-    from scipy.spatial import cKDTree
     from engine.matching.functional_map import nearest_rows
     rng = np.random.default_rng(2)
     data, query = rng.normal(size=(700, dims)), rng.normal(size=(300, dims))

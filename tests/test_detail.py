@@ -71,7 +71,6 @@ def test_smooth_base_filters_each_eigenfunction_by_its_eigenvalue():
 
 def test_errors():
     v, f = meshes.icosphere(1)
-    phi = np.ones((len(v), 3))
     with pytest.raises(ValueError, match="wavelength must be positive"):
         smooth_base(v, cotangent_laplacian(v, f), np.ones(len(v)), wavelength=0.0)
     with pytest.raises(ValueError, match="field must have shape"):

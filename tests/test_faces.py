@@ -140,7 +140,7 @@ def test_uv_map_arrives_with_a_seam_along_target_edges(remeshed):
     crossing = np.ptp(truth[:, 0].reshape(-1, 3), axis=1) > 0.5
     assert (crossing & inside[::3]).sum() >= 5
     # reading each corner on its own side tears them apart across the texture
-    torn = carry_corners(pair, "UVMap", uv, "vector", cv, sizes, tcv, tsizes).values
+    torn = carry_corners(pair, "UVMap", uv, "vector", (cv, sizes), (tcv, tsizes)).values
     assert np.ptp(torn[:, 0].reshape(-1, 3), axis=1)[crossing & inside[::3]].max() > 0.5
 
 

@@ -225,7 +225,7 @@ def _ply_bytes(v, f, props, draw, binary: bool) -> bytes:
 
 
 def _damage(data: bytes, draw) -> bytes:
-    how = draw(st.sampled_from(["none", "none", "none", "truncate", "flip", "huge", "header_count",
+    how = draw(st.sampled_from(["none", "none", "none", "truncate", "flip", "huge", "huge_count", "header_count",
                                 "comment_end_header", "list_in_vertex", "scalar_indices", "append"]))
     if how == "truncate" and data:
         return data[:draw(st.integers(0, len(data) - 1))]
@@ -234,6 +234,9 @@ def _damage(data: bytes, draw) -> bytes:
         return data[:i] + bytes([data[i] ^ draw(st.integers(1, 255))]) + data[i + 1:]
     if how == "huge":
         return data.replace(b" 1 ", b" 99999999999999999999999 ", 1)
+    if how == "huge_count":   # the last face's corner count in an ASCII PLY or OFF
+        head, sep, tail = data.rpartition(b"\n3 ")
+        return head + b"\n99999999999999999999999 " + tail if sep else data
     if how == "header_count" and b"element face " in data:
         head, _, rest = data.partition(b"element face ")
         count, _, tail = rest.partition(b"\n")
@@ -456,31 +459,53 @@ def test_damaged_cache_entries_are_recomputed(how, pick, job):
                                        atol=1.0 if a.dtype.kind in "iu" else 1e-9)
 
 
-def _kill_run(folder: Path, sig: int, delay: float) -> int:
+def _kill_run(folder: Path, sig: int | None, delay: float) -> int:
+    """Run a cold ``detail`` job in ``folder``; send ``sig`` after ``delay`` seconds (None: let it finish)."""
     env = {**os.environ, "PYTHONPATH": str(ROOT), "OPENBLAS_NUM_THREADS": "1", "OMP_NUM_THREADS": "1"}
     args = [sys.executable, "-m", "engine", "detail", str(folder / "src.ply"), str(folder / "tgt.ply"),
             "-o", str(folder / "out.ply"), "--report", str(folder / "r.json"), "--cache", str(folder / "cache")]
     proc = subprocess.Popen(args, env=env, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
-    time.sleep(delay)
-    proc.send_signal(sig)
+    if sig is not None:
+        time.sleep(delay)
+        proc.send_signal(sig)
     _, err = proc.communicate(timeout=120)
     assert b"Traceback" not in err
     return proc.returncode
 
 
+def _kill_inputs(folder: Path) -> None:
+    v, f = meshes.icosphere(4)
+    write_ply(folder / "src.ply", v * (1 + 0.02 * np.sin(9 * v[:, :1])), faces=f)
+    t_v, t_f = meshes.noisy_sphere(4, 0.01)
+    write_ply(folder / "tgt.ply", t_v, faces=t_f)
+
+
+_RUN_SECONDS: list[float] = []
+
+
+def _run_seconds() -> float:
+    """How long the job takes uninterrupted on this machine now (measured once)."""
+    if not _RUN_SECONDS:
+        with workspace() as folder:
+            _kill_inputs(folder)
+            start = time.perf_counter()
+            assert _kill_run(folder, None, 0.0) == 0
+            _RUN_SECONDS.append(time.perf_counter() - start)
+    return _RUN_SECONDS[0]
+
+
 @settings(max_examples=max(2, EXAMPLES // 10), deadline=None, database=None, derandomize=not LONG,
           suppress_health_check=list(HealthCheck))
-@given(st.sampled_from([signal.SIGINT, signal.SIGTERM, signal.SIGKILL]), st.floats(0.0, 1.6))
-def test_killed_runs_leave_nothing_behind(sig, delay):
+@given(st.sampled_from([signal.SIGINT, signal.SIGTERM, signal.SIGKILL]), st.floats(0.0, 1.0))
+def test_killed_runs_leave_nothing_behind(sig, fraction):
     # SIGINT and SIGTERM: the run removes its own temporary files. SIGKILL
-    # cannot be handled: the next run removes what the killed one left.
+    # cannot be handled: the next run removes what the killed one left. The
+    # signal comes a fraction of an uninterrupted run's time after the start,
+    # so it reaches the importing, the computing and the writing on a fast
+    # machine as on a slow one.
     with workspace() as folder:
-        # a run takes about 1.3 s here, 0.55 s of it importing: the delays
-        # reach the computing and the writing
-        v, f = meshes.icosphere(4)
-        write_ply(folder / "src.ply", v * (1 + 0.02 * np.sin(9 * v[:, :1])), faces=f)
-        t_v, t_f = meshes.noisy_sphere(4, 0.01)
-        write_ply(folder / "tgt.ply", t_v, faces=t_f)
+        _kill_inputs(folder)
+        delay = fraction * _run_seconds()
         code = _kill_run(folder, sig, delay)
         OUTCOMES[f"killed runs: {signal.Signals(sig).name} exit {code}"] += 1
         outputs = {p.name for p in folder.iterdir()} & {"out.ply", "r.json"}

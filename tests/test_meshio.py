@@ -11,7 +11,6 @@ import os
 import numpy as np
 import pytest
 
-from engine.intake import files as meshio
 from engine.intake.files import MeshData, read_mesh, write_ply
 from tests import refdata
 
@@ -500,6 +499,9 @@ def test_huge_face_indices_are_refused(tmp_path, name, content):
 
 @pytest.mark.parametrize("content, message", [
     (ply_bytes("ascii", PLY_HEAD + FACE, TRI + b"99999999999999999999999 0 1 2\n"), "truncated data"),
+    # a huge count after a normal record (the path that reads records of equal lengths at once)
+    (ply_bytes("ascii", PLY_HEAD + "element face 2\nproperty list uchar int vertex_indices\n",
+               TRI + b"3 0 1 2\n99999999999999999999999 0 1 2\n"), "truncated data"),
     (ply_bytes("binary_little_endian", PLY_HEAD + "element face 1\nproperty list uint int vertex_indices\n",
                np.zeros(9, np.float32).tobytes() + np.array([4000000000], "<u4").tobytes() + bytes(12)),
      "truncated data: a list of 4000000000 items"),

@@ -35,6 +35,7 @@ from numpy.typing import ArrayLike, NDArray
 from scipy.sparse import coo_matrix
 from scipy.sparse.csgraph import connected_components
 
+from ..intake.preparation import group_edges
 from .corners import CornerResult, triangle_corners
 from .faces import FaceHits, faces_under_centres, polygon_arrays
 from .signals import check_signal
@@ -68,10 +69,10 @@ def polygon_islands(values: NDArray[np.float64], corner_verts: NDArray[np.int64]
     a, b = corner_verts[corner], corner_verts[nxt]
     lo_c = np.where(a <= b, corner, nxt)          # the corner at the lower vertex of the edge
     hi_c = np.where(a <= b, nxt, corner)
-    lo_v, hi_v = np.minimum(a, b), np.maximum(a, b)
-    order = np.lexsort((hi_v, lo_v))
-    shared = (lo_v[order][1:] == lo_v[order][:-1]) & (hi_v[order][1:] == hi_v[order][:-1])
-    first, second = order[:-1][shared], order[1:][shared]
+    edges = group_edges(a, b, int(corner_verts.max(initial=0)) + 1)
+    group = edges.group_of()
+    shared = group[1:] == group[:-1]
+    first, second = edges.order[:-1][shared], edges.order[1:][shared]
     extent = float(np.ptp(values, axis=0).max()) if len(values) else 0.0
     tol = SAME_VALUE * max(extent, 1.0)
     agree = ((np.abs(values[lo_c[first]] - values[lo_c[second]]).max(axis=1) <= tol)

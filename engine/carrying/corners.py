@@ -23,9 +23,10 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
 from ..matching.closest_point import SurfaceLocator
-from .signals import check_signal
+from .faces import polygon_arrays
+from .signals import check_signal, clamp
 
-__all__ = ["CornerResult", "carry_corners", "vertex_average", "seam_vertices", "triangle_corners"]
+__all__ = ["CornerResult", "Polygons", "carry_corners", "vertex_average", "seam_vertices", "triangle_corners"]
 
 
 @dataclass(frozen=True)
@@ -84,21 +85,23 @@ def triangle_corners(shape: Any, corner_verts: NDArray[np.int64], face_sizes: ND
     return slot_corner
 
 
-def carry_corners(pair: Any, name: str, values: ArrayLike, kind: str, source_corner_verts: ArrayLike,
-                  source_face_sizes: ArrayLike, target_corner_verts: ArrayLike, target_face_sizes: ArrayLike,
-                  *, basis: str | None = None, inset: float = 0.25) -> CornerResult:
+Polygons = tuple[ArrayLike, ArrayLike]
+"""A mesh's polygons: ``(corner_verts, face_sizes)``, a flat corner list and corners per face."""
+
+
+def carry_corners(pair: Any, name: str, values: ArrayLike, kind: str, source_polygons: Polygons,
+                  target_polygons: Polygons, *, basis: str | None = None, inset: float = 0.25) -> CornerResult:
     """Carry one corner signal from ``pair.source`` to ``pair.target``.
 
     Parameters
     ----------
-    pair : engine.pipeline.Pair
+    pair : engine.jobs.pair.Pair
         Its shapes must have been built from the same polygons (corner lists
         and face sizes) as given here.
     name : str
     values : (c_source, channels) float array, one row per source corner
     kind : {"color", "weight", "float", "vector"}
-    source_corner_verts, source_face_sizes : int arrays, the source polygons
-    target_corner_verts, target_face_sizes : int arrays, the target polygons
+    source_polygons, target_polygons : (corner_verts, face_sizes) int arrays
     basis : str, optional
         Basis for the point part (default: the pair's).
     inset : float
@@ -110,12 +113,8 @@ def carry_corners(pair: Any, name: str, values: ArrayLike, kind: str, source_cor
         ``values`` (c_target, channels).
     """
     S, T = pair.source, pair.target
-    s_cv = np.asarray(source_corner_verts, dtype=np.int64)
-    s_sizes = np.asarray(source_face_sizes, dtype=np.int64)
-    t_cv = np.asarray(target_corner_verts, dtype=np.int64)
-    t_sizes = np.asarray(target_face_sizes, dtype=np.int64)
-    if s_sizes.sum() != len(s_cv) or t_sizes.sum() != len(t_cv):
-        raise ValueError("face sizes do not add up to the corner counts")
+    s_cv, s_sizes = polygon_arrays(*source_polygons)
+    t_cv, t_sizes = polygon_arrays(*target_polygons)
     if kind in ("label", "mask"):
         raise ValueError(f"corner signal {name!r}: labels and masks are carried per vertex, not per corner")
     vals = check_signal(name, values, len(s_cv), kind).reshape(len(s_cv), -1)
@@ -130,13 +129,21 @@ def carry_corners(pair: Any, name: str, values: ArrayLike, kind: str, source_cor
     to_clean = np.asarray(S.prepared.to_clean)
     seam_clean = np.zeros(S.n_vertices, dtype=bool)
     seam_clean[to_clean[seam & (to_clean >= 0)]] = True
-    corr = pair.correspondence
-    near = T.restore(seam_clean[S.faces[corr.triangle]].any(axis=1))
+    near = T.restore(seam_clean[S.faces[pair.correspondence.triangle]].any(axis=1))
     chosen = np.flatnonzero(near[t_cv])
-    if chosen.size == 0:
-        return CornerResult(out, float(result.source_error))
-    # target corners, a little inside their faces, mapped into the source
-    mapped = T.restore(corr.points())
+    if chosen.size:
+        out[chosen] = _corners_near_seams(pair, name, vals, kind, (s_cv, s_sizes), (t_cv, t_sizes), chosen, inset)
+    return CornerResult(out, float(result.source_error))
+
+
+def _corners_near_seams(pair: Any, name: str, vals: NDArray[np.float64], kind: str,
+                        source: tuple[NDArray[np.int64], NDArray[np.int64]],
+                        target: tuple[NDArray[np.int64], NDArray[np.int64]],
+                        chosen: NDArray[np.intp], inset: float) -> NDArray[np.float64]:
+    """Values of the ``chosen`` target corners from the source corner under each, moved ``inset`` into its face."""
+    S, T = pair.source, pair.target
+    (s_cv, s_sizes), (t_cv, t_sizes) = source, target
+    mapped = T.restore(pair.correspondence.points())
     faces = _corner_faces(t_sizes)
     centroids = np.zeros((len(t_sizes), 3))
     np.add.at(centroids, faces, mapped[t_cv])
@@ -144,10 +151,5 @@ def carry_corners(pair: Any, name: str, values: ArrayLike, kind: str, source_cor
     at = mapped[t_cv[chosen]]
     hit = SurfaceLocator(S.vertices, S.faces).closest(at + inset * (centroids[faces[chosen]] - at))
     slot_corner = triangle_corners(S, s_cv, s_sizes, hit.triangle, name)
-    carried = np.einsum("qj,qjc->qc", hit.barycentric, vals[slot_corner])
-    if kind in ("color", "weight"):
-        carried = np.clip(carried, 0.0, 1.0)
-    else:
-        carried = np.clip(carried, vals.min(axis=0), vals.max(axis=0))
-    out[chosen] = carried
-    return CornerResult(out, float(result.source_error))
+    carried: NDArray[np.float64] = np.einsum("qj,qjc->qc", hit.barycentric, vals[slot_corner])
+    return clamp(carried, kind, vals)

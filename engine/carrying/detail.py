@@ -64,7 +64,7 @@ def vertex_normals(vertices: ArrayLike, faces: ArrayLike) -> NDArray[Any]:
 
 def vertex_normals_unchecked(v: NDArray[Any], f: NDArray[Any]) -> NDArray[Any]:
     """:func:`vertex_normals` of an already validated mesh (the alignment
-    loop of engine.correspondence calls it on every step)."""
+    loop of engine.matching.correspondence calls it on every step)."""
     fn = np.cross(v[f[:, 1]] - v[f[:, 0]], v[f[:, 2]] - v[f[:, 0]])  # length = 2 * area
     n = np.zeros_like(v)
     for c in range(3):

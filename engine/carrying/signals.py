@@ -123,7 +123,7 @@ def check_signal(name: str, values: ArrayLike, n: int, kind: str) -> NDArray[Any
 
 def signals_from_properties(properties: dict[str, NDArray[Any]], *,
                             names: Iterable[str] | None = None) -> dict[str, Signal]:
-    """Signals from file vertex properties (as ``meshio.read_mesh`` returns them).
+    """Signals from file vertex properties (as ``engine.intake.files.read_mesh`` returns them).
 
     Parameters
     ----------

@@ -16,9 +16,9 @@ Bases
     products       the raw products, fitted by least squares
 
 The default basis is pointwise: on every ground-truth pair of
-benchmarks/transfer_accuracy.py the basis routes tie with it (smooth
-patterns, colour RMSE within 1e-4) or lose to it (real meshes: the basis's
-own source error of 1.5-2.5% adds to the map's), so none earns its cost yet.
+benchmarks/transfer_accuracy.py the basis routes tie with it or lose to it
+(their own source error adds to the map's; figures in the README's accuracy
+table), so none earns its cost yet.
 
 Blended values are clamped by :func:`engine.carrying.signals.clamp` (colours,
 linear, and weights to [0, 1]; floats and vectors to the source's own

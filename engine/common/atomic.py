@@ -40,7 +40,7 @@ from typing import IO, Any
 
 __all__ = ["atomic_write", "atomic_writes", "Staging", "remove_leftovers", "terminate_as_interrupt",
            "TEMP_SUFFIX", "is_temporary", "Terminated",
-           "quiet_interrupts_while_starting"]
+           "quiet_interrupts_while_starting", "remove_own_temporaries"]
 
 TEMP_SUFFIX = ".overtone-tmp"
 _TEMP_NAME = re.compile(r"^\..*\.(\d+)-[0-9a-f]{8}" + re.escape(TEMP_SUFFIX) + "$")
@@ -50,6 +50,10 @@ _TEMP_NAME = re.compile(r"^\..*\.(\d+)-[0-9a-f]{8}" + re.escape(TEMP_SUFFIX) + "
 _FLAGS = os.O_RDWR | os.O_CREAT | os.O_EXCL | getattr(os, "O_NOFOLLOW", 0) | getattr(os, "O_BINARY", 0)
 _ATTEMPTS = getattr(os, "TMP_MAX", 10000)  # as tempfile.TMP_MAX
 _STALE_SECONDS = 24 * 3600  # where a process cannot be asked whether it runs
+# Temporary files of this process not yet renamed or removed. A name is listed
+# before its file is created and leaves the list after the rename or removal,
+# so an interrupt between any two steps leaves nothing unlisted.
+_PENDING: set[str] = set()
 
 
 def is_temporary(name: str) -> bool:
@@ -88,6 +92,7 @@ class Staging:
             while self.staged:
                 tmp, target = self.staged[0]
                 os.replace(tmp, target)
+                _PENDING.discard(tmp)
                 self.staged.pop(0)
                 _sync_folder(target)
         finally:
@@ -140,10 +145,15 @@ def _create(target: str) -> tuple[int, str]:
     stem = f".{os.path.basename(target)}.{os.getpid()}-"
     for _ in range(_ATTEMPTS):
         tmp = os.path.join(folder, f"{stem}{secrets.token_hex(4)}{TEMP_SUFFIX}")
+        _PENDING.add(tmp)
         try:
             return os.open(tmp, _FLAGS, 0o666), tmp
         except FileExistsError:
+            _PENDING.discard(tmp)
             continue
+        except BaseException:
+            _PENDING.discard(tmp)
+            raise
     raise FileExistsError(errno.EEXIST, f"no free temporary file name in {folder!r}")
 
 
@@ -152,6 +162,21 @@ def _remove(path: str) -> None:
         os.remove(path)
     except OSError:
         pass
+    _PENDING.discard(path)
+
+
+def remove_own_temporaries() -> int:
+    """Remove every temporary file this process created and has not renamed; returns how many.
+
+    For the end of an interrupted run: whatever step the interrupt hit (even
+    between creating a file and handing it to the code that cleans up), no
+    temporary file of this process outlives it.
+    """
+    removed = 0
+    for tmp in sorted(_PENDING):
+        removed += os.path.lexists(tmp)
+        _remove(tmp)
+    return removed
 
 
 def _sync_folder(target: str) -> None:

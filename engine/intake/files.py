@@ -73,7 +73,7 @@ class MeshData:
     properties: dict[str, NDArray[Any]] = field(default_factory=dict)
 
     def triangles(self) -> NDArray[Any]:
-        """The polygons as triangles, (t, 3) int64, by ear clipping (``_triangulate``)."""
+        """The polygons as triangles, (t, 3) int64, by ``engine.intake.triangulation``."""
         return triangulate(self.vertices, self.corners, self.sizes)[0]
 
 
@@ -574,7 +574,7 @@ class _AsciiBody:
                 try:
                     if not (block[:, start].astype(np.int64) == k).all():
                         return None
-                except ValueError:
+                except (ValueError, OverflowError):   # the record-by-record path names the problem
                     return None
         self.pos += n * width
         if not keep:

@@ -32,7 +32,7 @@ import warnings
 from collections.abc import Sequence
 from typing import NoReturn
 
-from ..common.atomic import Terminated, is_temporary, terminate_as_interrupt
+from ..common.atomic import Terminated, is_temporary, remove_own_temporaries, terminate_as_interrupt
 
 EXIT_BAD_INPUT = 2
 EXIT_INTERNAL = 3
@@ -117,9 +117,11 @@ def main(argv: Sequence[str] | None = None) -> int:
         try:
             return _run(args)
         except Terminated:
+            remove_own_temporaries()
             print("error: terminated", file=sys.stderr)
             return EXIT_TERMINATED
         except KeyboardInterrupt:
+            remove_own_temporaries()
             print("error: interrupted", file=sys.stderr)
             return EXIT_INTERRUPTED
         except Exception as exc:  # every other failure ends in one line, never a traceback

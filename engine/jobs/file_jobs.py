@@ -39,6 +39,10 @@ __all__ = ["JobFiles", "JobOptions", "check_paths", "unit_frame", "surface_point
 PathLike = str | os.PathLike[str]
 _FAR = 1e100  # unit-frame coordinates are clipped here (vertices far outside the surface only;
              # squared distances to them stay finite)
+# A mesh whose faces vanish in the pair's common frame and that spans less than
+# this fraction of it is named as too small beside the other (only the message
+# depends on it: such a mesh is refused either way).
+_TOO_SMALL = 1e-6
 
 
 @dataclass(frozen=True)
@@ -153,12 +157,27 @@ def read_shape(data: MeshData, cache: Cache | None, frame: tuple[NDArray[Any], f
                  cache=cache)
 
 
+def _shape_in_frame(path: PathLike, data: MeshData, cache: Cache | None,
+                    frame: tuple[NDArray[Any], float]) -> Shape:
+    """:func:`read_shape`, naming the cause when a mesh is too small beside the other to keep its faces."""
+    try:
+        return read_shape(data, cache, frame)
+    except ValueError as exc:
+        points = surface_points(data)
+        relative = float(np.max(np.ptp(points, axis=0))) / (2 * frame[1]) if len(points) else 0.0
+        if relative < _TOO_SMALL:
+            raise ValueError(f"{os.fspath(path)}: about {relative:.0e} times the size of the other mesh, too small "
+                             f"beside it to keep its faces; bring the two meshes to a similar size") from exc
+        raise
+
+
 def _open_pair(files: JobFiles) -> tuple[MeshData, Shape, MeshData, Shape, tuple[NDArray[Any], float]]:
     check_paths(files.inputs(), files.outputs())
     src_data, tgt_data = read_mesh(files.source), read_mesh(files.target)
     cache = Cache(files.cache) if files.cache else None
     frame = unit_frame(surface_points(src_data), surface_points(tgt_data))
-    return src_data, read_shape(src_data, cache, frame), tgt_data, read_shape(tgt_data, cache, frame), frame
+    return (src_data, _shape_in_frame(files.source, src_data, cache, frame),
+            tgt_data, _shape_in_frame(files.target, tgt_data, cache, frame), frame)
 
 
 def _settings(files: JobFiles, source: Shape, target: Shape, **options: Any) -> Settings:

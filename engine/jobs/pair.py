@@ -191,7 +191,7 @@ class Pair:
         ----------
         signals : dict name -> (values, kind)
             ``values`` per original source vertex; ``kind`` one of
-            ``engine.signals.KINDS``. All are validated before any is carried.
+            ``engine.carrying.signals.KINDS``. All are validated before any is carried.
             Every signal of kind ``"weight"`` is carried together with the
             others as vertex groups (:func:`engine.carrying.weights.carry_weights`);
             what happened to them is in :attr:`weights_report`.
@@ -221,14 +221,12 @@ class Pair:
         self.timings["signals"] = round(time.perf_counter() - t0 - self.timings["bases"], 4)
         return {name: out[name] for name in checked}
 
-    def carry_corners(self, name: str, values: ArrayLike, kind: str, source_corner_verts: ArrayLike,
-                      source_face_sizes: ArrayLike, target_corner_verts: ArrayLike,
-                      target_face_sizes: ArrayLike, *, basis: str | None = None,
+    def carry_corners(self, name: str, values: ArrayLike, kind: str, source_polygons: tuple[ArrayLike, ArrayLike],
+                      target_polygons: tuple[ArrayLike, ArrayLike], *, basis: str | None = None,
                       inset: float = 0.25) -> Any:
-        """Carry one per-corner signal, keeping its seams (``engine.corners.carry_corners``)."""
+        """Carry one per-corner signal, keeping its seams (``engine.carrying.corners.carry_corners``)."""
         from ..carrying.corners import carry_corners
-        return carry_corners(self, name, values, kind, source_corner_verts, source_face_sizes,
-                             target_corner_verts, target_face_sizes, basis=basis, inset=inset)
+        return carry_corners(self, name, values, kind, source_polygons, target_polygons, basis=basis, inset=inset)
 
     # ----------------------------------------------------------------- detail
     def detail(self, *, strength: float | None = None, size: float | None = None,
@@ -236,7 +234,7 @@ class Pair:
         """New target positions carrying the source's surface detail.
 
         Each mesh is split into a smooth base and offsets in the base's
-        local frames (:mod:`engine.detail`), features shorter than ``size``
+        local frames (:mod:`engine.carrying.detail`), features shorter than ``size``
         times the square root of the source's area counting as detail. The
         source's offsets are pulled to the target, scaled by the square root
         of the area ratio (so detail keeps its size relative to the shape),

@@ -3,8 +3,8 @@
 A basis is anything with ``project(signal) -> coefficients`` and
 ``reconstruct(coefficients) -> signal`` (:class:`Basis`): the Laplacian
 eigenbasis (:class:`LaplacianBasis` here), the orthogonalised eigenfunction
-products (:class:`engine.products.ProductBasis`) and the raw products fitted by
-least squares (:class:`engine.products.LeastSquaresProducts`).
+products (:class:`engine.spectra.products.ProductBasis`) and the raw products fitted by
+least squares (:class:`engine.spectra.products.LeastSquaresProducts`).
 
 Errors are measured in the mass inner product: for a signal ``f`` and its
 approximation ``g``, ``||g - f||_M / ||f||_M`` with ``||f||_M^2 = f^T M f``.
