@@ -446,12 +446,13 @@ def test_a_copy_placed_apart_and_matched_by_shape_is_warned_about(mod, scene):
     bpy.ops.object.mode_set(mode='OBJECT')
     tgt.location = (3.0, 0.0, 0.0)
     select(src, tgt)
-    assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
-    report = json.loads(scene.overtone.report_json)
-    assert report["mode"] == "intrinsic"
-    assert any("'Post Copy' looks like a copy of 'Post' placed elsewhere" in w and "Ignore Placement" in w
-               for w in report["warnings"])
-    # matched in place, as the warning says: each vertex gets its own height back
+    # matched by shape the two ends are interchangeable: the confidence sees the doubt
+    # (most vertices uncertain), so nothing is written and the error says what to do
+    with pytest.raises(RuntimeError, match="'Post Copy' looks like a copy of 'Post' placed elsewhere") as error:
+        bpy.ops.overtone.transfer_attributes()
+    assert "no reliable match" in str(error.value) and "Ignore Placement" in str(error.value)
+    assert "height" not in tgt.data.color_attributes
+    # matched in place, as the error says: each vertex gets its own height back
     scene.overtone.local_space = True
     assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
     report = json.loads(scene.overtone.report_json)
@@ -486,7 +487,12 @@ def test_modifiers_the_run_does_not_see_are_warned_about(mod, scene, capsys):
     label = scene.overtone.bl_rna.properties["as_shown"].name
     assert any("source 'Painted'" in w and "(mirror)" in w and f"tick {label}" in w for w in warnings)
     assert "Warning: Overtone:" in capsys.readouterr().out
-    scene.overtone.as_shown = True          # asked for what is shown: nothing to warn about
+    # asked for what is shown: nothing to warn about (a modifier that keeps the creature
+    # a creature: the mirrored one, a creature and its reflection, is another shape)
+    src.modifiers.remove(src.modifiers["mirror"])
+    smooth = src.modifiers.new("smooth", 'SMOOTH')
+    smooth.factor, smooth.iterations = 0.2, 1
+    scene.overtone.as_shown = True
     assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
     assert json.loads(scene.overtone.report_json)["warnings"] == []
     # the target's own modifiers (a Subdivision on most characters) are mentioned, not warned
@@ -632,12 +638,19 @@ def test_a_sphere_matched_to_a_ring_is_not_called_sure(mod, scene):
     colour.data.foreach_set("color", np.full(len(src.data.vertices) * 4, 0.5, np.float32))
     bpy.ops.object.select_all(action='DESELECT')
     select(src, tgt)
+    # the confidence sees it (nearly every vertex uncertain): refused, target untouched
+    with pytest.raises(RuntimeError, match="no reliable match") as error:
+        bpy.ops.overtone.transfer_attributes()
+    assert "the source has 0 and the target 1 handles" in str(error.value)
+    assert "tint" not in tgt.data.color_attributes
+    # written when the artist insists, with both reasons to doubt it
+    scene.overtone.write_anyway = True
     assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
     report = json.loads(scene.overtone.report_json)
     assert report["mode"] == "intrinsic" and report["handles"] == {"source": 0, "target": 1}
     assert any("the source has 0 and the target 1 handles" in w for w in report["warnings"])
     level, text = mod.runs.message_of(report)
-    assert level == {'WARNING'} and "cannot correspond everywhere" in text
+    assert level == {'WARNING'} and "cannot correspond everywhere" in text and "written anyway" in text
 
 
 def test_batch_refuses_a_failed_match_unless_told(mod, scene, tmp_path):
