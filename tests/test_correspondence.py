@@ -218,7 +218,7 @@ def test_similarity_fit_leaves_a_similar_copy_unchanged():
     scale are exact and the energy is zero, so the global step's right-hand
     side equals L X (analytic: the gradient of a zero-energy minimum vanishes).
     Without the scale the same copy is not a minimum."""
-    from engine.matching.correspondence import _SimilarityFit
+    from engine.matching.nonrigid import SimilarityFit
     p = pairs.creature_rigid(size=(20, 14))
     S = Shape(p.source_vertices, p.source_faces)
     L = S.stiffness.tocsr()
@@ -226,23 +226,23 @@ def test_similarity_fit_leaves_a_similar_copy_unchanged():
     R = np.array([[np.cos(a), -np.sin(a), 0], [np.sin(a), np.cos(a), 0], [0, 0, 1]])
     X = 1.7 * S.vertices @ R.T + np.array([3.0, -2.0, 1.0])
     LX = L @ X
-    np.testing.assert_allclose(_SimilarityFit(L, S.vertices).rhs(X), LX, atol=1e-9 * np.abs(LX).max() + 1e-12)
-    assert np.abs(_SimilarityFit(L, S.vertices, scale=False).rhs(X) - LX).max() > 0.1 * np.abs(LX).max()
+    np.testing.assert_allclose(SimilarityFit(L, S.vertices).rhs(X), LX, atol=1e-9 * np.abs(LX).max() + 1e-12)
+    assert np.abs(SimilarityFit(L, S.vertices, scale=False).rhs(X) - LX).max() > 0.1 * np.abs(LX).max()
 
 
 @pytest.mark.refdata
 def test_cheap_closest_points_agree_with_the_full_search():
-    """_near_closest (used between alignment solves) against SurfaceLocator,
+    """near_closest (used between alignment solves) against SurfaceLocator,
     itself checked against brute force and libigl in test_closest_point.py,
     on the CGAL elephant with queries up to an edge length off the surface."""
     from engine.matching.closest_point import SurfaceLocator, incident_triangles
-    from engine.matching.correspondence import _near_closest
+    from engine.matching.nonrigid import near_closest
     p = pairs.elephant_bent()
     S = Shape(p.source_vertices, p.source_faces)
     rng = np.random.default_rng(1)
     q = S.vertices + S.mean_edge * rng.uniform(-1, 1, S.vertices.shape)
     full = SurfaceLocator(S.vertices, S.faces).closest(q)
-    tri, w, pts = _near_closest(S.vertices, S.faces, incident_triangles(S.faces, S.n_vertices), q)
+    tri, w, pts = near_closest(S.vertices, S.faces, incident_triangles(S.faces, S.n_vertices), q)
     np.testing.assert_allclose(np.einsum("ij,ijk->ik", w, S.vertices[S.faces[tri]]), pts, atol=1e-12)
     d = np.linalg.norm(pts - q, axis=1)
     assert (d >= full.distance - 1e-12).all()
@@ -307,17 +307,17 @@ def test_aligned_check_leaves_a_smoothly_offset_surface_alone():
 
 
 def test_row_scale_weights_the_last_three_columns():
-    # _row_distances with row_scale must equal plain squared distances after
+    # row_distances with row_scale must equal plain squared distances after
     # scaling the last three columns of both sides by that row's factor.
-    from engine.matching.correspondence import _row_distances
+    from engine.matching.embedding import row_distances
     rng = np.random.default_rng(5)
     Qt, Qs = rng.normal(size=(7, 6)), rng.normal(size=(20, 6))
     cand = rng.integers(0, 20, size=(7, 4))
     scale = rng.uniform(0.5, 3.0, size=7)
-    got = _row_distances(Qt, Qs, cand, row_scale=scale)
+    got = row_distances(Qt, Qs, cand, row_scale=scale)
     want = np.empty_like(got)
     for i in range(7):
         w = np.r_[np.ones(3), np.full(3, scale[i])]
         want[i] = (((Qs[cand[i]] - Qt[i]) * w) ** 2).sum(axis=1)
     np.testing.assert_allclose(got, want, rtol=1e-12)
-    np.testing.assert_array_equal(_row_distances(Qt, Qs, cand, row_scale=np.ones(7)), _row_distances(Qt, Qs, cand))
+    np.testing.assert_array_equal(row_distances(Qt, Qs, cand, row_scale=np.ones(7)), row_distances(Qt, Qs, cand))

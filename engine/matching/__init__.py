@@ -1,6 +1,11 @@
 """Matching: which point of the source surface each target vertex corresponds to.
 
-closest_point   exact closest points on a triangle mesh
+correspondence  the driver: Correspondence, correspond() (auto / aligned / intrinsic) and its confidence
+modes           MatchOptions (tuning) and ModeResult (what each mode hands back)
+aligned         aligned mode: closest points, checked in the product embedding where the surfaces differ
+intrinsic       intrinsic mode: functional map, ZoomOut, non-rigid alignment, product-embedding search
+nonrigid        deforming the source onto the target (non-rigid ICP, as similar as possible)
+embedding       the orthogonalised-product embedding through a map and the search in it
 functional_map  functional maps, their point-to-point conversion, ZoomOut refinement
-correspondence  the correspondence itself (aligned, intrinsic, auto) and its confidence
+closest_point   exact closest points on a triangle mesh
 """

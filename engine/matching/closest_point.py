@@ -1,12 +1,25 @@
-"""Closest points on a triangle surface, vectorised.
+"""Closest points on a triangle surface, vectorised and exact.
 
 For each query point the exact closest point on every candidate triangle is
 computed (Ericson, Real-Time Collision Detection, 2005, section 5.1.5, the
-Voronoi-region test), and the nearest wins. Candidates come from a
-``cKDTree`` search: the triangles incident to the few nearest vertices and the
-triangles whose centroids are nearest. This is exact whenever the closest
-triangle is among them, which holds on meshes without extreme slivers; the
-tests compare it with a brute-force search and with libigl.
+Voronoi-region test), and the nearest wins. Candidates come in two passes:
+
+1. a ``cKDTree`` search: the triangles incident to the few nearest vertices
+   and the triangles whose centroids are nearest. On ordinary meshes this
+   already holds the closest triangle;
+2. a bound that makes the answer exact: a triangle with centroid ``c`` and
+   bounding radius ``r`` (the farthest corner from ``c``) is no nearer to
+   ``q`` than ``|q - c| - r``, so only triangles with ``|q - c| - r`` below
+   the distance found in pass 1 can beat it, and every one of them is
+   checked. Triangles are grouped by bounding radius (powers of two of the
+   median), one centroid tree per group, so a few long triangles (fan caps,
+   slivers) do not widen the search among the ordinary ones. A triangle left
+   out of pass 1's centroid candidates lies at least as far from ``q`` as the
+   farthest of them, so a query whose pass-1 candidates already reach past
+   the bound of a group skips that group.
+
+A pass-2 triangle replaces the pass-1 answer only if it is nearer by more than
+``1e-12`` of the mesh's bounding-box diagonal, so ties keep pass 1's choice.
 """
 
 from __future__ import annotations
@@ -14,11 +27,23 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+from numpy.typing import ArrayLike, NDArray
+from scipy import sparse
 from scipy.spatial import cKDTree
 
 from ..intake.preparation import validate_mesh
 
-__all__ = ["closest_points_on_triangles", "SurfaceLocator", "SurfacePoints"]
+__all__ = ["closest_points_on_triangles", "SurfaceLocator", "SurfacePoints", "incident_triangles",
+           "barycentric_matrix"]
+
+FloatArray = NDArray[np.float64]
+IntArray = NDArray[np.int64]
+
+TIE_TOLERANCE = 1e-12
+"""A pass-2 triangle wins only if nearer by this fraction of the bounding-box diagonal."""
+
+PASS2_BLOCK = 2000
+"""Queries per block of pass 2 (its frontier of query-group pairs stays in cache)."""
 
 
 @dataclass(frozen=True)
@@ -36,14 +61,18 @@ class SurfacePoints:
         Distance from each query to its point.
     """
 
-    triangle: np.ndarray
-    barycentric: np.ndarray
-    points: np.ndarray
-    distance: np.ndarray
+    triangle: IntArray
+    barycentric: FloatArray
+    points: FloatArray
+    distance: FloatArray
 
 
-def closest_points_on_triangles(query, a, b, c):
+def closest_points_on_triangles(query: ArrayLike, a: FloatArray, b: FloatArray,
+                                c: FloatArray) -> tuple[FloatArray, FloatArray]:
     """Closest point of each query on its own triangle (a, b, c).
+
+    Degenerate triangles (corners on one line or coinciding) are the union of
+    their edges and get the closest point on those.
 
     Parameters
     ----------
@@ -77,6 +106,7 @@ def closest_points_on_triangles(query, a, b, c):
         den = va + vb + vc
         v_ = vb / den
         w_ = vc / den
+        u_ = 1 - v_ - w_
     regions = [(d1 <= 0) & (d2 <= 0),                                   # vertex a
                (d3 >= 0) & (d4 <= d3),                                  # vertex b
                (vc <= 0) & (d1 >= 0) & (d3 <= 0),                       # edge ab
@@ -84,18 +114,51 @@ def closest_points_on_triangles(query, a, b, c):
                (vb <= 0) & (d2 >= 0) & (d6 <= 0),                       # edge ac
                (va <= 0) & ((d4 - d3) >= 0) & ((d5 - d6) >= 0)]         # edge bc
     w = np.empty((len(p), 3))                                           # else: interior
-    w[:, 0] = np.select(regions, [1.0, 0.0, 1 - t_ab, 0.0, 1 - t_ac, 0.0], 1 - v_ - w_)
+    w[:, 0] = np.select(regions, [1.0, 0.0, 1 - t_ab, 0.0, 1 - t_ac, 0.0], u_)
     w[:, 1] = np.select(regions, [0.0, 1.0, t_ab, 0.0, 0.0, 1 - t_bc], v_)
     w[:, 2] = np.select(regions, [0.0, 0.0, 0.0, 1.0, t_ac, t_bc], w_)
-    # degenerate triangles can leave NaN: fall back to the nearest corner
-    bad = ~np.isfinite(w).all(axis=1)
-    if bad.any():
-        dist = np.stack([np.linalg.norm(p[bad] - x[bad], axis=1) for x in (a, b, c)], axis=1)
-        w[bad] = np.eye(3)[np.argmin(dist, axis=1)]
+    # Degenerate and near-degenerate triangles (sine of the angle at a below
+    # 1e-5) can leave NaN or, by rounding, the wrong region: there the closest
+    # point on the edges is taken if it is nearer.
+    aa, cc, ac_ab = (np.einsum("ij,ij->i", x, y) for x, y in ((ab, ab), (ac, ac), (ab, ac)))
+    flat = aa * cc - ac_ab * ac_ab <= 1e-10 * aa * cc             # |ab x ac|^2 against |ab|^2 |ac|^2
+    bad = flat | ~np.isfinite(w).all(axis=1)
+    w[bad] = np.nan_to_num(w[bad], nan=1.0, posinf=1.0, neginf=0.0)
     w = np.clip(w, 0.0, 1.0)
     w /= w.sum(axis=1, keepdims=True)
+    if bad.any():
+        w[bad] = _nearer(p[bad], w[bad], _closest_on_edges(p[bad], a[bad], b[bad], c[bad]), a[bad], b[bad], c[bad])
     pts = w[:, :1] * a + w[:, 1:2] * b + w[:, 2:] * c
     return w, pts
+
+
+def _nearer(p: FloatArray, w1: FloatArray, w2: FloatArray, a: FloatArray, b: FloatArray,
+            c: FloatArray) -> FloatArray:
+    """Per row, whichever of the weights ``w1``, ``w2`` gives the point nearer to ``p``."""
+    x1 = w1[:, :1] * a + w1[:, 1:2] * b + w1[:, 2:] * c
+    x2 = w2[:, :1] * a + w2[:, 1:2] * b + w2[:, 2:] * c
+    take = np.einsum("ij,ij->i", x2 - p, x2 - p) < np.einsum("ij,ij->i", x1 - p, x1 - p)
+    return np.where(take[:, None], w2, w1)
+
+
+def _closest_on_edges(p: FloatArray, a: FloatArray, b: FloatArray, c: FloatArray) -> FloatArray:
+    """Barycentric weights of the closest point on the three edges of each triangle."""
+    corners = (a, b, c)
+    best_w = np.zeros((len(p), 3))
+    best_d = np.full(len(p), np.inf)
+    for i, j in ((0, 1), (1, 2), (2, 0)):
+        e = corners[j] - corners[i]
+        ee = np.einsum("ij,ij->i", e, e)
+        t = np.einsum("ij,ij->i", p - corners[i], e) / np.where(ee > 0, ee, 1.0)
+        t = np.clip(np.where(ee > 0, t, 0.0), 0.0, 1.0)
+        x = corners[i] + t[:, None] * e
+        d = np.einsum("ij,ij->i", x - p, x - p)
+        take = d < best_d
+        best_d[take] = d[take]
+        best_w[take] = 0.0
+        best_w[take, i] = 1 - t[take]
+        best_w[take, j] = t[take]
+    return best_w
 
 
 class SurfaceLocator:
@@ -106,30 +169,43 @@ class SurfaceLocator:
     vertices : (n, 3) float array
     faces : (m, 3) int array
     vertex_candidates : int
-        How many nearest vertices contribute their incident triangles.
+        How many nearest vertices contribute their incident triangles (pass 1).
     centroid_candidates : int
-        How many nearest triangle centroids are tried as well.
+        How many nearest triangle centroids are tried as well (pass 1).
     """
 
-    def __init__(self, vertices, faces, *, vertex_candidates: int = 3, centroid_candidates: int = 8):
+    def __init__(self, vertices: ArrayLike, faces: ArrayLike, *, vertex_candidates: int = 3,
+                 centroid_candidates: int = 8) -> None:
         self.vertices, self.faces = validate_mesh(vertices, faces)
         self.vertex_tree = cKDTree(self.vertices)
-        self.centroid_tree = cKDTree(self.vertices[self.faces].mean(axis=1))
+        corners = self.vertices[self.faces]
+        centroids = corners.mean(axis=1)
+        self.centroid_tree = cKDTree(centroids)
         self.vertex_candidates = int(min(vertex_candidates, len(self.vertices)))
         self.centroid_candidates = int(min(centroid_candidates, len(self.faces)))
         self.incident = incident_triangles(self.faces, len(self.vertices))
+        self.triangle_bounds, self.levels = bounding_hierarchy(self.vertices, self.faces)
+        self.largest = float(self.triangle_bounds.radius.max())
+        self.size = float(np.linalg.norm(np.ptp(self.vertices, axis=0)))
 
-    def candidates(self, query) -> np.ndarray:
-        """Candidate triangles per query, (q, c) int array padded with repeats."""
+    def candidates(self, query: FloatArray) -> IntArray:
+        """Pass-1 candidate triangles per query, (q, c) int array padded with repeats."""
+        return self._candidates(query)[0]
+
+    def _candidates(self, query: FloatArray) -> tuple[IntArray, FloatArray]:
+        """Pass-1 candidates and the distance to the farthest of the nearest centroids."""
         _, vi = self.vertex_tree.query(query, k=self.vertex_candidates, workers=-1)
-        _, ti = self.centroid_tree.query(query, k=self.centroid_candidates, workers=-1)
+        dt, ti = self.centroid_tree.query(query, k=self.centroid_candidates, workers=-1)
         vi = vi.reshape(len(query), -1)
         ti = ti.reshape(len(query), -1)
+        reach = dt.reshape(len(query), -1)[:, -1]
+        if self.centroid_candidates == len(self.faces):
+            reach = np.full(len(query), np.inf)       # every triangle is a candidate already
         inc = self.incident[vi].reshape(len(query), -1)
         cand = np.concatenate([ti, inc], axis=1)
-        return np.where(cand < 0, ti[:, :1], cand)
+        return np.where(cand < 0, ti[:, :1], cand), reach
 
-    def closest(self, query, *, chunk: int = 20000) -> SurfacePoints:
+    def closest(self, query: ArrayLike, *, chunk: int = 20000) -> SurfacePoints:
         """Closest surface point to each query.
 
         Parameters
@@ -150,12 +226,14 @@ class SurfaceLocator:
         pts = np.empty((len(query), 3))
         for s in range(0, len(query), chunk):
             q = query[s:s + chunk]
-            cand = self.candidates(q)
-            tri[s:s + chunk], bary[s:s + chunk], pts[s:s + chunk] = self._best(q, cand)
+            cand, reach = self._candidates(q)
+            t, w, p = self._best(q, cand)
+            self._improve(q, reach, t, w, p)
+            tri[s:s + chunk], bary[s:s + chunk], pts[s:s + chunk] = t, w, p
         dist = np.linalg.norm(pts - query, axis=1)
         return SurfacePoints(tri, bary, pts, dist)
 
-    def _best(self, q, cand):
+    def _best(self, q: FloatArray, cand: IntArray) -> tuple[IntArray, FloatArray, FloatArray]:
         nq, nc = cand.shape
         f = self.faces[cand.ravel()]
         qq = np.repeat(q, nc, axis=0)
@@ -166,8 +244,125 @@ class SurfaceLocator:
         flat = np.arange(nq) * nc + best
         return cand[np.arange(nq), best], w[flat], p[flat]
 
+    def _improve(self, q: FloatArray, reach: FloatArray, tri: IntArray, bary: FloatArray,
+                 pts: FloatArray) -> None:
+        """Pass 2, in place: every triangle whose bound beats the pass-1 distance is checked."""
+        found = np.linalg.norm(pts - q, axis=1)
+        rows = np.flatnonzero(reach < found + self.largest)    # pass 1 may not have reached far enough
+        for s in range(0, len(rows), PASS2_BLOCK):
+            self._replace(q, found, rows[s:s + PASS2_BLOCK], tri, bary, pts)
 
-def incident_triangles(faces: np.ndarray, n: int, cap: int = 16) -> np.ndarray:
+    def _replace(self, q: FloatArray, found: FloatArray, rows: IntArray, tri: IntArray, bary: FloatArray,
+                 pts: FloatArray) -> None:
+        """Pass 2 for the queries ``rows``: a nearer triangle replaces the pass-1 answer."""
+        qi, t = self._unchecked(q, found, rows)
+        f = self.faces[t]
+        w, p = closest_points_on_triangles(q[qi], self.vertices[f[:, 0]], self.vertices[f[:, 1]],
+                                           self.vertices[f[:, 2]])
+        d = np.linalg.norm(p - q[qi], axis=1)
+        order = np.lexsort((d, qi))                      # per query, nearest first
+        first = order[np.r_[True, qi[order][1:] != qi[order][:-1]]] if len(qi) else order
+        tol = TIE_TOLERANCE * (self.size + found[qi[first]])
+        win = first[d[first] < found[qi[first]] - tol]
+        tri[qi[win]], bary[qi[win]], pts[qi[win]] = t[win], w[win], p[win]
+
+    def _unchecked(self, q: FloatArray, found: FloatArray, rows: IntArray) -> tuple[IntArray, IntArray]:
+        """(query, triangle) pairs of ``rows`` whose lower bound is below ``found``, top-down
+        through the bounding hierarchy."""
+        top = len(self.levels[0].bounds.radius) if self.levels else len(self.faces)
+        qi = np.repeat(rows, top)
+        node = np.tile(np.arange(top), len(rows))
+        for level in self.levels:
+            keep = level.bounds.lower(q[qi], node) < found[qi]
+            qi, node = qi[keep], node[keep]
+            counts = level.start[node + 1] - level.start[node]
+            offsets = np.cumsum(counts) - counts
+            at = np.arange(int(counts.sum())) - np.repeat(offsets - level.start[node], counts)
+            qi, node = np.repeat(qi, counts), level.children[at]
+        keep = self.triangle_bounds.lower(q[qi], node) < found[qi]
+        return qi[keep], node[keep]
+
+
+@dataclass(frozen=True)
+class Bounds:
+    """Bounding cylinders of groups of triangles: every triangle of group ``i``
+    lies within ``radius[i]`` of ``centre[i]`` and within ``thickness[i]`` of
+    the plane through ``centre[i]`` normal to ``axis[i]`` (a zero axis: no
+    plane, the bound is the ball's)."""
+
+    centre: FloatArray
+    axis: FloatArray
+    radius: FloatArray
+    thickness: FloatArray
+
+    def lower(self, q: FloatArray, ids: IntArray) -> FloatArray:
+        """Lower bound of the distance from each ``q`` to the triangles of group ``ids``:
+        the distance to the cylinder ``{in-plane distance <= radius, |height| <= thickness}``."""
+        d = q - self.centre[ids]
+        axis = self.axis[ids]
+        h = np.einsum("ij,ij->i", d, axis)
+        rho = np.linalg.norm(d - h[:, None] * axis, axis=1)
+        return np.hypot(np.maximum(np.abs(h) - self.thickness[ids], 0.0), np.maximum(rho - self.radius[ids], 0.0))
+
+
+@dataclass(frozen=True)
+class Level:
+    """One level of the bounding hierarchy: its groups' bounds and, per group
+    ``i``, its children (groups of the level below, or triangles at the
+    bottom) ``children[start[i]:start[i + 1]]``."""
+
+    bounds: Bounds
+    start: IntArray
+    children: IntArray
+
+
+def bounding_hierarchy(vertices: FloatArray, faces: IntArray, branching: int = 8) -> tuple[Bounds, list[Level]]:
+    """Bounds of every triangle and a hierarchy of groups over them, top level first.
+
+    Each level groups the one below by nearest seed (``1 / branching`` of its
+    centres, a fixed random choice); a group's bounds cover all its triangles'
+    corners, so the hierarchy is valid whatever the grouping.
+    """
+    corners = vertices[faces]
+    centre = corners.mean(axis=1)
+    normal = np.cross(corners[:, 1] - corners[:, 0], corners[:, 2] - corners[:, 0])
+    length = np.linalg.norm(normal, axis=1)
+    axis = np.where(length[:, None] > 0, normal / np.where(length > 0, length, 1.0)[:, None], 0.0)
+    radius = np.linalg.norm(corners - centre[:, None, :], axis=2).max(axis=1)
+    triangles = Bounds(centre, axis, radius, np.zeros(len(faces)))
+    owner = np.arange(len(faces))                    # triangle -> group of the current level
+    points = centre
+    rng = np.random.default_rng(0)
+    levels = []
+    while len(points) > branching:
+        seeds = points[np.sort(rng.choice(len(points), -(-len(points) // branching), replace=False))]
+        _, parent = cKDTree(seeds).query(points)
+        _, parent = np.unique(parent, return_inverse=True)       # drop seeds that took nothing
+        owner = parent[owner]
+        bounds = _group_bounds(corners, triangles, normal, owner, int(parent.max()) + 1)
+        start = np.concatenate([[0], np.cumsum(np.bincount(parent))]).astype(np.int64)
+        levels.append(Level(bounds, start, np.argsort(parent, kind="stable").astype(np.int64)))
+        points = bounds.centre
+    return triangles, levels[::-1]
+
+
+def _group_bounds(corners: FloatArray, triangles: Bounds, normal: FloatArray, owner: IntArray, n: int) -> Bounds:
+    """Bounds of the groups ``owner`` puts the triangles in."""
+    count = np.bincount(owner, minlength=n)
+    centre = np.column_stack([np.bincount(owner, weights=triangles.centre[:, a], minlength=n)
+                              for a in range(3)]) / count[:, None]
+    radius = np.zeros(n)
+    np.maximum.at(radius, owner, np.linalg.norm(triangles.centre - centre[owner], axis=1) + triangles.radius)
+    summed = np.column_stack([np.bincount(owner, weights=normal[:, a], minlength=n) for a in range(3)])
+    length = np.linalg.norm(summed, axis=1)
+    axis = np.where(length[:, None] > 0, summed / np.where(length > 0, length, 1.0)[:, None], 0.0)
+    height = np.abs(np.einsum("tcj,tj->tc", corners - centre[owner][:, None, :], axis[owner])).max(axis=1)
+    thickness = np.zeros(n)
+    np.maximum.at(thickness, owner, height)
+    return Bounds(centre, axis, radius, thickness)
+
+
+def incident_triangles(faces: IntArray, n: int, cap: int = 16) -> IntArray:
     """(n, d) triangles around each vertex, padded with -1 (at most ``cap``)."""
     v = faces.ravel()
     t = np.repeat(np.arange(len(faces)), 3)
@@ -181,3 +376,10 @@ def incident_triangles(faces: np.ndarray, n: int, cap: int = 16) -> np.ndarray:
     keep = rank < d
     out[v[keep], rank[keep]] = t[keep]
     return out
+
+
+def barycentric_matrix(faces: IntArray, tri: IntArray, bary: FloatArray, n: int) -> sparse.csr_matrix:
+    """Sparse ``(len(tri), n)`` matrix taking vertex values to the points
+    ``bary`` on triangles ``tri``."""
+    n_q = len(tri)
+    return sparse.csr_matrix((bary.ravel(), (np.repeat(np.arange(n_q), 3), faces[tri].ravel())), shape=(n_q, n))

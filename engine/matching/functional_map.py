@@ -14,15 +14,39 @@ alternate point map and functional map while the basis grows.
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+from typing import Callable, Sequence
+
 import numpy as np
+from numpy.typing import NDArray
 from scipy.spatial import cKDTree
 
-__all__ = ["fmap_from_descriptors", "fmap_from_pointmap", "pointmap_from_fmap", "zoomout",
+__all__ = ["MapWeights", "fmap_from_descriptors", "fmap_from_pointmap", "pointmap_from_fmap", "zoomout",
            "orientation_operator", "nearest_rows"]
 
+FloatArray = NDArray[np.float64]
+IntArray = NDArray[np.int64]
+SpectralSide = tuple[FloatArray, FloatArray, FloatArray, FloatArray]
+"""Eigenvalues (k,), basis (n, k), mass (n,), descriptors (n, q) of one shape."""
 
-def fmap_from_descriptors(lam_s, phi_s, mass_s, desc_s, lam_t, phi_t, mass_t, desc_t, *,
-                          commute: float = 1e-2, orient_s=(), orient_t=(), orient: float = 0.0):
+
+@dataclass(frozen=True)
+class MapWeights:
+    """Weights of the regularisers of :func:`fmap_from_descriptors`.
+
+    ``commute``: Laplacian commutativity; ``orient``: the orientation term,
+    over the operator pairs ``orient_s[f]``, ``orient_t[f]`` ((k, k) arrays,
+    one pair per descriptor used, :func:`orientation_operator`).
+    """
+
+    commute: float = 1e-2
+    orient: float = 0.0
+    orient_s: Sequence[FloatArray] = ()
+    orient_t: Sequence[FloatArray] = ()
+
+
+def fmap_from_descriptors(source: SpectralSide, target: SpectralSide, weights: MapWeights = MapWeights()
+                          ) -> FloatArray:
     """Least-squares functional map from corresponding descriptors.
 
     Minimises ``||C A - B||^2 + commute ||C Lambda_s - Lambda_t C||^2
@@ -34,19 +58,16 @@ def fmap_from_descriptors(lam_s, phi_s, mass_s, desc_s, lam_t, phi_t, mass_t, de
 
     Parameters
     ----------
-    lam_s : (k_s,) float array
-    phi_s : (n_s, k_s) float array
-    mass_s : (n_s,) float array
-    desc_s : (n_s, q) float array
-    lam_t, phi_t, mass_t, desc_t : the same on the target
-    commute, orient : float
-        Weights of the commutativity and orientation terms.
-    orient_s, orient_t : sequences of (k, k) arrays
+    source : (eigenvalues (k_s,), basis (n_s, k_s), mass (n_s,), descriptors (n_s, q))
+    target : the same on the target
+    weights : MapWeights
 
     Returns
     -------
     (k_t, k_s) float64 array
     """
+    lam_s, phi_s, mass_s, desc_s = source
+    lam_t, phi_t, mass_t, desc_t = target
     A = phi_s.T @ (mass_s[:, None] * desc_s)
     B = phi_t.T @ (mass_t[:, None] * desc_t)
     norm = np.linalg.norm(A, axis=0) + 1e-300
@@ -59,12 +80,13 @@ def fmap_from_descriptors(lam_s, phi_s, mass_s, desc_s, lam_t, phi_t, mass_t, de
     H = np.kron(A @ A.T, It)
     g = (B @ A.T).ravel(order="F")
     D = (lt[:, None] - ls[None, :]) ** 2
-    H += commute * np.diag(D.ravel(order="F"))
-    for Os, Ot in zip(orient_s, orient_t):
+    H += weights.commute * np.diag(D.ravel(order="F"))
+    for Os, Ot in zip(weights.orient_s, weights.orient_t):
         E = np.kron(Os.T, It) - np.kron(Is, Ot)
-        H += orient * (E.T @ E)
+        H += weights.orient * (E.T @ E)
     c = np.linalg.solve(H + 1e-10 * np.trace(H) / len(H) * np.eye(len(H)), g)
-    return c.reshape(kt, ks, order="F")
+    out: FloatArray = c.reshape(kt, ks, order="F")
+    return out
 
 
 def orientation_operator(vertices, faces, phi, mass, f):
@@ -120,7 +142,8 @@ def fmap_from_pointmap(phi_s, phi_t, mass_t, source_rows):
     return phi_t.T @ (mass_t[:, None] * pulled)
 
 
-def pointmap_from_fmap(C, phi_s, phi_t, *, extra_s=None, extra_t=None, rows=None, tree_s=None):
+def pointmap_from_fmap(C: FloatArray, phi_s: FloatArray, phi_t: FloatArray, *, extra_s: FloatArray | None = None,
+                       extra_t: FloatArray | None = None, rows: IntArray | None = None) -> IntArray:
     """Nearest source vertex for each target vertex in the spectral embedding.
 
     Target vertex ``i`` is embedded as ``(Phi_t C)[i]``, source vertex ``j``
@@ -144,7 +167,7 @@ def pointmap_from_fmap(C, phi_s, phi_t, *, extra_s=None, extra_t=None, rows=None
     pt = phi_t[:, :kt] if rows is None else phi_t[rows, :kt]
     emb_t = pt @ C
     emb_s = phi_s[:, :ks]
-    if extra_s is not None:
+    if extra_s is not None and extra_t is not None:
         et = extra_t if rows is None else extra_t[rows]
         emb_t = np.hstack([emb_t, et])
         emb_s = np.hstack([emb_s, extra_s])
@@ -180,8 +203,9 @@ def nearest_rows(data, query, *, block: int = 256):
     return out
 
 
-def zoomout(C0, phi_s, phi_t, mass_t, *, k_final: int, step: int = 10, extra_s=None, extra_t=None,
-            sample: int = 3000, seed: int = 0, full_last: bool = True):
+def zoomout(C0: FloatArray, bases: tuple[FloatArray, FloatArray, FloatArray], *, k_final: int, step: int = 10,
+            extra: tuple[FloatArray | None, FloatArray | None] = (None, None), sample: int = 3000, seed: int = 0,
+            full_last: bool = True) -> tuple[FloatArray, IntArray, IntArray | None]:
     """Spectral upsampling of a functional map.
 
     Each step maps target vertices to source vertices with the current ``C``
@@ -192,6 +216,12 @@ def zoomout(C0, phi_s, phi_t, mass_t, *, k_final: int, step: int = 10, extra_s=N
     With ``full_last=False`` the last step also stays on the sample (for a
     caller that only needs a sparse set of matches).
 
+    Parameters
+    ----------
+    C0 : (k, k) float array, the starting map
+    bases : source basis (n_s, >=k_final), target basis (n_t, >=k_final), target mass (n_t,)
+    extra : extra columns appended to the source and target embeddings (e.g. landmark heat-kernel rows)
+
     Returns
     -------
     C : (k_final, k_final) float64 array
@@ -200,6 +230,8 @@ def zoomout(C0, phi_s, phi_t, mass_t, *, k_final: int, step: int = 10, extra_s=N
     rows : (s,) int64 array or None
         The target vertices of ``vertex_map`` (None: all).
     """
+    phi_s, phi_t, mass_t = bases
+    extra_s, extra_t = extra
     n_t = phi_t.shape[0]
     rng = np.random.default_rng(seed)
     rows = None if n_t <= sample else np.sort(rng.choice(n_t, sample, replace=False))

@@ -1,0 +1,150 @@
+"""Intrinsic matching: pose, placement and scale differ.
+
+Area-normalised eigenbases, heat and wave kernel signatures plus each
+landmark's heat-kernel rows give a functional map by least squares with
+Laplacian commutativity and an orientation-preserving term (so a
+mirror-symmetric character is not mirrored); ZoomOut grows it to a larger
+basis, with the landmark rows kept in the nearest-neighbour search. Then the
+source is deformed onto the target (:func:`engine.matching.nonrigid.deform_onto`)
+and every target vertex takes its closest point on the deformed source: this
+is what carries variants with other proportions, which no isometry prior
+serves. Last, the point map is searched again in the product embedding
+(:func:`engine.matching.embedding.refine_products`), unless ``refine=False``.
+"""
+
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass
+
+import numpy as np
+from numpy.typing import NDArray
+
+from ..spectra.shape import Shape
+from .closest_point import SurfaceLocator, incident_triangles
+from .embedding import ProductSettings, refine_products
+from .functional_map import MapWeights, fmap_from_descriptors, nearest_rows, orientation_operator, zoomout
+from .modes import MatchOptions, ModeResult
+from .nonrigid import IcpOptions, SpectralPairs, deform_onto
+
+__all__ = ["LANDMARK_TIMES", "match_intrinsic"]
+
+FloatArray = NDArray[np.float64]
+IntArray = NDArray[np.int64]
+Landmarks = tuple[IntArray, IntArray]
+
+LANDMARK_TIMES = (0.003, 0.01, 0.03)
+"""Heat-kernel times of the landmark columns (unit-area shapes: kernel radius ~ sqrt(4t) ~ 0.1-0.35)."""
+
+
+@dataclass(frozen=True)
+class _SpectralMap:
+    """The functional map's outcome: a source vertex per target vertex (of ``rows``; None: all),
+    and the embeddings whose nearest rows give the reverse map."""
+
+    vertex: IntArray
+    rows: IntArray | None
+    embedding_s: FloatArray
+    embedding_t: FloatArray
+
+
+def match_intrinsic(source: Shape, target: Shape, landmarks: Landmarks | None, options: MatchOptions,
+                    refine: bool | None, h: float, loc_t: SurfaceLocator) -> ModeResult:
+    """Spectral map, then the source deformed onto the target, then the product-embedding search.
+
+    Parameters
+    ----------
+    landmarks : (source vertices, target vertices) of the cleaned meshes, or None
+    refine : the product-embedding search runs unless False
+    h : the coarser mesh's mean edge length
+    loc_t : closest points on the target (for the reverse map)
+    """
+    timings: dict[str, float] = {}
+    t0 = time.perf_counter()
+    kk = int(min(options.k, source.n_vertices - 1, target.n_vertices - 1))
+    spectral = _spectral_map(source, target, landmarks, options, kk, timings)
+    tri, bary = _vertex_as_point(source, spectral.vertex)
+    vertex = spectral.vertex
+    timings["initial_map"] = time.perf_counter() - t0
+    frame = None
+    if not options.align_steps:
+        back = nearest_rows(spectral.embedding_t, spectral.embedding_s)
+    else:
+        t0 = time.perf_counter()
+        icp = IcpOptions(steps=tuple(options.align_steps), iterations=options.align_iterations)
+        tri, bary, frame = deform_onto(source, target, SpectralPairs.of(source, target, tri, bary, spectral.rows),
+                                       landmarks, icp)
+        vertex = source.faces[tri, np.argmax(bary, axis=1)]
+        cp = loc_t.closest(frame)
+        back = target.faces[cp.triangle, np.argmax(cp.barycentric, axis=1)]
+        timings["align_refine"] = time.perf_counter() - t0
+    sizes = {}
+    if refine is None or refine:
+        t0 = time.perf_counter()
+        settings = ProductSettings(options.product_K, options.product_order)
+        tri, bary, vertex, sizes = refine_products(source, target, tri, bary, settings, h, frame)
+        timings["product_refine"] = time.perf_counter() - t0
+    return ModeResult(tri, bary, vertex, back, kk, timings, sizes)
+
+
+def _spectral_map(source: Shape, target: Shape, landmarks: Landmarks | None, options: MatchOptions, kk: int,
+                  timings: dict[str, float]) -> _SpectralMap:
+    """Descriptor functional map made orthogonal, then ZoomOut to ``kk`` functions."""
+    t0 = time.perf_counter()
+    ls, ps = source.normalised_basis(kk)
+    lt, pt = target.normalised_basis(kk)
+    timings["eigenbasis"] = time.perf_counter() - t0
+    t1 = time.perf_counter()
+    ds, dt = _descriptors(source, target, kk, landmarks)
+    extra_s = extra_t = None
+    if landmarks is not None:
+        extra_s, extra_t = _landmark_columns(source, target, kk, landmarks, options.landmark_weight)
+    k0 = int(min(options.k_start, kk))
+    ms, mt = source.mass / source.area, target.mass / target.area
+    # orientation operators of every 4th descriptor, each scaled to unit maximum
+    orient_s = [orientation_operator(source.vertices, source.faces, ps[:, :k0], ms, d / np.abs(d).max())
+                for d in ds.T[::4]]
+    orient_t = [orientation_operator(target.vertices, target.faces, pt[:, :k0], mt, d / np.abs(d).max())
+                for d in dt.T[::4]]
+    weights = MapWeights(commute=options.commute, orient=options.orient, orient_s=orient_s, orient_t=orient_t)
+    C0 = fmap_from_descriptors((ls[:k0], ps[:, :k0], ms, ds), (lt[:k0], pt[:, :k0], mt, dt), weights)
+    # nearest orthogonal matrix: a near-isometry's map between orthonormal bases is orthogonal
+    u, _, vt = np.linalg.svd(C0)
+    C0 = u @ vt
+    timings["descriptor_map"] = time.perf_counter() - t1
+    t1 = time.perf_counter()
+    C, vertex, rows = zoomout(C0, (ps, pt, mt), k_final=kk, step=options.step, extra=(extra_s, extra_t),
+                              full_last=not options.align_steps)
+    timings["zoomout"] = time.perf_counter() - t1
+    emb_t, emb_s = pt @ C, ps
+    if extra_s is not None and extra_t is not None:
+        emb_t, emb_s = np.hstack([emb_t, extra_t]), np.hstack([emb_s, extra_s])
+    return _SpectralMap(vertex, rows, emb_s, emb_t)
+
+
+def _descriptors(source: Shape, target: Shape, k: int, landmarks: Landmarks | None) -> tuple[FloatArray, FloatArray]:
+    """HKS and WKS (area-normalised, so comparable across shapes), columns scaled."""
+    ds = np.hstack([source.hks(k, 12), source.wks(k, 12)])
+    dt = np.hstack([target.hks(k, 12), target.wks(k, 12)])
+    if landmarks is not None:
+        es, et = _landmark_columns(source, target, k, landmarks, 1.0)
+        ds, dt = np.hstack([ds, es]), np.hstack([dt, et])
+    return ds, dt
+
+
+def _landmark_columns(source: Shape, target: Shape, k: int, landmarks: Landmarks,
+                      weight: float) -> tuple[FloatArray, FloatArray]:
+    """Heat-kernel rows of the landmarks on both shapes, each column scaled by its value at the landmark."""
+    hs = source.heat_rows(k, landmarks[0], LANDMARK_TIMES)
+    ht = target.heat_rows(k, landmarks[1], LANDMARK_TIMES)
+    # scale each column by its value at the landmark so both shapes share units
+    scale = np.maximum(np.abs(hs).max(axis=0), 1e-300)
+    return weight * hs / scale, weight * ht / np.maximum(np.abs(ht).max(axis=0), 1e-300)
+
+
+def _vertex_as_point(shape: Shape, vertex: IntArray) -> tuple[IntArray, FloatArray]:
+    """A vertex map as (triangle, barycentric): weight 1 at that corner of one incident triangle."""
+    inc = incident_triangles(shape.faces, shape.n_vertices, cap=1)[:, 0]
+    tri = inc[vertex]
+    corner = np.argmax(shape.faces[tri] == vertex[:, None], axis=1)
+    return tri, np.eye(3)[corner]
