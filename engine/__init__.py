@@ -46,9 +46,17 @@ Operators
     intrinsic_laplacian   the same operators from edge lengths alone
 """
 
+import sys as _sys
+
+if _sys.argv[:1] == ["-m"]:  # ``python -m engine`` is importing the package: see engine.jobs.cli
+    from .common.atomic import quiet_interrupts_while_starting
+
+    quiet_interrupts_while_starting()
+
 from .matching.closest_point import SurfaceLocator, SurfacePoints
 from .matching.correspondence import Correspondence, correspond
-from .jobs.pair import Pair, Settings, run_detail_job, run_transfer_job
+from .jobs.pair import Pair, Settings
+from .jobs.file_jobs import run_detail_job, run_transfer_job
 from .spectra.shape import Shape
 from .carrying.transfer import Transfer, TransferResult
 from .spectra.discretization import MeshDefects, Operators, mesh_defects, mesh_operators

@@ -19,7 +19,12 @@ from engine.common.atomic import atomic_write
 from engine.common.cache import Cache
 from engine.jobs.commands import save_npz
 from engine.intake.files import read_mesh, write_ply
-from engine.jobs.pair import _write_json
+from engine.jobs.file_jobs import report_text
+
+
+def _write_json(path, data):
+    with atomic_write(path, text=True) as fh:
+        fh.write(report_text(data))
 
 
 class Boom(Exception):
@@ -49,11 +54,12 @@ def test_exception_mid_write_keeps_the_old_file_and_no_temp(tmp_path, error):
     path = tmp_path / "keep.bin"
     path.write_bytes(b"old content")
     with pytest.raises(error):
-        with atomic_write(path, fsync=True) as fh:
+        with atomic_write(path) as fh:
             fh.write(b"half of the new")
             fh.flush()
             temps = [p for p in os.listdir(tmp_path) if p != "keep.bin"]
-            assert len(temps) == 1 and temps[0].startswith(".keep.bin.") and temps[0].endswith(".tmp")
+            assert len(temps) == 1 and temps[0].startswith(f".keep.bin.{os.getpid()}-")
+            assert temps[0].endswith(".overtone-tmp") and _atomic.is_temporary(temps[0])
             assert (tmp_path / temps[0]).read_bytes() == b"half of the new"  # really mid-write
             raise error()
     assert path.read_bytes() == b"old content"
@@ -78,59 +84,90 @@ def test_missing_folder_raises_and_creates_nothing(tmp_path):
     assert os.listdir(tmp_path) == []
 
 
-def test_prefix_and_suffix_name_the_temp(tmp_path):
-    with atomic_write(tmp_path / "k.npz", prefix=".tmp-", suffix=".npz") as fh:
-        (temp,) = os.listdir(tmp_path)
-        fh.write(b"z")
-    assert temp.startswith(".tmp-") and temp.endswith(".npz") and temp != ".tmp-.npz"
-
-
-@pytest.mark.parametrize("wanted", [True, False])
-def test_fsync_only_when_asked_and_before_the_rename(tmp_path, monkeypatch, wanted):
+def test_fsync_before_the_rename(tmp_path, monkeypatch):
     path = tmp_path / "f.bin"
     path.write_bytes(b"old")
     seen = []
     real = os.fsync
 
     def spy(fd):
-        seen.append((os.fstat(fd).st_size, path.read_bytes()))
+        if stat.S_ISREG(os.fstat(fd).st_mode):
+            seen.append((os.fstat(fd).st_size, path.read_bytes()))
         real(fd)
 
     monkeypatch.setattr(os, "fsync", spy)
-    with atomic_write(path, fsync=wanted) as fh:
-        fh.write(b"12345")  # still in the buffer: fsync=True must flush first
+    with atomic_write(path) as fh:
+        fh.write(b"12345")  # still in the buffer: the file must be flushed first
     assert path.read_bytes() == b"12345"
-    assert seen == ([(5, b"old")] if wanted else [])
+    assert seen == [(5, b"old")]
 
 
 @pytest.mark.skipif(sys.platform == "win32", reason="POSIX permission bits")
-def test_permissions(tmp_path):
+def test_permissions_follow_the_umask(tmp_path):
     # open(2) creates a file with mode & ~umask (POSIX.1-2008, open(), from
-    # memory); tempfile.mkstemp uses mode 0o600 (Python documentation of
-    # tempfile.mkstemp: "readable and writable only by the creating user ID").
+    # memory): every output gets what Path.write_text would give.
     old = os.umask(0o027)
     try:
-        with atomic_write(tmp_path / "private") as fh:
+        with atomic_write(tmp_path / "mesh") as fh:
             fh.write(b"a")
-        with atomic_write(tmp_path / "shared", permissions=0o666) as fh:
-            fh.write(b"b")
-        (tmp_path / "plain").write_text("c")  # what Path.write_text gives
+        (tmp_path / "plain").write_text("c")
         _write_json(tmp_path / "report.json", {"a": 1})
+        write_ply(tmp_path / "m.ply", np.eye(3), faces=[[0, 1, 2]])
+        save_npz(tmp_path / "b.npz", {"x": np.arange(2.0)})
     finally:
         os.umask(old)
-    mode = {p: stat.S_IMODE(os.stat(tmp_path / p).st_mode) for p in ("private", "shared", "plain", "report.json")}
-    assert mode == {"private": 0o600, "shared": 0o640, "plain": 0o640, "report.json": 0o640}
+    mode = {p: stat.S_IMODE(os.stat(tmp_path / p).st_mode) for p in os.listdir(tmp_path)}
+    assert mode == dict.fromkeys(["mesh", "plain", "report.json", "m.ply", "b.npz"], 0o640)
+
+
+def test_staged_files_are_renamed_together_or_not_at_all(tmp_path):
+    with pytest.raises(Boom):
+        with _atomic.atomic_writes() as staging:
+            with staging.open(tmp_path / "a") as fh:
+                fh.write(b"first")
+            raise Boom()  # the second output fails
+    assert os.listdir(tmp_path) == []
+    with _atomic.atomic_writes() as staging:
+        with staging.open(tmp_path / "a") as fh:
+            fh.write(b"first")
+        with staging.open(tmp_path / "b", text=True) as fh:
+            fh.write("second")
+        assert sorted(p for p in os.listdir(tmp_path) if not _atomic.is_temporary(p)) == []
+    assert sorted(os.listdir(tmp_path)) == ["a", "b"]
+
+
+def test_sigterm_removes_the_temporary_file(tmp_path):
+    # A job scheduler's SIGTERM ends the write like Ctrl-C: the temporary file
+    # is removed and the target keeps its old content.
+    code = (
+        "import os, signal, sys\n"
+        "from engine.common.atomic import atomic_write, terminate_as_interrupt\n"
+        "with terminate_as_interrupt():\n"
+        "    try:\n"
+        "        with atomic_write(sys.argv[1]) as fh:\n"
+        "            fh.write(b'half')\n"
+        "            os.kill(os.getpid(), signal.SIGTERM)\n"
+        "            fh.write(b'never')\n"
+        "    except KeyboardInterrupt:\n"
+        "        sys.exit(143)\n")
+    target = tmp_path / "out.ply"
+    target.write_bytes(b"old")
+    import subprocess
+    proc = subprocess.run([sys.executable, "-c", code, str(target)], cwd=os.path.dirname(os.path.dirname(__file__)))
+    assert proc.returncode == 143
+    assert os.listdir(tmp_path) == ["out.ply"] and target.read_bytes() == b"old"
 
 
 def test_name_collisions_are_retried(tmp_path, monkeypatch):
     names = iter(["aa", "aa", "bb"])
     monkeypatch.setattr(_atomic.secrets, "token_hex", lambda n: next(names))
-    (tmp_path / ".x.aa.tmp").write_bytes(b"someone else's")
-    with atomic_write(tmp_path / "x", permissions=0o644) as fh:
+    taken = tmp_path / f".x.{os.getpid()}-aa.overtone-tmp"
+    taken.write_bytes(b"someone else's")
+    with atomic_write(tmp_path / "x") as fh:
         fh.write(b"mine")
     assert (tmp_path / "x").read_bytes() == b"mine"
-    assert (tmp_path / ".x.aa.tmp").read_bytes() == b"someone else's"  # never opened, never removed
-    assert sorted(os.listdir(tmp_path)) == [".x.aa.tmp", "x"]
+    assert taken.read_bytes() == b"someone else's"  # never opened, never removed
+    assert sorted(os.listdir(tmp_path)) == [taken.name, "x"]
 
 
 # ---------------------------------------------------------------- the four writers

@@ -9,7 +9,7 @@ import sys
 import numpy as np
 import pytest
 
-from engine.common.cache import Cache, cached_eigenbasis, geometry_key
+from engine.common.cache import Cache, geometry_key
 from engine.spectra.laplacian import cotangent_laplacian, mass_matrix
 from tests.meshes import icosphere
 
@@ -57,7 +57,7 @@ def test_round_trip_and_counts(tmp_path):
     np.testing.assert_array_equal(got["x"], a["x"])
     np.testing.assert_array_equal(got["y"], a["y"])
     assert str(got["label"]) == "dense"
-    assert not [p for p in os.listdir(c.folder) if p.startswith(".tmp-")]  # no temp file left
+    assert os.listdir(c.folder) == ["abc.npz"]  # no temporary file left
 
 
 @pytest.mark.parametrize("damage", ["truncate", "garbage", "empty"])
@@ -112,31 +112,64 @@ def test_size_clear_prune(tmp_path):
     assert c.clear() == 2 and c.size_bytes() == 0
 
 
-def test_cached_eigenbasis_hit_is_identical(tmp_path, ops):
-    v, f, L, m = ops
-    c = Cache(tmp_path)
-    a = cached_eigenbasis(L, m, 12, cache=c, vertices=v, faces=f, laplacian="cotangent")
-    b = cached_eigenbasis(L, m, 12, cache=c, vertices=v, faces=f, laplacian="cotangent")
-    assert a.info["cache"] == "miss" and b.info["cache"] == "hit"
-    assert c.hits == 1 and c.misses == 1
-    for name in ("eigenvalues", "eigenvectors", "mass", "residuals"):
-        np.testing.assert_array_equal(getattr(a, name), getattr(b, name))
-    d = cached_eigenbasis(L, m, 13, cache=c, vertices=v, faces=f, laplacian="cotangent")
-    assert d.info["cache"] == "miss"  # another k, another key
-    assert cached_eigenbasis(L, m, 12).info["cache"] == "off"
+def _rewrite(path, **changes):
+    """Rewrite an entry's fields directly (as a damaged or hand-made file would be)."""
+    with np.load(path, allow_pickle=False) as z:
+        data = {name: z[name] for name in z.files}
+    data.update(changes)
+    for name in [k for k, v in changes.items() if v is None]:
+        del data[name]
+    np.savez(path, **data)
 
 
-def test_cached_eigenbasis_recomputes_bad_entry(tmp_path, ops):
-    v, f, L, m = ops
+@pytest.mark.parametrize("change", [
+    {"x": np.arange(4.0).astype(np.float32)},          # a float32 copy
+    {"x": np.arange(3.0)},                            # one value fewer
+    {"x": np.arange(4.0) + 1e-12},                    # same shape and dtype, other content
+    {"y": np.zeros((4, 2))},                          # one column fewer
+    {"extra": np.zeros(3)},                           # a field the writer did not write
+    {"__sha256__": None},                             # no checksum
+    {"__version__": np.asarray("2")},                 # a version of the wrong type
+])
+def test_edited_entries_are_deleted_and_missed(tmp_path, change):
+    # The checksum covers every field's name, dtype, shape and bytes: any
+    # edit after save() makes the entry a miss (and deletes it).
     c = Cache(tmp_path)
-    a = cached_eigenbasis(L, m, 8, cache=c)
-    path = os.path.join(tmp_path, a.info["key"] + ".npz")
-    with open(path, "r+b") as fh:
-        fh.truncate(100)
-    b = cached_eigenbasis(L, m, 8, cache=c)
-    assert b.info["cache"] == "miss"
-    np.testing.assert_array_equal(a.eigenvectors, b.eigenvectors)
-    assert cached_eigenbasis(L, m, 8, cache=c).info["cache"] == "hit"  # rewritten
+    path = c.save("k", {"x": np.arange(4.0), "y": np.zeros((4, 3))})
+    assert c.load("k", {"x": (4,), "y": (4, 3)}) is not None
+    _rewrite(path, **change)
+    assert c.load("k", {"x": (None,), "y": (None, None)}) is None
+    assert not os.path.exists(path)
+
+
+def test_named_lengths_must_agree(tmp_path):
+    c = Cache(tmp_path)
+    c.save("k", {"basis": np.zeros((5, 3)), "kept": np.ones(3, dtype=bool), "other": np.zeros(2)})
+    assert c.load("k", {"basis": (5, "p"), "kept": ("p",)}) is not None
+    assert c.load("k", {"basis": (5, "p"), "other": ("p",)}) is None  # 3 columns, 2 rows
+
+
+def test_stored_dtypes(tmp_path):
+    c = Cache(tmp_path)
+    c.save("k", {"f": np.arange(3, dtype=np.float32), "i": np.arange(3, dtype=np.int32),
+                 "b": np.ones(2, dtype=bool), "s": np.asarray("text")})
+    got = c.load("k", ["f", "i", "b", "s"])
+    assert {k: v.dtype.str[1:] for k, v in got.items()} == {"f": "f8", "i": "i8", "b": "b1", "s": "U4"}
+    with pytest.raises(ValueError, match="only float, integer, bool and str are stored"):
+        c.save("k", {"c": np.zeros(2, dtype=complex)})
+
+
+def test_leftover_temporary_files_are_removed(tmp_path):
+    # A writer killed outright leaves ".<name>.<pid>-<hex>.overtone-tmp"; a
+    # process id that no longer runs marks it as left over.
+    dead = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"], capture_output=True,
+                          text=True, check=True).stdout.strip()
+    left = tmp_path / f".k.npz.{dead}-0123abcd.overtone-tmp"
+    mine = tmp_path / f".k.npz.{os.getpid()}-0123abcd.overtone-tmp"
+    left.write_bytes(b"half")
+    mine.write_bytes(b"being written")
+    Cache(tmp_path)
+    assert not left.exists() and mine.exists()
 
 
 def test_changed_solver_version_misses_the_eigenbasis_cache(tmp_path, monkeypatch):

@@ -81,3 +81,19 @@ def test_errors():
     layer = split_detail(v, f, 0.9 * v, guides=v[:, 0])
     with pytest.raises(ValueError, match="offsets contain non-finite"):
         apply_detail(layer, np.full(v.shape, np.nan))
+
+
+def test_vertices_outside_the_surface_keep_their_place():
+    from engine.carrying.detail import place_on_original
+    original = np.arange(15.0).reshape(5, 3)
+    moved = np.array([[100.0, 0, 0], [200.0, 0, 0], [300.0, 0, 0]])
+    out = place_on_original(original, np.array([0, -1, 1, 2, -1]), moved)
+    assert out.tolist() == [[100, 0, 0], [3, 4, 5], [200, 0, 0], [300, 0, 0], [12, 13, 14]]
+
+
+def test_strength_is_bounded_and_finite():
+    from engine.carrying.detail import MAX_STRENGTH, check_strength
+    assert check_strength(-MAX_STRENGTH) == -MAX_STRENGTH and check_strength("2.5") == 2.5
+    for bad in (1e160, float("inf"), float("nan"), MAX_STRENGTH * 1.01, "x"):
+        with pytest.raises(ValueError, match="detail strength must be"):
+            check_strength(bad)

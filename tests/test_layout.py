@@ -18,9 +18,6 @@ KNOWN_LONG: set[str] = {
     "engine/spectra/robust.py:_flip_to_delaunay",
     "engine/intake/preparation.py:prepare_mesh",
     "engine/carrying/corners.py:carry_corners",
-    "engine/jobs/pair.py:run_transfer_job",
-    "engine/common/cache.py:cached_eigenbasis",
-    "engine/jobs/pair.py:run_detail_job",
     "addon/panels.py:draw_item",
     "engine/jobs/pair.py:carry_corners",
 }

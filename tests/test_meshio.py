@@ -460,3 +460,81 @@ def test_cow_off_and_obj_share_faces(tmp_path):
         write_ply(tmp_path / "cow.ply", off.vertices, corners=off.corners, sizes=off.sizes, binary=binary)
         back = read_mesh(tmp_path / "cow.ply")
         assert same_bits(back.vertices, off.vertices) and np.array_equal(back.corners, off.corners)
+
+
+# ---------------------------------------------------------------- files that once gave tracebacks or lost data
+
+FACE = "element face 1\nproperty list uchar int vertex_indices\n"
+TRI = b"0 0 0\n1 0 0\n0 1 0\n"
+
+
+def _read(tmp_path, name, content):
+    path = tmp_path / name
+    path.write_bytes(content)
+    return read_mesh(path)
+
+
+def test_list_property_of_vertices_is_skipped(tmp_path):
+    # PLY allows list properties in any element (Turk 1994, from memory); a
+    # per-vertex list (neighbour indices here) cannot be carried, the rest is read.
+    head = PLY_HEAD + "property list uchar int neighbours\nproperty uchar quality\n" + FACE
+    for fmt, body in [("ascii", b"0 0 0 2 1 2 7\n1 0 0 1 0 8\n0 1 0 0 9\n3 0 1 2\n"),
+                      ("binary_little_endian",
+                       b"".join(np.array(xyz, "<f4").tobytes() + bytes([len(nb)]) + np.array(nb, "<i4").tobytes()
+                                + bytes([q]) for xyz, nb, q in [((0, 0, 0), (1, 2), 7), ((1, 0, 0), (0,), 8),
+                                                                ((0, 1, 0), (), 9)])
+                       + bytes([3]) + np.array([0, 1, 2], "<i4").tobytes())]:
+        m = _read(tmp_path, "lv.ply", ply_bytes(fmt, head, body))
+        assert m.vertices.tolist() == [[0, 0, 0], [1, 0, 0], [0, 1, 0]] and m.corners.tolist() == [0, 1, 2]
+        assert set(m.properties) == {"quality"} and m.properties["quality"].tolist() == [7, 8, 9]
+
+
+@pytest.mark.parametrize("name, content", [
+    ("a.obj", b"v 0 0 0\nv 1 0 0\nv 0 1 0\nf 1 2 99999999999999999999999\n"),
+    ("a.off", b"OFF\n3 1 0\n0 0 0\n1 0 0\n0 1 0\n3 0 1 99999999999999999999999\n"),
+])
+def test_huge_face_indices_are_refused(tmp_path, name, content):
+    with pytest.raises(ValueError, match="bad face index '99999999999999999999999'"):
+        _read(tmp_path, name, content)
+
+
+@pytest.mark.parametrize("content, message", [
+    (ply_bytes("ascii", PLY_HEAD + FACE, TRI + b"99999999999999999999999 0 1 2\n"), "truncated data"),
+    (ply_bytes("binary_little_endian", PLY_HEAD + "element face 1\nproperty list uint int vertex_indices\n",
+               np.zeros(9, np.float32).tobytes() + np.array([4000000000], "<u4").tobytes() + bytes(12)),
+     "truncated data: a list of 4000000000 items"),
+    (ply_bytes("ascii", PLY_HEAD + "element face 99999999999999\nproperty list uchar int vertex_indices\n",
+               TRI + b"3 0 1 2\n"), "announces 99999999999999 records"),
+    (ply_bytes("ascii", PLY_HEAD + "element face 1\nproperty int vertex_indices\n", TRI + b"2\n"),
+     "'vertex_indices' is a single number"),
+    (ply_bytes("ascii", PLY_HEAD + FACE, TRI + b"3 0 1 2\n3 0 2 1\n"),
+     "4 values after the last element: the header's element counts are smaller"),
+    (ply_bytes("binary_little_endian", PLY_HEAD + FACE,
+               np.zeros(9, np.float32).tobytes() + (bytes([3]) + np.array([0, 1, 2], "<i4").tobytes()) * 2),
+     "13 bytes after the last element"),
+])
+def test_bad_counts_are_one_clear_error(tmp_path, content, message):
+    with pytest.raises(ValueError, match=message):
+        _read(tmp_path, "c.ply", content)
+
+
+def test_text_details_that_were_misread(tmp_path):
+    # A UTF-8 byte-order mark (Unicode standard, from memory) does not hide the first vertex.
+    m = _read(tmp_path, "bom.obj", b"\xef\xbb\xbfv 0 0 0\nv 1 0 0\nv 0 1 0\nf 1 2 3\n")
+    assert len(m.vertices) == 3 and m.corners.tolist() == [0, 1, 2]
+    # '#' starts a comment anywhere on an OBJ line (common practice)
+    m = _read(tmp_path, "c.obj", b"v 0 0 0 # origin\nv 1 0 0\nv 0 1 0\nf 1 2 3 # a face\n")
+    assert m.corners.tolist() == [0, 1, 2]
+    # a comment that mentions end_header does not end the header
+    m = _read(tmp_path, "eh.ply", ply_bytes("ascii", "comment see end_header\n" + PLY_HEAD + FACE, TRI + b"3 0 1 2\n"))
+    assert m.corners.tolist() == [0, 1, 2]
+    m = _read(tmp_path, "bom.ply", b"\xef\xbb\xbf" + ply_bytes("ascii", PLY_HEAD + FACE, TRI + b"3 0 1 2\n"))
+    assert len(m.vertices) == 3
+
+
+def test_scalar_property_named_color_round_trips(tmp_path):
+    m = _read(tmp_path, "s.ply", ply_bytes("ascii", PLY_HEAD + "property float color\n" + FACE,
+                                           b"0 0 0 0.25\n1 0 0 0.5\n0 1 0 1\n3 0 1 2\n"))
+    assert m.properties["color"].tolist() == [0.25, 0.5, 1.0]
+    write_ply(tmp_path / "o.ply", m.vertices, corners=m.corners, sizes=m.sizes, properties=m.properties)
+    assert read_mesh(tmp_path / "o.ply").properties["color"].tolist() == [0.25, 0.5, 1.0]

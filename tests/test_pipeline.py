@@ -1,4 +1,4 @@
-"""The pair facade and the file jobs (engine/pipeline.py)."""
+"""The pair facade (engine/jobs/pair.py) and the file jobs (engine/jobs/file_jobs.py)."""
 
 import json
 
@@ -7,7 +7,8 @@ import pytest
 
 from engine.jobs.demo import creature, creature_signals
 from engine.intake.files import read_mesh, write_ply
-from engine.jobs.pair import Pair, Settings, load_landmarks, run_transfer_job, weighted_centre_vertex
+from engine.jobs.file_jobs import JobFiles, JobOptions, run_detail_job, run_transfer_job, unit_frame
+from engine.jobs.pair import Pair, Settings, load_landmarks, weighted_centre_vertex
 from engine.spectra.shape import Shape
 
 
@@ -63,6 +64,24 @@ def test_landmark_file_errors(tmp_path):
     p.write_text("[[0, 1.5]]")
     with pytest.raises(ValueError, match="two whole numbers"):
         load_landmarks(p, 10, 50)
+    p.write_text("[[true, false]]")  # JSON booleans are not vertex numbers
+    with pytest.raises(ValueError, match=r"pair 0 must hold two whole numbers, got \[True, False\]"):
+        load_landmarks(p, 10, 50)
+    p.write_text("[[1, 2], [3, 4], [1, 2]]")
+    with pytest.raises(ValueError, match=r"landmark 2 repeats landmark 0 \[1, 2\]"):
+        load_landmarks(p, 10, 50)
+    p.write_text("[[1, 2], [1, 4]]")
+    with pytest.raises(ValueError, match=r"give source vertex 1 two different target vertices \(2 and 4\)"):
+        load_landmarks(p, 10, 50)
+    p.write_text("[[1, 2], [3, 2]]")
+    with pytest.raises(ValueError, match=r"give target vertex 2 two different source vertices \(1 and 3\)"):
+        load_landmarks(p, 10, 50)
+    p.write_text("[" * 5000 + "]" * 5000)  # deeper than the JSON reader's recursion
+    with pytest.raises(ValueError, match="nesting too deep"):
+        load_landmarks(p, 10, 50)
+    p.write_bytes(b"\xff\xfe[[0, 1]]")
+    with pytest.raises(ValueError, match="not valid JSON"):
+        load_landmarks(p, 10, 50)
 
 
 def test_settings_errors():
@@ -82,13 +101,21 @@ def test_transfer_job_writes_every_property_with_its_type(tmp_path, aligned_pair
               properties={"color": encode_bytes(s["tint"]), "dirt": s["dirt"].astype(np.float32),
                           "stripe_id": s["stripe_id"].astype(np.int32)})
     write_ply(tmp_path / "t.ply", tgt.vertices, faces=tgt.faces)
-    report = run_transfer_job(tmp_path / "s.ply", tmp_path / "t.ply", tmp_path / "o.ply",
-                              report_path=tmp_path / "r.json", match="aligned")
+    files = JobFiles(tmp_path / "s.ply", tmp_path / "t.ply", tmp_path / "o.ply", report=tmp_path / "r.json")
+    report = run_transfer_job(files, JobOptions(match="aligned"))
     out = read_mesh(tmp_path / "o.ply")
     assert out.properties["color"].dtype == np.uint8 and out.properties["color"].shape == (len(tgt.vertices), 3)
     assert out.properties["dirt"].dtype == np.float32
     assert out.properties["stripe_id"].dtype == np.int32
-    assert set(np.unique(out.properties["stripe_id"])) <= set(np.unique(s["stripe_id"]))  # labels never blended
+    # labels never blended: each target vertex's label is the label of one
+    # corner of the source triangle it maps to (the same map, rebuilt here)
+    centre, scale = unit_frame(src.vertices, tgt.vertices)
+    S = Shape((src.vertices - centre) / scale, src.faces)
+    T = Shape((tgt.vertices - centre) / scale, tgt.faces)
+    tri = T.restore(Pair(S, T, Settings(match="aligned")).correspondence.triangle)
+    corner_labels = s["stripe_id"][S.prepared.from_clean[S.faces[tri]]]
+    assert (out.properties["stripe_id"][:, None] == corner_labels).any(axis=1).all()
+    assert len(np.unique(s["stripe_id"])) > 2  # several labels meet, so blending would show
     conf = out.properties["confidence"]
     assert conf.dtype == np.float32 and conf.min() >= 0 and conf.max() <= 1
     assert json.loads((tmp_path / "r.json").read_text())["mode"] == report["mode"] == "aligned"
@@ -109,3 +136,42 @@ def test_correspondence_is_cached_on_disk(tmp_path):
         runs.append((pair.cache_hits["correspondence"], pair.carry({"t": (values, "color")})["t"].values))
     assert [r[0] for r in runs] == ["computed", "disk"]
     np.testing.assert_array_equal(runs[0][1], runs[1][1])
+
+
+def test_detail_job_keeps_vertices_outside_the_surface(tmp_path):
+    # Vertices that belong to no face (isolated ones, a hole's leftovers, the
+    # corners of zero-area faces only) are not part of the surface: detail
+    # leaves them exactly where they were.
+    src, tgt = creature(30, 16, bumps=0.02), creature(36, 18)
+    n = len(tgt.vertices)
+    extra = np.array([[5.0, 5.0, 5.0], [6.0, 5.0, 5.0], [7.0, 5.0, 5.0], [0.3, 0.2, 0.1]])
+    vertices = np.vstack([tgt.vertices, extra])
+    faces = np.vstack([tgt.faces, [[n, n + 1, n + 2]]])  # collinear: a zero-area face
+    write_ply(tmp_path / "s.ply", src.vertices, faces=src.faces)
+    write_ply(tmp_path / "t.ply", vertices, faces=faces)
+    run_detail_job(JobFiles(tmp_path / "s.ply", tmp_path / "t.ply", tmp_path / "o.ply"),
+                   JobOptions(match="aligned"))
+    out = read_mesh(tmp_path / "o.ply").vertices
+    np.testing.assert_array_equal(out[n:], extra)
+    assert np.abs(out[:n] - tgt.vertices).max() > 1e-4  # the surface itself did move
+
+
+def test_results_do_not_depend_on_units(tmp_path):
+    # The same pair at about 1e-100, 1 and 1e100 times the size: identical
+    # carried values; detail positions scale with the input. Powers of two
+    # scale floating-point numbers exactly (IEEE 754, common practice), so the
+    # unit frame sees the same bits and any difference would be the engine's.
+    src, tgt = creature(30, 16, bumps=0.02), creature(36, 18, twist_offset=True)
+    dirt = creature_signals(src.uv)["dirt"].astype(np.float64)
+    got = {}
+    for scale in (2.0 ** -332, 1.0, 2.0 ** 332):
+        write_ply(tmp_path / "s.ply", src.vertices * scale, faces=src.faces, properties={"dirt": dirt})
+        write_ply(tmp_path / "t.ply", tgt.vertices * scale, faces=tgt.faces)
+        files = JobFiles(tmp_path / "s.ply", tmp_path / "t.ply", tmp_path / "o.ply")
+        run_transfer_job(files, JobOptions(match="aligned"))
+        values = read_mesh(tmp_path / "o.ply").properties["dirt"]
+        run_detail_job(files, JobOptions(match="aligned"))
+        got[scale] = values, read_mesh(tmp_path / "o.ply").vertices / scale
+    for scale in (2.0 ** -332, 2.0 ** 332):
+        np.testing.assert_array_equal(got[scale][0], got[1.0][0])
+        np.testing.assert_array_equal(got[scale][1], got[1.0][1])

@@ -23,12 +23,18 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+from typing import Any
+
 import numpy as np
+from numpy.typing import ArrayLike, NDArray
 
 from ..intake.preparation import validate_mesh
 
 __all__ = ["DetailLayer", "vertex_normals", "vertex_gradients", "tangent_frames",
-           "smooth_base", "split_detail", "apply_detail"]
+           "smooth_base", "split_detail", "apply_detail", "place_on_original", "check_strength",
+           "MAX_STRENGTH"]
+
+MAX_STRENGTH = 100.0  # |strength| accepted: a hundred times the source's detail is already a caricature
 
 
 @dataclass(frozen=True)
@@ -45,18 +51,18 @@ class DetailLayer:
         ``x - base`` in the local frame: components along t1, t2 and n.
     """
 
-    base: np.ndarray
-    frames: np.ndarray
-    offsets: np.ndarray
+    base: NDArray[Any]
+    frames: NDArray[Any]
+    offsets: NDArray[Any]
 
 
-def vertex_normals(vertices, faces) -> np.ndarray:
+def vertex_normals(vertices: ArrayLike, faces: ArrayLike) -> NDArray[Any]:
     """Area-weighted unit vertex normals, (n, 3). Isolated vertices get +z."""
     v, f = validate_mesh(vertices, faces)
     return vertex_normals_unchecked(v, f)
 
 
-def vertex_normals_unchecked(v: np.ndarray, f: np.ndarray) -> np.ndarray:
+def vertex_normals_unchecked(v: NDArray[Any], f: NDArray[Any]) -> NDArray[Any]:
     """:func:`vertex_normals` of an already validated mesh (the alignment
     loop of engine.correspondence calls it on every step)."""
     fn = np.cross(v[f[:, 1]] - v[f[:, 0]], v[f[:, 2]] - v[f[:, 0]])  # length = 2 * area
@@ -67,7 +73,7 @@ def vertex_normals_unchecked(v: np.ndarray, f: np.ndarray) -> np.ndarray:
     return _unit(n, fallback=np.array([0.0, 0.0, 1.0]))
 
 
-def vertex_gradients(vertices, faces, field) -> np.ndarray:
+def vertex_gradients(vertices: ArrayLike, faces: ArrayLike, field: ArrayLike) -> NDArray[Any]:
     """Gradient of a per-vertex scalar field, averaged to vertices by area.
 
     Parameters
@@ -98,10 +104,11 @@ def vertex_gradients(vertices, faces, field) -> np.ndarray:
     for c in range(3):
         np.add.at(out, f[:, c], grad * dbl_area[:, None])
         np.add.at(w, f[:, c], dbl_area)
-    return out / np.where(w > 0, w, 1.0)[:, None]
+    gradients: NDArray[Any] = out / np.where(w > 0, w, 1.0)[:, None]
+    return gradients
 
 
-def tangent_frames(vertices, faces, guides) -> np.ndarray:
+def tangent_frames(vertices: ArrayLike, faces: ArrayLike, guides: ArrayLike) -> NDArray[Any]:
     """Orthonormal frames ``[t1, t2, n]`` per vertex, (n, 3, 3).
 
     Parameters
@@ -138,7 +145,7 @@ def tangent_frames(vertices, faces, guides) -> np.ndarray:
     return np.stack([t1, t2, n], axis=1)
 
 
-def smooth_base(vertices, stiffness, mass, *, wavelength: float) -> np.ndarray:
+def smooth_base(vertices: ArrayLike, stiffness: Any, mass: ArrayLike, *, wavelength: float) -> NDArray[Any]:
     """Coordinates low-passed by ``1 / (1 + t lambda)^2``, (n, 3).
 
     Parameters
@@ -168,7 +175,7 @@ def smooth_base(vertices, stiffness, mass, *, wavelength: float) -> np.ndarray:
     return b
 
 
-def split_detail(vertices, faces, base, *, guides) -> DetailLayer:
+def split_detail(vertices: ArrayLike, faces: ArrayLike, base: ArrayLike, *, guides: ArrayLike) -> DetailLayer:
     """Split a surface into a given smooth base and local-frame offsets.
 
     Parameters
@@ -189,7 +196,7 @@ def split_detail(vertices, faces, base, *, guides) -> DetailLayer:
     return DetailLayer(base, frames, offsets)
 
 
-def apply_detail(layer: DetailLayer, offsets, *, strength: float = 1.0) -> np.ndarray:
+def apply_detail(layer: DetailLayer, offsets: ArrayLike, *, strength: float = 1.0) -> NDArray[Any]:
     """New positions: ``layer.base`` plus ``strength * offsets`` in ``layer.frames``.
 
     Parameters
@@ -206,13 +213,56 @@ def apply_detail(layer: DetailLayer, offsets, *, strength: float = 1.0) -> np.nd
         raise ValueError(f"offsets must have shape {layer.base.shape}, got {o.shape}")
     if not np.isfinite(o).all():
         raise ValueError("offsets contain non-finite values")
-    if not np.isfinite(strength):
-        raise ValueError(f"strength must be finite, got {strength}")
-    return layer.base + strength * np.einsum("nji,nj->ni", layer.frames, o)
+    moved: NDArray[Any] = layer.base + check_strength(strength) * np.einsum("nji,nj->ni", layer.frames, o)
+    if not np.isfinite(moved).all():
+        raise ValueError("detail gives non-finite positions")
+    return moved
 
 
-def _unit(x: np.ndarray, *, fallback: np.ndarray) -> np.ndarray:
+def check_strength(strength: float) -> float:
+    """``strength`` as a float when finite and at most :data:`MAX_STRENGTH` in size; else ValueError."""
+    try:
+        value = float(strength)
+    except (TypeError, ValueError, OverflowError):
+        raise ValueError(f"detail strength must be a number, got {strength!r}") from None
+    if not (np.isfinite(value) and abs(value) <= MAX_STRENGTH):
+        raise ValueError(f"detail strength must be between {-MAX_STRENGTH:g} and {MAX_STRENGTH:g}, got {strength}")
+    return value
+
+
+def place_on_original(original: NDArray[Any], to_clean: NDArray[Any], positions: NDArray[Any]) -> NDArray[Any]:
+    """New positions for every original vertex; vertices outside the surface stay where they were.
+
+    Parameters
+    ----------
+    original : (n, 3) float array
+        The original vertex positions.
+    to_clean : (n,) int array
+        Each original vertex's index in ``positions``, or -1 for a vertex
+        that belongs to no kept face (isolated, left by a hole, only in
+        zero-area faces): such vertices keep their original position.
+    positions : (n_clean, 3) float array
+        New positions of the surface's vertices.
+
+    Returns
+    -------
+    (n, 3) float64
+    """
+    v = np.asarray(original, dtype=np.float64)
+    idx = np.asarray(to_clean, dtype=np.int64)
+    p = np.asarray(positions, dtype=np.float64)
+    if v.ndim != 2 or v.shape[1] != 3 or idx.shape != (v.shape[0],):
+        raise ValueError(f"original {v.shape} and to_clean {idx.shape} do not fit")
+    if p.ndim != 2 or p.shape[1] != 3 or (idx.size and idx.max() >= p.shape[0]):
+        raise ValueError(f"positions {p.shape} do not fit the map to {int(idx.max(initial=-1)) + 1} vertices")
+    out = v.copy()
+    on = idx >= 0
+    out[on] = p[idx[on]]
+    return out
+
+
+def _unit(x: NDArray[Any], *, fallback: NDArray[Any]) -> NDArray[Any]:
     size = np.linalg.norm(x, axis=1, keepdims=True)
-    out = x / np.where(size > 0, size, 1.0)
+    out: NDArray[Any] = x / np.where(size > 0, size, 1.0)
     out[size[:, 0] == 0] = fallback
     return out

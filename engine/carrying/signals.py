@@ -21,7 +21,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .color import decode_bytes, encode_bytes
+from .color import decode_colour, encode_colour, is_colour_range
 
 __all__ = ["KINDS", "Signal", "signals_from_properties", "signal_to_property", "check_signal"]
 
@@ -117,13 +117,9 @@ def signals_from_properties(properties: dict, *, names=None) -> dict[str, Signal
     for name in chosen:
         a = np.asarray(properties[name])
         n = a.shape[0]
-        if name == "color" or (a.ndim == 2 and a.shape[1] in (3, 4) and "color" in name.lower()):
-            if a.dtype == np.uint8:
-                values = decode_bytes(a)
-            else:
-                values = check_signal(name, a, n, "color")
-            out[name] = Signal(name, "color", values, a.dtype)
-        elif np.issubdtype(a.dtype, np.integer) or a.dtype == bool:
+        if a.ndim == 2 and a.shape[1] in (3, 4) and "color" in name.lower() and is_colour_range(a):
+            out[name] = Signal(name, "color", decode_colour(a), a.dtype)
+        elif (np.issubdtype(a.dtype, np.integer) or a.dtype == bool) and a.ndim == 1:
             kind = "mask" if a.dtype == bool or np.isin(a, (0, 1)).all() else "label"
             out[name] = Signal(name, kind, check_signal(name, a, n, kind), a.dtype)
         else:
@@ -135,10 +131,13 @@ def signals_from_properties(properties: dict, *, names=None) -> dict[str, Signal
 def signal_to_property(signal: Signal, values) -> np.ndarray:
     """Values of ``signal``'s kind back to its file dtype (sRGB bytes for 8-bit colours)."""
     a = np.asarray(values)
-    if signal.kind == "color" and signal.dtype == np.uint8:
-        return encode_bytes(a)
+    if signal.kind == "color":
+        return encode_colour(a, signal.dtype)
     if signal.kind in ("label", "mask"):
         return a.astype(signal.dtype)
     if not np.isfinite(a).all():
         raise ValueError(f"refusing to write non-finite values for {signal.name!r}")
+    if np.issubdtype(signal.dtype, np.integer):  # integer vectors (colours outside the colour range)
+        info = np.iinfo(signal.dtype)
+        return np.clip(np.round(a), info.min, info.max).astype(signal.dtype)
     return a.astype(signal.dtype)

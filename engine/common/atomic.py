@@ -1,38 +1,119 @@
-"""Writing a file all at once: a temporary file beside it, then ``os.replace``.
+"""Writing files all at once: a temporary file beside each, then ``os.replace``.
 
-Readers of the target see either the old file or the complete new one, never
-a half-written one: the data goes to a temporary file in the target's own
-folder (so the final rename stays on one file system) and is moved onto the
-target only when the writing finished without an exception. On any exception
-(``KeyboardInterrupt`` included) the temporary file is removed and the target
-is left as it was.
+Readers of a target see either the old file or the complete new one, never a
+half-written one: the data goes to a temporary file in the target's own folder
+(so the final rename stays on one file system), is flushed and ``fsync``-ed,
+and is moved onto the target only when the writing finished without an
+exception. On any exception (``KeyboardInterrupt`` included, and a SIGTERM
+once :func:`terminate_as_interrupt` is in force) the temporary file is removed
+and the target is left as it was. :func:`atomic_writes` stages several files
+and renames them together at the end, so a failure leaves none of them.
+
+Temporary files are named ``.<target name>.<pid>-<random>.overtone-tmp``. A
+process killed outright (SIGKILL, power loss) cannot remove its own;
+:func:`remove_leftovers` removes those whose process no longer runs, and the
+cache and the file jobs call it on their folders before they write.
+
+New files get the permission bits ``0o666`` less the umask, as ``open(path,
+"w")`` gives.
 
 Source: ``os.replace`` is ``rename(2)`` on POSIX, which replaces an existing
 target atomically (POSIX.1-2008, rename()), and ``MoveFileEx`` with
 ``MOVEFILE_REPLACE_EXISTING`` on Windows (Python documentation of
-``os.replace``, from memory).
+``os.replace``, from memory). ``fsync`` of the folder after the rename makes
+the new name durable (POSIX.1-2008, fsync(), common practice).
 """
 
 from __future__ import annotations
 
 import errno
 import os
+import re
 import secrets
-import tempfile
+import signal
+import sys
+import time
+from collections.abc import Iterator
 from contextlib import contextmanager
+from types import FrameType
+from typing import IO, Any
 
-__all__ = ["atomic_write"]
+__all__ = ["atomic_write", "atomic_writes", "Staging", "remove_leftovers", "terminate_as_interrupt",
+           "TEMP_SUFFIX", "is_temporary", "Terminated",
+           "quiet_interrupts_while_starting"]
 
+TEMP_SUFFIX = ".overtone-tmp"
+_TEMP_NAME = re.compile(r"^\..*\.(\d+)-[0-9a-f]{8}" + re.escape(TEMP_SUFFIX) + "$")
 # The flags tempfile.mkstemp opens its files with (CPython 3.11
 # Lib/tempfile.py, _bin_openflags): create exclusively, never through a
 # symbolic link, binary on Windows.
 _FLAGS = os.O_RDWR | os.O_CREAT | os.O_EXCL | getattr(os, "O_NOFOLLOW", 0) | getattr(os, "O_BINARY", 0)
 _ATTEMPTS = getattr(os, "TMP_MAX", 10000)  # as tempfile.TMP_MAX
+_STALE_SECONDS = 24 * 3600  # where a process cannot be asked whether it runs
+
+
+def is_temporary(name: str) -> bool:
+    """Whether a file name is one of this module's temporary files."""
+    return _TEMP_NAME.match(os.path.basename(name)) is not None
+
+
+class Staging:
+    """Files written to temporary names, renamed onto their targets by :meth:`commit`."""
+
+    def __init__(self) -> None:
+        self.staged: list[tuple[str, str]] = []
+
+    @contextmanager
+    def open(self, path: str | os.PathLike[str], *, text: bool = False) -> Iterator[IO[Any]]:
+        """A new temporary file beside ``path``, flushed and fsync-ed when the block ends.
+
+        The file is removed if the block raises; otherwise it waits for
+        :meth:`commit` (or :meth:`discard`).
+        """
+        target = os.fspath(path)
+        fd, tmp = _create(target)
+        try:
+            with os.fdopen(fd, "w" if text else "wb") as fh:
+                yield fh
+                fh.flush()
+                os.fsync(fh.fileno())
+        except BaseException:
+            _remove(tmp)
+            raise
+        self.staged.append((tmp, target))
+
+    def commit(self) -> None:
+        """Rename every staged file onto its target, in the order written."""
+        try:
+            while self.staged:
+                tmp, target = self.staged[0]
+                os.replace(tmp, target)
+                self.staged.pop(0)
+                _sync_folder(target)
+        finally:
+            self.discard()
+
+    def discard(self) -> None:
+        """Remove the staged files that were not renamed."""
+        for tmp, _ in self.staged:
+            _remove(tmp)
+        self.staged = []
 
 
 @contextmanager
-def atomic_write(path, *, text: bool = False, fsync: bool = False, prefix: str | None = None,
-                 suffix: str = ".tmp", permissions: int | None = None):
+def atomic_writes() -> Iterator[Staging]:
+    """Stage several files; all are renamed at the end, or on an exception none."""
+    staging = Staging()
+    try:
+        yield staging
+    except BaseException:
+        staging.discard()
+        raise
+    staging.commit()
+
+
+@contextmanager
+def atomic_write(path: str | os.PathLike[str], *, text: bool = False) -> Iterator[IO[Any]]:
     """Open a temporary file beside ``path``; on a clean exit move it onto ``path``.
 
     Parameters
@@ -42,23 +123,6 @@ def atomic_write(path, *, text: bool = False, fsync: bool = False, prefix: str |
     text : bool
         Yield a text file (the locale's encoding and newlines, as
         ``open(path, "w")``) instead of a binary one.
-    fsync : bool
-        Flush and ``os.fsync`` the temporary file before the rename, so the
-        new content is on disk before it replaces the old.
-    prefix, suffix : str
-        Name of the temporary file: ``prefix + random + suffix`` in the
-        target's folder; the default prefix is ``"." + name + "."``.
-    permissions : int, optional
-        None creates the temporary file with ``tempfile.mkstemp`` (readable
-        and writable by the owner only, 0o600); a number creates it with
-        those permission bits less the umask, as ``open`` does for a new file
-        (0o666 gives what ``open(path, "w")`` would). The target ends up with
-        the temporary file's permissions.
-
-    Yields
-    ------
-    file object
-        Open for writing; closed before the rename.
 
     Raises
     ------
@@ -66,34 +130,126 @@ def atomic_write(path, *, text: bool = False, fsync: bool = False, prefix: str |
         When the temporary file cannot be created (for example a missing
         folder), written or renamed; the target is then unchanged.
     """
-    path = os.fspath(path)
-    folder = os.path.dirname(path) or "."
-    if prefix is None:
-        prefix = f".{os.path.basename(path)}."
-    fd, tmp = _create(folder, prefix, suffix, permissions)
-    try:
-        with os.fdopen(fd, "w" if text else "wb") as fh:
+    with atomic_writes() as staging:
+        with staging.open(path, text=text) as fh:
             yield fh
-            if fsync:
-                fh.flush()
-                os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        try:
-            os.remove(tmp)
-        except OSError:
-            pass
-        raise
 
 
-def _create(folder: str, prefix: str, suffix: str, permissions: int | None) -> tuple[int, str]:
-    if permissions is None:
-        return tempfile.mkstemp(prefix=prefix, suffix=suffix, dir=folder)
-    folder = os.path.abspath(folder)  # as mkstemp, so a later chdir cannot move it
+def _create(target: str) -> tuple[int, str]:
+    folder = os.path.abspath(os.path.dirname(target) or ".")  # as mkstemp: a later chdir cannot move it
+    stem = f".{os.path.basename(target)}.{os.getpid()}-"
     for _ in range(_ATTEMPTS):
-        tmp = os.path.join(folder, f"{prefix}{secrets.token_hex(4)}{suffix}")
+        tmp = os.path.join(folder, f"{stem}{secrets.token_hex(4)}{TEMP_SUFFIX}")
         try:
-            return os.open(tmp, _FLAGS, permissions), tmp
+            return os.open(tmp, _FLAGS, 0o666), tmp
         except FileExistsError:
             continue
     raise FileExistsError(errno.EEXIST, f"no free temporary file name in {folder!r}")
+
+
+def _remove(path: str) -> None:
+    try:
+        os.remove(path)
+    except OSError:
+        pass
+
+
+def _sync_folder(target: str) -> None:
+    if sys.platform == "win32":
+        return
+    try:
+        fd = os.open(os.path.dirname(os.path.abspath(target)), os.O_RDONLY)
+    except OSError:
+        return
+    try:
+        os.fsync(fd)
+    except OSError:
+        pass
+    finally:
+        os.close(fd)
+
+
+def _running(pid: int) -> bool:
+    if pid == os.getpid():
+        return True
+    try:
+        os.kill(pid, 0)  # signal 0: only asks whether the process exists (POSIX.1-2008, kill())
+    except ProcessLookupError:
+        return False
+    except OSError:
+        return True  # exists, owned by someone else
+    return True
+
+
+def remove_leftovers(folder: str | os.PathLike[str]) -> int:
+    """Remove temporary files of writers that no longer run; returns how many.
+
+    On POSIX a file's writer is the process id in its name; elsewhere (where
+    asking would terminate the process) a file counts as left over after a day.
+    """
+    try:
+        names = os.listdir(folder)
+    except OSError:
+        return 0
+    removed = 0
+    for name in names:
+        m = _TEMP_NAME.match(name)
+        if m is None:
+            continue
+        path = os.path.join(folder, name)
+        if sys.platform == "win32":
+            try:
+                stale = time.time() - os.stat(path).st_mtime > _STALE_SECONDS
+            except OSError:
+                continue
+        else:
+            stale = not _running(int(m.group(1)))
+        if stale:
+            try:
+                os.remove(path)
+                removed += 1
+            except OSError:
+                pass
+    return removed
+
+
+class Terminated(KeyboardInterrupt):
+    """SIGTERM, raised where the process is so that clean-up code runs."""
+
+
+def _raise_terminated(signum: int, frame: FrameType | None) -> None:
+    raise Terminated()
+
+
+def _exit_quietly(signum: int, frame: FrameType | None) -> None:
+    os._exit(128 + signum)
+
+
+def quiet_interrupts_while_starting() -> None:
+    """SIGINT and SIGTERM end the process at once, without a traceback.
+
+    For a command line while it imports its modules: nothing is written yet,
+    so there is nothing to clean up; :func:`terminate_as_interrupt` takes over
+    when the work starts.
+    """
+    for sig in (signal.SIGINT, signal.SIGTERM):
+        try:
+            signal.signal(sig, _exit_quietly)
+        except ValueError:  # not the main thread
+            return
+
+
+@contextmanager
+def terminate_as_interrupt() -> Iterator[None]:
+    """While in force, SIGINT raises ``KeyboardInterrupt`` and SIGTERM :class:`Terminated` (one)."""
+    try:
+        previous = {sig: signal.signal(sig, handler) for sig, handler in
+                    ((signal.SIGINT, signal.default_int_handler), (signal.SIGTERM, _raise_terminated))}
+    except ValueError:  # not the main thread: leave signals alone
+        yield
+        return
+    try:
+        yield
+    finally:
+        for sig, handler in previous.items():
+            signal.signal(sig, signal.SIG_DFL if handler is None else handler)

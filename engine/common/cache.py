@@ -1,13 +1,16 @@
 """An on-disk cache of computed arrays (eigenbases first of all).
 
 Entries are ``.npz`` files named by a key derived from the inputs
-(:func:`geometry_key`). They are written atomically (a temporary file in the
-same folder, then ``os.replace``) and read with ``allow_pickle=False``. Every
-load is validated: the stored key and format version must match, every
-requested field must be present with the expected shape, and floating-point
-arrays must be finite. A file that fails any check (truncated, corrupted,
-written for another key or version) is deleted and reported as a miss, never
-trusted and never an exception.
+(:func:`geometry_key`). They are written atomically (:mod:`engine.common.atomic`)
+and read with ``allow_pickle=False``. Every load is validated field by field:
+exactly the meta fields (key, format version, content checksum), the stored
+key and version must match, the sha256 of the fields' names, dtypes, shapes
+and bytes must equal the checksum, every requested field must be present with
+the stored dtypes (float64, int64, bool, str) and the expected shape (lengths
+shared between fields by name), and floating-point arrays must be finite. A
+file that fails any check (truncated, corrupted, edited, written for another
+key or version) is deleted and reported as a miss, so the caller recomputes
+it; never trusted and never an exception.
 """
 
 from __future__ import annotations
@@ -16,18 +19,24 @@ import hashlib
 import os
 import zipfile
 
+from typing import Any
+
 import numpy as np
+from numpy.typing import NDArray
 
-from .atomic import atomic_write
+from collections.abc import Iterable, Mapping
 
-__all__ = ["geometry_key", "Cache", "cached_eigenbasis"]
+from .atomic import atomic_write, remove_leftovers
 
-_FORMAT = 1  # bump when the layout of entries changes
+__all__ = ["geometry_key", "Cache", "FieldSpec"]
+
+_FORMAT = 2  # bump when the layout of entries changes (2: content checksum, float64/int64 fields)
 _META_KEY = "__key__"
 _META_VERSION = "__version__"
+_META_DIGEST = "__sha256__"
 
 
-def geometry_key(*arrays, **params) -> str:
+def geometry_key(*arrays: Any, **params: str | int | float | bool | None) -> str:
     """Stable sha256 hex digest of arrays and parameters.
 
     Parameters
@@ -69,13 +78,63 @@ def geometry_key(*arrays, **params) -> str:
     return h.hexdigest()
 
 
+FieldSpec = tuple[int | str | None, ...] | None
+
+
+def _content_digest(arrays: dict[str, NDArray[Any]]) -> str:
+    """sha256 over every field's name, dtype, shape and bytes, in name order."""
+    h = hashlib.sha256()
+    for name in sorted(arrays):
+        a = np.ascontiguousarray(arrays[name])
+        h.update(f"{name}|{a.dtype.str}|{a.shape}|".encode())
+        h.update(a.tobytes())
+    return h.hexdigest()
+
+
+def _stored_form(name: object, value: object) -> NDArray[Any]:
+    """A field as it is stored: floats as float64, integers as int64."""
+    if not isinstance(name, str) or not name or name.startswith("__"):
+        raise ValueError(f"field name {name!r} is reserved or not a string")
+    a = np.asarray(value)
+    if a.dtype == object:
+        raise ValueError(f"field {name!r} is an object array; only numeric and string arrays are stored")
+    if a.dtype.kind == "f":
+        return a.astype(np.float64)
+    if a.dtype.kind in "iu":
+        return a.astype(np.int64)
+    if a.dtype.kind in "bU":
+        return a
+    raise ValueError(f"field {name!r} has dtype {a.dtype}; only float, integer, bool and str are stored")
+
+
+def _fits(a: NDArray[Any], shape: FieldSpec, sizes: dict[str, int]) -> bool:
+    """Whether ``a`` has the stored dtypes and the requested shape; named sizes must agree."""
+    if a.dtype.kind == "f" and a.dtype != np.float64 or a.dtype.kind in "iu" and a.dtype != np.int64:
+        return False
+    if a.dtype.kind not in "fiubU" or a.dtype.kind == "u":
+        return False
+    if a.dtype.kind == "f" and not np.isfinite(a).all():
+        return False
+    if shape is None:
+        return True
+    if a.ndim != len(shape):
+        return False
+    for want, got in zip(shape, a.shape):
+        if isinstance(want, str):
+            if sizes.setdefault(want, got) != got:
+                return False
+        elif want is not None and want != got:
+            return False
+    return True
+
+
 class Cache:
     """A folder of ``.npz`` entries with validation, size accounting and pruning.
 
     Parameters
     ----------
     folder : str or os.PathLike
-        Created if missing.
+        Created if missing. Temporary files of killed writers are removed.
 
     Attributes
     ----------
@@ -83,9 +142,10 @@ class Cache:
         Counted by :meth:`load` (a rejected file counts as a miss).
     """
 
-    def __init__(self, folder):
+    def __init__(self, folder: str | os.PathLike[str]) -> None:
         self.folder = os.fspath(folder)
         os.makedirs(self.folder, exist_ok=True)
+        remove_leftovers(self.folder)
         self.hits = 0
         self.misses = 0
 
@@ -94,7 +154,7 @@ class Cache:
             raise ValueError(f"cache key must be a non-empty string of letters, digits, '-' or '_', got {key!r}")
         return os.path.join(self.folder, key + ".npz")
 
-    def load(self, key: str, fields) -> dict | None:
+    def load(self, key: str, fields: Iterable[str] | Mapping[str, FieldSpec]) -> dict[str, NDArray[Any]] | None:
         """The stored arrays, or None on a miss.
 
         Parameters
@@ -102,16 +162,20 @@ class Cache:
         key : str
         fields : iterable of str or dict
             Names required in the entry; a dict maps each name to its expected
-            shape (a tuple, ``None`` entries matching any length) or to None.
+            shape or to None. A shape is a tuple whose entries are a length,
+            ``None`` (any length) or a name: every dimension with the same
+            name must have the same length in all fields.
 
         Returns
         -------
         dict of name -> ndarray, or None
             None when there is no entry or the entry fails validation (it is
-            then deleted).
+            then deleted). Valid entries hold exactly the fields saved, each
+            float64, int64, bool or str, with the content checksum written
+            by :meth:`save`.
         """
         path = self._path(key)
-        shapes = dict(fields) if isinstance(fields, dict) else {f: None for f in fields}
+        shapes = dict(fields) if isinstance(fields, Mapping) else {f: None for f in fields}
         if not os.path.exists(path):
             self.misses += 1
             return None
@@ -131,56 +195,49 @@ class Cache:
         return out
 
     @staticmethod
-    def _read_valid(path, key, shapes):
+    def _read_valid(path: str, key: str, shapes: dict[str, FieldSpec]) -> dict[str, NDArray[Any]] | None:
         try:
             with np.load(path, allow_pickle=False) as z:
-                names = set(z.files)
-                if _META_KEY not in names or _META_VERSION not in names:
-                    return None
-                if str(z[_META_KEY]) != key or int(z[_META_VERSION]) != _FORMAT:
-                    return None
-                out = {}
-                for name, shape in shapes.items():
-                    if name not in names:
-                        return None
-                    a = z[name]
-                    if shape is not None:
-                        if a.ndim != len(shape) or any(s is not None and s != d for s, d in zip(shape, a.shape)):
-                            return None
-                    if a.dtype.kind in "fc" and not np.isfinite(a).all():
-                        return None
-                    out[name] = a
-                return out
-        except (OSError, ValueError, EOFError, KeyError, zipfile.BadZipFile, TypeError):
+                stored = {name: z[name] for name in z.files}
+        except (OSError, ValueError, EOFError, KeyError, zipfile.BadZipFile, TypeError, MemoryError,
+                RuntimeError, AttributeError, IndexError, UnicodeError):
             return None
+        meta = {name: stored.pop(name) for name in list(stored) if name.startswith("__")}
+        if set(meta) != {_META_KEY, _META_VERSION, _META_DIGEST}:
+            return None
+        if any(a.shape != () or a.dtype.kind not in "Ui" for a in meta.values()):
+            return None
+        if str(meta[_META_KEY]) != key or meta[_META_VERSION].dtype.kind != "i" \
+                or int(meta[_META_VERSION]) != _FORMAT:
+            return None
+        if not set(shapes) <= set(stored) or _content_digest(stored) != str(meta[_META_DIGEST]):
+            return None
+        sizes: dict[str, int] = {}
+        if not all(_fits(stored[name], shape, sizes) for name, shape in shapes.items()):
+            return None
+        return {name: stored[name] for name in shapes}
 
-    def save(self, key: str, arrays: dict) -> str:
+    def save(self, key: str, arrays: Mapping[str, object]) -> str:
         """Write an entry atomically; returns its path.
 
         Parameters
         ----------
         key : str
         arrays : dict of name -> array-like
-            Names must not start with ``__``; object arrays are refused.
+            Names must not start with ``__``; floats are stored as float64,
+            integers as int64; object arrays are refused.
         """
         path = self._path(key)
-        data = {}
-        for name, a in arrays.items():
-            if not isinstance(name, str) or name.startswith("__"):
-                raise ValueError(f"field name {name!r} is reserved or not a string")
-            a = np.asarray(a)
-            if a.dtype == object:
-                raise ValueError(f"field {name!r} is an object array; only numeric and string arrays are stored")
-            data[name] = a
+        data = {name: _stored_form(name, a) for name, a in arrays.items()}
+        digest = _content_digest(data)
         data[_META_KEY] = np.asarray(key)
-        data[_META_VERSION] = np.asarray(_FORMAT)
-        # ".tmp-*.npz": a temporary file a killed process left behind is an
-        # entry to _entries, so clear() and prune() remove it
-        with atomic_write(path, fsync=True, prefix=".tmp-", suffix=".npz") as fh:
+        data[_META_VERSION] = np.asarray(_FORMAT, dtype=np.int64)
+        data[_META_DIGEST] = np.asarray(digest)
+        with atomic_write(path) as fh:
             np.savez(fh, **data)
         return path
 
-    def _entries(self):
+    def _entries(self) -> list[tuple[float, int, str]]:
         out = []
         for name in os.listdir(self.folder):
             if name.endswith(".npz"):
@@ -225,56 +282,3 @@ class Cache:
             total -= size
             n += 1
         return n
-
-
-def cached_eigenbasis(stiffness, mass, k: int, *, cache: Cache | None = None, vertices=None, faces=None,
-                      seed: int = 0, tol: float = 1e-8, method: str = "auto", **params):
-    """:func:`engine.eigenbasis.eigenbasis` through the cache.
-
-    The key covers the stiffness and mass themselves (so any change of the
-    operators is a miss), optionally the vertices and faces, and every option.
-    A hit returns arrays identical to those computed and saved.
-
-    Parameters
-    ----------
-    stiffness, mass, k, seed, tol, method
-        As for :func:`engine.eigenbasis.eigenbasis`.
-    cache : Cache or None
-        None computes without caching.
-    vertices : (n, 3) float array, optional
-    faces : (m, 3) int array, optional
-        Mixed into the key when given.
-    **params
-        Further str/int/float/bool values mixed into the key (for example the
-        Laplacian kind), so that callers can tell entries apart.
-
-    Returns
-    -------
-    Eigenbasis
-        ``info["cache"]`` is ``"hit"``, ``"miss"`` or ``"off"``.
-    """
-    from ..spectra.eigensolver import Eigenbasis, eigenbasis
-
-    if cache is None:
-        basis = eigenbasis(stiffness, mass, k, seed=seed, tol=tol, method=method)
-        basis.info["cache"] = "off"
-        return basis
-    arrays = [stiffness, np.asarray(mass, dtype=np.float64)]
-    if vertices is not None:
-        arrays.append(np.asarray(vertices))
-    if faces is not None:
-        arrays.append(np.asarray(faces))
-    key = geometry_key(*arrays, k=int(k), seed=int(seed), tol=float(tol), method=str(method),
-                       kind="eigenbasis", **params)
-    n = int(np.asarray(mass).shape[0])
-    got = cache.load(key, {"eigenvalues": (k,), "eigenvectors": (n, k), "mass": (n,), "residuals": (k,),
-                           "method": ()})
-    if got is not None:
-        info = {"method": str(got["method"]), "cache": "hit", "key": key}
-        return Eigenbasis(got["eigenvalues"], got["eigenvectors"], got["mass"], got["residuals"], info)
-    basis = eigenbasis(stiffness, mass, k, seed=seed, tol=tol, method=method)
-    cache.save(key, {"eigenvalues": basis.eigenvalues, "eigenvectors": basis.eigenvectors,
-                     "mass": basis.mass, "residuals": basis.residuals, "method": np.asarray(basis.info["method"])})
-    basis.info["cache"] = "miss"
-    basis.info["key"] = key
-    return basis

@@ -20,17 +20,21 @@ lines, then face lines ``k i_1 .. i_k [colour]``; ``#`` starts a comment)
 
 from __future__ import annotations
 
+import os
 import struct
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Any
 
 import numpy as np
+from numpy.typing import ArrayLike, NDArray
 
 from ..common.atomic import atomic_write
 from .triangulation import triangulate
 from .preparation import validate_polygons, validate_vertices
 
-__all__ = ["MeshData", "read_mesh", "write_ply"]
+__all__ = ["MeshData", "read_mesh", "write_ply", "ply_chunks"]
 
 # PLY scalar type names (both the original names and the sized aliases).
 _PLY_TYPES = {
@@ -63,19 +67,19 @@ class MeshData:
         for OBJ and OFF.
     """
 
-    vertices: np.ndarray
-    corners: np.ndarray
-    sizes: np.ndarray
-    properties: dict = field(default_factory=dict)
+    vertices: NDArray[Any]
+    corners: NDArray[Any]
+    sizes: NDArray[Any]
+    properties: dict[str, NDArray[Any]] = field(default_factory=dict)
 
-    def triangles(self) -> np.ndarray:
+    def triangles(self) -> NDArray[Any]:
         """The polygons as triangles, (t, 3) int64, by ear clipping (``_triangulate``)."""
         return triangulate(self.vertices, self.corners, self.sizes)[0]
 
 
 # ---------------------------------------------------------------- reading
 
-def read_mesh(path) -> MeshData:
+def read_mesh(path: str | os.PathLike[str]) -> MeshData:
     """Read a ``.ply``, ``.obj`` or ``.off`` file.
 
     Parameters
@@ -113,31 +117,46 @@ def read_mesh(path) -> MeshData:
     return MeshData(vertices=vertices, corners=corners, sizes=sizes, properties=props)
 
 
+_BOM = b"\xef\xbb\xbf"  # UTF-8 byte-order mark (Unicode standard, section 23.8, from memory)
+
+
+_Parts = tuple[NDArray[Any], NDArray[Any], NDArray[Any], dict[str, NDArray[Any]]]
+
+
 class _FormatError(Exception):
     """A problem in a file's content; read_mesh adds the file name."""
 
 
 def _split_header(data: bytes) -> tuple[list[str], int]:
-    if not data.startswith(b"ply"):
+    """The header's lines (without ``end_header``) and where the body starts.
+
+    ``end_header`` counts only as a line of its own, so a comment that
+    mentions it does not end the header.
+    """
+    start = len(_BOM) if data.startswith(_BOM) else 0
+    if not data.startswith(b"ply", start):
         raise _FormatError("not a PLY file (it does not start with 'ply')")
-    end = data.find(b"end_header")
-    if end < 0:
-        raise _FormatError("PLY header has no 'end_header' line")
-    body = data.find(b"\n", end)
-    if body < 0:
-        body = len(data) - 1
+    at = start
+    while True:
+        nl = data.find(b"\n", at)
+        line = data[at:] if nl < 0 else data[at:nl]
+        if line.strip() == b"end_header":
+            break
+        if nl < 0:
+            raise _FormatError("PLY header has no 'end_header' line")
+        at = nl + 1
     try:
-        header = data[:end].decode("ascii")
+        header = data[start:at].decode("ascii")
     except UnicodeDecodeError:
         raise _FormatError("PLY header is not ASCII text") from None
-    return header.splitlines(), body + 1
+    return header.splitlines(), len(data) if nl < 0 else nl + 1
 
 
 class _Element:
     def __init__(self, name: str, count: int):
         self.name, self.count = name, count
         # (name, dtype string) for scalars, (name, item dtype string, count dtype string) for lists
-        self.props: list[tuple] = []
+        self.props: list[tuple[str, ...]] = []
 
 
 def _parse_header(lines: list[str]) -> tuple[str, list[_Element]]:
@@ -182,7 +201,7 @@ def _ply_type(name: str, number: int) -> str:
     return _PLY_TYPES[name]
 
 
-def _read_ply(data: bytes):
+def _read_ply(data: bytes) -> _Parts:
     lines, pos = _split_header(data)
     fmt, elements = _parse_header(lines)
     names = [e.name for e in elements]
@@ -190,7 +209,8 @@ def _read_ply(data: bytes):
         raise _FormatError("PLY file has no vertex element")
     reader = _AsciiBody(data[pos:]) if fmt == "ascii" else \
         _BinaryBody(data, pos, "<" if fmt == "binary_little_endian" else ">")
-    vertex_cols = face_lists = None
+    vertex_cols: dict[str, Any] | None = None
+    face_lists: dict[str, Any] | None = None
     for e in elements:
         wanted = e.name in ("vertex", "face")
         cols = reader.element(e, keep=wanted)
@@ -198,19 +218,23 @@ def _read_ply(data: bytes):
             vertex_cols = cols
         elif e.name == "face" and face_lists is None:
             face_lists = cols
-        if vertex_cols is not None and (face_lists is not None or "face" not in names):
-            break  # later elements are not needed
-    missing = [c for c in "xyz" if c not in vertex_cols]
+    reader.check_end()
+    assert vertex_cols is not None
+    missing = [c for c in "xyz" if not isinstance(vertex_cols.get(c), np.ndarray)]
     if missing:
         raise _FormatError(f"vertex element has no {'/'.join(missing)} property")
     vertices = np.column_stack([vertex_cols[c].astype(np.float64) for c in "xyz"])
-    props = _group_properties({k: a for k, a in vertex_cols.items() if k not in ("x", "y", "z") and a.ndim == 1})
+    # list properties of vertices (neighbour lists and the like) cannot be carried: skipped
+    props = _group_properties({k: a for k, a in vertex_cols.items()
+                               if k not in ("x", "y", "z") and isinstance(a, np.ndarray)})
     corners = np.zeros(0, np.int64)
     sizes = np.zeros(0, np.int64)
     if face_lists is not None:
         key = next((k for k in ("vertex_indices", "vertex_index") if k in face_lists), None)
         if key is None:
             raise _FormatError("face element has no vertex_indices (or vertex_index) list property")
+        if not isinstance(face_lists[key], tuple):
+            raise _FormatError(f"face property {key!r} is a single number, not a list of vertex indices")
         corners, sizes = face_lists[key]
         if np.issubdtype(corners.dtype, np.floating):
             raise _FormatError("face vertex indices have a floating-point type")
@@ -222,7 +246,7 @@ def _read_ply(data: bytes):
     return vertices, corners, sizes, props
 
 
-def _group_properties(cols: dict) -> dict:
+def _group_properties(cols: dict[str, NDArray[Any]]) -> dict[str, NDArray[Any]]:
     """Join red/green/blue[/alpha] into "color" and nx/ny/nz into "normal".
 
     Only when all members are present with one dtype; the group takes the
@@ -233,17 +257,17 @@ def _group_properties(cols: dict) -> dict:
         have = [p for p in parts if p in cols]
         if group not in cols and all(p in cols for p in parts[:3]) and len({cols[p].dtype for p in have}) == 1:
             members.update({p: group for p in have})
-    props: dict = {}
+    props: dict[str, NDArray[Any]] = {}
     for name, a in cols.items():
-        group = members.get(name)
-        if group is None:
+        member: str | None = members.get(name)
+        if member is None:
             props[name] = a
-        elif group not in props:
-            props[group] = np.column_stack([cols[p] for p in _GROUPS[group] if members.get(p) == group])
+        elif member not in props:
+            props[member] = np.column_stack([cols[p] for p in _GROUPS[member] if members.get(p) == member])
     return props
 
 
-def _native(a: np.ndarray) -> np.ndarray:
+def _native(a: NDArray[Any]) -> NDArray[Any]:
     return np.ascontiguousarray(a, dtype=a.dtype.newbyteorder("="))
 
 
@@ -254,10 +278,21 @@ class _BinaryBody:
         self.data, self.pos, self.endian = data, pos, endian
         self.buf = np.frombuffer(data, dtype=np.uint8)
 
-    def _dt(self, code: str) -> np.dtype:
+    def _dt(self, code: str) -> np.dtype[Any]:
         return np.dtype(self.endian + code)
 
-    def element(self, e: _Element, keep: bool) -> dict:
+    def check_end(self) -> None:
+        """Refuse data after the last element: the header's counts would be smaller than the file's."""
+        extra = self.data[self.pos:]
+        if extra.strip(b" \t\r\n\x00"):
+            raise _FormatError(f"{len(extra)} bytes after the last element: the header's element counts "
+                               "are smaller than the file's data")
+
+    def element(self, e: _Element, keep: bool) -> dict[str, Any]:
+        smallest = sum(np.dtype(p[2] if len(p) == 3 else p[1]).itemsize for p in e.props)
+        if any(len(p) == 3 for p in e.props) and e.count * smallest > len(self.data) - self.pos:
+            raise _FormatError(f"truncated data: element {e.name!r} announces {e.count} records, "
+                               f"more than the {len(self.data) - self.pos} bytes left can hold")
         lists = [p for p in e.props if len(p) == 3]
         if not lists:
             dt = np.dtype([(f"p{i}", self._dt(p[1])) for i, p in enumerate(e.props)])
@@ -267,7 +302,7 @@ class _BinaryBody:
             return {p[0]: (np.zeros(0, self._dt(p[1])), np.zeros(0, np.int64)) for p in lists}
         # Fast path: every record has the list lengths of the first record.
         first = self._lengths_at(e, self.pos)
-        fields = []
+        fields: list[tuple[Any, ...]] = []
         for i, p in enumerate(e.props):
             if len(p) == 2:
                 fields.append((f"p{i}", self._dt(p[1])))
@@ -281,7 +316,7 @@ class _BinaryBody:
                 self.pos += e.count * dt.itemsize
                 if not keep:
                     return {}
-                out = {}
+                out: dict[str, Any] = {}
                 for i, p in enumerate(e.props):
                     if len(p) == 3:
                         out[p[0]] = (_native(arr[f"p{i}"]).reshape(-1),
@@ -291,7 +326,7 @@ class _BinaryBody:
                 return out
         return self._walk(e, keep)
 
-    def _take(self, e: _Element, dt: np.dtype) -> np.ndarray:
+    def _take(self, e: _Element, dt: np.dtype[Any]) -> NDArray[Any]:
         need = e.count * dt.itemsize
         if self.pos + need > len(self.data):
             raise _FormatError(f"truncated data: element {e.name!r} needs {need} bytes, "
@@ -310,7 +345,7 @@ class _BinaryBody:
             raise _FormatError(f"negative list length {value}")
         return value
 
-    def _lengths_at(self, e: _Element, at: int) -> dict:
+    def _lengths_at(self, e: _Element, at: int) -> dict[int, int]:
         lengths = {}
         for i, p in enumerate(e.props):
             if len(p) == 2:
@@ -319,9 +354,11 @@ class _BinaryBody:
                 k = self._count(p[2], at)
                 lengths[i] = k
                 at += np.dtype(p[2]).itemsize + k * np.dtype(p[1]).itemsize
+                if at > len(self.data):
+                    raise _FormatError(f"truncated data: a list of {k} items in element {e.name!r}")
         return lengths
 
-    def _walk(self, e: _Element, keep: bool) -> dict:
+    def _walk(self, e: _Element, keep: bool) -> dict[str, Any]:
         """Records of mixed list lengths: one Python pass finds where each starts."""
         n = e.count
         layout = [(np.dtype(p[1]).itemsize, np.dtype(p[2]).itemsize if len(p) == 3 else 0, p[2] if len(p) == 3 else "")
@@ -366,7 +403,7 @@ class _BinaryBody:
         self.pos = at
         if not keep:
             return {}
-        out = {}
+        out: dict[str, Any] = {}
         for j, p in enumerate(e.props):
             dt = self._dt(p[1])
             if len(p) == 2:
@@ -379,7 +416,7 @@ class _BinaryBody:
                 out[p[0]] = (_native(self._gather(pos, dt)), ln.copy())
         return out
 
-    def _list_lengths(self, e: _Element, at: int, pre: int, fixed: int, isize: int, ccode: str) -> np.ndarray:
+    def _list_lengths(self, e: _Element, at: int, pre: int, fixed: int, isize: int, ccode: str) -> NDArray[Any]:
         data, n = self.data, e.count
         ks = [0] * n
         r = 0
@@ -405,7 +442,7 @@ class _BinaryBody:
             raise _FormatError(f"truncated data in element {e.name!r} (record {n - 1} of {n})")
         return np.asarray(ks, dtype=np.int64)
 
-    def _gather(self, pos: np.ndarray, dt: np.dtype) -> np.ndarray:
+    def _gather(self, pos: NDArray[Any], dt: np.dtype[Any]) -> NDArray[Any]:
         idx = pos[:, None] + np.arange(dt.itemsize)
         return np.ascontiguousarray(self.buf[idx]).view(dt).reshape(-1)
 
@@ -417,7 +454,7 @@ class _AsciiBody:
         self.tokens = body.split()
         self.pos = 0
 
-    def _convert(self, toks, code: str, what: str) -> np.ndarray:
+    def _convert(self, toks: Any, code: str, what: str) -> NDArray[Any]:
         dt = np.dtype(code)
         try:
             a = np.array(toks, dtype="S")
@@ -432,8 +469,17 @@ class _AsciiBody:
             raise _FormatError(f"value out of range for {dt} in {what}")
         return v.astype(dt)
 
-    def element(self, e: _Element, keep: bool) -> dict:
+    def check_end(self) -> None:
+        """Refuse values after the last element: the header's counts would be smaller than the file's."""
+        if self.pos < len(self.tokens):
+            raise _FormatError(f"{len(self.tokens) - self.pos} values after the last element: the header's "
+                               "element counts are smaller than the file's data")
+
+    def element(self, e: _Element, keep: bool) -> dict[str, Any]:
         toks, n = self.tokens, e.count
+        if any(len(p) == 3 for p in e.props) and n * len(e.props) > len(toks) - self.pos:
+            raise _FormatError(f"truncated data: element {e.name!r} announces {n} records, "
+                               f"more than the {len(toks) - self.pos} values left can hold")
         lists = [p for p in e.props if len(p) == 3]
         if not lists:
             width = len(e.props)
@@ -445,7 +491,7 @@ class _AsciiBody:
             self.pos += need
             if not keep:
                 return {}
-            out = {}
+            out: dict[str, Any] = {}
             for i, p in enumerate(e.props):
                 out[p[0]] = self._convert(block[i::width], p[1], f"element {e.name!r} property {p[0]!r}")
             return out
@@ -465,6 +511,8 @@ class _AsciiBody:
                         k = int(toks[at])
                         if k < 0:
                             raise _FormatError(f"negative list length {k} in element {e.name!r}")
+                        if k > len(toks) - at:
+                            raise IndexError(k)
                         lengths[j, r] = k
                         offsets[j, r] = at + 1
                         at += 1 + k
@@ -496,15 +544,17 @@ class _AsciiBody:
         return out
 
 
-    def _same_lengths(self, e: _Element, keep: bool):
+    def _same_lengths(self, e: _Element, keep: bool) -> dict[str, Any] | None:
         """Fast path: every record has the list lengths of the first one, else None."""
         toks, n, at = self.tokens, e.count, self.pos
-        widths, cols = [], []
+        widths: list[int] = []
+        cols: list[tuple[int, int | None]] = []
+        k: int | None
         try:
             for p in e.props:
                 if len(p) == 3:
                     k = int(toks[at])
-                    if k < 0:
+                    if k < 0 or k > len(toks) - at:
                         return None
                     cols.append((sum(widths), k))
                     widths.append(1 + k)
@@ -529,7 +579,7 @@ class _AsciiBody:
         self.pos += n * width
         if not keep:
             return {}
-        out = {}
+        out: dict[str, Any] = {}
         for (start, k), p in zip(cols, e.props):
             what = f"element {e.name!r} property {p[0]!r}"
             if k is None:
@@ -544,21 +594,32 @@ def _is_number(tok: bytes, kind: str) -> bool:
     try:
         float(tok) if kind == "f" else int(tok)
         return True
-    except ValueError:
+    except (ValueError, OverflowError):
         return False
 
 
 def _decode(data: bytes) -> str:
-    return data.decode("utf-8", errors="replace")
+    """Text of an OBJ or OFF file; a UTF-8 byte-order mark is dropped."""
+    return data.decode("utf-8-sig", errors="replace")
 
 
-def _read_obj(data: bytes):
+def _indices(flat: list[str]) -> NDArray[Any]:
+    """Face index tokens as int64; a token that is no whole number, or beyond int64, is refused."""
+    try:
+        return np.array(flat, dtype=np.int64) if flat else np.zeros(0, np.int64)
+    except (ValueError, OverflowError):
+        bad = next((t for t in flat if not _is_number(t.encode(), "i") or abs(int(t)) >= 2 ** 63), flat[0])
+        raise _FormatError(f"bad face index {bad!r} (not a whole number, or out of range)") from None
+
+
+def _read_obj(data: bytes) -> _Parts:
     text = _decode(data)
     vlines: list[str] = []
     flines: list[str] = []
     fbase: list[int] = []
     fnumber: list[int] = []
     for number, line in enumerate(text.splitlines(), 1):
+        line = line.split("#", 1)[0]  # a trailing comment
         if line[:2] == "v " or line[:2] == "v\t":
             vlines.append(line)
         elif line[:2] == "f " or line[:2] == "f\t":
@@ -588,11 +649,7 @@ def _read_obj(data: bytes):
     if sizes.size and sizes.min() < 3:
         i = int(np.argmin(sizes))
         raise _FormatError(f"face on line {fnumber[i]} has {int(sizes[i])} corners, at least 3 needed")
-    try:
-        idx = np.array(flat, dtype=np.int64) if flat else np.zeros(0, np.int64)
-    except ValueError:
-        bad = next(t for t in flat if not _is_number(t.encode(), "i"))
-        raise _FormatError(f"bad face index {bad!r}") from None
+    idx = _indices(flat)
     if (idx == 0).any():
         i = int(np.searchsorted(np.cumsum(sizes), int(np.flatnonzero(idx == 0)[0]), side="right"))
         raise _FormatError(f"face index 0 on line {fnumber[i]} (OBJ indices start at 1)")
@@ -606,7 +663,7 @@ def _read_obj(data: bytes):
     return vertices, corners, sizes, {}
 
 
-def _read_off(data: bytes):
+def _read_off(data: bytes) -> _Parts:
     text = _decode(data)
     lines = []
     for line in text.splitlines():
@@ -653,23 +710,29 @@ def _read_off(data: bytes):
             raise _FormatError(f"face {j} line {line!r} needs at least 3 corners and k indices")
         sizes[j] = k
         flat.extend(toks[1:1 + k])  # trailing colour tokens are ignored
-    try:
-        corners = np.array(flat, dtype=np.int64) if flat else np.zeros(0, np.int64)
-    except ValueError:
-        bad = next(t for t in flat if not _is_number(t.encode(), "i"))
-        raise _FormatError(f"bad face index {bad!r}") from None
-    return vertices, corners, sizes, {}
+    return vertices, _indices(flat), sizes, {}
 
 
 # ---------------------------------------------------------------- writing
 
-def write_ply(path, vertices, *, corners=None, sizes=None, faces=None, properties=None,
-              binary: bool = True) -> None:
-    """Write a PLY file atomically (a temporary file in the same folder, then a rename).
+def write_ply(path: str | os.PathLike[str], vertices: ArrayLike, *, corners: ArrayLike | None = None,
+              sizes: ArrayLike | None = None, faces: ArrayLike | None = None,
+              properties: Mapping[str, ArrayLike] | None = None, binary: bool = True) -> None:
+    """Write a PLY file atomically (:mod:`engine.common.atomic`); arguments as :func:`ply_chunks`."""
+    chunks = ply_chunks(vertices, corners=corners, sizes=sizes, faces=faces, properties=properties,
+                        binary=binary)
+    with atomic_write(path) as fh:
+        for chunk in chunks:
+            fh.write(chunk)
+
+
+def ply_chunks(vertices: ArrayLike, *, corners: ArrayLike | None = None, sizes: ArrayLike | None = None,
+               faces: ArrayLike | None = None, properties: Mapping[str, ArrayLike] | None = None,
+               binary: bool = True) -> list[bytes]:
+    """A PLY file's bytes, in pieces to write one after another.
 
     Parameters
     ----------
-    path : str or os.PathLike
     vertices : (n, 3) float array
         Written as ``double`` x, y, z.
     corners, sizes : (c,), (f,) integer arrays, optional
@@ -690,7 +753,7 @@ def write_ply(path, vertices, *, corners=None, sizes=None, faces=None, propertie
     ------
     ValueError
         For invalid vertices, polygons or properties (a wrong length, a dtype
-        PLY has no type for, a non-finite value), before anything is written.
+        PLY has no type for, a non-finite value).
     """
     v = validate_vertices(vertices)
     n = len(v)
@@ -729,12 +792,10 @@ def write_ply(path, vertices, *, corners=None, sizes=None, faces=None, propertie
         body = _binary_body(columns, c, s, count_type, index_type)
     else:
         body = _ascii_body(columns, c, s)
-    with atomic_write(path, fsync=True) as fh:
-        for chunk in (head, *body):
-            fh.write(chunk)
+    return [head, *body]
 
 
-def _property_columns(name, value, n: int) -> list[tuple[str, np.ndarray]]:
+def _property_columns(name: Any, value: ArrayLike, n: int) -> list[tuple[str, NDArray[Any]]]:
     if not isinstance(name, str) or not name or any(ch.isspace() for ch in name) or not name.isascii():
         raise ValueError(f"property name {name!r} must be non-empty ASCII without spaces")
     a = np.asarray(value)
@@ -742,7 +803,7 @@ def _property_columns(name, value, n: int) -> list[tuple[str, np.ndarray]]:
     if code not in _WRITE_TYPES:
         raise ValueError(f"property {name!r} has dtype {a.dtype}, which PLY cannot store "
                          f"(use int8/16/32, uint8/16/32, float32 or float64)")
-    if name in _GROUPS:
+    if name in _GROUPS and a.ndim != 1:
         parts = _GROUPS[name]
         widths = (3, 4) if name == "color" else (3,)
         if a.ndim != 2 or a.shape[0] != n or a.shape[1] not in widths:
@@ -758,7 +819,8 @@ def _property_columns(name, value, n: int) -> list[tuple[str, np.ndarray]]:
     return [(cname, np.ascontiguousarray(col, dtype=col.dtype.newbyteorder("<"))) for cname, col in cols]
 
 
-def _binary_body(columns, c, s, count_type: str, index_type: str) -> list[bytes]:
+def _binary_body(columns: list[tuple[str, NDArray[Any]]], c: NDArray[Any], s: NDArray[Any], count_type: str,
+                 index_type: str) -> list[bytes]:
     dt = np.dtype([(cname, col.dtype.newbyteorder("<")) for cname, col in columns])
     block = np.empty(len(columns[0][1]), dtype=dt)
     for cname, col in columns:
@@ -779,7 +841,7 @@ def _binary_body(columns, c, s, count_type: str, index_type: str) -> list[bytes]
     return out
 
 
-def _ascii_body(columns, c, s) -> list[bytes]:
+def _ascii_body(columns: list[tuple[str, NDArray[Any]]], c: NDArray[Any], s: NDArray[Any]) -> list[bytes]:
     fmts, lists = [], []
     for _, col in columns:
         if col.dtype.kind == "f":

@@ -12,10 +12,17 @@ import json
 import os
 import time
 from pathlib import Path
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
+from numpy.typing import NDArray
 
 from ..common.atomic import atomic_write
+
+if TYPE_CHECKING:
+    from ..intake.files import MeshData
+    from ..spectra.shape import Shape
+    from .file_jobs import JobFiles
 
 BASES = ("laplacian", "products", "orthoproducts")
 
@@ -38,24 +45,51 @@ def _order(text: str) -> int:
     return value
 
 
-def _load_shape(path: str, *, cache_dir: str | None = None):
+def _finite(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
+    if not np.isfinite(value):
+        raise argparse.ArgumentTypeError(f"expected a finite number, got {text!r}")
+    return value
+
+
+def _strength(text: str) -> float:
+    from ..carrying.detail import check_strength
+
+    try:
+        return check_strength(_finite(text))
+    except ValueError as exc:
+        raise argparse.ArgumentTypeError(str(exc)) from None
+
+
+def _size(text: str) -> float:
+    value = _finite(text)
+    if not 0 < value <= 1:
+        raise argparse.ArgumentTypeError(f"size must be in (0, 1] (a fraction of the shape's size), got {text}")
+    return value
+
+
+def _one_shape(path: str, output: str, cache_dir: str | None) -> tuple[MeshData, Shape, float]:
+    """Check the output path, read the mesh and build its Shape in the unit frame; returns its scale."""
     from ..common.cache import Cache
     from ..intake.files import read_mesh
-    from ..spectra.shape import Shape
+    from .file_jobs import check_paths, read_shape, unit_frame
 
+    check_paths([path], [output])
     data = read_mesh(path)
-    cache = Cache(cache_dir) if cache_dir else None
-    shape = Shape(data.vertices, corners=data.corners, sizes=data.sizes, cache=cache)
-    return data, shape
+    frame = unit_frame(data.vertices)
+    return data, read_shape(data, Cache(cache_dir) if cache_dir else None, frame), frame[1]
 
 
-def save_npz(path: str | os.PathLike, arrays: dict) -> None:
+def save_npz(path: str | os.PathLike[str], arrays: dict[str, NDArray[Any]]) -> None:
     """Write an ``.npz`` atomically: a temporary file in the same folder, then rename."""
     target = Path(path)
     folder = target.parent if str(target.parent) else Path(".")
     if not folder.is_dir():
         raise OSError(f"output folder {str(folder)!r} does not exist")
-    with atomic_write(target, prefix=".tmp-", suffix=".npz") as fh:
+    with atomic_write(target) as fh:
         np.savez(fh, **arrays)
 
 
@@ -71,25 +105,31 @@ def add_basis(p: argparse.ArgumentParser) -> None:
 
 
 def run_basis(args: argparse.Namespace) -> int:
-    data, shape = _load_shape(args.mesh, cache_dir=args.cache)
+    """Eigenpairs in the file's units: computed in the unit frame, then ``lambda / s^2``,
+    ``phi / s`` and ``mass * s^2`` for the frame's scale ``s`` (so ``phi^T M phi = I``)."""
+    data, shape, scale = _one_shape(args.mesh, args.output, args.cache)
     started = time.perf_counter()
     basis = shape.eigenbasis(args.k)
     prepared = shape.prepared
     mass = np.zeros(prepared.n_original)
-    mass[prepared.from_clean] = shape.mass
-    arrays = {
-        "eigenvalues": basis.eigenvalues,
-        "eigenvectors": prepared.restore(basis.eigenvectors),
-        "mass": mass,
-        "residuals": basis.residuals,
-    }
-    line = (f"{args.k} eigenpairs of {prepared.n_original} vertices, eigenvalues "
+    with np.errstate(over="ignore", under="ignore"):  # out of range: refused below
+        mass[prepared.from_clean] = shape.mass * scale * scale
+        arrays = {
+            "eigenvalues": basis.eigenvalues / scale / scale,
+            "eigenvectors": prepared.restore(basis.eigenvectors) / scale,
+            "mass": mass,
+            "residuals": basis.residuals,
+        }
+    line = (f"{basis.eigenvalues.shape[0]} eigenpairs of {prepared.n_original} vertices, eigenvalues "
             f"{basis.eigenvalues[0]:.3g}..{basis.eigenvalues[-1]:.4g}, worst residual {basis.residuals.max():.1e}")
     if args.order:
         products = shape.products(args.k, args.order)
-        arrays["products"] = prepared.restore(products.basis)
+        with np.errstate(over="ignore"):
+            arrays["products"] = prepared.restore(products.basis) / scale
         arrays["product_exponents"] = products.exponents[products.kept]
         line += f"; {products.basis.shape[1]} of {products.exponents.shape[0]} products kept at order {args.order}"
+    if not all(np.isfinite(a).all() for a in arrays.values()):
+        raise ValueError(f"{args.mesh}: the eigenbasis in the file's units is beyond the floating-point range")
     save_npz(args.output, arrays)
     for note in prepared.notes:
         print(f"mesh: {note}")
@@ -115,7 +155,7 @@ def run_approximate(args: argparse.Namespace) -> int:
     from ..carrying.preview import approximate_properties
     from ..intake.files import write_ply
 
-    data, shape = _load_shape(args.mesh, cache_dir=args.cache)
+    data, shape, _ = _one_shape(args.mesh, args.output, args.cache)
     names = _split_names(args.attributes)
     result = approximate_properties(shape, data.properties, basis=args.basis, k=args.k,
                                     order=args.order, names=names)
@@ -166,11 +206,11 @@ def add_transfer(p: argparse.ArgumentParser) -> None:
 
 
 def run_transfer(args: argparse.Namespace) -> int:
-    from .pair import run_transfer_job
+    from .file_jobs import JobOptions, run_transfer_job
 
-    report = run_transfer_job(args.source, args.target, args.output, attributes=_split_names(args.attributes),
-                              basis=args.basis, match=args.match, landmarks_path=args.landmarks, k=args.k,
-                              order=args.order, report_path=args.report, cache_dir=args.cache)
+    options = JobOptions(attributes=_split_names(args.attributes), basis=args.basis, match=args.match,
+                         k=args.k, order=args.order)
+    report = run_transfer_job(_job_files(args), options)
     _print_pair_report(report)
     basis = report["settings"]["basis"]
     for name, info in report.get("signals", {}).items():
@@ -187,26 +227,33 @@ def run_transfer(args: argparse.Namespace) -> int:
 
 def add_detail(p: argparse.ArgumentParser) -> None:
     _add_pair_arguments(p)
-    p.add_argument("--strength", type=float, default=None, help="scale of the carried detail (default 1)")
-    p.add_argument("--size", type=float, default=None,
+    p.add_argument("--strength", type=_strength, default=None,
+                   help="scale of the carried detail, -100 to 100 (default 1)")
+    p.add_argument("--size", type=_size, default=None,
                    help="features shorter than this fraction of the shape's size are detail (default 0.05)")
 
 
 def run_detail(args: argparse.Namespace) -> int:
-    from .pair import run_detail_job
+    from .file_jobs import JobOptions, run_detail_job
 
-    report = run_detail_job(args.source, args.target, args.output, strength=args.strength, size=args.size,
-                            match=args.match, landmarks_path=args.landmarks, report_path=args.report,
-                            cache_dir=args.cache)
+    options = JobOptions(match=args.match, strength=args.strength, size=args.size)
+    report = run_detail_job(_job_files(args), options)
     _print_pair_report(report)
     d = report["detail"]
     print(f"  detail: strength {d['strength']:g}, size {d['size']:g}; target vertices moved by "
-          f"{d['mean_offset']:.3g} on average, {d['max_offset']:.3g} at most")
+          f"{_number(d['mean_offset'])} on average, {_number(d['max_offset'])} at most")
     print(f"-> {args.output}")
     return 0
 
 
-def _print_pair_report(report: dict) -> None:
+def _job_files(args: argparse.Namespace) -> JobFiles:
+    from .file_jobs import JobFiles
+
+    return JobFiles(args.source, args.target, args.output, report=args.report, landmarks=args.landmarks,
+                    cache=args.cache)
+
+
+def _print_pair_report(report: dict[str, Any]) -> None:
     print(f"match: {report['mode']} ({report['reason']})")
     cov = report.get("coverage_of_source_area")
     cons = report.get("consistency") or {}
@@ -216,6 +263,10 @@ def _print_pair_report(report: dict) -> None:
     if cons.get("within_2_edges") is not None:
         line += f", {cons['within_2_edges']:.1%} of round trips within 2 edges"
     print(line + f"; {report['timings'].get('total', 0):.1f} s")
+
+
+def _number(x: float | None) -> str:
+    return "beyond the floating-point range" if x is None else f"{x:.3g}"
 
 
 # -- demo ----------------------------------------------------------------------
@@ -240,7 +291,7 @@ def run_demo(args: argparse.Namespace) -> int:
     path = out / "creature.ply"
     write_ply(path, c.vertices, faces=c.faces, properties=props)
     print(f"demo creature: {len(c.vertices)} vertices, {len(c.faces)} triangles -> {path}")
-    shape = Shape(c.vertices, c.faces)
+    shape = Shape(c.vertices, c.faces)  # type: ignore[no-untyped-call, unused-ignore]
     rows = []
     runs = [("orthoproducts", None), ("products", None), ("laplacian", 100)]
     for basis, k in runs:
@@ -259,7 +310,8 @@ def run_demo(args: argparse.Namespace) -> int:
         print(f"{basis:<15}{desc:<58}" + "".join(f"{errors[n]:>11.4f}" for n in names) + f"{secs:>7.1f}s")
     print("(labels such as stripe_id are never filtered: 0 by construction)")
     summary = [{"basis": basis, "size": desc, "errors": errors} for basis, desc, errors, _ in rows]
-    (out / "approximation.json").write_text(json.dumps(summary, indent=2))
+    with atomic_write(out / "approximation.json", text=True) as fh:
+        fh.write(json.dumps(summary, indent=2, allow_nan=False))
     print(f"\nwrote {out}/creature_<basis>.ply and {out}/approximation.json")
     return 0
 

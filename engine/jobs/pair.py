@@ -8,10 +8,9 @@ The add-on, the command line and batch jobs all go through :class:`Pair`:
     pair.report(results)                 # JSON-able
 
 A Pair computes its correspondence once (and keeps it on disk when the shapes
-have a cache), then every signal costs matrix products. :func:`run_transfer_job`
-and :func:`run_detail_job` are the file-in, file-out jobs behind
-``python -m engine transfer`` / ``detail``: one pair per call, no shared state,
-so a studio can map them over many pairs on any job runner.
+have a cache), then every signal costs matrix products. The file-in, file-out
+jobs behind ``python -m engine transfer`` / ``detail`` are in
+:mod:`engine.jobs.file_jobs`.
 """
 
 from __future__ import annotations
@@ -19,21 +18,23 @@ from __future__ import annotations
 import json
 import os
 import time
+from collections.abc import Sequence
 from dataclasses import asdict, dataclass, replace
 from pathlib import Path
+from typing import Any
 
 import numpy as np
+from numpy.typing import ArrayLike, NDArray
 
-from ..common.atomic import atomic_write
 from ..matching.correspondence import MATCHES, Correspondence, correspond
-from ..carrying.detail import apply_detail, smooth_base, split_detail
-from ..common.cache import Cache, geometry_key
+from ..carrying.detail import apply_detail, check_strength, place_on_original, smooth_base, split_detail
+from ..common.cache import geometry_key
 from ..spectra.shape import Shape
 from ..carrying.signals import check_signal
 from ..carrying.transfer import BASES, Transfer, TransferResult
 
-__all__ = ["Settings", "Pair", "weighted_centre_vertex", "load_landmarks", "run_transfer_job",
-           "run_detail_job"]
+__all__ = ["Settings", "Pair", "weighted_centre_vertex", "load_landmarks", "check_landmarks",
+           "CORRESPONDENCE_VERSION"]
 
 CORRESPONDENCE_VERSION = 5   # 2: product-embedding step in the intrinsic map; 3: non-rigid ICP
                              # alignment; 4: spectral check in aligned mode where the surfaces differ;
@@ -69,11 +70,11 @@ class Settings:
     k: int = 100
     K: int | None = None
     order: int = 3
-    landmarks: tuple = ()
+    landmarks: tuple[tuple[int, int], ...] = ()
     detail_strength: float = 1.0
     detail_size: float = 0.05
 
-    def __post_init__(self):
+    def __post_init__(self) -> None:
         if self.match not in MATCHES:
             raise ValueError(f"unknown match {self.match!r}; expected one of {', '.join(MATCHES)}")
         if self.basis not in BASES:
@@ -82,14 +83,13 @@ class Settings:
             raise ValueError(f"order must be between 1 and 5, got {self.order}")
         if int(self.k) < 1 or (self.K is not None and int(self.K) < 1):
             raise ValueError(f"k and K must be positive, got k={self.k}, K={self.K}")
-        if not np.isfinite(self.detail_strength):
-            raise ValueError(f"detail strength must be finite, got {self.detail_strength}")
+        check_strength(self.detail_strength)
         if not (np.isfinite(self.detail_size) and 0 < self.detail_size <= 1):
             raise ValueError(f"detail size must be in (0, 1] (a fraction of the shape's size), "
                              f"got {self.detail_size}")
         object.__setattr__(self, "landmarks", tuple((int(a), int(b)) for a, b in self.landmarks))
 
-    def map_key(self) -> dict:
+    def map_key(self) -> dict[str, str | int]:
         """The settings the correspondence depends on."""
         return {"match": self.match, "landmarks": json.dumps([list(p) for p in self.landmarks]),
                 "version": CORRESPONDENCE_VERSION}
@@ -107,12 +107,12 @@ class Pair:
     def __init__(self, source: Shape, target: Shape, settings: Settings | None = None):
         self.source, self.target = source, target
         self.settings = settings or Settings()
-        self.timings: dict = {}
-        self.cache_hits: dict = {"correspondence": "computed"}
+        self.timings: dict[str, float] = {}
+        self.cache_hits: dict[str, Any] = {"correspondence": "computed"}
         t0 = time.perf_counter()
         self.correspondence = self._load_or_correspond()
         self.timings["correspondence"] = round(time.perf_counter() - t0, 4)
-        self._transfers: dict = {}
+        self._transfers: dict[str, Transfer] = {}
 
     # ----------------------------------------------------------------- map
     def _map_cache_key(self) -> str | None:
@@ -125,26 +125,26 @@ class Pair:
     def _load_or_correspond(self) -> Correspondence:
         key = self._map_cache_key()
         cache = self.target.cache or self.source.cache
-        if key is not None:
+        if key is not None and cache is not None:
             n_t = self.target.n_vertices
             stored = cache.load(key, {"triangle": (n_t,), "barycentric": (n_t, 3), "confidence": (n_t,),
                                       "fmap": (None, None), "meta": ()})
-            if stored is not None and _valid_map(stored, self.source, self.target):
+            meta = _valid_map(stored, self.source, self.target) if stored is not None else None
+            if stored is not None and meta is not None:
                 self.cache_hits["correspondence"] = "disk"
-                meta = json.loads(str(stored["meta"]))
                 return Correspondence(self.source, self.target, meta["mode"], meta["reason"],
-                                      stored["triangle"].astype(np.int64), stored["barycentric"],
+                                      stored["triangle"], stored["barycentric"],
                                       stored["confidence"], stored["fmap"], meta["stats"])
         lm = list(self.settings.landmarks) or None
         corr = correspond(self.source, self.target, match=self.settings.match, landmarks=lm)
-        if key is not None:
-            meta = json.dumps({"mode": corr.mode, "reason": corr.reason, "stats": corr.stats})
+        if key is not None and cache is not None:
+            meta_text = json.dumps({"mode": corr.mode, "reason": corr.reason, "stats": _jsonable(corr.stats)})
             cache.save(key, {"triangle": corr.triangle, "barycentric": corr.barycentric,
-                             "confidence": corr.confidence, "fmap": corr.fmap, "meta": np.array(meta)})
+                             "confidence": corr.confidence, "fmap": corr.fmap, "meta": np.array(meta_text)})
         return corr
 
     @property
-    def confidence(self) -> np.ndarray:
+    def confidence(self) -> NDArray[Any]:
         """(n_target_original,) float in [0, 1]: how sure the map is at each target vertex."""
         return np.clip(self.target.restore(self.correspondence.confidence), 0.0, 1.0)
 
@@ -156,9 +156,10 @@ class Pair:
             s = self.settings
             self._transfers[name] = Transfer(self.source, self.target, self.correspondence, basis=name,
                                              k=s.k, K=s.K, order=s.order)
-        return self._transfers[name]
+        transfer: Transfer = self._transfers[name]
+        return transfer
 
-    def carry(self, signals: dict, *, basis: str | None = None) -> dict[str, TransferResult]:
+    def carry(self, signals: dict[str, tuple[Any, str]], *, basis: str | None = None) -> dict[str, TransferResult]:
         """Carry several signals through one correspondence.
 
         Parameters
@@ -184,16 +185,18 @@ class Pair:
         self.timings["signals"] = round(time.perf_counter() - t0 - self.timings["bases"], 4)
         return out
 
-    def carry_corners(self, name: str, values, kind: str, source_corner_verts, source_face_sizes,
-                      target_corner_verts, target_face_sizes, *, basis: str | None = None,
-                      inset: float = 0.25):
+    def carry_corners(self, name: str, values: ArrayLike, kind: str, source_corner_verts: ArrayLike,
+                      source_face_sizes: ArrayLike, target_corner_verts: ArrayLike,
+                      target_face_sizes: ArrayLike, *, basis: str | None = None,
+                      inset: float = 0.25) -> Any:
         """Carry one per-corner signal, keeping its seams (``engine.corners.carry_corners``)."""
         from ..carrying.corners import carry_corners
         return carry_corners(self, name, values, kind, source_corner_verts, source_face_sizes,
                              target_corner_verts, target_face_sizes, basis=basis, inset=inset)
 
     # ----------------------------------------------------------------- detail
-    def detail(self, *, strength: float | None = None, size: float | None = None) -> np.ndarray:
+    def detail(self, *, strength: float | None = None, size: float | None = None,
+               original: NDArray[Any] | None = None) -> NDArray[Any]:
         """New target positions carrying the source's surface detail.
 
         Each mesh is split into a smooth base and offsets in the base's
@@ -205,6 +208,16 @@ class Pair:
         follow the gradients of the source's first eigenfunctions, pulled to
         the target through the same map, so they agree on both meshes.
 
+        Parameters
+        ----------
+        strength, size : float, optional
+            Override the settings' ``detail_strength`` / ``detail_size``.
+        original : (n_target_original, 3) float array, optional
+            The target's original vertex positions. Vertices that belong to
+            no face of the cleaned target (isolated, left by a hole, only in
+            zero-area faces) keep these positions; give them, or such
+            vertices get the position of the nearest surface vertex.
+
         Returns
         -------
         (n_target_original, 3) float64
@@ -215,7 +228,7 @@ class Pair:
         replace(s, detail_strength=strength, detail_size=size)  # validates both
         t0 = time.perf_counter()
         guides_s = self.source.eigenbasis(4).eigenvectors[:, 1:4]
-        P = self.correspondence.matrix()
+        P = self.correspondence.matrix()  # type: ignore[no-untyped-call, unused-ignore]
         wavelength = size * np.sqrt(self.source.area)
         scale = np.sqrt(self.target.area / self.source.area)
         base_s = smooth_base(self.source.vertices, self.source.stiffness, self.source.mass, wavelength=wavelength)
@@ -228,10 +241,12 @@ class Pair:
         self.timings["detail"] = round(time.perf_counter() - t0, 4)
         if not np.isfinite(positions).all():
             raise ValueError("detail transfer produced non-finite positions")
-        return self.target.restore(positions)
+        if original is None:
+            return self.target.restore(positions)
+        return place_on_original(original, self.target.prepared.to_clean, positions)
 
     # ----------------------------------------------------------------- report
-    def report(self, results: dict[str, TransferResult] | None = None) -> dict:
+    def report(self, results: dict[str, TransferResult] | None = None) -> dict[str, Any]:
         """JSON-able account of the run: map, bases, signals, timings, cache."""
         corr = self.correspondence.report()
         out = {
@@ -254,22 +269,31 @@ class Pair:
         if results:
             out["signals"] = {name: {"kind": r.report.get("kind"), "source_error": r.source_error,
                                      "seconds": r.report.get("seconds")} for name, r in results.items()}
-        return _jsonable(out)
+        report: dict[str, Any] = _jsonable(out)
+        return report
 
 
-def _valid_map(stored: dict, source: Shape, target: Shape) -> bool:
+def _valid_map(stored: dict[str, NDArray[Any]], source: Shape, target: Shape) -> dict[str, Any] | None:
+    """The entry's meta when every field of a stored correspondence is usable, else None."""
+    tri, bary, conf = stored["triangle"], stored["barycentric"], stored["confidence"]
+    if tri.dtype.kind != "i" or bary.dtype.kind != "f" or conf.dtype.kind != "f" or stored["meta"].dtype.kind != "U":
+        return None
+    if tri.size and (tri.min() < 0 or tri.max() >= len(source.faces)):
+        return None
+    if bary.size and (bary.min() < -1e-6 or bary.max() > 1 + 1e-6):
+        return None
     try:
-        tri, bary = stored["triangle"], stored["barycentric"]
-        n_t = target.n_vertices
-        ok = (tri.shape == (n_t,) and bary.shape == (n_t, 3) and stored["confidence"].shape == (n_t,)
-              and np.isfinite(bary).all() and tri.min() >= 0 and tri.max() < len(source.faces))
-        json.loads(str(stored["meta"]))
-        return bool(ok)
-    except (KeyError, ValueError, TypeError):
-        return False
+        meta = json.loads(str(stored["meta"]))
+    except (ValueError, RecursionError):
+        return None
+    if not isinstance(meta, dict) or not {"mode", "reason", "stats"} <= set(meta):
+        return None
+    if meta["mode"] not in MATCHES or not isinstance(meta["reason"], str) or not isinstance(meta["stats"], dict):
+        return None
+    return meta
 
 
-def _jsonable(x):
+def _jsonable(x: Any) -> Any:
     if isinstance(x, dict):
         return {str(k): _jsonable(v) for k, v in x.items()}
     if isinstance(x, (list, tuple)):
@@ -283,7 +307,7 @@ def _jsonable(x):
     return x
 
 
-def weighted_centre_vertex(vertices, weights) -> int:
+def weighted_centre_vertex(vertices: ArrayLike, weights: ArrayLike) -> int:
     """The vertex nearest to the weight-averaged centre of a vertex group.
 
     Parameters
@@ -302,129 +326,44 @@ def weighted_centre_vertex(vertices, weights) -> int:
     return int(members[np.argmin(np.linalg.norm(v[members] - centre, axis=1))])
 
 
-def load_landmarks(path, n_source: int, n_target: int) -> tuple:
+def load_landmarks(path: str | os.PathLike[str], n_source: int, n_target: int) -> tuple[tuple[int, int], ...]:
     """Landmark pairs from a JSON file: a list of ``[source_vertex, target_vertex]``."""
+    name = os.fspath(path)
     try:
-        data = json.loads(Path(path).read_text())
-    except json.JSONDecodeError as exc:
-        raise ValueError(f"{path}: not valid JSON ({exc.msg} at line {exc.lineno})") from None
+        data = json.loads(Path(path).read_bytes())
+    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+        where = f" ({exc.msg} at line {exc.lineno})" if isinstance(exc, json.JSONDecodeError) else ""
+        raise ValueError(f"{name}: not valid JSON{where}") from None
+    except RecursionError:
+        raise ValueError(f"{name}: expected a list of [source_vertex, target_vertex] pairs "
+                         "(found nesting too deep to read)") from None
     if not isinstance(data, list) or not all(isinstance(p, list) and len(p) == 2 for p in data):
-        raise ValueError(f"{path}: expected a list of [source_vertex, target_vertex] pairs")
-    pairs = []
-    for i, (a, b) in enumerate(data):
-        if not (isinstance(a, int) and isinstance(b, int)):
-            raise ValueError(f"{path}: pair {i} must hold two whole numbers, got {[a, b]}")
+        raise ValueError(f"{name}: expected a list of [source_vertex, target_vertex] pairs")
+    return check_landmarks(data, n_source, n_target, name=name)
+
+
+def check_landmarks(pairs: Sequence[Sequence[Any]], n_source: int, n_target: int, *,
+                    name: str = "landmarks") -> tuple[tuple[int, int], ...]:
+    """Validate landmark pairs: whole numbers in range, no repeats, no vertex given two partners."""
+    out: list[tuple[int, int]] = []
+    seen_s: dict[int, int] = {}
+    seen_t: dict[int, int] = {}
+    for i, pair in enumerate(pairs):
+        a, b = pair
+        if type(a) is not int or type(b) is not int:  # bool is an int subclass: refused as well
+            raise ValueError(f"{name}: pair {i} must hold two whole numbers, got {[a, b]}")
         if not 0 <= a < n_source:
-            raise ValueError(f"{path}: landmark {i}: source vertex {a} out of range for {n_source} vertices")
+            raise ValueError(f"{name}: landmark {i}: source vertex {a} out of range for {n_source} vertices")
         if not 0 <= b < n_target:
-            raise ValueError(f"{path}: landmark {i}: target vertex {b} out of range for {n_target} vertices")
-        pairs.append((a, b))
-    return tuple(pairs)
-
-
-def _check_output(path) -> None:
-    folder = Path(path).resolve().parent
-    if not folder.is_dir():
-        raise ValueError(f"output folder {str(folder)!r} does not exist")
-    if not os.access(folder, os.W_OK):
-        raise ValueError(f"output folder {str(folder)!r} is not writable")
-
-
-def _read_shape(path, cache):
-    from ..intake.files import read_mesh
-    data = read_mesh(path)
-    return data, Shape(data.vertices, corners=data.corners, sizes=data.sizes, cache=cache)
-
-
-def _open_job(source_path, target_path, output_path, report_path, cache_dir):
-    """The start of a file job: check the outputs can be written, then read both meshes.
-
-    Returns
-    -------
-    (source MeshData, source Shape, target MeshData, target Shape)
-    """
-    for out in (output_path, report_path):
-        if out:
-            _check_output(out)
-    src_data, source = _read_shape(source_path, _cache(cache_dir))
-    tgt_data, target = _read_shape(target_path, _cache(cache_dir))
-    return src_data, source, tgt_data, target
-
-
-def _settings(landmarks_path, n_s, n_t, **options) -> Settings:
-    landmarks = load_landmarks(landmarks_path, n_s, n_t) if landmarks_path else ()
-    return Settings(landmarks=landmarks, **{k: v for k, v in options.items() if v is not None})
-
-
-def run_transfer_job(source_path, target_path, output_path, *, attributes=None, basis=None, match=None,
-                     landmarks_path=None, k=None, order=None, report_path=None, cache_dir=None) -> dict:
-    """Carry a source file's vertex properties to a target file; write PLY (and a JSON report).
-
-    The output holds the target's geometry and properties, every carried
-    property under its source name and type, and a float ``confidence``.
-    Nothing is written unless every step succeeded.
-    """
-    from ..intake.files import write_ply
-    from ..carrying.signals import signal_to_property, signals_from_properties
-
-    t0 = time.perf_counter()
-    src_data, source, tgt_data, target = _open_job(source_path, target_path, output_path, report_path,
-                                                   cache_dir)
-    signals = signals_from_properties(src_data.properties, names=attributes)
-    if not signals:
-        raise ValueError(f"{source_path}: the source has no vertex properties to carry "
-                         "(only coordinates and normals)")
-    if "confidence" in signals:
-        raise ValueError("the source has a property named 'confidence', which the output reserves")
-    settings = _settings(landmarks_path, source.n_original, target.n_original, basis=basis, match=match,
-                         k=k, order=order)
-    pair = Pair(source, target, settings)
-    results = pair.carry({name: (sig.values, sig.kind) for name, sig in signals.items()})
-    props = dict(tgt_data.properties)
-    for name, sig in signals.items():
-        props[name] = signal_to_property(sig, results[name].values)
-    props["confidence"] = pair.confidence.astype(np.float32)
-    report = pair.report(results)
-    report["files"] = {"source": str(source_path), "target": str(target_path), "output": str(output_path)}
-    report["timings"]["total"] = round(time.perf_counter() - t0, 4)
-    write_ply(output_path, tgt_data.vertices, corners=tgt_data.corners, sizes=tgt_data.sizes, properties=props)
-    if report_path:
-        _write_json(report_path, report)
-    return report
-
-
-def run_detail_job(source_path, target_path, output_path, *, strength=None, size=None, match=None,
-                   landmarks_path=None, report_path=None, cache_dir=None) -> dict:
-    """Carry a source file's surface detail to a target file; write the target with new coordinates."""
-    from ..intake.files import write_ply
-
-    t0 = time.perf_counter()
-    _, source, tgt_data, target = _open_job(source_path, target_path, output_path, report_path, cache_dir)
-    settings = _settings(landmarks_path, source.n_original, target.n_original, match=match,
-                         detail_strength=strength, detail_size=size)
-    pair = Pair(source, target, settings)
-    positions = pair.detail()
-    report = pair.report()
-    moved = np.linalg.norm(positions - tgt_data.vertices, axis=1)
-    report["detail"] = {"strength": settings.detail_strength, "size": settings.detail_size,
-                        "mean_offset": float(moved.mean()), "max_offset": float(moved.max())}
-    report["files"] = {"source": str(source_path), "target": str(target_path), "output": str(output_path)}
-    report["timings"]["total"] = round(time.perf_counter() - t0, 4)
-    write_ply(output_path, positions, corners=tgt_data.corners, sizes=tgt_data.sizes,
-              properties=dict(tgt_data.properties))
-    if report_path:
-        _write_json(report_path, report)
-    return report
-
-
-def _cache(cache_dir):
-    if not cache_dir:
-        return None
-    return Cache(cache_dir)
-
-
-def _write_json(path, data) -> None:
-    text = json.dumps(data, indent=2)
-    # permissions 0o666 less the umask, as Path.write_text gives a new file
-    with atomic_write(path, text=True, permissions=0o666) as fh:
-        fh.write(text)
+            raise ValueError(f"{name}: landmark {i}: target vertex {b} out of range for {n_target} vertices")
+        if (a, b) in out:
+            raise ValueError(f"{name}: landmark {i} repeats landmark {out.index((a, b))} {[a, b]}")
+        if a in seen_s:
+            raise ValueError(f"{name}: landmarks {seen_s[a]} and {i} give source vertex {a} two different "
+                             f"target vertices ({out[seen_s[a]][1]} and {b})")
+        if b in seen_t:
+            raise ValueError(f"{name}: landmarks {seen_t[b]} and {i} give target vertex {b} two different "
+                             f"source vertices ({out[seen_t[b]][0]} and {a})")
+        seen_s[a], seen_t[b] = i, i
+        out.append((a, b))
+    return tuple(out)
