@@ -45,6 +45,7 @@ from .closest_point import SurfaceLocator, barycentric_matrix
 from .embedding import ProductSettings
 from .intrinsic import match_intrinsic
 from .modes import MatchOptions, ModeResult
+from .standin import StandIn, lift_map, make_standin, standin_landmarks
 
 __all__ = ["Correspondence", "correspond", "MatchOptions", "MATCHES"]
 
@@ -72,7 +73,8 @@ class Correspondence:
     confidence : (n_t,) float64 array in [0, 1]
         Round-trip agreement (module docstring).
     fmap : (k_t, k_s) float64 array
-        Functional map, source eigen-coefficients -> target eigen-coefficients.
+        Functional map, source eigen-coefficients -> target eigen-coefficients
+        (of the stand-ins when matched through them; empty, (0, 0), in aligned mode).
     stats : dict
         JSON-able: overlap, coverage of source area, consistency, sizes and
         ranks, timings, cache hits.
@@ -189,6 +191,9 @@ def correspond(source: Shape, target: Shape, *, match: str = "auto", landmarks: 
     opts = MatchOptions() if options is None else options
     lm = _check_landmarks(landmarks, source, target)
     t0 = time.perf_counter()
+    src, tgt = make_standin(source), make_standin(target)
+    if src.simplified or tgt.simplified:
+        return _through_standins(src, tgt, match, lm, refine, opts, time.perf_counter() - t0)
     loc_s = SurfaceLocator(source.vertices, source.faces)
     loc_t = SurfaceLocator(target.vertices, target.faces)
     h = max(source.mean_edge, target.mean_edge)
@@ -215,17 +220,39 @@ def correspond(source: Shape, target: Shape, *, match: str = "auto", landmarks: 
     return _finish(source, target, mode, reason, result, stats, 0 if lm is None else len(lm[0]))
 
 
+def _through_standins(source: StandIn, target: StandIn, match: str, landmarks: tuple[IntArray, IntArray] | None,
+                      refine: bool | None, options: MatchOptions, simplify_time: float) -> Correspondence:
+    """Match the stand-ins (:mod:`engine.matching.standin`), then lift the map to the full meshes."""
+    coarse = correspond(source.coarse, target.coarse, match=match,
+                        landmarks=standin_landmarks(landmarks, source, target), refine=refine, options=options)
+    t0 = time.perf_counter()
+    lifted = lift_map(source, target, coarse.points(), coarse.confidence, coarse.mode == "aligned")
+    stats = dict(coarse.stats)
+    stats["timings"] = {"simplify": round(simplify_time, 4), **stats.get("timings", {}),
+                        "lift": round(time.perf_counter() - t0, 4)}
+    stats["sizes"] = {**stats.get("sizes", {}), "source_vertices": source.full.n_vertices,
+                      "target_vertices": target.full.n_vertices}
+    stats["standin"] = lifted.stats
+    reason = (f"{coarse.reason}; matched through stand-ins of {source.coarse.n_vertices} source and "
+              f"{target.coarse.n_vertices} target vertices, lifted to full resolution")
+    return Correspondence(source.full, target.full, coarse.mode, reason, lifted.triangle, lifted.barycentric,
+                          lifted.confidence, coarse.fmap, stats)
+
+
 def _finish(source: Shape, target: Shape, mode: str, reason: str, result: ModeResult, stats: dict[str, Any],
             n_landmarks: int) -> Correspondence:
-    """The final functional map, the round-trip confidence and the statistics."""
+    """The final functional map (intrinsic mode only), the round-trip confidence and the statistics."""
     tri, bary = result.triangle, result.barycentric
-    # functional map of the final point map (unit-area bases)
-    kf = int(min(result.basis_size, source.n_vertices - 1, target.n_vertices - 1))
-    _, ps = source.normalised_basis(kf)
-    _, pt = target.normalised_basis(kf)
-    mt = target.mass / target.area
-    pulled = np.einsum("ij,ijk->ik", bary, ps[source.faces[tri]])
-    C = pt.T @ (mt[:, None] * pulled)
+    C = np.zeros((0, 0))
+    if mode == "intrinsic":
+        # functional map of the final point map (unit-area bases); aligned mode
+        # has no use for one and skips the two eigenbases
+        kf = int(min(result.basis_size, source.n_vertices - 1, target.n_vertices - 1))
+        _, ps = source.normalised_basis(kf)
+        _, pt = target.normalised_basis(kf)
+        mt = target.mass / target.area
+        pulled = np.einsum("ij,ijk->ik", bary, ps[source.faces[tri]])
+        C = pt.T @ (mt[:, None] * pulled)
     # confidence and consistency: round trip through the reverse map
     t0 = time.perf_counter()
     end = result.back[result.vertex]
