@@ -169,20 +169,25 @@ def lift_map(source: StandIn, target: StandIn, coarse_points: FloatArray, coarse
     if not source.simplified and not target.simplified:
         raise ValueError("nothing to lift: neither mesh was simplified")
     loc = SurfaceLocator(source.full.vertices, source.full.faces)
-    lifted = loc.closest(points)
-    tri, bary = lifted.triangle, lifted.barycentric
-    kept = 0
+    keep = np.zeros(len(points), dtype=bool)
     if aligned:
-        direct = loc.closest(target.full.vertices)
         coarse_direct = SurfaceLocator(source.coarse.vertices, source.coarse.faces).closest(target.full.vertices)
         keep = np.linalg.norm(coarse_direct.points - points, axis=1) <= 0.25 * source.coarse.mean_edge
-        tri, bary = np.where(keep, direct.triangle, tri), np.where(keep[:, None], direct.barycentric, bary)
-        kept = int(keep.sum())
+    tri = np.empty(len(points), dtype=np.int64)
+    bary = np.empty((len(points), 3))
+    correction = np.zeros(0)
+    for rows, query in ((np.flatnonzero(keep), target.full.vertices), (np.flatnonzero(~keep), points)):
+        if len(rows):
+            found = loc.closest(query[rows])
+            tri[rows], bary[rows] = found.triangle, found.barycentric
+            if query is points:
+                correction = found.distance
+    kept = int(keep.sum())
     h = source.coarse.mean_edge
     stats = {"source_standin_vertices": source.coarse.n_vertices,
              "target_standin_vertices": target.coarse.n_vertices,
-             "lift_median_correction_over_h": float(np.median(lifted.distance) / h),
-             "lift_max_correction_over_h": float(lifted.distance.max() / h),
+             "lift_median_correction_over_h": float(np.median(correction) / h) if len(correction) else 0.0,
+             "lift_max_correction_over_h": float(correction.max() / h) if len(correction) else 0.0,
              "aligned_kept_own_closest_point": kept}
     return LiftedMap(np.asarray(tri, dtype=np.int64), np.asarray(bary, dtype=np.float64),
                      np.clip(confidence, 0.0, 1.0), stats)
