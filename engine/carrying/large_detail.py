@@ -22,7 +22,7 @@ from typing import Any
 import numpy as np
 from numpy.typing import NDArray
 
-from ..matching.standin import STANDIN_VERTICES, simplify_mesh
+from ..matching import standin
 from ..spectra.shape import Shape
 from .detail import smooth_base, vertex_normals
 
@@ -42,7 +42,7 @@ def band_vertices(area: float, wavelength: float) -> int:
     (equilateral triangles of edge ``e`` tile ``area`` with about ``2 area / (sqrt(3) e^2)`` vertices),
     at least :data:`~engine.matching.standin.STANDIN_VERTICES`."""
     edge = wavelength / EDGES_PER_WAVELENGTH
-    return int(max(STANDIN_VERTICES, 2.0 * area / (np.sqrt(3.0) * edge ** 2)))
+    return int(max(standin.STANDIN_VERTICES, 2.0 * area / (np.sqrt(3.0) * edge ** 2)))
 
 
 def surface_area(vertices: NDArray[Any], faces: NDArray[Any]) -> float:
@@ -71,7 +71,7 @@ def lifted_base(shape: Shape, wavelength: float, n_guides: int = 3) -> tuple[NDA
     n_coarse = band_vertices(surface_area(v, f), wavelength)
     if 2 * n_coarse > shape.n_vertices:
         return None
-    cv, cf = simplify_mesh(v, f, n_coarse)
+    cv, cf = standin.simplify_mesh(v, f, n_coarse)
     coarse = Shape(cv, cf)
     base_c = smooth_base(coarse.vertices, coarse.stiffness, coarse.mass, wavelength=wavelength)
     guides_c = coarse.eigenbasis(n_guides + 1).eigenvectors[:, 1:n_guides + 1]
@@ -119,7 +119,7 @@ def local_fit(points: NDArray[Any], normals: NDArray[Any], values: NDArray[Any],
                            np.einsum("mkj,mj->mk", rel, t2)], axis=2)       # (m, k, 3)
         w = 1.0 / (d ** 2 + d[:, :1] ** 2 + 1e-300)
         gram = np.einsum("mk,mki,mkj->mij", w, design, design)
-        gram += 1e-9 * np.trace(gram, axis1=1, axis2=2)[:, None, None] * np.eye(3)
+        gram += 1e-12 * np.trace(gram, axis1=1, axis2=2)[:, None, None] * np.eye(3)
         rhs = np.einsum("mk,mki,mkc->mic", w, design, values[idx])
         out[s:s + chunk] = np.linalg.solve(gram, rhs)[:, 0, :]
     return out
