@@ -71,8 +71,7 @@ def lifted_base(shape: Shape, wavelength: float, n_guides: int = 3) -> tuple[NDA
     n_coarse = band_vertices(surface_area(v, f), wavelength)
     if 2 * n_coarse > shape.n_vertices:
         return None
-    cv, cf = standin.simplify_mesh(v, f, n_coarse)
-    coarse = Shape(cv, cf)
+    coarse = standin.simplified_shape(shape, n_coarse)
     base_c = smooth_base(coarse.vertices, coarse.stiffness, coarse.mass, wavelength=wavelength)
     guides_c = coarse.eigenbasis(n_guides + 1).eigenvectors[:, 1:n_guides + 1]
     fields = local_fit(coarse.vertices, vertex_normals(coarse.vertices, coarse.faces),

@@ -33,6 +33,7 @@ get stand-ins of the same size. Measurements: docs/measurements.md,
 
 from __future__ import annotations
 
+import weakref
 from dataclasses import dataclass
 from typing import Any
 
@@ -41,10 +42,12 @@ from numpy.typing import NDArray
 from scipy.spatial import cKDTree
 
 from ..spectra.shape import Shape
-from .closest_point import SurfaceLocator
+from .closest_point import SurfaceLocator, SurfacePoints
 
-__all__ = ["STANDIN_VERTICES", "STANDIN_ABOVE", "SimplifierMissing", "simplify_mesh", "needs_standin",
-           "StandIn", "make_standin", "standin_landmarks", "LiftedMap", "lift_map"]
+__all__ = ["STANDIN_VERTICES", "STANDIN_ABOVE", "SimplifierMissing", "simplify_mesh", "simplified_shape",
+           "needs_standin",
+           "StandIn", "make_standin", "standin_landmarks", "LIFT_NEIGHBOURS", "NearbyLocator", "LiftedMap",
+           "lift_map"]
 
 FloatArray = NDArray[np.float64]
 IntArray = NDArray[np.int64]
@@ -111,8 +114,20 @@ def make_standin(shape: Shape) -> StandIn:
     """``shape`` itself, or its simplified copy when :func:`needs_standin`."""
     if not needs_standin(shape):
         return StandIn(shape, shape)
-    v, f = simplify_mesh(shape.vertices, shape.faces, STANDIN_VERTICES)
-    return StandIn(shape, Shape(v, f, cache=shape.cache))
+    return StandIn(shape, simplified_shape(shape, STANDIN_VERTICES))
+
+
+_SIMPLIFIED: weakref.WeakKeyDictionary[Shape, dict[int, Shape]] = weakref.WeakKeyDictionary()
+
+
+def simplified_shape(shape: Shape, n_vertices: int) -> Shape:
+    """The :class:`Shape` of ``shape`` simplified to about ``n_vertices`` vertices, made once per
+    shape and size and kept while the shape lives (matching and detail share it)."""
+    kept = _SIMPLIFIED.setdefault(shape, {})
+    if n_vertices not in kept:
+        v, f = simplify_mesh(shape.vertices, shape.faces, n_vertices)
+        kept[n_vertices] = Shape(v, f, cache=shape.cache)
+    return kept[n_vertices]
 
 
 def standin_landmarks(landmarks: tuple[IntArray, IntArray] | None, source: StandIn,
@@ -130,6 +145,34 @@ def standin_landmarks(landmarks: tuple[IntArray, IntArray] | None, source: Stand
             idx = np.asarray(near, dtype=np.int64)
         ends.append(np.asarray(side.coarse.prepared.from_clean, dtype=np.int64)[idx])
     return np.column_stack(ends)
+
+
+LIFT_NEIGHBOURS = 8
+"""Full-resolution vertices around each lift query whose triangles are searched."""
+
+
+class NearbyLocator:
+    """Closest points on the part of a huge mesh near a known set of queries.
+
+    Only the triangles touching the :data:`LIFT_NEIGHBOURS` nearest vertices
+    of some query are indexed (a :class:`SurfaceLocator` over them), so a
+    million-vertex source is never indexed whole for a target-sized set of
+    queries. Queries near the given ones (within their vertices' reach) get
+    the exact closest point on those triangles.
+    """
+
+    def __init__(self, shape: Shape, queries: FloatArray) -> None:
+        _, near = cKDTree(shape.vertices).query(queries, k=min(LIFT_NEIGHBOURS, shape.n_vertices), workers=-1)
+        wanted = np.zeros(shape.n_vertices, dtype=bool)
+        wanted[np.asarray(near).ravel()] = True
+        self.triangles = np.flatnonzero(wanted[shape.faces].any(axis=1))
+        used, faces = np.unique(shape.faces[self.triangles], return_inverse=True)
+        self.locator = SurfaceLocator(shape.vertices[used], faces.reshape(-1, 3))
+
+    def closest(self, query: FloatArray) -> SurfacePoints:
+        """As :meth:`SurfaceLocator.closest`, triangles numbered in the whole mesh."""
+        found = self.locator.closest(query)
+        return SurfacePoints(self.triangles[found.triangle], found.barycentric, found.points, found.distance)
 
 
 @dataclass(frozen=True)
@@ -168,7 +211,7 @@ def lift_map(source: StandIn, target: StandIn, coarse_points: FloatArray, coarse
         confidence = np.einsum("ij,ij->i", cp.barycentric, coarse_confidence[corners])
     if not source.simplified and not target.simplified:
         raise ValueError("nothing to lift: neither mesh was simplified")
-    loc = SurfaceLocator(source.full.vertices, source.full.faces)
+    loc = NearbyLocator(source.full, np.vstack([points, target.full.vertices]) if aligned else points)
     keep = np.zeros(len(points), dtype=bool)
     if aligned:
         coarse_direct = SurfaceLocator(source.coarse.vertices, source.coarse.faces).closest(target.full.vertices)
