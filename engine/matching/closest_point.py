@@ -7,19 +7,23 @@ Voronoi-region test), and the nearest wins. Candidates come in two passes:
 1. a ``cKDTree`` search: the triangles incident to the few nearest vertices
    and the triangles whose centroids are nearest. On ordinary meshes this
    already holds the closest triangle;
-2. a bound that makes the answer exact: a triangle with centroid ``c`` and
-   bounding radius ``r`` (the farthest corner from ``c``) is no nearer to
-   ``q`` than ``|q - c| - r``, so only triangles with ``|q - c| - r`` below
-   the distance found in pass 1 can beat it, and every one of them is
-   checked. Triangles are grouped by bounding radius (powers of two of the
-   median), one centroid tree per group, so a few long triangles (fan caps,
-   slivers) do not widen the search among the ordinary ones. A triangle left
-   out of pass 1's centroid candidates lies at least as far from ``q`` as the
-   farthest of them, so a query whose pass-1 candidates already reach past
-   the bound of a group skips that group.
+2. a bound that makes the answer exact: a triangle lies in the cylinder of
+   radius ``r`` (its farthest corner from its centroid ``c``) around the axis
+   through ``c`` along its normal, flat to its plane, so its distance from a
+   query is at least the distance to that disc (and at least ``|q - c| - r``).
+   Every triangle whose bound is below the distance pass 1 found is checked.
+   A triangle left out of pass 1's centroid candidates lies at least as far
+   from ``q`` as the farthest of them, so a query whose candidates already
+   reach past ``found + r`` for every triangle needs nothing more. The others
+   are searched by nearest centroids within groups of similar ``r`` (powers
+   of two of the median, so a few long fan or sliver triangles do not widen
+   the search among the ordinary ones), in rounds until the bound is passed;
+   queries far from the surface (many near-ties) walk a hierarchy of triangle
+   groups with bounding cylinders instead (:func:`bounding_hierarchy`).
 
 A pass-2 triangle replaces the pass-1 answer only if it is nearer by more than
-``1e-12`` of the mesh's bounding-box diagonal, so ties keep pass 1's choice.
+:data:`TIE_TOLERANCE` of the mesh's size, so ties keep pass 1's choice.
+Degenerate triangles are handled as the union of their edges.
 """
 
 from __future__ import annotations
@@ -33,14 +37,21 @@ from scipy.spatial import cKDTree
 
 from ..intake.preparation import validate_mesh
 
-__all__ = ["closest_points_on_triangles", "SurfaceLocator", "SurfacePoints", "incident_triangles",
-           "barycentric_matrix"]
+__all__ = ["closest_points_on_triangles", "near_degenerate", "SurfaceLocator", "SurfacePoints",
+           "incident_triangles", "barycentric_matrix"]
 
 FloatArray = NDArray[np.float64]
 IntArray = NDArray[np.int64]
 
 TIE_TOLERANCE = 1e-12
 """A pass-2 triangle wins only if nearer by this fraction of the bounding-box diagonal."""
+
+NEAR_RANGE = 4.0
+"""Pass 2 walks the hierarchy straight away for a query farther than this many
+bounding radii (of a radius group) from the pass-1 answer."""
+
+NEAR_CENTROIDS = (16, 64, 256, 1024)
+"""Nearest centroids per radius group tried in pass 2, round by round, before the hierarchy is walked."""
 
 PASS2_BLOCK = 2000
 """Queries per block of pass 2 (its frontier of query-group pairs stays in cache)."""
@@ -67,8 +78,8 @@ class SurfacePoints:
     distance: FloatArray
 
 
-def closest_points_on_triangles(query: ArrayLike, a: FloatArray, b: FloatArray,
-                                c: FloatArray) -> tuple[FloatArray, FloatArray]:
+def closest_points_on_triangles(query: ArrayLike, a: FloatArray, b: FloatArray, c: FloatArray,
+                                flat: NDArray[np.bool_] | None = None) -> tuple[FloatArray, FloatArray]:
     """Closest point of each query on its own triangle (a, b, c).
 
     Degenerate triangles (corners on one line or coinciding) are the union of
@@ -77,6 +88,8 @@ def closest_points_on_triangles(query: ArrayLike, a: FloatArray, b: FloatArray,
     Parameters
     ----------
     query, a, b, c : (q, 3) float arrays
+    flat : (q,) bool array, optional
+        :func:`near_degenerate` of each row's triangle, if known.
 
     Returns
     -------
@@ -120,9 +133,7 @@ def closest_points_on_triangles(query: ArrayLike, a: FloatArray, b: FloatArray,
     # Degenerate and near-degenerate triangles (sine of the angle at a below
     # 1e-5) can leave NaN or, by rounding, the wrong region: there the closest
     # point on the edges is taken if it is nearer.
-    aa, cc, ac_ab = (np.einsum("ij,ij->i", x, y) for x, y in ((ab, ab), (ac, ac), (ab, ac)))
-    flat = aa * cc - ac_ab * ac_ab <= 1e-10 * aa * cc             # |ab x ac|^2 against |ab|^2 |ac|^2
-    bad = flat | ~np.isfinite(w).all(axis=1)
+    bad = (near_degenerate(a, b, c) if flat is None else flat) | ~np.isfinite(w).all(axis=1)
     w[bad] = np.nan_to_num(w[bad], nan=1.0, posinf=1.0, neginf=0.0)
     w = np.clip(w, 0.0, 1.0)
     w /= w.sum(axis=1, keepdims=True)
@@ -130,6 +141,14 @@ def closest_points_on_triangles(query: ArrayLike, a: FloatArray, b: FloatArray,
         w[bad] = _nearer(p[bad], w[bad], _closest_on_edges(p[bad], a[bad], b[bad], c[bad]), a[bad], b[bad], c[bad])
     pts = w[:, :1] * a + w[:, 1:2] * b + w[:, 2:] * c
     return w, pts
+
+
+def near_degenerate(a: FloatArray, b: FloatArray, c: FloatArray) -> NDArray[np.bool_]:
+    """Triangles whose angle at ``a`` has a sine below 1e-5 (or with coinciding corners)."""
+    ab, ac = b - a, c - a
+    aa, cc, x = (np.einsum("ij,ij->i", u, v) for u, v in ((ab, ab), (ac, ac), (ab, ac)))
+    out: NDArray[np.bool_] = aa * cc - x * x <= 1e-10 * aa * cc      # |ab x ac|^2 against |ab|^2 |ac|^2
+    return out
 
 
 def _nearer(p: FloatArray, w1: FloatArray, w2: FloatArray, a: FloatArray, b: FloatArray,
@@ -184,8 +203,11 @@ class SurfaceLocator:
         self.vertex_candidates = int(min(vertex_candidates, len(self.vertices)))
         self.centroid_candidates = int(min(centroid_candidates, len(self.faces)))
         self.incident = incident_triangles(self.faces, len(self.vertices))
-        self.triangle_bounds, self.levels = bounding_hierarchy(self.vertices, self.faces)
+        self.triangle_bounds = triangle_bounds(self.vertices, self.faces)
+        self.flat = near_degenerate(*(self.vertices[self.faces[:, i]] for i in range(3)))
+        self.levels: list[Level] | None = None           # the hierarchy, built when first needed
         self.largest = float(self.triangle_bounds.radius.max())
+        self.groups = radius_groups(self.triangle_bounds)
         self.size = float(np.linalg.norm(np.ptp(self.vertices, axis=0)))
 
     def candidates(self, query: FloatArray) -> IntArray:
@@ -228,7 +250,7 @@ class SurfaceLocator:
             q = query[s:s + chunk]
             cand, reach = self._candidates(q)
             t, w, p = self._best(q, cand)
-            self._improve(q, reach, t, w, p)
+            self._improve(q, cand, reach, (t, w, p))
             tri[s:s + chunk], bary[s:s + chunk], pts[s:s + chunk] = t, w, p
         dist = np.linalg.norm(pts - query, axis=1)
         return SurfacePoints(tri, bary, pts, dist)
@@ -238,27 +260,34 @@ class SurfaceLocator:
         f = self.faces[cand.ravel()]
         qq = np.repeat(q, nc, axis=0)
         w, p = closest_points_on_triangles(qq, self.vertices[f[:, 0]], self.vertices[f[:, 1]],
-                                           self.vertices[f[:, 2]])
+                                           self.vertices[f[:, 2]], self.flat[cand.ravel()])
         d = np.einsum("ij,ij->i", p - qq, p - qq).reshape(nq, nc)
         best = np.argmin(d, axis=1)
         flat = np.arange(nq) * nc + best
         return cand[np.arange(nq), best], w[flat], p[flat]
 
-    def _improve(self, q: FloatArray, reach: FloatArray, tri: IntArray, bary: FloatArray,
-                 pts: FloatArray) -> None:
-        """Pass 2, in place: every triangle whose bound beats the pass-1 distance is checked."""
-        found = np.linalg.norm(pts - q, axis=1)
+    def _improve(self, q: FloatArray, cand: IntArray, reach: FloatArray,
+                 answer: tuple[IntArray, FloatArray, FloatArray]) -> None:
+        """Pass 2, in place on the pass-1 ``answer`` (triangle, barycentric, points):
+        every triangle whose bound beats the pass-1 distance is checked."""
+        found = np.linalg.norm(answer[2] - q, axis=1)
         rows = np.flatnonzero(reach < found + self.largest)    # pass 1 may not have reached far enough
-        for s in range(0, len(rows), PASS2_BLOCK):
-            self._replace(q, found, rows[s:s + PASS2_BLOCK], tri, bary, pts)
+        qi, t, rest = self._near_unchecked(q, (found, reach), rows)
+        self._replace(q, found, (qi, t), cand, answer)
+        for s in range(0, len(rest), PASS2_BLOCK):
+            self._replace(q, found, self._unchecked(q, found, rest[s:s + PASS2_BLOCK]), cand, answer)
 
-    def _replace(self, q: FloatArray, found: FloatArray, rows: IntArray, tri: IntArray, bary: FloatArray,
-                 pts: FloatArray) -> None:
-        """Pass 2 for the queries ``rows``: a nearer triangle replaces the pass-1 answer."""
-        qi, t = self._unchecked(q, found, rows)
+    def _replace(self, q: FloatArray, found: FloatArray, pairs: tuple[IntArray, IntArray], cand: IntArray,
+                 answer: tuple[IntArray, FloatArray, FloatArray]) -> None:
+        """The (query, triangle) ``pairs`` checked: a triangle nearer than pass 1's ``found``
+        replaces the pass-1 answer."""
+        tri, bary, pts = answer
+        qi, t = pairs
+        new = ~(cand[qi] == t[:, None]).any(axis=1)            # pass 1 checked the others
+        qi, t = qi[new], t[new]
         f = self.faces[t]
         w, p = closest_points_on_triangles(q[qi], self.vertices[f[:, 0]], self.vertices[f[:, 1]],
-                                           self.vertices[f[:, 2]])
+                                           self.vertices[f[:, 2]], self.flat[t])
         d = np.linalg.norm(p - q[qi], axis=1)
         order = np.lexsort((d, qi))                      # per query, nearest first
         first = order[np.r_[True, qi[order][1:] != qi[order][:-1]]] if len(qi) else order
@@ -266,9 +295,43 @@ class SurfaceLocator:
         win = first[d[first] < found[qi[first]] - tol]
         tri[qi[win]], bary[qi[win]], pts[qi[win]] = t[win], w[win], p[win]
 
+    def _near_unchecked(self, q: FloatArray, distances: tuple[FloatArray, FloatArray],
+                        rows: IntArray) -> tuple[IntArray, IntArray, IntArray]:
+        """(query, triangle) pairs of ``rows`` whose lower bound is below ``found``, from the
+        nearest centroids of each radius group (:data:`NEAR_CENTROIDS`, then more); and the
+        rows for which those did not reach far enough (left to :meth:`_unchecked`)."""
+        found, reach = distances
+        qs, ts, rest = [], [], []
+        for g in self.groups:
+            sel = rows[reach[rows] < found[rows] + g.radius]
+            far = found[sel] > NEAR_RANGE * g.radius      # many candidates: the hierarchy prunes better
+            rest.append(sel[far])
+            sel = sel[~far]
+            done = 0
+            for k in NEAR_CENTROIDS:
+                k = min(k, len(g.triangles))
+                dist, idx = g.tree.query(q[sel], k=k, workers=-1)
+                dist, idx = dist.reshape(len(sel), k)[:, done:], idx.reshape(len(sel), k)[:, done:]
+                bound = found[sel, None] + g.radius
+                r_i, c_i = np.nonzero(dist < bound)
+                t = g.triangles[idx[r_i, c_i]]
+                ball = dist[r_i, c_i] - self.triangle_bounds.radius[t] < found[sel[r_i]]   # cheap test first
+                r_i, t = r_i[ball], t[ball]
+                keep = self.triangle_bounds.lower(q[sel[r_i]], t) < found[sel[r_i]]
+                qs.append(sel[r_i[keep]])
+                ts.append(t[keep])
+                sel = sel[dist[:, -1] < bound[:, 0]] if k < len(g.triangles) else sel[:0]
+                done = k
+                if not len(sel):
+                    break
+            rest.append(sel)
+        return np.concatenate(qs), np.concatenate(ts), np.unique(np.concatenate(rest))
+
     def _unchecked(self, q: FloatArray, found: FloatArray, rows: IntArray) -> tuple[IntArray, IntArray]:
         """(query, triangle) pairs of ``rows`` whose lower bound is below ``found``, top-down
         through the bounding hierarchy."""
+        if self.levels is None:
+            self.levels = bounding_hierarchy(self.vertices, self.faces, self.triangle_bounds)
         top = len(self.levels[0].bounds.radius) if self.levels else len(self.faces)
         qi = np.repeat(rows, top)
         node = np.tile(np.arange(top), len(rows))
@@ -302,7 +365,9 @@ class Bounds:
         axis = self.axis[ids]
         h = np.einsum("ij,ij->i", d, axis)
         rho = np.linalg.norm(d - h[:, None] * axis, axis=1)
-        return np.hypot(np.maximum(np.abs(h) - self.thickness[ids], 0.0), np.maximum(rho - self.radius[ids], 0.0))
+        out: FloatArray = np.hypot(np.maximum(np.abs(h) - self.thickness[ids], 0.0),
+                                   np.maximum(rho - self.radius[ids], 0.0))
+        return out
 
 
 @dataclass(frozen=True)
@@ -316,22 +381,51 @@ class Level:
     children: IntArray
 
 
-def bounding_hierarchy(vertices: FloatArray, faces: IntArray, branching: int = 8) -> tuple[Bounds, list[Level]]:
-    """Bounds of every triangle and a hierarchy of groups over them, top level first.
+@dataclass(frozen=True)
+class RadiusGroup:
+    """Triangles of similar bounding radius: their ids, the largest radius, a tree on their centroids."""
 
-    Each level groups the one below by nearest seed (``1 / branching`` of its
-    centres, a fixed random choice); a group's bounds cover all its triangles'
-    corners, so the hierarchy is valid whatever the grouping.
-    """
+    triangles: IntArray
+    radius: float
+    tree: cKDTree
+
+
+def radius_groups(bounds: Bounds) -> list[RadiusGroup]:
+    """Triangles grouped by bounding radius in powers of two of the median radius."""
+    radius = bounds.radius
+    ref = float(np.median(radius))
+    if not ref > 0:
+        ref = float(radius.max()) if radius.max() > 0 else 1.0
+    level = np.floor(np.log2(np.maximum(radius, ref) / ref)).astype(np.int64)
+    groups = []
+    for lv in np.unique(level):
+        ids = np.flatnonzero(level == lv).astype(np.int64)
+        groups.append(RadiusGroup(ids, float(radius[ids].max()), cKDTree(bounds.centre[ids])))
+    return groups
+
+
+def triangle_bounds(vertices: FloatArray, faces: IntArray) -> Bounds:
+    """Bounds of every triangle: centroid, unit normal, farthest corner from the centroid, no thickness."""
     corners = vertices[faces]
     centre = corners.mean(axis=1)
     normal = np.cross(corners[:, 1] - corners[:, 0], corners[:, 2] - corners[:, 0])
     length = np.linalg.norm(normal, axis=1)
     axis = np.where(length[:, None] > 0, normal / np.where(length > 0, length, 1.0)[:, None], 0.0)
     radius = np.linalg.norm(corners - centre[:, None, :], axis=2).max(axis=1)
-    triangles = Bounds(centre, axis, radius, np.zeros(len(faces)))
+    return Bounds(centre, axis, radius, np.zeros(len(faces)))
+
+
+def bounding_hierarchy(vertices: FloatArray, faces: IntArray, triangles: Bounds, branching: int = 8) -> list[Level]:
+    """A hierarchy of groups over the triangles (with bounds ``triangles``), top level first.
+
+    Each level groups the one below by nearest seed (``1 / branching`` of its
+    centres, a fixed random choice); a group's bounds cover all its triangles'
+    corners, so the hierarchy is valid whatever the grouping.
+    """
+    corners = vertices[faces]
+    normal = np.cross(corners[:, 1] - corners[:, 0], corners[:, 2] - corners[:, 0])
     owner = np.arange(len(faces))                    # triangle -> group of the current level
-    points = centre
+    points = triangles.centre
     rng = np.random.default_rng(0)
     levels = []
     while len(points) > branching:
@@ -343,7 +437,7 @@ def bounding_hierarchy(vertices: FloatArray, faces: IntArray, branching: int = 8
         start = np.concatenate([[0], np.cumsum(np.bincount(parent))]).astype(np.int64)
         levels.append(Level(bounds, start, np.argsort(parent, kind="stable").astype(np.int64)))
         points = bounds.centre
-    return triangles, levels[::-1]
+    return levels[::-1]
 
 
 def _group_bounds(corners: FloatArray, triangles: Bounds, normal: FloatArray, owner: IntArray, n: int) -> Bounds:

@@ -84,21 +84,22 @@ class Correspondence:
     target: Shape
     mode: str
     reason: str
-    triangle: np.ndarray
-    barycentric: np.ndarray
-    confidence: np.ndarray
-    fmap: np.ndarray
-    stats: dict = field(default_factory=dict)
+    triangle: IntArray
+    barycentric: FloatArray
+    confidence: FloatArray
+    fmap: FloatArray
+    stats: dict[str, Any] = field(default_factory=dict)
 
-    def matrix(self):
+    def matrix(self) -> Any:
         """The pull-back as a sparse ``(n_t_clean, n_s_clean)`` matrix of barycentric weights."""
         return barycentric_matrix(self.source.faces, self.triangle, self.barycentric, self.source.n_vertices)
 
-    def points(self) -> np.ndarray:
+    def points(self) -> FloatArray:
         """(n_t, 3) mapped points on the source surface (source coordinates)."""
-        return np.einsum("ij,ijk->ik", self.barycentric, self.source.vertices[self.source.faces[self.triangle]])
+        out: FloatArray = np.einsum("ij,ijk->ik", self.barycentric, self.source.vertices[self.source.faces[self.triangle]])
+        return out
 
-    def pull(self, source_values) -> np.ndarray:
+    def pull(self, source_values: ArrayLike) -> NDArray[Any]:
         """Barycentric interpolation of per-vertex source values.
 
         Parameters
@@ -115,7 +116,7 @@ class Correspondence:
         w = self.barycentric.reshape(self.barycentric.shape + (1,) * (clean.ndim - 1))
         return self.target.restore((w * corners).sum(axis=1))
 
-    def pull_labels(self, labels) -> np.ndarray:
+    def pull_labels(self, labels: ArrayLike) -> NDArray[Any]:
         """Labels or masks, never blended: each target vertex takes the label
         that holds the most barycentric weight among the three corners of its
         source triangle (a majority where several labels meet; two equal
@@ -145,7 +146,7 @@ class Correspondence:
         pick = corners[np.arange(len(corners)), np.argmax(votes, axis=1)]
         return self.target.restore(clean[pick])
 
-    def report(self) -> dict:
+    def report(self) -> dict[str, Any]:
         """JSON-able summary: mode and reason plus :attr:`stats`."""
         return {"mode": self.mode, "reason": self.reason, **self.stats}
 

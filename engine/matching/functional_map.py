@@ -89,7 +89,8 @@ def fmap_from_descriptors(source: SpectralSide, target: SpectralSide, weights: M
     return out
 
 
-def orientation_operator(vertices, faces, phi, mass, f):
+def orientation_operator(vertices: FloatArray, faces: IntArray, phi: FloatArray, mass: FloatArray,
+                         f: FloatArray) -> FloatArray:
     """Reduced operator ``g -> <n, grad f x grad g>`` in the basis ``phi``.
 
     Parameters
@@ -118,14 +119,16 @@ def orientation_operator(vertices, faces, phi, mass, f):
     nf = np.cross(n, gf)  # n . (gf x gg) = (n x gf) . gg
     # n . (gf x grad phi_k) = sum_i (nf . gh_i) phi_k(corner i): per face and
     # corner a scalar, so no (m, 3, k) gradient array of the basis is formed
-    # (a third of the descriptor stage's time on a 30k-vertex pair)
+    # (docs/measurements.md)
     corners = [phi[faces[:, i]] for i in range(3)]           # (m, k) each
     h = sum(np.einsum("mc,mc->m", nf, g)[:, None] * c for g, c in zip(gh, corners))
     phi_face = (corners[0] + corners[1] + corners[2]) / 3.0  # (m, k)
-    return phi_face.T @ (area[:, None] * h)
+    out: FloatArray = phi_face.T @ (area[:, None] * h)
+    return out
 
 
-def fmap_from_pointmap(phi_s, phi_t, mass_t, source_rows):
+def fmap_from_pointmap(phi_s: FloatArray, phi_t: FloatArray, mass_t: FloatArray,
+                       source_rows: IntArray | Callable[[FloatArray], FloatArray]) -> FloatArray:
     """``C = Phi_t^T M_t Pi Phi_s`` for a vertex map or a barycentric map.
 
     Parameters
@@ -174,7 +177,7 @@ def pointmap_from_fmap(C: FloatArray, phi_s: FloatArray, phi_t: FloatArray, *, e
     return nearest_rows(emb_s, emb_t)
 
 
-def nearest_rows(data, query, *, block: int = 256):
+def nearest_rows(data: FloatArray, query: FloatArray, *, block: int = 256) -> IntArray:
     """Index of the nearest row of ``data`` for each row of ``query``.
 
     A ``cKDTree`` up to 24 dimensions; above that a blocked brute force by
@@ -182,11 +185,11 @@ def nearest_rows(data, query, *, block: int = 256):
     losing to brute force at a few hundred dimensions): the nearest ``x``
     maximises ``q . x - |x|^2 / 2``, and with the norm term as one more
     column the whole score comes out of one product per block, so only
-    ``argmax`` passes over it (30k x 30k in 60 dimensions, one thread: 2.9 s
-    against 8.0 s for ``argmin(|x|^2 - 2 q . x)`` as three passes).
+    ``argmax`` passes over it (timing: docs/measurements.md).
     """
     if data.shape[1] <= 24:
-        return cKDTree(data).query(query, workers=-1)[1].astype(np.int64)
+        found: IntArray = cKDTree(data).query(query, workers=-1)[1].astype(np.int64)
+        return found
     d = data.shape[1]
     aug = np.empty((d + 1, len(data)))
     aug[:d] = data.T

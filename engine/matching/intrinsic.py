@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import time
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
@@ -78,7 +79,7 @@ def match_intrinsic(source: Shape, target: Shape, landmarks: Landmarks | None, o
         cp = loc_t.closest(frame)
         back = target.faces[cp.triangle, np.argmax(cp.barycentric, axis=1)]
         timings["align_refine"] = time.perf_counter() - t0
-    sizes = {}
+    sizes: dict[str, Any] = {}
     if refine is None or refine:
         t0 = time.perf_counter()
         settings = ProductSettings(options.product_K, options.product_order)
