@@ -4,6 +4,7 @@
     python3 dev.py demo     run the main job on the built-in demo
     python3 dev.py test     run the whole test suite (what CI runs)
     python3 dev.py bench    run the benchmark scripts
+    python3 dev.py fuzz [N] the generated-input tests with N examples each (default 500)
 
 Every command creates (once) and then reuses the environments it needs, with
 the pinned versions in ``requirements/``:
@@ -169,7 +170,16 @@ def cmd_bench(extra: list[str]) -> int:
     return code
 
 
-COMMANDS = {"test": cmd_test, "demo": cmd_demo, "bench": cmd_bench}
+def cmd_fuzz(extra: list[str]) -> int:
+    """tests/test_fuzz.py with N randomised examples per category; counts in fuzz_outcomes.json."""
+    count = extra[0] if extra and extra[0].isdigit() else "500"
+    env = {**os.environ, "OVERTONE_FUZZ_EXAMPLES": count, "OVERTONE_FUZZ_REPORT": str(ROOT / "fuzz_outcomes.json"),
+           "OPENBLAS_NUM_THREADS": "1", "OMP_NUM_THREADS": "1"}
+    args = ["tests/test_fuzz.py", "-q", *[a for a in extra if a != count]]
+    return subprocess.run([str(env_python(".venv")), "-m", "pytest", *args], cwd=ROOT, env=env).returncode
+
+
+COMMANDS = {"test": cmd_test, "demo": cmd_demo, "bench": cmd_bench, "fuzz": cmd_fuzz}
 
 
 def main(argv: list[str]) -> int:

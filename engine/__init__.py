@@ -33,7 +33,7 @@ Shapes, correspondence and transfer
     correspond            target vertex -> point on the source surface (Correspondence)
     Transfer              carries signals through a basis of choice (TransferResult)
     Pair, Settings        the whole job for one source/target pair (pipeline.py)
-    run_transfer_job, run_detail_job   file in, file out: one pair per call
+    run_transfer_job, run_detail_job   file in, file out: one pair per call (JobFiles, JobOptions)
     SurfaceLocator        closest points on a triangle mesh
 
 Operators
@@ -56,7 +56,7 @@ if _sys.argv[:1] == ["-m"]:  # ``python -m engine`` is importing the package: se
 from .matching.closest_point import SurfaceLocator, SurfacePoints
 from .matching.correspondence import Correspondence, correspond
 from .jobs.pair import Pair, Settings
-from .jobs.file_jobs import run_detail_job, run_transfer_job
+from .jobs.file_jobs import JobFiles, JobOptions, run_detail_job, run_transfer_job
 from .spectra.shape import Shape
 from .carrying.transfer import Transfer, TransferResult
 from .spectra.discretization import MeshDefects, Operators, mesh_defects, mesh_operators
@@ -81,6 +81,8 @@ __all__ = [
     "Settings",
     "run_transfer_job",
     "run_detail_job",
+    "JobFiles",
+    "JobOptions",
     "SurfaceLocator",
     "SurfacePoints",
     "validate_mesh",

@@ -22,6 +22,7 @@ example) are collected, never printed; an internal error's log holds them.
 from __future__ import annotations
 
 import argparse
+import importlib
 import os
 import sys
 import tempfile
@@ -99,9 +100,18 @@ def _save_details(exc: BaseException, args: list[str], caught: list[warnings.War
     return path
 
 
+# Imported before SIGINT/SIGTERM start raising: an exception inside a module's
+# import would leave it half made; while the package starts, those signals end
+# the process quietly instead (engine/__init__.py).
+_IMPORTED_FIRST = ("scipy.sparse.linalg", "scipy.spatial", "engine.jobs.commands", "engine.jobs.file_jobs",
+                   "engine.carrying.preview", "engine.carrying.signals", "engine.carrying.corners")
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """Run one command; returns the exit code (see the module docstring)."""
     args = list(sys.argv[1:] if argv is None else argv)
+    for name in _IMPORTED_FIRST:
+        importlib.import_module(name)
     with warnings.catch_warnings(record=True) as caught, terminate_as_interrupt():
         warnings.simplefilter("always")
         try:

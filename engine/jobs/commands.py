@@ -77,11 +77,11 @@ def _one_shape(path: str, output: str, cache_dir: str | None) -> tuple[MeshData,
     """Check the output path, read the mesh and build its Shape in the unit frame; returns its scale."""
     from ..common.cache import Cache
     from ..intake.files import read_mesh
-    from .file_jobs import check_paths, read_shape, unit_frame
+    from .file_jobs import check_paths, read_shape, surface_points, unit_frame
 
     check_paths([path], [output])
     data = read_mesh(path)
-    frame = unit_frame(data.vertices)
+    frame = unit_frame(surface_points(data))
     return data, read_shape(data, Cache(cache_dir) if cache_dir else None, frame), frame[1]
 
 

@@ -34,10 +34,12 @@ from ..intake.files import MeshData, ply_chunks, read_mesh
 from ..spectra.shape import Shape
 from .pair import Pair, Settings, load_landmarks
 
-__all__ = ["JobFiles", "JobOptions", "check_paths", "unit_frame", "read_shape", "run_transfer_job",
+__all__ = ["JobFiles", "JobOptions", "check_paths", "unit_frame", "surface_points", "read_shape", "run_transfer_job",
            "run_detail_job", "report_text"]
 
 PathLike = str | os.PathLike[str]
+_FAR = 1e100  # unit-frame coordinates are clipped here (vertices far outside the surface only;
+             # squared distances to them stay finite)
 
 
 @dataclass(frozen=True)
@@ -131,10 +133,23 @@ def unit_frame(*vertex_sets: NDArray[Any]) -> tuple[NDArray[Any], float]:
     return centre, scale
 
 
+def surface_points(data: MeshData) -> NDArray[Any]:
+    """The vertices that polygons use (all of them for a mesh without polygons).
+
+    The unit frame is taken from these, so a stray vertex far away cannot make
+    the surface vanishingly small in it.
+    """
+    if data.corners.size == 0:
+        return data.vertices
+    used: NDArray[Any] = data.vertices[np.unique(data.corners)]
+    return used
+
+
 def read_shape(data: MeshData, cache: Cache | None, frame: tuple[NDArray[Any], float]) -> Shape:
     """The :class:`Shape` of a read mesh in the unit frame ``(centre, scale)``."""
     centre, scale = frame
-    vertices = (data.vertices - centre) / scale
+    with np.errstate(over="ignore"):  # only vertices outside the surface can leave the range
+        vertices = np.clip((data.vertices - centre) / scale, -_FAR, _FAR)
     return Shape(vertices, corners=data.corners, sizes=data.sizes,  # type: ignore[no-untyped-call, unused-ignore]
                  cache=cache)
 
@@ -144,7 +159,7 @@ def _open_pair(files: JobFiles) -> tuple[MeshData, Shape, MeshData, Shape, tuple
     stage("reading the meshes")
     src_data, tgt_data = read_mesh(files.source), read_mesh(files.target)
     cache = Cache(files.cache) if files.cache else None
-    frame = unit_frame(src_data.vertices, tgt_data.vertices)
+    frame = unit_frame(surface_points(src_data), surface_points(tgt_data))
     return src_data, read_shape(src_data, cache, frame), tgt_data, read_shape(tgt_data, cache, frame), frame
 
 
@@ -224,7 +239,8 @@ def run_detail_job(files: JobFiles, options: JobOptions = JobOptions()) -> dict[
     stage("matching")
     pair = Pair(source, target, settings)
     stage("carrying the detail")
-    unit_original = (tgt_data.vertices - centre) / scale
+    with np.errstate(over="ignore"):
+        unit_original = np.clip((tgt_data.vertices - centre) / scale, -_FAR, _FAR)
     unit_positions = pair.detail(original=unit_original)
     on_surface = (target.prepared.to_clean >= 0)[:, None]
     positions = np.where(on_surface, unit_positions * scale + centre, tgt_data.vertices)
