@@ -38,9 +38,11 @@ from ..carrying.transfer import BASES, Transfer, TransferResult
 __all__ = ["Settings", "Pair", "weighted_centre_vertex", "load_landmarks", "check_landmarks",
            "CORRESPONDENCE_VERSION"]
 
-CORRESPONDENCE_VERSION = 5   # 2: product-embedding step in the intrinsic map; 3: non-rigid ICP
+CORRESPONDENCE_VERSION = 6   # 2: product-embedding step in the intrinsic map; 3: non-rigid ICP
                              # alignment; 4: spectral check in aligned mode where the surfaces differ;
                              # 5: nearest embedding rows from one fused product (near-ties may differ)
+                             # 6: meshes over 40k vertices matched through stand-ins; no functional
+                             # map in aligned mode
 
 
 @dataclass(frozen=True)

@@ -18,6 +18,11 @@ intrinsic
 vertices within as much of the target; both at least ``overlap_threshold``
 picks aligned.
 
+A mesh over :data:`~engine.matching.standin.STANDIN_ABOVE` vertices is
+matched through a simplified stand-in and the map lifted to full resolution
+(:mod:`engine.matching.standin`), so a sculpt's cost hardly grows with its
+vertex count.
+
 Confidence per target vertex is the round-trip agreement: target vertex ->
 source point -> (reverse map: closest points from the (deformed) source onto
 the target, or the spectral embedding without alignment) -> target vertex;
