@@ -197,3 +197,13 @@ def test_nearby_locator_agrees_with_the_whole_mesh_search():
     assert len(standin.NearbyLocator(S, q).triangles) < len(S.faces)
     np.testing.assert_allclose(near.distance, whole.distance, atol=1e-12)
     np.testing.assert_allclose(near.points, whole.points, atol=1e-9)
+
+
+def test_without_the_simplifier_a_large_mesh_is_matched_as_it_is(small_standins, monkeypatch):
+    monkeypatch.setitem(sys.modules, "fast_simplification", None)
+    (ps, S), (pt, T) = _pair(moved=False)
+    c = correspond(S, T, match="aligned")
+    assert "stand-ins of" not in c.reason and "'fast-simplification' package (not installed)" in c.reason
+    assert "standin" not in c.stats and c.triangle.max() < len(S.faces)
+    from engine.carrying.large_detail import lifted_base
+    assert lifted_base(S, 2.0) is None          # a band wide enough to want a 1,500-vertex stand-in

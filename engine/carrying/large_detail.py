@@ -65,13 +65,17 @@ def lifted_base(shape: Shape, wavelength: float, n_guides: int = 3) -> tuple[NDA
     Returns
     -------
     base (n, 3) float64, guides (n, n_guides) float64; None when the stand-in
-    would have more than half the shape's vertices (then work on the shape itself).
+    would have more than half the shape's vertices or the simplifier is not
+    installed (then work on the shape itself).
     """
     v, f = shape.vertices, shape.faces
     n_coarse = band_vertices(surface_area(v, f), wavelength)
     if 2 * n_coarse > shape.n_vertices:
         return None
-    coarse = standin.simplified_shape(shape, n_coarse)
+    try:
+        coarse = standin.simplified_shape(shape, n_coarse)
+    except standin.SimplifierMissing:     # slower, but the same result: smooth the shape itself
+        return None
     base_c = smooth_base(coarse.vertices, coarse.stiffness, coarse.mass, wavelength=wavelength)
     guides_c = coarse.eigenbasis(n_guides + 1).eigenvectors[:, 1:n_guides + 1]
     fields = local_fit(coarse.vertices, vertex_normals(coarse.vertices, coarse.faces),

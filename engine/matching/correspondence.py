@@ -50,7 +50,7 @@ from .closest_point import SurfaceLocator, barycentric_matrix
 from .embedding import ProductSettings
 from .intrinsic import match_intrinsic
 from .modes import MatchOptions, ModeResult
-from .standin import StandIn, lift_map, make_standin, standin_landmarks
+from .standin import STANDIN_ABOVE, StandIn, lift_map, make_standin, standin_landmarks
 
 __all__ = ["Correspondence", "correspond", "MatchOptions", "MATCHES"]
 
@@ -200,6 +200,9 @@ def correspond(source: Shape, target: Shape, *, match: str = "auto", landmarks: 
     src, tgt = make_standin(source), make_standin(target)
     if src.simplified or tgt.simplified:
         return _through_standins(src, tgt, match, lm, refine, opts, time.perf_counter() - t0)
+    slow = (f"; matched at full resolution, much more slowly: a mesh over {STANDIN_ABOVE} vertices is "
+            "matched through a simplified copy, which needs the 'fast-simplification' package (not installed)"
+            if src.missing or tgt.missing else "")
     loc_s = SurfaceLocator(source.vertices, source.faces)
     loc_t = SurfaceLocator(target.vertices, target.faces)
     h = max(source.mean_edge, target.mean_edge)
@@ -220,6 +223,7 @@ def correspond(source: Shape, target: Shape, *, match: str = "auto", landmarks: 
         reason = f"{reason}; {result.why}"
     else:
         result = match_intrinsic(source, target, lm, opts, refine, h, loc_t)
+    reason += slow
     result.timings = {"overlap": overlap_time, **result.timings}
     stats: dict[str, Any] = {"overlap": {"target_near_source": frac_t, "source_near_target": frac_s},
                              **result.stats}

@@ -104,6 +104,8 @@ class StandIn:
 
     full: Shape
     coarse: Shape
+    missing: bool = False
+    """The mesh wanted a stand-in but the simplifier is not installed."""
 
     @property
     def simplified(self) -> bool:
@@ -111,10 +113,14 @@ class StandIn:
 
 
 def make_standin(shape: Shape) -> StandIn:
-    """``shape`` itself, or its simplified copy when :func:`needs_standin`."""
+    """``shape`` itself, or its simplified copy when :func:`needs_standin` (``shape`` itself, flagged
+    ``missing``, when the simplifier is not installed)."""
     if not needs_standin(shape):
         return StandIn(shape, shape)
-    return StandIn(shape, simplified_shape(shape, STANDIN_VERTICES))
+    try:
+        return StandIn(shape, simplified_shape(shape, STANDIN_VERTICES))
+    except SimplifierMissing:      # slower, but the same job: match the mesh as it is
+        return StandIn(shape, shape, missing=True)
 
 
 _SIMPLIFIED: weakref.WeakKeyDictionary[Shape, dict[int, Shape]] = weakref.WeakKeyDictionary()
