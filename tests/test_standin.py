@@ -214,5 +214,5 @@ def test_without_the_simplifier_a_large_mesh_is_matched_as_it_is(small_standins,
     c = correspond(S, T, match="aligned")
     assert "stand-ins of" not in c.reason and "'fast-simplification' package (not installed)" in c.reason
     assert "standin" not in c.stats and c.triangle.max() < len(S.faces)
-    from engine.carrying.large_detail import lifted_base
-    assert lifted_base(S, 2.0) is None          # a band wide enough to want a 1,500-vertex stand-in
+    from engine.carrying.large_detail import lifted_layer
+    assert lifted_layer(S, 2.0, np.arange(10)) is None          # a band wide enough to want a 1,500-vertex stand-in

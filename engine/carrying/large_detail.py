@@ -24,9 +24,9 @@ from numpy.typing import NDArray
 
 from ..matching import standin
 from ..spectra.shape import Shape
-from .detail import smooth_base, vertex_normals
+from .detail import smooth_base, split_detail, vertex_normals
 
-__all__ = ["EDGES_PER_WAVELENGTH", "FIT_NEIGHBOURS", "band_vertices", "lifted_base", "local_fit", "surface_area"]
+__all__ = ["EDGES_PER_WAVELENGTH", "FIT_NEIGHBOURS", "band_vertices", "lifted_layer", "local_fit", "surface_area"]
 
 FIT_NEIGHBOURS = 10
 """Stand-in vertices in each local fit (:func:`local_fit`): a ring and a half around the query."""
@@ -51,22 +51,30 @@ def surface_area(vertices: NDArray[Any], faces: NDArray[Any]) -> float:
     return 0.5 * float(np.linalg.norm(np.cross(e1, e2), axis=1).sum())
 
 
-def lifted_base(shape: Shape, wavelength: float, n_guides: int = 3) -> tuple[NDArray[Any], NDArray[Any]] | None:
-    """Smooth base and guide fields of ``shape`` through a stand-in, or None if the shape is small enough.
+def lifted_layer(shape: Shape, wavelength: float, rows: NDArray[Any],
+                 n_guides: int = 3) -> tuple[NDArray[Any], NDArray[Any]] | None:
+    """Detail offsets and guide fields of ``shape`` at the vertices ``rows``, through a stand-in.
+
+    The base and the guides come from the stand-in (:func:`local_fit`); the
+    offsets are :func:`~engine.carrying.detail.split_detail`'s, computed on the
+    triangles around ``rows`` only (a vertex's frame needs its one-ring), so a
+    target-sized set of rows costs little on a huge source.
 
     Parameters
     ----------
     shape : Shape
     wavelength : float
         Features shorter than this are detail (:func:`~engine.carrying.detail.smooth_base`).
+    rows : (r,) int array
+        The vertices wanted (those a correspondence reads).
     n_guides : int
         Guide fields: the stand-in's eigenfunctions 1..n_guides.
 
     Returns
     -------
-    base (n, 3) float64, guides (n, n_guides) float64; None when the stand-in
-    would have more than half the shape's vertices or the simplifier is not
-    installed (then work on the shape itself).
+    offsets (n, 3) float64, guides (n, n_guides) float64, zero outside ``rows``;
+    None when the stand-in would have more than half the shape's vertices or
+    the simplifier is not installed (then work on the shape itself).
     """
     v, f = shape.vertices, shape.faces
     n_coarse = band_vertices(surface_area(v, f), wavelength)
@@ -78,9 +86,16 @@ def lifted_base(shape: Shape, wavelength: float, n_guides: int = 3) -> tuple[NDA
         return None
     base_c = smooth_base(coarse.vertices, coarse.stiffness, coarse.mass, wavelength=wavelength)
     guides_c = coarse.eigenbasis(n_guides + 1).eigenvectors[:, 1:n_guides + 1]
+    wanted = np.zeros(shape.n_vertices, dtype=bool)
+    wanted[rows] = True
+    used, ring = np.unique(f[wanted[f].any(axis=1)], return_inverse=True)
+    ring = ring.reshape(-1, 3)
     fields = local_fit(coarse.vertices, vertex_normals(coarse.vertices, coarse.faces),
-                       np.hstack([base_c, guides_c]), v)
-    return fields[:, :3], fields[:, 3:]
+                       np.hstack([base_c, guides_c]), v[used])
+    layer = split_detail(v[used], ring, fields[:, :3], guides=fields[:, 3:])
+    offsets, guides = np.zeros((shape.n_vertices, 3)), np.zeros((shape.n_vertices, n_guides))
+    offsets[used], guides[used] = layer.offsets, fields[:, 3:]
+    return offsets, guides
 
 
 def local_fit(points: NDArray[Any], normals: NDArray[Any], values: NDArray[Any], query: NDArray[Any], *,

@@ -28,7 +28,7 @@ from numpy.typing import ArrayLike, NDArray
 
 from ..matching.correspondence import MATCHES, Correspondence, correspond
 from ..carrying.detail import apply_detail, check_strength, place_on_original, smooth_base, split_detail
-from ..carrying.large_detail import lifted_base, surface_area
+from ..carrying.large_detail import lifted_layer, surface_area
 from ..common.cache import geometry_key
 from ..matching.standin import needs_standin
 from ..spectra.shape import Shape
@@ -236,18 +236,19 @@ class Pair:
         area_s = surface_area(self.source.vertices, self.source.faces) if large else self.source.area
         wavelength = size * np.sqrt(area_s)
         scale = np.sqrt(self.target.area / area_s)
-        lifted = lifted_base(self.source, wavelength) if large else None
+        rows = np.unique(self.source.faces[self.correspondence.triangle])    # the source vertices P reads
+        lifted = lifted_layer(self.source, wavelength, rows) if large else None
         if lifted is None:
             guides_s = self.source.eigenbasis(4).eigenvectors[:, 1:4]
             base_s = smooth_base(self.source.vertices, self.source.stiffness, self.source.mass,
                                  wavelength=wavelength)
+            offsets_s = split_detail(self.source.vertices, self.source.faces, base_s, guides=guides_s).offsets
         else:
-            base_s, guides_s = lifted
+            offsets_s, guides_s = lifted
         base_t = smooth_base(self.target.vertices, self.target.stiffness, self.target.mass,
                              wavelength=wavelength * scale)
-        layer_s = split_detail(self.source.vertices, self.source.faces, base_s, guides=guides_s)
         layer_t = split_detail(self.target.vertices, self.target.faces, base_t, guides=np.asarray(P @ guides_s))
-        offsets = np.asarray(P @ layer_s.offsets) * scale
+        offsets = np.asarray(P @ offsets_s) * scale
         positions = apply_detail(layer_t, offsets, strength=strength)
         self.timings["detail"] = round(time.perf_counter() - t0, 4)
         if not np.isfinite(positions).all():
