@@ -285,8 +285,8 @@ def _finish(source: Shape, target: Shape, mode: str, reason: str, result: ModeRe
 
 
 OVERLAP_SAMPLE = 4000
-"""Vertices per side that measure the overlap: a fraction, known to about +-1% from
-a fixed random sample of this size (binomial)."""
+"""Vertices per side that measure the overlap: a fraction, which a fixed random
+sample of this size gives to about +-1% (binomial)."""
 
 
 def _overlap(loc_s: SurfaceLocator, loc_t: SurfaceLocator, source: Shape, target: Shape,

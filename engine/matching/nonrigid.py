@@ -33,9 +33,7 @@ from typing import Any
 
 import numpy as np
 import scipy.sparse as sp
-import scipy.sparse.linalg as spla
 from numpy.typing import NDArray
-from scipy.interpolate import RBFInterpolator
 from scipy.spatial import cKDTree
 
 from ..carrying.detail import vertex_normals_unchecked
@@ -141,6 +139,7 @@ def _landmark_warp(source: Shape, target: Shape, landmarks: Landmarks | None) ->
     """Source vertices through a thin-plate spline taking the landmarks onto the target's (identity below four)."""
     X: FloatArray = source.vertices.copy()
     if landmarks is not None and len(landmarks[0]) >= 4:
+        from scipy.interpolate import RBFInterpolator   # imported when needed: slow to import
         try:
             X = RBFInterpolator(X[landmarks[0]], target.vertices[landmarks[1]], kernel="thin_plate_spline",
                                 degree=1)(X)
@@ -245,6 +244,7 @@ def spd_factor(H: Any) -> Any:
     """Sparse LU of a symmetric positive definite matrix: minimum-degree ordering
     of ``H + H^T`` and diagonal pivots (several times faster than SuperLU's
     default threshold pivoting on these systems, docs/measurements.md)."""
+    import scipy.sparse.linalg as spla   # imported when needed, as elsewhere in the engine
     return spla.splu(H.tocsc(), permc_spec="MMD_AT_PLUS_A", diag_pivot_thresh=0.0, options={"SymmetricMode": True})
 
 
