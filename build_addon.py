@@ -6,7 +6,7 @@ linux_x64, windows_x64, macos_arm64 and macos_x64. Each holds
 ``blender_manifest.toml``, the add-on (``addon/*.py`` at the top level), the
 engine as the subpackage ``engine/``, and the unmodified wheels of the
 engine's dependencies Blender does not ship (:data:`BUNDLED`: SciPy,
-mapbox-earcut) for its platform under ``wheels/``, for CPython 3.11 (Blender
+mapbox-earcut, fast-simplification) for its platform under ``wheels/``, for CPython 3.11 (Blender
 4.2-5.0) and CPython 3.13 (Blender 5.1).
 
 The split is the one Blender's own ``blender_ext.py build --split-platforms``
@@ -83,7 +83,7 @@ def engine_version() -> str:
                    '__version__ = "X.Y.Z"')
 
 
-BUNDLED = ("scipy", "mapbox-earcut")
+BUNDLED = ("scipy", "mapbox-earcut", "fast-simplification")
 """The engine's dependencies Blender does not ship (it ships NumPy), bundled as wheels."""
 
 

@@ -18,8 +18,10 @@ def test_engine_never_mentions_blender_modules():
 def test_engine_imports_only_stdlib_numpy_scipy_earcut():
     import sys
     # mapbox_earcut: ear cutting for polygons in files, optional (engine/intake/triangulation.py
-    # falls back to its own ear clipping without it); bundled with the extension as a wheel.
-    allowed_third_party = {"numpy", "scipy", "mapbox_earcut"}
+    # falls back to its own ear clipping without it); fast_simplification: the quadric simplifier
+    # of the stand-ins (engine/matching/standin.py), imported only where a huge mesh is simplified,
+    # with a clear reason when missing. Both are bundled with the extension as wheels.
+    allowed_third_party = {"numpy", "scipy", "mapbox_earcut", "fast_simplification"}
     stdlib = set(sys.stdlib_module_names)
     pattern = re.compile(r"^\s*(?:import|from)\s+([A-Za-z_][\w]*)", re.M)
     bad = []

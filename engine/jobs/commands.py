@@ -10,6 +10,7 @@ from __future__ import annotations
 import argparse
 import json
 import os
+import sys
 import time
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -19,6 +20,7 @@ from numpy.typing import NDArray
 
 from ..common.atomic import atomic_write
 from ..spectra.approximation import SPECTRAL_BASES
+from ..common.progress import showing
 
 if TYPE_CHECKING:
     from ..intake.files import MeshData
@@ -210,7 +212,8 @@ def run_transfer(args: argparse.Namespace) -> int:
 
     options = JobOptions(attributes=_split_names(args.attributes), basis=args.basis, match=args.match,
                          k=args.k, order=args.order)
-    report = run_transfer_job(_job_files(args), options)
+    with showing(sys.stdout, total=4):
+        report = run_transfer_job(_job_files(args), options)
     _print_pair_report(report)
     basis = report["settings"]["basis"]
     for name, info in report.get("signals", {}).items():
@@ -237,7 +240,8 @@ def run_detail(args: argparse.Namespace) -> int:
     from .file_jobs import JobOptions, run_detail_job
 
     options = JobOptions(match=args.match, strength=args.strength, size=args.size)
-    report = run_detail_job(_job_files(args), options)
+    with showing(sys.stdout, total=4):
+        report = run_detail_job(_job_files(args), options)
     _print_pair_report(report)
     d = report["detail"]
     print(f"  detail: strength {d['strength']:g}, size {d['size']:g}; target vertices moved by "

@@ -28,7 +28,9 @@ from numpy.typing import ArrayLike, NDArray
 
 from ..matching.correspondence import MATCHES, Correspondence, correspond
 from ..carrying.detail import apply_detail, check_strength, place_on_original, smooth_base, split_detail
+from ..carrying.large_detail import lifted_layer, surface_area
 from ..common.cache import geometry_key
+from ..matching.standin import needs_standin
 from ..spectra.shape import Shape
 from ..carrying.signals import check_signal
 from ..carrying.transfer import BASES, Transfer, TransferResult
@@ -38,11 +40,13 @@ from ..spectra.approximation import check_basis_name
 __all__ = ["Settings", "Pair", "weighted_centre_vertex", "load_landmarks", "check_landmarks",
            "CORRESPONDENCE_VERSION"]
 
-CORRESPONDENCE_VERSION = 6   # 2: product-embedding step in the intrinsic map; 3: non-rigid ICP
+CORRESPONDENCE_VERSION = 7   # 2: product-embedding step in the intrinsic map; 3: non-rigid ICP
                              # alignment; 4: spectral check in aligned mode where the surfaces differ;
                              # 5: nearest embedding rows from one fused product (near-ties may differ);
                              # 6: pieces matched piece to piece, confidence with facing and signature
                              # checks, auto mode's self-check (new report keys)
+                             # 7: meshes over 40k vertices matched through stand-ins; no functional
+                             # map in aligned mode
 
 
 @dataclass(frozen=True)
@@ -261,16 +265,24 @@ class Pair:
         size = s.detail_size if size is None else float(size)
         replace(s, detail_strength=strength, detail_size=size)  # validates both
         t0 = time.perf_counter()
-        guides_s = self.source.eigenbasis(4).eigenvectors[:, 1:4]
         P = self.correspondence.matrix()  # type: ignore[no-untyped-call, unused-ignore]
-        wavelength = size * np.sqrt(self.source.area)
-        scale = np.sqrt(self.target.area / self.source.area)
-        base_s = smooth_base(self.source.vertices, self.source.stiffness, self.source.mass, wavelength=wavelength)
+        large = needs_standin(self.source)
+        area_s = surface_area(self.source.vertices, self.source.faces) if large else self.source.area
+        wavelength = size * np.sqrt(area_s)
+        scale = np.sqrt(self.target.area / area_s)
+        rows = np.unique(self.source.faces[self.correspondence.triangle])    # the source vertices P reads
+        lifted = lifted_layer(self.source, wavelength, rows) if large else None
+        if lifted is None:
+            guides_s = self.source.eigenbasis(4).eigenvectors[:, 1:4]
+            base_s = smooth_base(self.source.vertices, self.source.stiffness, self.source.mass,
+                                 wavelength=wavelength)
+            offsets_s = split_detail(self.source.vertices, self.source.faces, base_s, guides=guides_s).offsets
+        else:
+            offsets_s, guides_s = lifted
         base_t = smooth_base(self.target.vertices, self.target.stiffness, self.target.mass,
                              wavelength=wavelength * scale)
-        layer_s = split_detail(self.source.vertices, self.source.faces, base_s, guides=guides_s)
         layer_t = split_detail(self.target.vertices, self.target.faces, base_t, guides=np.asarray(P @ guides_s))
-        offsets = np.asarray(P @ layer_s.offsets) * scale
+        offsets = np.asarray(P @ offsets_s) * scale
         positions = apply_detail(layer_t, offsets, strength=strength)
         self.timings["detail"] = round(time.perf_counter() - t0, 4)
         if not np.isfinite(positions).all():
@@ -292,8 +304,7 @@ class Pair:
             "coverage_of_source_area": corr.get("coverage_of_source_area"),
             "consistency": corr.get("consistency"),
             "mean_confidence": float(self.confidence.mean()),
-            "operators": {"source": self.source.operators.reason or "cotangent",
-                          "target": self.target.operators.reason or "cotangent"},
+            "operators": {"source": _operators_note(self.source), "target": _operators_note(self.target)},
             "correspondence": corr,
             "timings": dict(self.timings),
             "cache_hits": {**self.cache_hits, "source": dict(self.source.hits), "target": dict(self.target.hits)},
@@ -308,6 +319,13 @@ class Pair:
                                      "seconds": r.report.get("seconds")} for name, r in results.items()}
         report: dict[str, Any] = _jsonable(out)
         return report
+
+
+def _operators_note(shape: Shape) -> str:
+    """Which Laplacian the shape got, without building one only to say so."""
+    if not shape.operators_built:
+        return "not built (matched through a stand-in)"
+    return str(shape.operators.reason or "cotangent")
 
 
 def _valid_map(stored: dict[str, NDArray[Any]], source: Shape, target: Shape) -> dict[str, Any] | None:

@@ -18,6 +18,11 @@ intrinsic
 vertices within as much of the target; both at least ``overlap_threshold``
 picks aligned.
 
+A mesh over :data:`~engine.matching.standin.STANDIN_ABOVE` vertices is
+matched through a simplified stand-in and the map lifted to full resolution
+(:mod:`engine.matching.standin`), so a sculpt's cost hardly grows with its
+vertex count.
+
 Confidence per target vertex starts from the round-trip agreement: target
 vertex -> source point -> (reverse map: closest points from the (deformed)
 source onto the target, or the spectral embedding without alignment) ->
@@ -50,6 +55,7 @@ from .embedding import ProductSettings
 from .intrinsic import match_intrinsic
 from .modes import MatchOptions, ModeResult
 from .pieces import correspond_in_pieces
+from .standin import STANDIN_ABOVE, StandIn, lift_map, make_standin, standin_landmarks
 
 __all__ = ["Correspondence", "correspond", "correspond_surface", "MatchOptions", "MATCHES"]
 
@@ -77,7 +83,8 @@ class Correspondence:
     confidence : (n_t,) float64 array in [0, 1]
         Round-trip agreement (module docstring).
     fmap : (k_t, k_s) float64 array
-        Functional map, source eigen-coefficients -> target eigen-coefficients.
+        Functional map, source eigen-coefficients -> target eigen-coefficients
+        (of the stand-ins when matched through them; empty, (0, 0), in aligned mode).
     stats : dict
         JSON-able: overlap, coverage of source area, consistency, sizes and
         ranks, timings, cache hits.
@@ -210,8 +217,12 @@ def correspond(source: Shape, target: Shape, *, match: str = "auto", landmarks: 
 
 def _checked(source: Shape, target: Shape, match: str, landmarks: ArrayLike | None, refine: bool | None,
              opts: MatchOptions) -> Correspondence:
-    """One surface each: :func:`_surface` with the checked confidence and auto mode's self-check."""
-    c = with_confidence(correspond_surface(source, target, match, landmarks, refine, opts))
+    """One surface each: :func:`correspond_surface` with the checked confidence and auto mode's
+    self-check (done on the stand-ins when the meshes were matched through them)."""
+    c = correspond_surface(source, target, match, landmarks, refine, opts)
+    if "standin" in c.stats:
+        return c
+    c = with_confidence(c)
     if match == "auto" and c.mode == "aligned":
         c = checked_auto(c, lambda: with_confidence(correspond_surface(source, target, "intrinsic", landmarks,
                                                                        refine, opts)))
@@ -224,6 +235,12 @@ def correspond_surface(source: Shape, target: Shape, match: str, landmarks: Arra
     with the round-trip confidence only (no checks, no self-check, no pieces)."""
     lm = _check_landmarks(landmarks, source, target)
     t0 = time.perf_counter()
+    src, tgt = make_standin(source), make_standin(target)
+    if src.simplified or tgt.simplified:
+        return _through_standins(src, tgt, match, lm, refine, opts, time.perf_counter() - t0)
+    slow = (f"; matched at full resolution, much more slowly: a mesh over {STANDIN_ABOVE} vertices is "
+            "matched through a simplified copy, which needs the 'fast-simplification' package (not installed)"
+            if src.missing or tgt.missing else "")
     loc_s = SurfaceLocator(source.vertices, source.faces)
     loc_t = SurfaceLocator(target.vertices, target.faces)
     h = max(source.mean_edge, target.mean_edge)
@@ -244,23 +261,46 @@ def correspond_surface(source: Shape, target: Shape, match: str, landmarks: Arra
         reason = f"{reason}; {result.why}"
     else:
         result = match_intrinsic(source, target, lm, opts, refine, h, loc_t)
+    reason += slow
     result.timings = {"overlap": overlap_time, **result.timings}
     stats: dict[str, Any] = {"overlap": {"target_near_source": frac_t, "source_near_target": frac_s},
                              **result.stats}
     return _finish(source, target, mode, reason, result, stats, 0 if lm is None else len(lm[0]))
 
 
+def _through_standins(source: StandIn, target: StandIn, match: str, landmarks: tuple[IntArray, IntArray] | None,
+                      refine: bool | None, options: MatchOptions, simplify_time: float) -> Correspondence:
+    """Match the stand-ins (:mod:`engine.matching.standin`), then lift the map to the full meshes."""
+    coarse = _checked(source.coarse, target.coarse, match, standin_landmarks(landmarks, source, target),
+                      refine, options)
+    t0 = time.perf_counter()
+    lifted = lift_map(source, target, coarse.points(), coarse.confidence, coarse.mode == "aligned")
+    stats = dict(coarse.stats)
+    stats["timings"] = {"simplify": round(simplify_time, 4), **stats.get("timings", {}),
+                        "lift": round(time.perf_counter() - t0, 4)}
+    stats["sizes"] = {**stats.get("sizes", {}), "source_vertices": source.full.n_vertices,
+                      "target_vertices": target.full.n_vertices}
+    stats["standin"] = lifted.stats
+    reason = (f"{coarse.reason}; matched through stand-ins of {source.coarse.n_vertices} source and "
+              f"{target.coarse.n_vertices} target vertices, lifted to full resolution")
+    return Correspondence(source.full, target.full, coarse.mode, reason, lifted.triangle, lifted.barycentric,
+                          lifted.confidence, coarse.fmap, stats)
+
+
 def _finish(source: Shape, target: Shape, mode: str, reason: str, result: ModeResult, stats: dict[str, Any],
             n_landmarks: int) -> Correspondence:
-    """The final functional map, the round-trip confidence and the statistics."""
+    """The final functional map (intrinsic mode only), the round-trip confidence and the statistics."""
     tri, bary = result.triangle, result.barycentric
-    # functional map of the final point map (unit-area bases)
-    kf = int(min(result.basis_size, source.n_vertices - 1, target.n_vertices - 1))
-    _, ps = source.normalised_basis(kf)
-    _, pt = target.normalised_basis(kf)
-    mt = target.mass / target.area
-    pulled = np.einsum("ij,ijk->ik", bary, ps[source.faces[tri]])
-    C = pt.T @ (mt[:, None] * pulled)
+    C = np.zeros((0, 0))
+    if mode == "intrinsic":
+        # functional map of the final point map (unit-area bases); aligned mode
+        # has no use for one and skips the two eigenbases
+        kf = int(min(result.basis_size, source.n_vertices - 1, target.n_vertices - 1))
+        _, ps = source.normalised_basis(kf)
+        _, pt = target.normalised_basis(kf)
+        mt = target.mass / target.area
+        pulled = np.einsum("ij,ijk->ik", bary, ps[source.faces[tri]])
+        C = pt.T @ (mt[:, None] * pulled)
     # confidence and consistency: round trip through the reverse map
     t0 = time.perf_counter()
     end = result.back[result.vertex]

@@ -87,6 +87,11 @@ class Shape:
         return self._operators
 
     @property
+    def operators_built(self) -> bool:
+        """Whether :attr:`operators` has been computed (a mesh matched through a stand-in may never need it)."""
+        return self._operators is not None
+
+    @property
     def stiffness(self) -> Any:
         """(n, n) csr_matrix, cotangent stiffness, positive semidefinite."""
         return self.operators.stiffness

@@ -195,7 +195,16 @@ tri = mapbox_earcut.triangulate_float64(square, np.array([4], dtype=np.uint32)).
 a, b, c = square[tri[:, 0]], square[tri[:, 1]], square[tri[:, 2]]
 area = 0.5 * np.abs((b - a)[:, 0] * (c - a)[:, 1] - (b - a)[:, 1] * (c - a)[:, 0])
 assert len(tri) == 2 and np.isclose(area.sum(), 1.0), tri
-print(scipy.__file__, scipy.__version__, np.__file__, np.__version__, mapbox_earcut.__file__)
+import fast_simplification
+# quadric simplification of a flat grid keeps it flat (every quadric error is zero there)
+g = np.stack(np.meshgrid(np.arange(20.0), np.arange(20.0)), -1).reshape(-1, 2)
+pts = np.column_stack([g, np.zeros(len(g))])
+k = np.arange(19 * 20).reshape(19, 20)[:, :19].ravel()
+faces = np.vstack([np.column_stack([k, k + 1, k + 21]), np.column_stack([k, k + 21, k + 20])])
+v2, f2 = fast_simplification.simplify(pts, faces, target_reduction=0.5)
+assert 0 < len(f2) < len(faces) and np.allclose(v2[:, 2], 0.0), (len(f2), np.abs(v2[:, 2]).max())
+print(scipy.__file__, scipy.__version__, np.__file__, np.__version__, mapbox_earcut.__file__,
+      fast_simplification.__file__)
 """
 
 
@@ -207,9 +216,10 @@ def test_bundled_wheels_load_with_this_blenders_numpy(overtone):
                           capture_output=True, text=True)
     assert proc.returncode == 0, proc.stderr
     assert proc.stderr == ""  # no NumPy ABI warning either
-    scipy_path, scipy_version, numpy_path, numpy_version, earcut_path = proc.stdout.split()
+    scipy_path, scipy_version, numpy_path, numpy_version, earcut_path, simplify_path = proc.stdout.split()
     assert Path(scipy_path).is_relative_to(EXTENSIONS_SITE)
     assert Path(earcut_path).is_relative_to(EXTENSIONS_SITE)
+    assert Path(simplify_path).is_relative_to(EXTENSIONS_SITE)
     assert scipy_version == "1.17.1"
     assert Path(numpy_path).is_relative_to(venv_site) and numpy_version == version("numpy")
 

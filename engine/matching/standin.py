@@ -1,0 +1,242 @@
+"""Stand-ins: matching a huge mesh through a simplified copy of it.
+
+A sculpt or a scan of a million vertices carries the same *shape* as a copy
+of it with a few thousand: the eigenfunctions a functional map uses, the
+heat and wave kernel signatures, the non-rigid alignment and the product
+embedding all live at wavelengths far above a sculpt's pore detail. So a mesh
+with more than :data:`STANDIN_ABOVE` vertices is matched through a stand-in of
+:data:`STANDIN_VERTICES` vertices (quadric edge-collapse simplification, which
+keeps the surface within a fraction of the stand-in's edge length of the
+original), and the map is then lifted to full resolution:
+
+1. each full-resolution target vertex finds its closest point on the target's
+   stand-in (or is a stand-in vertex, when the target was not simplified),
+   and takes the barycentric blend of the mapped source points of that
+   triangle's corners: a point on (or, across a curved triangle, just inside)
+   the source's stand-in, in source coordinates;
+2. the local correction: that point's closest point on the full-resolution
+   source surface, a triangle and barycentric weights of the real mesh.
+
+In aligned mode the correction is the target vertex's own closest point on
+the full source wherever the stand-in match kept its closest point (the
+surfaces coincide there, so the closest point is the partner by
+construction), and the lifted point only where the product-embedding check
+moved it. Both steps are closest-point searches, so the full-resolution work
+is near-linear in the vertex count.
+
+The stand-in's size is a property of the shape's detail the matcher reads (it
+resolves ``k`` = 60-100 eigenfunctions and the product embedding with tens of
+vertices per wavelength), not of the input: a 1M and a 30k sculpt of one shape
+get stand-ins of the same size. Measurements: docs/measurements.md,
+"Sculpt-scale meshes".
+"""
+
+from __future__ import annotations
+
+import weakref
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+from scipy.spatial import cKDTree
+
+from ..spectra.shape import Shape
+from .closest_point import SurfaceLocator, SurfacePoints
+
+__all__ = ["STANDIN_VERTICES", "STANDIN_ABOVE", "SimplifierMissing", "simplify_mesh", "simplified_shape",
+           "needs_standin",
+           "StandIn", "make_standin", "standin_landmarks", "LIFT_NEIGHBOURS", "NearbyLocator", "LiftedMap",
+           "lift_map"]
+
+FloatArray = NDArray[np.float64]
+IntArray = NDArray[np.int64]
+
+STANDIN_VERTICES = 12000
+"""Vertices of a stand-in (about twice as many triangles)."""
+
+STANDIN_ABOVE = 40000
+"""Meshes with more vertices than this are matched through a stand-in; at or
+below it they are matched as they are (a stand-in would save little time and
+the map would lose the mesh's own resolution)."""
+
+
+class SimplifierMissing(RuntimeError):
+    """The mesh simplifier (the ``fast-simplification`` package) is not installed."""
+
+
+def simplify_mesh(vertices: FloatArray, faces: IntArray, n_vertices: int) -> tuple[FloatArray, IntArray]:
+    """Quadric edge-collapse simplification to about ``n_vertices`` vertices.
+
+    Parameters
+    ----------
+    vertices : (n, 3) float64, faces : (m, 3) int64
+        A cleaned triangle mesh.
+    n_vertices : int
+        Vertices wanted (a closed surface has about twice as many triangles).
+
+    Returns
+    -------
+    (n', 3) float64 vertices, (m', 3) int64 faces
+    """
+    try:
+        import fast_simplification
+    except ImportError as exc:   # pragma: no cover - depends on the installation
+        raise SimplifierMissing(
+            f"a mesh of {len(vertices)} vertices is matched through a simplified copy, which needs the "
+            f"'fast-simplification' package (pip install fast-simplification); it is not installed") from exc
+    if not 4 <= n_vertices < len(vertices):
+        raise ValueError(f"cannot simplify {len(vertices)} vertices to {n_vertices}")
+    target = int(round(len(faces) * n_vertices / len(vertices)))
+    v, f = fast_simplification.simplify(np.ascontiguousarray(vertices, dtype=np.float64),
+                                        np.ascontiguousarray(faces, dtype=np.int64), target_count=target)
+    return np.asarray(v, dtype=np.float64), np.asarray(f, dtype=np.int64)
+
+
+def needs_standin(shape: Shape) -> bool:
+    """Whether ``shape`` is matched through a stand-in (more than :data:`STANDIN_ABOVE` vertices)."""
+    return shape.n_vertices > STANDIN_ABOVE
+
+
+@dataclass(frozen=True)
+class StandIn:
+    """A shape and the shape it is matched through (the same object when not simplified)."""
+
+    full: Shape
+    coarse: Shape
+    missing: bool = False
+    """The mesh wanted a stand-in but the simplifier is not installed."""
+
+    @property
+    def simplified(self) -> bool:
+        return self.coarse is not self.full
+
+
+def make_standin(shape: Shape) -> StandIn:
+    """``shape`` itself, or its simplified copy when :func:`needs_standin` (``shape`` itself, flagged
+    ``missing``, when the simplifier is not installed)."""
+    if not needs_standin(shape):
+        return StandIn(shape, shape)
+    try:
+        return StandIn(shape, simplified_shape(shape, STANDIN_VERTICES))
+    except SimplifierMissing:      # slower, but the same job: match the mesh as it is
+        return StandIn(shape, shape, missing=True)
+
+
+_SIMPLIFIED: weakref.WeakKeyDictionary[Shape, dict[int, Shape]] = weakref.WeakKeyDictionary()
+
+
+def simplified_shape(shape: Shape, n_vertices: int) -> Shape:
+    """The :class:`Shape` of ``shape`` simplified to about ``n_vertices`` vertices, made once per
+    shape and size and kept while the shape lives (matching and detail share it)."""
+    kept = _SIMPLIFIED.setdefault(shape, {})
+    if n_vertices not in kept:
+        v, f = simplify_mesh(shape.vertices, shape.faces, n_vertices)
+        kept[n_vertices] = Shape(v, f, cache=shape.cache)
+    return kept[n_vertices]
+
+
+def standin_landmarks(landmarks: tuple[IntArray, IntArray] | None, source: StandIn,
+                      target: StandIn) -> NDArray[np.int64] | None:
+    """Landmarks (cleaned vertices of the full meshes) as original vertex pairs of the stand-ins.
+
+    A landmark vertex becomes the stand-in vertex nearest to it.
+    """
+    if landmarks is None:
+        return None
+    ends = []
+    for side, idx in zip((source, target), landmarks):
+        if side.simplified:
+            near = cKDTree(side.coarse.vertices).query(side.full.vertices[idx])[1]
+            idx = np.asarray(near, dtype=np.int64)
+        ends.append(np.asarray(side.coarse.prepared.from_clean, dtype=np.int64)[idx])
+    return np.column_stack(ends)
+
+
+LIFT_NEIGHBOURS = 8
+"""Full-resolution vertices around each lift query whose triangles are searched."""
+
+
+class NearbyLocator:
+    """Closest points on the part of a huge mesh near a known set of queries.
+
+    Only the triangles touching the :data:`LIFT_NEIGHBOURS` nearest vertices
+    of some query are indexed (a :class:`SurfaceLocator` over them), so a
+    million-vertex source is never indexed whole for a target-sized set of
+    queries. Queries near the given ones (within their vertices' reach) get
+    the exact closest point on those triangles.
+    """
+
+    def __init__(self, shape: Shape, queries: FloatArray) -> None:
+        _, near = cKDTree(shape.vertices).query(queries, k=min(LIFT_NEIGHBOURS, shape.n_vertices), workers=-1)
+        wanted = np.zeros(shape.n_vertices, dtype=bool)
+        wanted[np.asarray(near).ravel()] = True
+        self.triangles = np.flatnonzero(wanted[shape.faces].any(axis=1))
+        used, faces = np.unique(shape.faces[self.triangles], return_inverse=True)
+        self.locator = SurfaceLocator(shape.vertices[used], faces.reshape(-1, 3))
+
+    def closest(self, query: FloatArray) -> SurfacePoints:
+        """As :meth:`SurfaceLocator.closest`, triangles numbered in the whole mesh."""
+        found = self.locator.closest(query)
+        return SurfacePoints(self.triangles[found.triangle], found.barycentric, found.points, found.distance)
+
+
+@dataclass(frozen=True)
+class LiftedMap:
+    """The stand-in map at full resolution: per cleaned full target vertex."""
+
+    triangle: IntArray
+    barycentric: FloatArray
+    confidence: FloatArray
+    stats: dict[str, Any]
+
+
+def lift_map(source: StandIn, target: StandIn, coarse_points: FloatArray, coarse_confidence: FloatArray,
+             aligned: bool) -> LiftedMap:
+    """Lift a stand-in map to the full meshes.
+
+    Parameters
+    ----------
+    source, target : StandIn
+    coarse_points : (n_t_coarse, 3) float64
+        Mapped point on the source stand-in (source coordinates) per target stand-in vertex.
+    coarse_confidence : (n_t_coarse,) float64
+    aligned : bool
+        The map is aligned: keep each full target vertex's own closest point on
+        the full source where the stand-in kept its closest point.
+
+    Returns
+    -------
+    LiftedMap
+    """
+    points, confidence = coarse_points, coarse_confidence
+    if target.simplified:
+        cp = SurfaceLocator(target.coarse.vertices, target.coarse.faces).closest(target.full.vertices)
+        corners = target.coarse.faces[cp.triangle]
+        points = np.einsum("ij,ijk->ik", cp.barycentric, coarse_points[corners])
+        confidence = np.einsum("ij,ij->i", cp.barycentric, coarse_confidence[corners])
+    if not source.simplified and not target.simplified:
+        raise ValueError("nothing to lift: neither mesh was simplified")
+    loc = NearbyLocator(source.full, np.vstack([points, target.full.vertices]) if aligned else points)
+    keep = np.zeros(len(points), dtype=bool)
+    if aligned:
+        coarse_direct = SurfaceLocator(source.coarse.vertices, source.coarse.faces).closest(target.full.vertices)
+        keep = np.linalg.norm(coarse_direct.points - points, axis=1) <= 0.25 * source.coarse.mean_edge
+    tri = np.empty(len(points), dtype=np.int64)
+    bary = np.empty((len(points), 3))
+    correction = np.zeros(0)
+    for rows, query in ((np.flatnonzero(keep), target.full.vertices), (np.flatnonzero(~keep), points)):
+        if len(rows):
+            found = loc.closest(query[rows])
+            tri[rows], bary[rows] = found.triangle, found.barycentric
+            if query is points:
+                correction = found.distance
+    kept = int(keep.sum())
+    h = source.coarse.mean_edge
+    stats = {"source_standin_vertices": source.coarse.n_vertices,
+             "target_standin_vertices": target.coarse.n_vertices,
+             "lift_median_correction_over_h": float(np.median(correction) / h) if len(correction) else 0.0,
+             "lift_max_correction_over_h": float(correction.max() / h) if len(correction) else 0.0,
+             "aligned_kept_own_closest_point": kept}
+    return LiftedMap(np.asarray(tri, dtype=np.int64), np.asarray(bary, dtype=np.float64),
+                     np.clip(confidence, 0.0, 1.0), stats)
