@@ -633,7 +633,7 @@ def pieces_line(report: dict[str, Any], source: NDArray[np.floating[Any]],
         parts.append(f"{len(unused)} source piece{'s' if len(unused) != 1 else ''} went nowhere: "
                      f"{_named(unused, source)}")
     if not parts:
-        return f"{count} pieces: each found its counterpart on the source", False
+        return f"{count} piece{'s' if count != 1 else ''}: each found its counterpart on the source", False
     return "; ".join(parts), bool(lost or weak)
 
 
