@@ -147,3 +147,28 @@ def test_automatic_matching_says_which_way_it_kept_and_why(overtone, scene):
     assert "edge length" not in reason and "intrinsic" not in reason
     lines = draw_all()["OVERTONE_PT_report"].texts()
     assert lines.count("Matched by shape") == 1 and "matched by shape" not in reason.lower()
+
+
+def test_weak_and_unused_pieces_are_named_where_they_sit(overtone):
+    """The words for a piece matched with low confidence and a source piece nobody took:
+    size, side of the mesh's bounding box (a sixth of its size from the middle) and first vertex."""
+    runs = __import__(MODULE + ".runs", fromlist=["runs"])
+    box = np.array([[-1.0, -1.0, -1.0], [1.0, 1.0, 1.0]])
+    body = {"piece": 0, "vertices": 500, "first_vertex": 0, "centre": [0.0, 0.0, 0.0], "counterpart": 0,
+            "confidence": 0.9}
+    weak = {"piece": 1, "vertices": 12, "first_vertex": 40, "centre": [0.8, -0.5, 0.1], "counterpart": 2,
+            "confidence": 0.3}
+    sure = {"piece": 2, "vertices": 30, "first_vertex": 60, "centre": [0.0, 0.0, 0.9], "counterpart": 1,
+            "confidence": 0.8}
+    unused = {"piece": 3, "vertices": 8, "first_vertex": 90, "centre": [0.0, 0.0, -0.05]}
+    report = {"correspondence": {"pieces": {"target_pieces": 3, "target": [body, weak, sure],
+                                            "unmatched_target": [], "unused_source": [unused]}}}
+    line, warn = runs.pieces_line(report, box, box)
+    assert warn
+    assert line == ("1 of 3 pieces matched with low confidence: the piece of 12 vertices toward +X, front "
+                    "(vertex 40); their vertices are in the vertex group 'overtone_uncertain'; 1 source piece "
+                    "went nowhere: the piece of 8 vertices in the middle (vertex 90)")
+    weak["confidence"] = 0.6
+    report["correspondence"]["pieces"]["unused_source"] = []
+    assert runs.pieces_line(report, box, box) == ("3 pieces: each found its counterpart on the source", False)
+    assert runs.pieces_line({"correspondence": {}}, box, box) == ("", False)
