@@ -52,10 +52,13 @@ PREVIEW_SUFFIX = "_carried"
 UNCERTAIN_BELOW = 0.5
 """Match confidence under which a target vertex counts as uncertain in the report.
 
-The engine's confidence is exp(-(d / 4e)^2), d the distance a vertex's round
-trip through the forward and reverse maps ends from where it began, e the
+The engine's confidence starts from exp(-(d / 4e)^2), d the distance a vertex's
+round trip through the forward and reverse maps ends from where it began, e the
 target's mean edge length: under 0.5 means the round trip misses by more than
-4 sqrt(ln 2) ~ 3.3 edge lengths, several faces away."""
+4 sqrt(ln 2) ~ 3.3 edge lengths, several faces away. Further checks multiply it
+(engine/matching/confidence.py: facing, signature), and a piece with no
+counterpart on the source gets 0 (engine/matching/pieces.py), so its vertices
+are uncertain too."""
 
 # When to warn, and when to refuse. A target vertex's confidence is
 # exp(-(d / 4e)^2), d the distance its round trip (target -> source -> target)
