@@ -38,7 +38,7 @@ __all__ = ["OVERTONE_OT_transfer_attributes", "OVERTONE_OT_transfer_detail",
            "OVERTONE_OT_preview_carry", "OVERTONE_OT_refresh_signals", "OVERTONE_OT_clear_cache",
            "OVERTONE_OT_select_uncertain",
            "plan_from_context", "store_report", "store_error", "step_run", "cancel_run",
-           "runs_modal", "cache_words", "skipped_lines", "match_words", "PREVIEW_BASIS",
+           "runs_modal", "cache_words", "skipped_lines", "match_words", "self_check_words", "PREVIEW_BASIS",
            "register", "unregister"]
 
 Reporter = Callable[[set[str], str], Any]
@@ -112,13 +112,33 @@ def match_words(report: dict[str, Any], hint: bool = True) -> str:
         return ""
     lies = f"{near:.0%} of the target lies on the source"
     if str(report.get("settings", {}).get("match", "auto")) != "auto":
-        return f"{MODE_WORDS[mode].capitalize()}, as chosen under Method ({lies})."
+        return f"As chosen under Method ({lies})."
+    checked = corr.get("self_check")
+    if isinstance(checked, dict) and checked.get("kept") in MODE_WORDS:
+        return self_check_words(checked, lies)
     if mode == "aligned":
         return (f"The meshes sit on top of each other ({lies}): each target vertex took what "
                 "lies closest to it on the source.")
     pointer = " Copies of one asset placed apart match best with Ignore Placement ticked." if hint else ""
     return (f"The meshes do not sit on top of each other (only {lies}): they were matched by "
             f"the shape of their surfaces, wherever each one is.{pointer}")
+
+
+def self_check_words(checked: dict[str, Any], lies: str) -> str:
+    """Automatic matching's check of a match in place against a match by shape, in one sentence."""
+    by_place, by_shape = float(checked.get("aligned_mean", 0.0)), float(checked.get("intrinsic_mean", 0.0))
+    sure = f"mean confidence {by_shape:.2f} by shape against {by_place:.2f} in place"
+    if checked["kept"] == "intrinsic":
+        return (f"The meshes sit on top of each other ({lies}), yet matched in place most points landed "
+                f"elsewhere than a match by shape put them, and the shape match was surer ({sure}): "
+                "the shape match was kept.")
+    if by_shape > by_place:
+        return (f"The meshes sit on top of each other ({lies}) but their surfaces differ, so a match by "
+                f"shape was tried as a check; it put the points where matching in place did ({sure}): "
+                "each target vertex took what lies closest to it on the source.")
+    return (f"The meshes sit on top of each other ({lies}) but their surfaces differ, so a match by shape "
+            f"was tried as a check; it was less sure ({sure}): each target vertex took what lies closest "
+            "to it on the source.")
 
 
 def skipped_lines(report: dict[str, Any]) -> list[str]:
@@ -161,7 +181,10 @@ def store_report(settings: Any, report: dict[str, Any]) -> None:
     settings.report_seconds = float(timings.get("wall", timings.get("total", 0.0)))
     settings.report_cache = cache_words(report)
     settings.report_skipped = "\n".join(skipped_lines(report))
-    settings.report_warnings = "\n".join(str(w) for w in report.get("warnings", ()))
+    pieces = str(report.get("pieces_line", ""))
+    settings.report_pieces = pieces
+    settings.report_warnings = "\n".join(str(w) for w in report.get("warnings", ()) if str(w) != pieces)
+    settings.report_pieces_warn = pieces != "" and pieces in report.get("warnings", ())
     settings.report_notes = "\n".join(str(n) for n in report.get("notes", ()))
     settings.report_smoothed = str(report.get("basis", "pointwise")) != "pointwise"
     written = report.get("written", {})
@@ -181,6 +204,8 @@ def store_error(settings: Any, message: str) -> None:
     settings.report_signals.clear()
     settings.report_skipped = ""
     settings.report_warnings = ""
+    settings.report_pieces = ""
+    settings.report_pieces_warn = False
     settings.report_notes = ""
     settings.report_cache = ""
     settings.report_json = ""

@@ -183,15 +183,19 @@ class OVERTONE_PT_report(_Sidebar):
         if not settings.report_text:
             layout.label(text="Nothing carried yet")
             return
-        fine = settings.report_ok and not settings.report_warnings
+        fine = settings.report_ok and not settings.report_warnings and not settings.report_pieces_warn
         _wrapped(layout, context, settings.report_text, icon='CHECKMARK' if fine else 'ERROR')
         if not settings.report_ok:
             return
-        if settings.report_warnings:
+        if settings.report_warnings or settings.report_pieces_warn:
             box = layout.box()
             box.label(text="Check", icon='ERROR')
             for line in settings.report_warnings.splitlines():
                 _wrapped(box, context, line)
+            if settings.report_pieces_warn:
+                _draw_pieces(box, context, settings)
+        if settings.report_pieces and not settings.report_pieces_warn:
+            _wrapped(layout, context, settings.report_pieces, icon='CHECKMARK')
         if settings.report_mode:
             layout.label(text=settings.report_mode, icon='VIEWZOOM')
         _draw_certainty(layout, context, settings)
@@ -220,6 +224,13 @@ class OVERTONE_PT_report(_Sidebar):
                 box.prop(item, "source_error", text=item.name, emboss=False)
 
 
+def _draw_pieces(layout: bpy.types.UILayout, context: bpy.types.Context, settings: Any) -> None:
+    """The pieces to check, with the button selecting their vertices (the uncertain ones)."""
+    _wrapped(layout, context, settings.report_pieces)
+    if _is_registered(SELECT_UNCERTAIN):
+        layout.operator(SELECT_UNCERTAIN, icon='RESTRICT_SELECT_OFF')
+
+
 def _draw_certainty(layout: bpy.types.UILayout, context: bpy.types.Context, settings: Any) -> None:
     if settings.report_mode == "":
         return  # a preview: nothing was matched
@@ -229,7 +240,7 @@ def _draw_certainty(layout: bpy.types.UILayout, context: bpy.types.Context, sett
         share = settings.report_uncertain
         _wrapped(col, context, f"{percent_words(share)} of vertices uncertain (confidence under "
                  f"{settings.report_uncertain_below:.2f})", icon='ERROR' if share > 0.0 else 'CHECKMARK')
-        if share > 0.0 and _is_registered(SELECT_UNCERTAIN):
+        if share > 0.0 and _is_registered(SELECT_UNCERTAIN) and not settings.report_pieces_warn:
             col.operator(SELECT_UNCERTAIN, icon='RESTRICT_SELECT_OFF')
     col.prop(settings, "report_coverage", emboss=False)
 

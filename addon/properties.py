@@ -120,6 +120,11 @@ class OvertoneSettings(bpy.types.PropertyGroup):
         name="Skipped", description="What was not carried and why, one entry per line")
     report_warnings: StringProperty(  # type: ignore[valid-type]
         name="Check", description="What to check in the result, one warning per line")
+    report_pieces: StringProperty(  # type: ignore[valid-type]
+        name="Pieces", description="How the target's separate pieces found their counterparts on the source")
+    report_pieces_warn: BoolProperty(  # type: ignore[valid-type]
+        name="Pieces to Check", default=False,
+        description="Some piece found no counterpart or matched with low confidence")
     report_notes: StringProperty(  # type: ignore[valid-type]
         name="Notes", description="Worth knowing about the run (a result written under another name), "
                                   "one per line")

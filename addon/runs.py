@@ -45,16 +45,20 @@ __all__ = ["PairRequest", "Plan", "BackgroundRun", "selected_pair", "pick_pair",
            "default_signals", "make_plan", "run_plan", "finish", "transfer_pair", "engine_settings",
            "outcome", "Outcome", "message_of", "ENGINE_NAMES", "CONFIDENCE_NAME", "DETAIL_NAME",
            "PREVIEW_SUFFIX", "MODE_WORDS", "COPY_TOLERANCE", "is_placed_copy", "copy_note",
-           "UNCERTAIN_BELOW", "WARN_SHARE", "FAIL_SHARE", "not_carried", "material_note"]
+           "UNCERTAIN_BELOW", "WARN_SHARE", "FAIL_SHARE", "not_carried", "material_note", "kind_note",
+           "pieces_line", "piece_words", "BLENDER_EDGE_FLAGS", "EXPECTED_TYPES"]
 
 PREVIEW_SUFFIX = "_carried"
 UNCERTAIN_BELOW = 0.5
 """Match confidence under which a target vertex counts as uncertain in the report.
 
-The engine's confidence is exp(-(d / 4e)^2), d the distance a vertex's round
-trip through the forward and reverse maps ends from where it began, e the
+The engine's confidence starts from exp(-(d / 4e)^2), d the distance a vertex's
+round trip through the forward and reverse maps ends from where it began, e the
 target's mean edge length: under 0.5 means the round trip misses by more than
-4 sqrt(ln 2) ~ 3.3 edge lengths, several faces away."""
+4 sqrt(ln 2) ~ 3.3 edge lengths, several faces away. Further checks multiply it
+(engine/matching/confidence.py: facing, signature), and a piece with no
+counterpart on the source gets 0 (engine/matching/pieces.py), so its vertices
+are uncertain too."""
 
 # When to warn, and when to refuse. A target vertex's confidence is
 # exp(-(d / 4e)^2), d the distance its round trip (target -> source -> target)
@@ -232,14 +236,19 @@ def check_pair(source: bpy.types.Object | None, target: bpy.types.Object | None,
     if source == target:
         raise ValueError(f"source and target are the same object {source.name!r}")
     available = {s.name: s for s in bridge.list_layers(source, evaluated=request.as_shown)}
-    missing = [name for name in request.signals if name not in available]
+    uncarried = {layer.name: reason for layer, reason in bridge.uncarried_layers(source, evaluated=request.as_shown)}
+    missing = [name for name in request.signals if name not in available and name not in uncarried]
     if missing:
         raise ValueError(f"source {source.name!r} has no attribute or vertex group "
                          f"{', '.join(map(repr, missing))} (it has {', '.join(map(repr, available)) or 'none'})")
     if not request.signals and not request.detail:
         raise ValueError(f"nothing to carry: source {source.name!r} has no colour attributes or "
                          "vertex groups (read its layers and tick one to carry)")
-    return [available[name] for name in request.signals]
+    chosen = [available[name] for name in request.signals if name in available]
+    if not chosen and not request.detail:
+        raise ValueError("nothing Overtone can carry was asked for: "
+                         + "; ".join(f"{name}: {uncarried[name]}" for name in request.signals))
+    return chosen
 
 
 # --------------------------------------------------------------------------- reading
@@ -345,7 +354,7 @@ def make_plan(kind: str, source: bpy.types.Object | None, target: bpy.types.Obje
                           target_input,
                           tuple(bridge.read_signal(source, s, evaluated=request.as_shown) for s in signals),
                           groups, request.settings, (source.name, (target or source).name), folder, limit)
-    skipped = () if kind == "detail" else not_carried(source, request.as_shown)
+    skipped = () if kind == "detail" else not_carried(source, request.as_shown, request.signals)
     notes, remarks = _modifier_notes(source, None if kind == "preview" else target, request)
     copy = (kind != "preview" and not local and target is not None
             and is_placed_copy(bridge.read_mesh(source, evaluated=request.as_shown, local=True).vertices,
@@ -354,9 +363,24 @@ def make_plan(kind: str, source: bpy.types.Object | None, target: bpy.types.Obje
                 not_carried=skipped, notes=notes, remarks=remarks, placed_copy=copy)
 
 
-def not_carried(source: bpy.types.Object, evaluated: bool) -> tuple[tuple[str, str], ...]:
-    """(name, reason) for each source layer Overtone does not carry."""
-    return tuple((layer.name, reason) for layer, reason in bridge.uncarried_layers(source, evaluated=evaluated))
+BLENDER_EDGE_FLAGS = frozenset({"uv_seam", "sharp_edge", "crease_edge", "bevel_weight_edge", "freestyle_edge"})
+"""Blender's own per-edge marks (seams, sharp edges, creases, bevel weights, Freestyle
+edges; attribute names from memory): named as not carried only when asked for."""
+
+EXPECTED_TYPES = frozenset({"BYTE_COLOR", "FLOAT_COLOR", "FLOAT", "FLOAT_VECTOR", "FLOAT2", "INT", "INT8",
+                            "INT16_2D", "INT32_2D"})
+"""Attribute types an artist expects to arrive (colours, numbers, whole numbers): such a
+layer Overtone cannot carry is named as not carried even when nobody asked for it."""
+
+
+def not_carried(source: bpy.types.Object, evaluated: bool,
+                asked: Sequence[str] = ()) -> tuple[tuple[str, str], ...]:
+    """(name, reason) for the source layers Overtone does not carry that the artist asked
+    for (``asked``) or would expect to arrive (:data:`EXPECTED_TYPES`, Blender's own edge
+    marks excepted); a text, on/off or matrix layer nobody asked for is not mentioned."""
+    return tuple((layer.name, reason) for layer, reason in bridge.uncarried_layers(source, evaluated=evaluated)
+                 if layer.name in asked
+                 or (layer.data_type in EXPECTED_TYPES and layer.name not in BLENDER_EDGE_FLAGS))
 
 
 
@@ -492,7 +516,12 @@ def finish(plan: Plan, out: job.JobOutput) -> dict[str, Any]:
         result does not fit, or the match failed (nothing is written then).
     """
     obj = _check_unchanged(plan)
-    warnings = list(plan.notes) + handle_note(out.report) + copy_note(plan, out.report)
+    warnings = list(plan.notes) + kind_note(out.report) + copy_note(plan, out.report)
+    pieces = ("", False)
+    if plan.kind != "preview" and plan.inputs.target is not None:
+        pieces = pieces_line(out.report, plan.inputs.source.vertices, plan.inputs.target.vertices)
+        if pieces[1]:
+            warnings.append(pieces[0])
     outputs = _outputs(plan, out)
     judged = None
     if plan.kind != "preview" and out.confidence is not None:
@@ -525,6 +554,8 @@ def finish(plan: Plan, out: job.JobOutput) -> dict[str, Any]:
     if note:
         report["materials"] = note
         report["warnings"].append(note)
+    if pieces[0]:
+        report["pieces_line"] = pieces[0]
     report["summary"] = _summary(plan, report)
     return report
 
@@ -539,6 +570,74 @@ def handle_note(report: dict[str, Any]) -> list[str]:
     return [f"the source has {source} and the target {target} handles (holes through the surface, as "
             "in a ring): matched by shape, such meshes cannot correspond everywhere, whatever the "
             "confidence says; check the result"]
+
+
+def kind_note(report: dict[str, Any]) -> list[str]:
+    """A warning when the engine finds the two surfaces probably not the same kind of object
+    (their local shapes disagree almost everywhere: a ball and a ring, a ball and a sheet),
+    with the handle counts when they differ; else :func:`handle_note`."""
+    confidence = (report.get("correspondence") or {}).get("confidence") or {}
+    if not confidence.get("different_kind"):
+        return handle_note(report)
+    counts = report.get("handles") or {}
+    source, target = counts.get("source"), counts.get("target")
+    handles = (f" (the source has {source} and the target {target} handles, holes through the surface "
+               "as in a ring)") if source is not None and target is not None and source != target else ""
+    return [f"the two meshes are probably not the same kind of object{handles}: their surfaces differ "
+            "in shape almost everywhere, not only in pose or detail, so they cannot correspond "
+            "everywhere, whatever the confidence says; check the result"]
+
+
+def piece_words(entry: dict[str, Any], vertices: NDArray[np.floating[Any]]) -> str:
+    """A piece as an artist finds it: its size, where it sits on the mesh and its first vertex."""
+    lo, hi = vertices.min(axis=0), vertices.max(axis=0)
+    offset = (np.asarray(entry.get("centre", (lo + hi) / 2), dtype=np.float64) - (lo + hi) / 2) \
+        / np.maximum(hi - lo, 1e-12)
+    sides = [pair[int(value > 0)] for value, pair in zip(offset, (("-X", "+X"), ("front", "back"), ("bottom", "top")))
+             if abs(value) > 1 / 6]
+    where = f" toward {', '.join(sides)}" if sides else " in the middle"
+    return f"the piece of {entry['vertices']} vertices{where} (vertex {entry['first_vertex']})"
+
+
+PIECE_LIST = 3
+"""Pieces named one by one in a line; more are counted."""
+
+
+def _named(entries: list[dict[str, Any]], vertices: NDArray[np.floating[Any]]) -> str:
+    words = [piece_words(e, vertices) for e in entries[:PIECE_LIST]]
+    more = len(entries) - PIECE_LIST
+    return "; ".join(words) + (f" and {more} more" if more > 0 else "")
+
+
+def pieces_line(report: dict[str, Any], source: NDArray[np.floating[Any]],
+                target: NDArray[np.floating[Any]]) -> tuple[str, bool]:
+    """(one line on the pieces of a carry, whether it is a warning); ("", False) for one piece each.
+
+    Names the target pieces that found no counterpart on the source (a guess, confidence
+    0), those matched with low confidence (under :data:`UNCERTAIN_BELOW`) and the source
+    pieces nobody took; ``source`` and ``target`` are the vertices the engine matched."""
+    pieces = (report.get("correspondence") or {}).get("pieces")
+    if not isinstance(pieces, dict):
+        return "", False
+    count = int(pieces.get("target_pieces", 0))
+    lost = list(pieces.get("unmatched_target", ()))
+    weak = [e for e in pieces.get("target", ()) if e.get("counterpart") is not None and e.get("piece")
+            and float(e.get("confidence", 1.0)) < UNCERTAIN_BELOW]
+    unused = list(pieces.get("unused_source", ()))
+    parts = []
+    if lost:
+        parts.append(f"{len(lost)} of {count} pieces found no counterpart on the source, their values are a "
+                     f"guess: {_named(lost, target)}")
+    if weak:
+        parts.append(f"{len(weak)} of {count} pieces matched with low confidence: {_named(weak, target)}")
+    if lost or weak:
+        parts.append(f"their vertices are in the vertex group {UNCERTAIN_NAME!r}")
+    if unused:
+        parts.append(f"{len(unused)} source piece{'s' if len(unused) != 1 else ''} went nowhere: "
+                     f"{_named(unused, source)}")
+    if not parts:
+        return f"{count} piece{'s' if count != 1 else ''}: each found its counterpart on the source", False
+    return "; ".join(parts), bool(lost or weak)
 
 
 def copy_note(plan: Plan, report: dict[str, Any]) -> list[str]:
@@ -564,11 +663,13 @@ def material_note(obj: bpy.types.Object, written: dict[str, str], out: job.JobOu
 
 
 def message_of(report: dict[str, Any]) -> tuple[set[str], str]:
-    """The operator's report level and line for a finished run: a warning,
-    with every warning, when there is one; otherwise information. Notes (a
-    result under another name than its own, and why) follow either."""
+    """The operator's report level and line for a finished run (its summary and how
+    the meshes were matched): a warning, with every warning, when there is one;
+    otherwise information. Notes (a result under another name than its own, and
+    why) follow either."""
     warnings = [str(w) for w in report.get("warnings", ())]
-    text = "; ".join([str(report.get("summary", "done")), *warnings,
+    mode = MODE_WORDS.get(str(report.get("mode")))
+    text = "; ".join([str(report.get("summary", "done")), *([mode] if mode else []), *warnings,
                       *(str(n) for n in report.get("notes", ()))])
     return ({'WARNING'} if warnings else {'INFO'}), text
 
@@ -586,9 +687,7 @@ def _summary(plan: Plan, report: dict[str, Any]) -> str:
     conf_text = f"{conf:.2f}" if isinstance(conf, float) else "?"
     what = "detail" if plan.kind == "detail" else f"{len(plan.inputs.signals)} layers"
     skipped = f"; not carried: {', '.join(name for name, _ in plan.not_carried)}" if plan.not_carried else ""
-    mode = MODE_WORDS.get(str(report.get("mode")), str(report.get("mode")))
-    return (f"carried {what} from {plan.source!r} to {plan.target!r} "
-            f"({mode}, mean confidence {conf_text}){skipped}")
+    return f"carried {what} from {plan.source!r} to {plan.target!r} (mean confidence {conf_text}){skipped}"
 
 
 # --------------------------------------------------------------------------- running

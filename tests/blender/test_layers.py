@@ -200,7 +200,8 @@ def test_uv_map_and_material_index_arrive_on_a_remeshed_copy(mod, scene):
 def test_uncarried_layers_are_named_with_a_reason(mod, scene):
     src, tgt = textured_pair(scene)
     src.data.attributes.new("note", 'STRING', 'POINT')
-    src.data.attributes.new("crease_edge", 'FLOAT', 'EDGE')
+    src.data.attributes.new("crease_edge", 'FLOAT', 'EDGE')   # Blender's own edge creases
+    src.data.attributes.new("wear", 'FLOAT', 'EDGE')          # an artist's own numbers per edge
     src.data.attributes.new("spin", 'QUATERNION', 'POINT').data.foreach_set(
         "value", np.tile([0.0, 0.0, 0.0, 2.0], len(src.data.vertices)).astype(np.float32))
     src.data.attributes.new("tag", 'INT8', 'POINT').data.foreach_set(
@@ -208,8 +209,10 @@ def test_uncarried_layers_are_named_with_a_reason(mod, scene):
     _tick(scene, {"spin", "tag"})
     assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
     report = json.loads(scene.overtone.report_json)
-    assert set(report["skipped"]) >= {"note", "crease_edge"}
-    assert "edge" in report["skipped"]["crease_edge"]
+    # named: numbers an artist expects to arrive; not named: text nobody asked for and
+    # Blender's own edge marks
+    assert set(report["skipped"]) == {"wear"}
+    assert "edge" in report["skipped"]["wear"]
     tag = tgt.data.attributes["tag"]
     assert tag.data_type == 'INT8'
     values = np.empty(len(tgt.data.vertices), np.int32)
@@ -219,6 +222,28 @@ def test_uncarried_layers_are_named_with_a_reason(mod, scene):
     tgt.data.attributes["spin"].data.foreach_get("value", spin)
     np.testing.assert_allclose(spin.reshape(-1, 4), np.tile([0.0, 0.0, 0.0, 1.0], (len(tgt.data.vertices), 1)),
                                atol=1e-6)  # a unit quaternion again
+
+
+def test_seams_and_sharp_edges_are_named_only_when_asked_for(mod, scene):
+    """A mesh with seams and sharp edges carries without a "not carried" line nobody asked
+    for; asked for by name, such an edge mark is named with its reason."""
+    src, tgt = textured_pair(scene)
+    for edge in list(src.data.edges)[:40]:
+        edge.use_seam = True
+        edge.use_edge_sharp = True
+    assert {"uv_seam", "sharp_edge"} <= set(src.data.attributes.keys())
+    src.data.color_attributes.new("tint", 'FLOAT_COLOR', 'POINT')
+    assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
+    report = json.loads(scene.overtone.report_json)
+    assert "skipped" not in report and "not carried" not in report["summary"]
+    assert scene.overtone.report_skipped == ""
+    request = mod.runs.PairRequest(signals=("tint", "sharp_edge"))
+    plan = mod.runs.make_plan("transfer", src, tgt, request)
+    assert [name for name, _ in plan.not_carried] == ["sharp_edge"]
+    assert [s.name for s in plan.inputs.signals] == ["tint"]
+    # nothing that can be carried asked for: refused with the reason, not "has no attribute"
+    with pytest.raises(ValueError, match="nothing Overtone can carry was asked for: uv_seam: edge layers"):
+        mod.runs.make_plan("transfer", src, tgt, mod.runs.PairRequest(signals=("uv_seam",)))
 
 
 @pytest.mark.parametrize("replace", [True, False])

@@ -205,7 +205,9 @@ def test_after_a_carry_the_report_says_what_to_act_on(ui, scene):
     assert scene.overtone.report_reason == (
         f"The meshes sit on top of each other ({near:.0%} of the target lies on the source): "
         "each target vertex took what lies closest to it on the source.")
-    assert "(matched by position, mean confidence" in scene.overtone.report_text
+    # the way they were matched is said once: the line under the summary, explained by the reason
+    assert "(mean confidence" in scene.overtone.report_text
+    assert joined.lower().count("matched by position") == 1
     share = report["uncertain_share"]
     assert f"{ui.percent_words(share)} of vertices uncertain (confidence under " \
            f"{report['uncertain_below']:.2f})" in joined
@@ -247,7 +249,7 @@ def test_copies_placed_apart_are_told_about_ignore_placement(ui, scene):
     reason = scene.overtone.report_reason
     assert reason.startswith("The meshes do not sit on top of each other (only 0% of the target lies on")
     assert "edge length" not in reason and "intrinsic" not in reason
-    assert "(matched by shape, mean confidence" in scene.overtone.report_text
+    assert "(mean confidence" in scene.overtone.report_text and "matched" not in scene.overtone.report_text
     # the same creature re-meshed is a copy placed apart: the warning says what to tick, once
     label = scene.overtone.bl_rna.properties["local_space"].name
     words = " ".join(draw_all()["OVERTONE_PT_report"].texts())
@@ -268,8 +270,9 @@ def test_copies_placed_apart_are_told_about_ignore_placement(ui, scene):
     assert scene.overtone.report_reason.startswith("The meshes sit on top of each other (100% of")
     scene.overtone.local_space, scene.overtone.match_mode = False, "INTRINSIC"
     assert bpy.ops.overtone.transfer_attributes() == {'FINISHED'}
-    assert scene.overtone.report_reason == ("Matched by shape, as chosen under Method "
-                                           "(0% of the target lies on the source).")
+    assert scene.overtone.report_reason == "As chosen under Method (0% of the target lies on the source)."
+    words = " ".join(draw_all()["OVERTONE_PT_report"].texts()).lower()
+    assert words.count("matched by shape") == 1
 
 
 def test_warnings_and_notes_stay_in_the_panel(ui, scene):
