@@ -109,3 +109,19 @@ def test_forced_aligned_mode_keeps_its_confidence_on_good_pairs(make):
     assert c.confidence.mean() > 0.9                 # ... keeps a high confidence
     assert c.stats["confidence"]["warning"] == ""
     assert "intrinsic_agreement" not in c.stats["confidence"]["checks"]
+
+
+def test_forced_aligned_mode_without_an_intrinsic_answer_keeps_its_own_confidence():
+    from engine.matching.confidence import checked_auto, with_confidence
+    from engine.matching.correspondence import correspond_surface
+    from engine.matching.modes import MatchOptions
+    p = ch.rolled((24, 16))
+    S, T = _shapes(p)
+    aligned = with_confidence(correspond_surface(S, T, "aligned", None, None, MatchOptions()))
+
+    def refused():
+        raise ValueError("need at least one non-zero eigenvalue, all are zero")
+    kept = checked_auto(aligned, refused, forced=True)     # asked for aligned: the check is skipped
+    assert kept is aligned and "self_check" not in kept.stats
+    with pytest.raises(ValueError, match="non-zero eigenvalue"):
+        checked_auto(aligned, refused)                      # auto mode: the failure is not hidden

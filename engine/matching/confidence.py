@@ -230,7 +230,7 @@ def checked_auto(aligned: Correspondence, intrinsic: Callable[[], Correspondence
         return aligned
     try:
         other = intrinsic()
-    except (ValueError, np.linalg.LinAlgError):
+    except (ValueError, RuntimeError, ArithmeticError, np.linalg.LinAlgError):
         if not forced:
             raise
         return aligned          # asked for aligned and the intrinsic answer cannot be made: no check
