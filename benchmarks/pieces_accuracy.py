@@ -19,10 +19,15 @@ Then pairs with a mode forced (``forced``), where maps go wrong. Wrong pairs
 and which gained a hat) have no truth: their mean confidence and the
 warning or the pieces' counterparts are printed.
 
+Part 2b (kinds): pairs the "different kind of object" threshold was not set
+on, matched in intrinsic mode (where the signature check runs): the median
+signature difference, the verdict and the mean confidence, and which mode
+auto mode picks.
+
 Part 3 (speed): a character of 20 pieces and about 30k vertices against its
 body alone, re-posed, wall time of ``correspond`` (best of 2).
 
-Usage: ``python benchmarks/pieces_accuracy.py [pieces] [confidence] [speed]`` (all by default).
+Usage: ``python benchmarks/pieces_accuracy.py [pieces] [confidence] [kinds] [speed]`` (all by default).
 """
 
 import sys
@@ -148,6 +153,42 @@ def swapped_piece():
                   f"{[u['piece'] for u in c.stats['pieces']['unused_source']]}")
 
 
+def cube(n=(16, 24)):
+    """A ball's mesh pushed out onto the cube of half-side 1 (vertices, faces)."""
+    v, f = ch.sphere(np.zeros(3), 1.0, *n)
+    return v / np.abs(v).max(axis=1, keepdims=True), f
+
+
+def kind_pairs():
+    """(name, same kind?, source (v, f), target (v, f)) held out from the threshold's setting."""
+    cr, fc, _ = pairs.creature(40, 24, seed=0)
+    cr2, fc2, _ = pairs.creature(31, 19, offset=0.5, jitter=0.6, seed=7)
+    torus, thick = ch.ring(0.0, 1.0, 0.4, 48, 20), ch.ring(0.0, 1.0, 0.55, 36, 16, turn=0.3)
+    cow, eleph = pairs._read("cow_cgal"), pairs._read("elephant")
+    yield "creature-remesh", True, (cr, fc), (cr2, fc2)
+    yield "blob-sphere", True, ch.blob(), ch.sphere(np.zeros(3), 1.0, 18, 26)
+    yield "sphere-cube", True, ch.sphere(np.zeros(3), 1.0, 20, 30), cube()
+    yield "torus-thicker torus", True, torus, thick
+    yield "cow-elephant", None, cow, eleph
+    yield "creature-cow", False, (cr, fc), cow
+    yield "creature-elephant", False, (cr, fc), eleph
+    yield "creature-torus", False, (cr, fc), torus
+    yield "torus-plane", False, torus, ch.plane()
+    yield "cube-torus", False, cube(), thick
+
+
+def part_kinds():
+    print(f"{'pair':22s} {'same':5s} {'median':>7s} {'verdict':9s} {'mean':>5s}  auto picks")
+    for name, same, (vs, fs), (vt, ft) in kind_pairs():
+        S, T = Shape(vs, fs), Shape(vt, ft)
+        c = correspond(S, T, match="intrinsic")
+        auto = correspond(S, T)
+        conf = c.stats["confidence"]
+        print(f"{name:22s} {str(same):5s} {conf['median_signature_difference']:7.4f} "
+              f"{'different' if conf['different_kind'] else 'same':9s} {c.confidence.mean():5.3f}  {auto.mode}",
+              flush=True)
+
+
 def part_speed(res=3.7, teeth=16):
     p = ch.character_posed(res, res * 0.9, teeth=teeth)
     S, T = shapes(p)
@@ -173,9 +214,9 @@ def part_speed(res=3.7, teeth=16):
 
 
 def main():
-    parts = sys.argv[1:] or ["pieces", "confidence", "speed"]
+    parts = sys.argv[1:] or ["pieces", "confidence", "kinds", "speed"]
     for name in parts:
-        {"pieces": part_pieces, "confidence": part_confidence, "speed": part_speed}[name]()
+        {"pieces": part_pieces, "confidence": part_confidence, "kinds": part_kinds, "speed": part_speed}[name]()
 
 
 if __name__ == "__main__":

@@ -79,3 +79,49 @@ def test_a_piece_without_counterpart_is_the_uncertain_part():
     assert c.confidence[~extra].min() > 0.2
     assert "nothing like them" in c.stats["confidence"]["warning"]
     assert [e["first_vertex"] for e in c.stats["pieces"]["unmatched_target"]] == [len(v)]
+
+
+def test_forced_aligned_mode_doubts_a_rolled_copy():
+    # the copy overlaps its original and is nearly round about the roll axis: facing and the way
+    # back agree, yet almost every vertex is elsewhere (truth from the generator, tests/characters.py)
+    p = ch.rolled((24, 16))
+    S, T = _shapes(p)
+    c = correspond(S, T, match="aligned")
+    assert c.mode == "aligned"                       # asked for: kept
+    e = ch.map_error(p, c) / T.mean_edge
+    assert np.mean(e > 2) > 0.8                     # mostly wrong ...
+    assert c.confidence.mean() < 0.2                 # ... and now it says so
+    assert c.stats["confidence"]["poor"]
+    assert "matching by shape" in c.stats["confidence"]["warning"]
+    assert c.stats["self_check"]["kept"] == "aligned"
+    auc = separation_auc(c.confidence, e, 1.0)
+    assert auc is not None and auc > 0.9
+    json.dumps(c.report())
+
+
+@pytest.mark.parametrize("make", [pairs.creature_thicker, pairs.creature_reposed])
+def test_forced_aligned_mode_keeps_its_confidence_on_good_pairs(make):
+    p = make(source=(30, 18), target=(26, 16))
+    S, T = _shapes(p)
+    c = correspond(S, T, match="aligned")
+    e = ch.map_error(p, c) / max(S.mean_edge, T.mean_edge)
+    assert np.mean(e > 2) < 0.02                     # a good map ...
+    assert c.confidence.mean() > 0.9                 # ... keeps a high confidence
+    assert c.stats["confidence"]["warning"] == ""
+    assert "intrinsic_agreement" not in c.stats["confidence"]["checks"]
+
+
+def test_forced_aligned_mode_without_an_intrinsic_answer_keeps_its_own_confidence():
+    from engine.matching.confidence import checked_auto, with_confidence
+    from engine.matching.correspondence import correspond_surface
+    from engine.matching.modes import MatchOptions
+    p = ch.rolled((24, 16))
+    S, T = _shapes(p)
+    aligned = with_confidence(correspond_surface(S, T, "aligned", None, None, MatchOptions()))
+
+    def refused():
+        raise ValueError("need at least one non-zero eigenvalue, all are zero")
+    kept = checked_auto(aligned, refused, forced=True)     # asked for aligned: the check is skipped
+    assert kept is aligned and "self_check" not in kept.stats
+    with pytest.raises(ValueError, match="non-zero eigenvalue"):
+        checked_auto(aligned, refused)                      # auto mode: the failure is not hidden

@@ -17,6 +17,13 @@ signature
     the mean absolute log ratio over the signature's times (area-normalised
     shapes, so scale does not matter). A point of a torus and a point of a
     ball, or a tail tip and a mid-body point, differ there.
+intrinsic agreement
+    In aligned mode asked for by name, where the surfaces do not coincide
+    and auto mode would have preferred the intrinsic answer (see
+    :func:`checked_auto`): the distance between the aligned and the
+    intrinsic mapped points, ``exp(-(d / (AGREE_SCALE h))^2)``. A copy turned
+    in place about an axis it is nearly round around passes every local
+    check; only the match by shape says its points belong elsewhere.
 
 Read by an artist: 1 means "this point found a place on the source that looks
 like it from every side we checked"; about 0.5 means "one check doubts it,
@@ -74,6 +81,10 @@ DIFFERENT_KIND = 0.065
 DISAGREE = 1.0
 """Median distance, in mean edge lengths, between the aligned and the intrinsic
 maps' points above which auto mode keeps the one with the higher mean confidence."""
+
+AGREE_SCALE = 2.0
+"""Distance, in mean edge lengths, between a forced aligned map's point and the intrinsic
+answer's that lowers the agreement check to 1/e (2 edge lengths: the error called wrong)."""
 
 
 def separation_auc(confidence: Array, error: Array, unit: float, *, good: float = 1.0,
@@ -180,6 +191,10 @@ def confidence_summary(conf: Array) -> dict[str, Any]:
 
 def warning(summary: dict[str, Any]) -> str:
     """One sentence for the artist when the result is doubtful, else ``""``."""
+    if "intrinsic_apart_over_h" in summary:
+        return (f"matched by position, but matching by shape puts the points elsewhere (a median "
+                f"{summary['intrinsic_apart_over_h']:.1f} mean edge lengths away; mean confidence "
+                f"{summary['mean']:.2f}): the meshes may be turned or moved; check the result or try auto")
     if summary.get("different_kind"):
         return (f"the two meshes are probably not the same kind of object (their shapes differ at "
                 f"{summary['median_signature_difference']:.3f} > {DIFFERENT_KIND:g}); check the result")
@@ -195,25 +210,53 @@ def with_confidence(c: Correspondence) -> Correspondence:
     return replace(c, confidence=conf, stats={**c.stats, "confidence": summary})
 
 
-def checked_auto(aligned: Correspondence, intrinsic: Callable[[], Correspondence]) -> Correspondence:
+def checked_auto(aligned: Correspondence, intrinsic: Callable[[], Correspondence], *,
+                 forced: bool = False) -> Correspondence:
     """Auto mode's check of an aligned answer (both arguments with :func:`with_confidence` applied).
 
     Where the aligned surfaces coincide the closest points stand. Elsewhere
     the intrinsic answer is made too; if the two put the median target vertex
     more than :data:`DISAGREE` mean edge lengths apart, the one with the
     higher mean confidence is kept and the reason says why.
+
+    ``forced`` (aligned mode asked for): the aligned map is always kept, but
+    when the intrinsic answer would have won, each vertex's confidence is
+    multiplied by its agreement with the intrinsic answer,
+    ``exp(-(d / (AGREE_SCALE h))^2)`` with ``d`` the distance between the two
+    mapped points, and the summary's warning says so.
     """
     checked = aligned.stats.get("aligned_refine", {})
     if checked.get("closest_distance_over_h", 0.0) < checked.get("coincide_below", np.inf):
         return aligned
-    other = intrinsic()
+    try:
+        other = intrinsic()
+    except (ValueError, RuntimeError, ArithmeticError, np.linalg.LinAlgError):
+        if not forced:
+            raise
+        return aligned          # asked for aligned and the intrinsic answer cannot be made: no check
     h = max(aligned.source.mean_edge, aligned.target.mean_edge)
-    apart = float(np.median(np.linalg.norm(aligned.points() - other.points(), axis=1)) / h)
+    d = np.linalg.norm(aligned.points() - other.points(), axis=1) / h
+    apart = float(np.median(d))
     ma, mi = aligned.stats["confidence"]["mean"], other.stats["confidence"]["mean"]
-    keep = other if apart > DISAGREE and mi > ma else aligned
+    better = apart > DISAGREE and mi > ma
+    keep = other if better and not forced else aligned
     why = (f"self-check: the intrinsic answer lies {apart:.2f} mean edge lengths from the aligned one "
            f"(median); mean confidence aligned {ma:.2f}, intrinsic {mi:.2f}: kept {keep.mode}")
     stats = {**keep.stats, "self_check": {"apart_over_h": round(apart, 4), "aligned_mean": ma,
                                           "intrinsic_mean": mi, "kept": keep.mode}}
+    if forced and better:
+        return doubted(aligned, np.exp(-(d / AGREE_SCALE) ** 2), apart, stats, why)
     first = aligned.reason.split("; ")[0]       # the overlap test's sentence
     return replace(keep, reason=f"{aligned.reason if keep is aligned else first}; {why}", stats=stats)
+
+
+def doubted(aligned: Correspondence, agreement: Array, apart: float, stats: dict[str, Any],
+            why: str) -> Correspondence:
+    """A forced aligned answer whose confidence is lowered by its ``agreement`` with the intrinsic one."""
+    conf = np.asarray(aligned.confidence, np.float64) * agreement
+    old = stats.get("confidence", {})
+    summary = {**old, **confidence_summary(conf), "intrinsic_apart_over_h": round(apart, 4),
+               "checks": {**old.get("checks", {}), "intrinsic_agreement": round(float(agreement.mean()), 4)}}
+    summary["warning"] = warning(summary)
+    return replace(aligned, confidence=conf, reason=f"{aligned.reason}; {why}",
+                   stats={**stats, "confidence": summary})

@@ -217,15 +217,16 @@ def correspond(source: Shape, target: Shape, *, match: str = "auto", landmarks: 
 
 def _checked(source: Shape, target: Shape, match: str, landmarks: ArrayLike | None, refine: bool | None,
              opts: MatchOptions) -> Correspondence:
-    """One surface each: :func:`correspond_surface` with the checked confidence and auto mode's
-    self-check (done on the stand-ins when the meshes were matched through them)."""
+    """One surface each: :func:`correspond_surface` with the checked confidence and the self-check
+    of an aligned answer (auto mode may switch; asked-for aligned mode keeps it, its confidence
+    lowered where the intrinsic answer disagrees); done on the stand-ins when matched through them."""
     c = correspond_surface(source, target, match, landmarks, refine, opts)
     if "standin" in c.stats:
         return c
     c = with_confidence(c)
-    if match == "auto" and c.mode == "aligned":
+    if match in ("auto", "aligned") and c.mode == "aligned":
         c = checked_auto(c, lambda: with_confidence(correspond_surface(source, target, "intrinsic", landmarks,
-                                                                       refine, opts)))
+                                                                       refine, opts)), forced=match == "aligned")
     return c
 
 
