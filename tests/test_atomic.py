@@ -138,24 +138,48 @@ def test_staged_files_are_renamed_together_or_not_at_all(tmp_path):
 
 def test_sigterm_removes_the_temporary_file(tmp_path):
     # A job scheduler's SIGTERM ends the write like Ctrl-C: the temporary file
-    # is removed and the target keeps its old content.
+    # is removed, the process ends with 143 (128 + 15, common practice) and one
+    # line, and the target keeps its old content.
     code = (
         "import os, signal, sys\n"
-        "from engine.common.atomic import atomic_write, terminate_as_interrupt\n"
-        "with terminate_as_interrupt():\n"
-        "    try:\n"
-        "        with atomic_write(sys.argv[1]) as fh:\n"
-        "            fh.write(b'half')\n"
-        "            os.kill(os.getpid(), signal.SIGTERM)\n"
-        "            fh.write(b'never')\n"
-        "    except KeyboardInterrupt:\n"
-        "        sys.exit(143)\n")
+        "from engine.common.atomic import atomic_write, end_on_signals\n"
+        "with end_on_signals():\n"
+        "    with atomic_write(sys.argv[1]) as fh:\n"
+        "        fh.write(b'half')\n"
+        "        os.kill(os.getpid(), signal.SIGTERM)\n"
+        "        fh.write(b'never')\n"
+        "sys.exit(0)\n")
     target = tmp_path / "out.ply"
     target.write_bytes(b"old")
     import subprocess
-    proc = subprocess.run([sys.executable, "-c", code, str(target)], cwd=os.path.dirname(os.path.dirname(__file__)))
-    assert proc.returncode == 143
+    proc = subprocess.run([sys.executable, "-c", code, str(target)], cwd=os.path.dirname(os.path.dirname(__file__)),
+                          capture_output=True, text=True)
+    assert proc.returncode == 143 and proc.stderr == "error: terminated\n"
     assert os.listdir(tmp_path) == ["out.ply"] and target.read_bytes() == b"old"
+
+
+def test_a_signal_waits_for_the_renames_of_a_staged_set(tmp_path):
+    # A signal that arrives while staged outputs are renamed takes effect after
+    # the last rename: both outputs or none, never one (POSIX signal masks).
+    code = (
+        "import os, signal, sys\n"
+        "from engine.common import atomic\n"
+        "real = os.replace\n"
+        "def replace(a, b):\n"
+        "    real(a, b)\n"
+        "    os.kill(os.getpid(), signal.SIGINT)  # between the two renames\n"
+        "atomic.os.replace = replace\n"
+        "with atomic.end_on_signals():\n"
+        "    with atomic.atomic_writes() as staging:\n"
+        "        for name in ('a', 'b'):\n"
+        "            with staging.open(os.path.join(sys.argv[1], name)) as fh:\n"
+        "                fh.write(name.encode())\n"
+        "sys.exit(0)\n")
+    import subprocess
+    proc = subprocess.run([sys.executable, "-c", code, str(tmp_path)], cwd=os.path.dirname(os.path.dirname(__file__)),
+                          capture_output=True, text=True)
+    assert proc.returncode == 130 and proc.stderr == "error: interrupted\n"
+    assert sorted(os.listdir(tmp_path)) == ["a", "b"]
 
 
 def test_name_collisions_are_retried(tmp_path, monkeypatch):

@@ -4,9 +4,10 @@ Readers of a target see either the old file or the complete new one, never a
 half-written one: the data goes to a temporary file in the target's own folder
 (so the final rename stays on one file system), is flushed and ``fsync``-ed,
 and is moved onto the target only when the writing finished without an
-exception. On any exception (``KeyboardInterrupt`` included, and a SIGTERM
-once :func:`terminate_as_interrupt` is in force) the temporary file is removed
-and the target is left as it was. :func:`atomic_writes` stages several files
+exception. On any exception (``KeyboardInterrupt`` included) the temporary
+file is removed and the target is left as it was; while :func:`end_on_signals`
+is in force, SIGINT and SIGTERM remove every temporary file of the process and
+end it at once. :func:`atomic_writes` stages several files
 and renames them together at the end, so a failure leaves none of them.
 
 Temporary files are named ``.<target name>.<pid>-<random>.overtone-tmp``. A
@@ -38,9 +39,8 @@ from contextlib import contextmanager
 from types import FrameType
 from typing import IO, Any
 
-__all__ = ["atomic_write", "atomic_writes", "Staging", "remove_leftovers", "terminate_as_interrupt",
-           "TEMP_SUFFIX", "is_temporary", "Terminated",
-           "quiet_interrupts_while_starting", "remove_own_temporaries"]
+__all__ = ["atomic_write", "atomic_writes", "Staging", "remove_leftovers", "end_on_signals", "signals_held",
+           "TEMP_SUFFIX", "is_temporary", "quiet_interrupts_while_starting", "remove_own_temporaries"]
 
 TEMP_SUFFIX = ".overtone-tmp"
 _TEMP_NAME = re.compile(r"^\..*\.(\d+)-[0-9a-f]{8}" + re.escape(TEMP_SUFFIX) + "$")
@@ -89,12 +89,13 @@ class Staging:
     def commit(self) -> None:
         """Rename every staged file onto its target, in the order written."""
         try:
-            while self.staged:
-                tmp, target = self.staged[0]
-                os.replace(tmp, target)
-                _PENDING.discard(tmp)
-                self.staged.pop(0)
-                _sync_folder(target)
+            with signals_held():
+                while self.staged:
+                    tmp, target = self.staged[0]
+                    os.replace(tmp, target)
+                    _PENDING.discard(tmp)
+                    self.staged.pop(0)
+                    _sync_folder(target)
         finally:
             self.discard()
 
@@ -238,14 +239,6 @@ def remove_leftovers(folder: str | os.PathLike[str]) -> int:
     return removed
 
 
-class Terminated(KeyboardInterrupt):
-    """SIGTERM, raised where the process is so that clean-up code runs."""
-
-
-def _raise_terminated(signum: int, frame: FrameType | None) -> None:
-    raise Terminated()
-
-
 def _exit_quietly(signum: int, frame: FrameType | None) -> None:
     os._exit(128 + signum)
 
@@ -254,7 +247,7 @@ def quiet_interrupts_while_starting() -> None:
     """SIGINT and SIGTERM end the process at once, without a traceback.
 
     For a command line while it imports its modules: nothing is written yet,
-    so there is nothing to clean up; :func:`terminate_as_interrupt` takes over
+    so there is nothing to clean up; :func:`end_on_signals` takes over
     when the work starts.
     """
     for sig in (signal.SIGINT, signal.SIGTERM):
@@ -264,12 +257,41 @@ def quiet_interrupts_while_starting() -> None:
             return
 
 
-@contextmanager
-def terminate_as_interrupt() -> Iterator[None]:
-    """While in force, SIGINT raises ``KeyboardInterrupt`` and SIGTERM :class:`Terminated` (one)."""
+_SIGNAL_EXITS = {signal.SIGINT: (130, "error: interrupted\n"), signal.SIGTERM: (143, "error: terminated\n")}
+_HOLDING = [0]           # depth of signals_held blocks in force
+_DEFERRED: list[int] = []  # signals that arrived while held
+
+
+def _end_now(signum: int, frame: FrameType | None) -> None:
+    """Remove this process's temporary files, say so in one line and end at once.
+
+    Ending here, instead of raising through whatever the main thread runs,
+    never tears down a native computation half done, and skips the
+    interpreter's final clean-up (an interrupted run once crashed there).
+    """
+    if _HOLDING[0]:
+        _DEFERRED.append(signum)
+        return
+    code, line = _SIGNAL_EXITS[signal.Signals(signum)]
+    remove_own_temporaries()
     try:
-        previous = {sig: signal.signal(sig, handler) for sig, handler in
-                    ((signal.SIGINT, signal.default_int_handler), (signal.SIGTERM, _raise_terminated))}
+        sys.stdout.flush()
+    except Exception:  # noqa: BLE001  (a print the signal interrupted; nothing more to save)
+        pass
+    try:
+        os.write(2, line.encode())
+    except OSError:
+        pass
+    os._exit(code)
+
+
+@contextmanager
+def end_on_signals() -> Iterator[None]:
+    """While in force, SIGINT ends the process with exit code 130 and SIGTERM with 143,
+    after removing its temporary files (:func:`_end_now`); renames in progress
+    finish first (:meth:`Staging.commit` holds the signals)."""
+    try:
+        previous = {sig: signal.signal(sig, _end_now) for sig in _SIGNAL_EXITS}
     except ValueError:  # not the main thread: leave signals alone
         yield
         return
@@ -278,3 +300,18 @@ def terminate_as_interrupt() -> Iterator[None]:
     finally:
         for sig, handler in previous.items():
             signal.signal(sig, signal.SIG_DFL if handler is None else handler)
+
+
+@contextmanager
+def signals_held() -> Iterator[None]:
+    """A signal that :func:`end_on_signals` handles waits until the block ends, so
+    a set of renames is never cut in half. (Python runs signal handlers in the
+    main thread between two steps of its own code; a flag, not the process's
+    signal mask, which other threads such as BLAS workers do not share.)"""
+    _HOLDING[0] += 1
+    try:
+        yield
+    finally:
+        _HOLDING[0] -= 1
+        if not _HOLDING[0] and _DEFERRED:
+            _end_now(_DEFERRED[0], None)

@@ -32,7 +32,7 @@ import warnings
 from collections.abc import Sequence
 from typing import NoReturn
 
-from ..common.atomic import Terminated, is_temporary, remove_own_temporaries, terminate_as_interrupt
+from ..common.atomic import end_on_signals, is_temporary, remove_own_temporaries
 
 EXIT_BAD_INPUT = 2
 EXIT_INTERNAL = 3
@@ -112,15 +112,11 @@ def main(argv: Sequence[str] | None = None) -> int:
     args = list(sys.argv[1:] if argv is None else argv)
     for name in _IMPORTED_FIRST:
         importlib.import_module(name)
-    with warnings.catch_warnings(record=True) as caught, terminate_as_interrupt():
+    with warnings.catch_warnings(record=True) as caught, end_on_signals():
         warnings.simplefilter("always")
         try:
             return _run(args)
-        except Terminated:
-            remove_own_temporaries()
-            print("error: terminated", file=sys.stderr)
-            return EXIT_TERMINATED
-        except KeyboardInterrupt:
+        except KeyboardInterrupt:  # raised by code of its own, not by a signal (end_on_signals)
             remove_own_temporaries()
             print("error: interrupted", file=sys.stderr)
             return EXIT_INTERRUPTED

@@ -17,8 +17,7 @@ import numpy as np
 import pytest
 
 from .conftest import MODULE, make_mesh, select
-from .standins import Context
-from .test_panels import draw_all, texts
+from .test_panels import draw_all
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[2]))
 from tests import characters  # noqa: E402  (the repository's generators, after the path)
