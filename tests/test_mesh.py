@@ -5,7 +5,7 @@ import pytest
 
 import engine.intake.triangulation as triangulation_module
 from engine.intake.triangulation import triangulate
-from engine.intake.preparation import prepare_mesh, validate_mesh
+from engine.intake.preparation import group_edges, prepare_mesh, validate_mesh
 from tests import meshes
 
 
@@ -405,3 +405,20 @@ def test_dtypes(vdtype, fdtype):
     assert np.array_equal(p.vertices, v.astype(np.float64)) and np.array_equal(p.faces, f)
     q = prepare_mesh(v, corners=f.ravel().astype(fdtype), sizes=np.full(len(f), 3, dtype=fdtype))
     assert np.array_equal(q.faces, p.faces)
+
+
+@pytest.mark.parametrize("n", [7, 3_000_000_000])
+def test_group_edges_order_is_numpys_stable_sort_of_the_edge_key(n: int) -> None:
+    # Reference: numpy's stable argsort of min(p, q) * n + max(p, q) (numpy.argsort, kind="stable");
+    # the large n leaves no room to pack the index beside the key, so the other route is taken too.
+    rng = np.random.default_rng(5)
+    p = rng.integers(0, 7, 500) * (n // 7)
+    q = rng.integers(0, 7, 500) * (n // 7)
+    key = np.minimum(p, q) * n + np.maximum(p, q)
+    expect = np.argsort(key, kind="stable")
+    groups = group_edges(p, q, n)
+    np.testing.assert_array_equal(groups.order, expect)
+    distinct, first, counts = np.unique(key, return_index=True, return_counts=True)
+    np.testing.assert_array_equal(groups.counts, counts)
+    np.testing.assert_array_equal(groups.order[groups.starts], first)
+    assert len(distinct) == len(groups.starts)

@@ -164,10 +164,12 @@ class Transfer:
         f = self.source.to_cleaned(a).astype(np.float64)
         flat = f.reshape(len(f), -1)
         out, errors = self.linear(flat)
-        # the errors of all channels together: sqrt(sum num_c^2) / sqrt(sum den_c^2)
-        den_c = np.sqrt((self.source.mass[:, None] * flat ** 2).sum(axis=0))
-        den = float(np.sqrt((den_c ** 2).sum()))
-        err = float(np.sqrt(((errors * den_c) ** 2).sum())) / den if den > 0 else 0.0
+        err = 0.0
+        if errors.any():  # a pointwise route has no error and needs no source mass
+            # the errors of all channels together: sqrt(sum num_c^2) / sqrt(sum den_c^2)
+            den_c = np.sqrt((self.source.mass[:, None] * flat ** 2).sum(axis=0))
+            den = float(np.sqrt((den_c ** 2).sum()))
+            err = float(np.sqrt(((errors * den_c) ** 2).sum())) / den if den > 0 else 0.0
         out = clamp(out, kind, flat).reshape((len(out),) + f.shape[1:])
         if not np.isfinite(out).all():  # never write NaN
             raise ValueError(f"transfer of {name!r} produced non-finite values")

@@ -354,7 +354,7 @@ def _drop_degenerate(v: Array, tris: Array, tri_polygon: Array,
     if not keep.all():
         notes.append(f"dropped {int((~keep).sum())} zero-area faces")
     tris, tri_polygon = tris[keep], tri_polygon[keep]
-    first = _first_of_rows(np.sort(tris, axis=1))
+    first = _first_of_rows(np.sort(tris, axis=1), len(v))
     if len(first) < len(tris):
         notes.append(f"dropped {len(tris) - len(first)} duplicate faces")
         first.sort()
@@ -422,17 +422,29 @@ def mesh_topology(faces: Array, nv: int) -> tuple[int, int, int]:
     rows, cols = t0c.reshape(-1), t1c.reshape(-1)
     g = sp.coo_matrix((np.ones(len(rows)), (rows, cols)), shape=(m * 3, m * 3))
     labels = connected_components(g, directed=False)[1]
-    fans = tail[_first_of_rows(np.column_stack([tail, labels]))]
+    # one entry per distinct (vertex, fan) pair; vertex * 3m + label < nv * 3m fits in int64
+    pairs = np.sort(tail * np.int64(m * 3) + labels)
+    fans = pairs[np.r_[True, pairs[1:] != pairs[:-1]]] // np.int64(m * 3)
     nm_vertices = int((np.bincount(fans, minlength=nv) > 1).sum())
     return loops, nm_edges, nm_vertices
 
 
-def _first_of_rows(rows: Array) -> Array:
+def _first_of_rows(rows: Array, bound: int) -> Array:
     """Indices of the first occurrence of each distinct row, ascending.
 
-    A lexicographic sort of the integer columns; much faster than
-    ``np.unique(..., axis=0)``, which sorts a structured view.
+    ``rows`` holds integers in ``0 .. bound - 1``. When every row packs into
+    one int64 key, a plain sort of the keys first tells whether any row
+    repeats (usually none does); otherwise, or when one does, a lexicographic
+    sort of the columns, much faster than ``np.unique(..., axis=0)``, which
+    sorts a structured view.
     """
+    if float(bound) ** rows.shape[1] < 2.0 ** 62:
+        key = np.zeros(len(rows), dtype=np.int64)
+        for column in rows.T:
+            key = key * np.int64(bound) + column
+        packed = np.sort(key)
+        if not (packed[1:] == packed[:-1]).any():
+            return np.arange(len(rows), dtype=np.int64)
     order = np.lexsort(rows.T[::-1])
     sr = rows[order]
     new = np.ones(len(rows), dtype=bool)
@@ -472,7 +484,14 @@ def group_edges(p: Array, q: Array, n: int, secondary: Array | None = None) -> E
     are ordered by ``secondary`` when given, else by index.
     """
     key = np.minimum(p, q).astype(np.int64) * np.int64(n) + np.maximum(p, q)
-    order = np.argsort(key, kind="stable") if secondary is None else np.lexsort((secondary, key))
+    if secondary is not None:
+        order = np.lexsort((secondary, key))
+    elif key.size and (int(key.max()) + 1) * key.size <= np.iinfo(np.int64).max:
+        # a stable order by key: sort key * size + index (fits in int64), then unpack the index
+        size = np.int64(key.size)
+        order = np.sort(key * size + np.arange(key.size, dtype=np.int64)) % size
+    else:
+        order = np.argsort(key, kind="stable")
     ks = key[order]
     start = np.ones(ks.size, dtype=bool)
     start[1:] = ks[1:] != ks[:-1]

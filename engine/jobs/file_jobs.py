@@ -145,7 +145,11 @@ def surface_points(data: MeshData) -> NDArray[Any]:
     """
     if data.corners.size == 0:
         return data.vertices
-    used: NDArray[Any] = data.vertices[np.unique(data.corners)]
+    corners, n = data.corners, len(data.vertices)
+    if np.issubdtype(corners.dtype, np.integer) and corners.min() >= 0 and corners.max() < n:
+        used: NDArray[Any] = data.vertices[np.flatnonzero(np.bincount(corners, minlength=n))]
+    else:  # left to the validation to name the problem
+        used = data.vertices[np.unique(corners)]
     return used
 
 
