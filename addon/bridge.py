@@ -178,7 +178,10 @@ def read_mesh(obj: bpy.types.Object, *, evaluated: bool = False, local: bool = F
     engine.MeshData
         ``vertices`` (n, 3) float64 in world space, ``corners`` (c,) int64
         (the vertex of each face corner, faces one after another), ``sizes``
-        (f,) int64 (corners per face).
+        (f,) int64 (corners per face), ``tris`` (t, 3) int64 and
+        ``tri_polygon`` (t,) int64: Blender's own triangles of the faces
+        (``Mesh.loop_triangles``) and the face of each, so the engine prepares
+        the mesh with the triangles Blender shows.
     """
     matrix = np.eye(4) if local else _matrix(obj)
     with _mesh_of(obj, evaluated) as mesh:
@@ -189,9 +192,16 @@ def read_mesh(obj: bpy.types.Object, *, evaluated: bool = False, local: bool = F
         _elements(mesh.attributes[".corner_vert"]).foreach_get("value", corner_verts)
         sizes = np.empty(f, dtype=np.int32)
         mesh.polygons.foreach_get("loop_total", sizes)
+        mesh.calc_loop_triangles()
+        t = len(mesh.loop_triangles)
+        tris = np.empty(t * 3, dtype=np.int32)
+        mesh.loop_triangles.foreach_get("vertices", tris)
+        tri_polygon = np.empty(t, dtype=np.int32)
+        mesh.loop_triangles.foreach_get("polygon_index", tri_polygon)
     points = flat.reshape(n, 3).astype(np.float64)
     world = points @ matrix[:3, :3].T + matrix[:3, 3]
-    return MeshData(np.ascontiguousarray(world), corner_verts.astype(np.int64), sizes.astype(np.int64))
+    return MeshData(np.ascontiguousarray(world), corner_verts.astype(np.int64), sizes.astype(np.int64),
+                    tris=tris.reshape(t, 3).astype(np.int64), tri_polygon=tri_polygon.astype(np.int64))
 
 
 def _is_user_layer(attr: bpy.types.Attribute) -> bool:

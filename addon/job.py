@@ -42,8 +42,9 @@ Progress = Callable[[float, str], None]
 
 
 def mesh_digest(mesh: MeshData) -> str:
-    """Hash of a mesh's geometry (positions, corners, sizes): same hash, same mesh."""
-    return str(geometry_key(mesh.vertices, mesh.corners, mesh.sizes))
+    """Hash of a mesh's geometry (positions, corners, sizes, given triangles): same hash, same mesh."""
+    given = mesh.given_triangles() or ()
+    return str(geometry_key(mesh.vertices, mesh.corners, mesh.sizes, *given))
 
 
 def handles(mesh: MeshData) -> int | None:
@@ -196,7 +197,8 @@ def prune_cache(folder: str | None, limit_bytes: int) -> dict[str, Any]:
 
 def _shape(mesh: MeshData, name: str, cache: str | None) -> Shape:
     try:
-        return Shape(mesh.vertices, corners=mesh.corners, sizes=mesh.sizes, cache=cache)
+        return Shape(mesh.vertices, corners=mesh.corners, sizes=mesh.sizes, cache=cache,
+                     triangles=mesh.given_triangles())
     except ValueError as error:
         raise ValueError(f"{name!r}: {error}") from None
 

@@ -208,7 +208,10 @@ def _mesh_meta(mesh: MeshData, prefix: str, arrays: dict[str, Any]) -> dict[str,
     arrays[f"{prefix}_vertices"] = mesh.vertices
     arrays[f"{prefix}_corners"] = mesh.corners
     arrays[f"{prefix}_sizes"] = mesh.sizes
-    return {}
+    given = mesh.given_triangles()
+    if given is not None:
+        arrays[f"{prefix}_tris"], arrays[f"{prefix}_tri_polygon"] = given
+    return {"triangles": given is not None}
 
 
 def save_input(folder: Path, inp: JobInput) -> None:
@@ -232,8 +235,11 @@ def save_input(folder: Path, inp: JobInput) -> None:
     _write(folder, meta, arrays, "input")
 
 
-def _mesh_from(prefix: str, z: Any) -> MeshData:
-    return MeshData(z[f"{prefix}_vertices"], z[f"{prefix}_corners"], z[f"{prefix}_sizes"])
+def _mesh_from(prefix: str, z: Any, meta: dict[str, Any]) -> MeshData:
+    given = bool(meta.get("triangles"))
+    return MeshData(z[f"{prefix}_vertices"], z[f"{prefix}_corners"], z[f"{prefix}_sizes"],
+                    tris=z[f"{prefix}_tris"] if given else None,
+                    tri_polygon=z[f"{prefix}_tri_polygon"] if given else None)
 
 
 def load_input(folder: Path) -> JobInput:
@@ -254,8 +260,8 @@ def load_input(folder: Path) -> JobInput:
                                s["domain"], s["data_type"]) for i, s in enumerate(meta["signals"]))
         groups = {name: (z[f"group_source_{i}"], z[f"group_target_{i}"])
                   for i, name in enumerate(meta["landmark_groups"])}
-        source = _mesh_from("source", z)
-        target = _mesh_from("target", z) if meta["target"] is not None else None
+        source = _mesh_from("source", z, meta["source"])
+        target = _mesh_from("target", z, meta["target"]) if meta["target"] is not None else None
     return JobInput(meta["kind"], source, target, signals, groups, settings,
                     (meta["names"][0], meta["names"][1]), meta["cache_folder"],
                     int(meta["cache_limit_bytes"]))

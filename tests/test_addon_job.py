@@ -151,6 +151,19 @@ def test_files_carry_a_job_through_unchanged(inputs, tmp_path):
     assert sorted(p.name for p in tmp_path.iterdir()) == ["input.json", "input.npz"]  # no temporary files
 
 
+def test_files_carry_given_triangles_and_the_digest_tells_them_apart(inputs, tmp_path):
+    src = inputs.source
+    tris = np.roll(src.corners.reshape(-1, 3), 1, axis=1)  # same triangles, another first corner
+    given = replace(src, tris=tris, tri_polygon=np.arange(len(tris), dtype=np.int64))
+    worker.save_input(tmp_path, replace(inputs, source=given))
+    got = worker.load_input(tmp_path)
+    np.testing.assert_array_equal(got.source.tris, tris)
+    np.testing.assert_array_equal(got.source.tri_polygon, np.arange(len(tris)))
+    assert got.target.tris is None and got.target.tri_polygon is None   # none sent, none made up
+    assert job.mesh_digest(given) != job.mesh_digest(src)
+    assert job.mesh_digest(got.source) == job.mesh_digest(given)
+
+
 def test_the_worker_serves_a_folder_and_says_why_it_failed(inputs, tmp_path):
     done, failed = tmp_path / "done", tmp_path / "failed"
     worker.save_input(done, inputs)

@@ -65,16 +65,32 @@ class MeshData:
         order). ``red green blue [alpha]`` become one ``"color"`` entry of
         shape (n, 3) or (n, 4); ``nx ny nz`` become ``"normal"`` (n, 3). Empty
         for OBJ and OFF.
+    tris : (t, 3) int64 array or None
+        The polygons' triangles (vertex indices) when the application that
+        holds the mesh already computed them; None for files.
+    tri_polygon : (t,) int64 array or None
+        The polygon of each of ``tris``; None with it.
     """
 
     vertices: NDArray[Any]
     corners: NDArray[Any]
     sizes: NDArray[Any]
     properties: dict[str, NDArray[Any]] = field(default_factory=dict)
+    tris: NDArray[Any] | None = None
+    tri_polygon: NDArray[Any] | None = None
 
     def triangles(self) -> NDArray[Any]:
-        """The polygons as triangles, (t, 3) int64, by ``engine.intake.triangulation``."""
+        """The polygons as triangles, (t, 3) int64: ``tris`` when given, else by
+        ``engine.intake.triangulation``."""
+        if self.tris is not None:
+            return self.tris
         return triangulate(self.vertices, self.corners, self.sizes)[0]
+
+    def given_triangles(self) -> tuple[NDArray[Any], NDArray[Any]] | None:
+        """``(tris, tri_polygon)`` when both are given, for ``prepare_mesh(triangles=...)``."""
+        if self.tris is None or self.tri_polygon is None:
+            return None
+        return self.tris, self.tri_polygon
 
 
 # ---------------------------------------------------------------- reading

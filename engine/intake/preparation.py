@@ -20,7 +20,8 @@ from scipy.spatial import cKDTree
 from ..common.arrays import Array, ArrayLike
 from .triangulation import triangulate
 
-__all__ = ["validate_mesh", "prepare_mesh", "PreparedMesh", "mesh_topology", "EdgeGroups", "group_edges"]
+__all__ = ["validate_mesh", "validate_triangles", "prepare_mesh", "PreparedMesh", "mesh_topology", "EdgeGroups",
+           "group_edges"]
 
 # Triangles with area <= _ZERO_AREA * (bounding-box diagonal)**2 are dropped.
 # The area comes from a cross product of edge vectors whose coordinates are at
@@ -135,6 +136,39 @@ def validate_polygons(corners: ArrayLike, sizes: ArrayLike, n: int) -> tuple[Arr
     return c, s
 
 
+def validate_triangles(triangles: tuple[ArrayLike, ArrayLike], n: int, f: int) -> tuple[Array, Array]:
+    """Check a polygon mesh's triangles given by the caller.
+
+    Parameters
+    ----------
+    triangles : ((t, 3) integer array, (t,) integer array)
+        Vertex indices of each triangle, and the polygon each comes from.
+    n, f : int
+        Number of vertices and of polygons.
+
+    Returns
+    -------
+    tris : (t, 3) int64 array
+    tri_polygon : (t,) int64 array
+    """
+    tris, polygon = (np.asarray(a) for a in triangles)
+    for name, a, ndim in (("triangles", tris, 2), ("triangle polygons", polygon, 1)):
+        if a.dtype == object or not np.issubdtype(a.dtype, np.integer):
+            raise ValueError(f"{name} must be an integer array, got dtype {a.dtype}")
+        if a.ndim != ndim or (ndim == 2 and a.shape[1] != 3) or a.size == 0:
+            shape = "(t, 3)" if ndim == 2 else "(t,)"
+            raise ValueError(f"{name} must be a non-empty {shape} array, got shape {a.shape}")
+    if len(polygon) != len(tris):
+        raise ValueError(f"{len(tris)} triangles but {len(polygon)} triangle polygons")
+    if tris.min() < 0 or tris.max() >= n:
+        raise ValueError(f"triangle vertex index out of range [0, {n}): {int(tris.min())}..{int(tris.max())}")
+    if polygon.min() < 0 or polygon.max() >= f:
+        raise ValueError(f"triangle polygon index out of range [0, {f}): "
+                         f"{int(polygon.min())}..{int(polygon.max())}")
+    return (np.ascontiguousarray(tris, dtype=np.int64),
+            np.ascontiguousarray(polygon, dtype=np.int64))
+
+
 @dataclass(frozen=True)
 class PreparedMesh:
     """A cleaned triangle mesh with the map back to the mesh it came from.
@@ -233,7 +267,8 @@ class PreparedMesh:
 
 
 def prepare_mesh(vertices: ArrayLike, faces: ArrayLike | None = None, *, corners: ArrayLike | None = None,
-                 sizes: ArrayLike | None = None, weld: bool = True) -> PreparedMesh:
+                 sizes: ArrayLike | None = None, weld: bool = True,
+                 triangles: tuple[ArrayLike, ArrayLike] | None = None) -> PreparedMesh:
     """Validate, triangulate and clean a mesh, keeping the map back to it.
 
     Parameters
@@ -249,6 +284,11 @@ def prepare_mesh(vertices: ArrayLike, faces: ArrayLike | None = None, *, corners
         Merge vertices with exactly identical coordinates (seams split for UVs
         or normals in exporters). Nothing within a tolerance is merged: two
         vertices a hair apart may be meant to be apart.
+    triangles : ((t, 3) integer array, (t,) integer array), optional
+        With ``corners`` and ``sizes``: the polygons' triangles already
+        computed by the caller (vertex indices) and the polygon each comes
+        from; used instead of triangulating here (see
+        :func:`validate_triangles`).
 
     Returns
     -------
@@ -273,13 +313,16 @@ def prepare_mesh(vertices: ArrayLike, faces: ArrayLike | None = None, *, corners
     """
     if faces is not None and (corners is not None or sizes is not None):
         raise ValueError("give either faces or corners and sizes, not both")
+    if faces is not None and triangles is not None:
+        raise ValueError("triangles go with corners and sizes, not with faces")
     if faces is not None:
         v, tris = validate_mesh(vertices, faces)
         tri_polygon = np.arange(len(tris), dtype=np.int64)
     elif corners is not None and sizes is not None:
         v = validate_vertices(vertices)
         c, s = validate_polygons(corners, sizes, len(v))
-        tris, tri_polygon = triangulate(v, c, s)
+        tris, tri_polygon = (triangulate(v, c, s) if triangles is None
+                             else validate_triangles(triangles, len(v), len(s)))
     else:
         raise ValueError("no faces given: pass faces, or corners and sizes")
     n = len(v)

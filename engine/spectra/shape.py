@@ -39,6 +39,11 @@ class Shape:
         ``sizes`` (corners per polygon).
     corners : (c,) int array, optional
     sizes : (p,) int array, optional
+    triangles : ((t, 3) int array, (t,) int array), optional
+        With ``corners`` and ``sizes``: the polygons' triangles and the
+        polygon of each, used instead of triangulating (see
+        :func:`engine.intake.preparation.prepare_mesh`). The cache keys hash
+        the cleaned triangles, so another triangulation is another entry.
     cache : Cache or path-like, optional
         Folder cache for eigenbases and products. Eigenbasis entries are keyed
         by the geometry, ``k``, the operator variant and the solver's
@@ -55,8 +60,8 @@ class Shape:
     """
 
     def __init__(self, vertices: Any, faces: Any = None, *, corners: Any = None, sizes: Any = None,
-                 cache: Any = None) -> None:
-        self.prepared = prepare_mesh(vertices, faces, corners=corners, sizes=sizes)
+                 cache: Any = None, triangles: Any = None) -> None:
+        self.prepared = prepare_mesh(vertices, faces, corners=corners, sizes=sizes, triangles=triangles)
         self.vertices: Array = self.prepared.vertices
         self.faces: Array = self.prepared.faces
         if cache is not None and not isinstance(cache, Cache):

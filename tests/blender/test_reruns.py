@@ -427,19 +427,21 @@ def test_a_copy_placed_apart_and_matched_by_shape_is_warned_about(mod, scene):
     either end) placed elsewhere: matched by shape the map can come back upside down
     although it is sure of itself, so the artist is told to match the copy in place."""
     bpy.ops.mesh.primitive_cylinder_add(vertices=16, radius=0.5, depth=3.0)
-    src = bpy.context.active_object
-    src.name = "Post"
+    tgt = bpy.context.active_object
+    tgt.name = "Post Copy"
     bpy.ops.object.mode_set(mode='EDIT')
     bpy.ops.mesh.subdivide(number_cuts=6)
     bpy.ops.object.mode_set(mode='OBJECT')
-    height = np.array([v.co.z for v in src.data.vertices]) / 3.0 + 0.5       # 0 at the bottom, 1 at the top
+    # the source: the same polygons cut into triangles by the engine's own triangulation, the
+    # copy's below by Blender: two triangulations of one shape, as after a remesh (the add-on
+    # takes Blender's triangles, so the source is made of triangles)
+    points = np.array([v.co for v in tgt.data.vertices], dtype=np.float64)
+    corners = np.array([lp.vertex_index for lp in tgt.data.loops], dtype=np.int64)
+    sizes = np.array([p.loop_total for p in tgt.data.polygons], dtype=np.int64)
+    src = make_mesh("Post", points, engine_module("intake.triangulation").triangulate(points, corners, sizes)[0])
+    height = points[:, 2] / 3.0 + 0.5                                         # 0 at the bottom, 1 at the top
     rgba = np.column_stack([height, height, height, np.ones_like(height)]).astype(np.float32)
     src.data.color_attributes.new("height", 'FLOAT_COLOR', 'POINT').data.foreach_set("color", rgba.ravel())
-    tgt = src.copy()
-    tgt.data = src.data.copy()
-    tgt.name = "Post Copy"
-    scene.collection.objects.link(tgt)
-    tgt.data.color_attributes.remove(tgt.data.color_attributes["height"])
     select(tgt, tgt)
     bpy.ops.object.mode_set(mode='EDIT')
     bpy.ops.mesh.quads_convert_to_tris()                                     # another triangulation
