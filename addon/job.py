@@ -32,7 +32,7 @@ if TYPE_CHECKING:
     from numpy.typing import NDArray
 
 __all__ = ["JOB_KINDS", "JobInput", "JobOutput", "Progress", "KeptPairs", "PAIRS", "run_job",
-           "carry_by_face", "unit_rotations", "handles",
+           "carry_by_face", "unit_rotations",
            "forget_pairs", "mesh_digest", "prune_cache", "CORNER_INSET"]
 
 JOB_KINDS = ("transfer", "detail", "preview")
@@ -45,62 +45,6 @@ def mesh_digest(mesh: MeshData) -> str:
     """Hash of a mesh's geometry (positions, corners, sizes, given triangles): same hash, same mesh."""
     given = mesh.given_triangles() or ()
     return str(geometry_key(mesh.vertices, mesh.corners, mesh.sizes, *given))
-
-
-def handles(mesh: MeshData) -> int | None:
-    """How many handles (holes through the surface, as in a ring) a mesh has:
-    the sum over its pieces of the genus, ``(2 - V + E - F - border loops) / 2``
-    (Euler's formula for surfaces, common practice). None when some edge has
-    more than two faces (no surface genus then)."""
-    sizes = np.asarray(mesh.sizes, dtype=np.int64)
-    corners = np.asarray(mesh.corners, dtype=np.int64)
-    if sizes.size == 0:
-        return 0
-    starts = np.repeat(np.cumsum(sizes) - sizes, sizes)
-    nxt = np.arange(corners.size) + 1
-    nxt = np.where(nxt - starts == np.repeat(sizes, sizes), starts, nxt)   # wrap within each face
-    low, high = np.minimum(corners, corners[nxt]), np.maximum(corners, corners[nxt])
-    keys, uses = np.unique(low * (int(corners.max()) + 1) + high, return_counts=True)
-    edges = np.column_stack(np.divmod(keys, int(corners.max()) + 1))
-    if np.any(uses > 2):
-        return None
-    from scipy.sparse import coo_matrix
-    from scipy.sparse.csgraph import connected_components
-    used, idx = np.unique(edges, return_inverse=True)
-    idx = idx.reshape(-1, 2)
-    n = used.size
-    graph = coo_matrix((np.ones(len(idx)), (idx[:, 0], idx[:, 1])), shape=(n, n))
-    pieces, label = connected_components(graph, directed=False)
-    edge_piece = label[idx[:, 0]]
-    face_piece = label[np.searchsorted(used, corners[np.cumsum(sizes) - sizes])]
-    border = idx[uses == 1]
-    loops = np.zeros(pieces, dtype=np.int64)
-    if len(border):
-        on, b_idx = np.unique(border, return_inverse=True)
-        b_idx = b_idx.reshape(-1, 2)
-        b_graph = coo_matrix((np.ones(len(border)), (b_idx[:, 0], b_idx[:, 1])), shape=(on.size, on.size))
-        _, b_label = connected_components(b_graph, directed=False)
-        # independent cycles of the border edges (E - V + components): loops that
-        # touch at a vertex still count apart
-        np.add.at(loops, edge_piece[uses == 1], 1)
-        np.subtract.at(loops, label[on], 1)
-        np.add.at(loops, label[on[np.unique(b_label, return_index=True)[1]]], 1)
-    chi = (np.bincount(label, minlength=pieces) - np.bincount(edge_piece, minlength=pieces)
-           + np.bincount(face_piece, minlength=pieces))
-    return int(np.sum(np.maximum((2 - chi - loops) // 2, 0)))
-
-
-_HANDLES: OrderedDict[str, int | None] = OrderedDict()
-
-
-def _handles_of(mesh: MeshData) -> int | None:
-    """:func:`handles`, remembered for the last few meshes (warm re-runs skip it)."""
-    key = mesh_digest(mesh)
-    if key not in _HANDLES:
-        _HANDLES[key] = handles(mesh)
-        while len(_HANDLES) > 8:
-            _HANDLES.popitem(last=False)
-    return _HANDLES[key]
 
 
 @dataclass(frozen=True)
@@ -352,7 +296,7 @@ def _transfer(inp: JobInput, progress: Progress) -> JobOutput:
         values, report = _carry_signals(inp, pair, settings.basis)
     report["pair"] = held
     if report.get("mode") == "intrinsic":   # matched by shape: the surfaces' kinds must agree
-        report["handles"] = {"source": _handles_of(inp.source), "target": _handles_of(inp.target)}
+        report["handles"] = {"source": pair.source.prepared.handles, "target": pair.target.prepared.handles}
     report["landmarks"] = {"groups": used, "skipped_empty": skipped,
                            "pairs": [list(p) for p in landmarks]}
     report["basis"] = settings.basis

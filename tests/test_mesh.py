@@ -422,3 +422,28 @@ def test_group_edges_order_is_numpys_stable_sort_of_the_edge_key(n: int) -> None
     np.testing.assert_array_equal(groups.counts, counts)
     np.testing.assert_array_equal(groups.order[groups.starts], first)
     assert len(distinct) == len(groups.starts)
+
+
+def _torus(n=24, m=12):
+    u, w = np.meshgrid(np.arange(n) * 2 * np.pi / n, np.arange(m) * 2 * np.pi / m, indexing="ij")
+    v = np.column_stack([((2 + np.cos(w)) * np.cos(u)).ravel(), ((2 + np.cos(w)) * np.sin(u)).ravel(),
+                         np.sin(w).ravel()])
+    i, j = np.meshgrid(np.arange(n), np.arange(m), indexing="ij")
+    a, b = (i * m + j).ravel(), (((i + 1) % n) * m + j).ravel()
+    c, d = (((i + 1) % n) * m + (j + 1) % m).ravel(), (i * m + (j + 1) % m).ravel()
+    return v, np.vstack([np.column_stack([a, b, c]), np.column_stack([a, c, d])])
+
+
+def test_handles_follow_eulers_formula():
+    # V - E + F = 2 - 2g - b per piece (Euler's formula for surfaces, common practice):
+    # a sphere 0, a torus 1, a flat sheet 0, two tori in one mesh 2; an edge on three
+    # triangles has no surface genus
+    v, f = meshes.icosphere(2)
+    tv, tf = _torus()
+    gv, gf = meshes.grid(10, 5)
+    assert prepare_mesh(v, f).handles == 0
+    assert prepare_mesh(tv, tf).handles == 1
+    assert prepare_mesh(gv, gf).handles == 0
+    assert prepare_mesh(np.vstack([tv, tv + 9.0]), np.vstack([tf, tf + len(tv)])).handles == 2
+    fin = np.vstack([tv, [[9.0, 9.0, 9.0]]])
+    assert prepare_mesh(fin, np.vstack([tf, [[tf[0, 0], tf[0, 1], len(tv)]]])).handles is None

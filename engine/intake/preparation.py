@@ -223,6 +223,19 @@ class PreparedMesh:
     non_manifold_vertices: int
     notes: tuple[str, ...]
 
+    @property
+    def handles(self) -> int | None:
+        """Holes through the surface (as in a ring), summed over the pieces: the genus
+        ``(2 C - (V - E + F) - B) / 2`` of Euler's formula for surfaces (common practice),
+        C components, B boundary loops, of the cleaned mesh. None when an edge has
+        more than two triangles (no surface genus then)."""
+        if self.non_manifold_edges:
+            return None
+        f = self.faces
+        edges = len(group_edges(f.ravel(), f[:, [1, 2, 0]].ravel(), len(self.vertices)).starts)
+        chi = len(self.vertices) - edges + len(f)
+        return max((2 * self.n_components - chi - self.n_boundary_loops) // 2, 0)
+
     def restore(self, values: ArrayLike) -> Array:
         """Per-vertex values on the cleaned mesh, handed back to every original vertex.
 
