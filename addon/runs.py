@@ -538,9 +538,6 @@ def finish(plan: Plan, out: job.JobOutput) -> dict[str, Any]:
     asked: dict[str, tuple[str, int]] = {}
     written = _write(plan, obj, outputs, asked)
     report = dict(out.report)
-    if out.confidence is not None and len(out.confidence):
-        report.setdefault("uncertain_below", UNCERTAIN_BELOW)
-        report.setdefault("uncertain_share", float(np.mean(out.confidence < report["uncertain_below"])))
     report["written"] = written
     report["object"] = plan.written_on
     report["warnings"] = warnings
@@ -548,6 +545,8 @@ def finish(plan: Plan, out: job.JobOutput) -> dict[str, Any]:
     if judged is not None:
         report["outcome"] = judged.level
         report["uncertain_vertices"] = int(judged.uncertain.sum())
+        report["uncertain_below"] = UNCERTAIN_BELOW
+        report["uncertain_share"] = float(judged.uncertain.mean()) if judged.uncertain.size else 0.0
     if plan.not_carried:
         report["skipped"] = {name: reason for name, reason in plan.not_carried}
     note = material_note(obj, written, out)
