@@ -244,15 +244,20 @@ def _save(job: Job) -> str | None:
 
 
 def run_job(job: Job) -> tuple[int, dict[str, Any]]:
-    """Run every pair of a checked job; returns (exit code, report)."""
+    """Run every pair of a checked job; returns (exit code, report).
+
+    Each pair is announced on standard output, then the engine's stages as the
+    command line shows them (``engine/common/progress.py``): a redrawn bar on a
+    terminal, one plain line per stage otherwise."""
     results = []
-    for pair in job.pairs:
+    for number, pair in enumerate(job.pairs, start=1):
         entry: dict[str, Any] = {"source": pair.source, "target": pair.target,
                                  "signals": list(pair.request.signals),
                                  "detail": pair.request.detail}
+        print(f"{COMMAND}: pair {number} of {len(job.pairs)}: {pair.source} -> {pair.target}", flush=True)
         try:
             entry["result"] = transfer_pair(bpy.data.objects[pair.source],
-                                            bpy.data.objects[pair.target], pair.request)
+                                            bpy.data.objects[pair.target], pair.request, show=sys.stdout)
             entry["status"] = "done"
         except (ValueError, RuntimeError) as error:
             entry["status"] = "failed"

@@ -17,7 +17,6 @@ from __future__ import annotations
 
 import time
 from collections import OrderedDict
-from collections.abc import Callable
 from dataclasses import dataclass, field, replace
 from typing import TYPE_CHECKING, Any
 
@@ -26,19 +25,18 @@ import numpy as np
 from .engine import (Cache, FaceHits, MeshData, Pair, Settings, Shape, Signal, approximate_signals,
                      carry_charted, carry_faces, check_signal, faces_under_centres, geometry_key,
                      vertex_average, weighted_centre_vertex)
+from .engine.common.progress import CARRYING, DETAIL, MATCHING_STAGES, READING, SMOOTHING, skip, stage
 from .threads import limited_threads
 
 if TYPE_CHECKING:
     from numpy.typing import NDArray
 
-__all__ = ["JOB_KINDS", "JobInput", "JobOutput", "Progress", "KeptPairs", "PAIRS", "run_job",
+__all__ = ["JOB_KINDS", "JobInput", "JobOutput", "KeptPairs", "PAIRS", "run_job",
            "carry_by_face", "unit_rotations",
            "forget_pairs", "mesh_digest", "prune_cache", "CORNER_INSET"]
 
 JOB_KINDS = ("transfer", "detail", "preview")
 CORNER_INSET = 0.25
-
-Progress = Callable[[float, str], None]
 
 
 def mesh_digest(mesh: MeshData) -> str:
@@ -147,18 +145,17 @@ def _shape(mesh: MeshData, name: str, cache: str | None) -> Shape:
         raise ValueError(f"{name!r}: {error}") from None
 
 
-def _pair(inp: JobInput, settings: Settings, progress: Progress) -> tuple[Pair, str]:
+def _pair(inp: JobInput, settings: Settings) -> tuple[Pair, str]:
     assert inp.target is not None
     key = (mesh_digest(inp.source), mesh_digest(inp.target), settings)
     kept = PAIRS.get(key)
     if kept is not None:
         kept.reuse()   # the report then gives this run's own times and cache use
+        skip(*MATCHING_STAGES)
         return kept, "memory"
-    progress(0.1, "preparing meshes")
     source = _shape(inp.source, inp.names[0], inp.cache_folder)
     target = _shape(inp.target, inp.names[1], inp.cache_folder)
-    progress(0.2, "matching the surfaces")
-    pair = Pair(source, target, settings)
+    pair = Pair(source, target, settings)   # announces the stages of matching
     PAIRS.put(key, pair)
     return pair, "new"
 
@@ -179,33 +176,30 @@ def _landmarks(inp: JobInput) -> tuple[tuple[tuple[int, int], ...], list[str], l
 # --------------------------------------------------------------------------- jobs
 
 
-def _nothing(fraction: float, text: str) -> None:
-    return None
-
-
 @limited_threads()
-def run_job(inp: JobInput, progress: Progress | None = None) -> JobOutput:
+def run_job(inp: JobInput) -> JobOutput:
     """Run one job through the engine, with the worker's BLAS thread rule
-    (:func:`.worker.limited_threads`) in this process too.
+    (:func:`.threads.limited_threads`) in this process too.
+
+    The job announces the engine's stages (``engine/common/progress.py``:
+    reading, matching, carrying or smoothing); they are shown inside a
+    ``showing`` block its caller opens around the job and the writing of its
+    results (the worker, :func:`.runs.run_plan`, :func:`.runs.transfer_pair`).
 
     Raises
     ------
     ValueError
         For bad input (named), or an engine failure on these meshes.
     """
-    report_progress = progress or _nothing
     if inp.kind not in JOB_KINDS:
         raise ValueError(f"unknown job kind {inp.kind!r}; expected one of {', '.join(JOB_KINDS)}")
     if not isinstance(inp.settings, Settings):
         raise ValueError(f"bad settings: expected the engine's Settings, got {type(inp.settings).__name__}")
     started = time.perf_counter()
-    if inp.kind == "preview":
-        out = _preview(inp, report_progress)
-    else:
-        out = _transfer(inp, report_progress)
+    stage(READING)
+    out = _preview(inp) if inp.kind == "preview" else _transfer(inp)
     out.report.setdefault("timings", {})["total"] = round(time.perf_counter() - started, 4)
     out.report.update(prune_cache(inp.cache_folder, inp.cache_limit_bytes))
-    report_progress(1.0, "done")
     return out
 
 
@@ -271,7 +265,7 @@ def carry_by_face(inp: JobInput, pair: Pair, sig: Signal, basis: str,
     return carried.values, {"kind": sig.kind, "domain": "CORNER", "source_error": carried.source_error}
 
 
-def _transfer(inp: JobInput, progress: Progress) -> JobOutput:
+def _transfer(inp: JobInput) -> JobOutput:
     if inp.target is None:
         raise ValueError("a transfer needs a target mesh")
     landmarks, used, skipped = _landmarks(inp)
@@ -280,11 +274,11 @@ def _transfer(inp: JobInput, progress: Progress) -> JobOutput:
     # the basis are passed per call
     keyed = replace(settings, basis="pointwise", detail_strength=1.0, detail_size=0.05,
                     max_influences=0, weight_threshold=0.0, keep_weight_totals=True)
-    pair, held = _pair(inp, keyed, progress)
+    pair, held = _pair(inp, keyed)
     values: dict[str, NDArray[Any]] = {}
     positions = None
     if inp.kind == "detail":
-        progress(0.7, "carrying detail")
+        stage(DETAIL)
         positions = pair.detail(strength=settings.detail_strength, size=settings.detail_size,
                                 original=inp.target.vertices)
         report = pair.report()
@@ -292,7 +286,7 @@ def _transfer(inp: JobInput, progress: Progress) -> JobOutput:
         report["detail"] = {"strength": settings.detail_strength, "size": settings.detail_size,
                             "mean_offset": float(moved.mean()), "max_offset": float(moved.max())}
     else:
-        progress(0.7, f"carrying {len(inp.signals)} signals")
+        stage(CARRYING)
         values, report = _carry_signals(inp, pair, settings.basis)
     report["pair"] = held
     if report.get("mode") == "intrinsic":   # matched by shape: the surfaces' kinds must agree
@@ -303,13 +297,12 @@ def _transfer(inp: JobInput, progress: Progress) -> JobOutput:
     return JobOutput(values, np.asarray(pair.confidence, dtype=np.float64), positions, report)
 
 
-def _preview(inp: JobInput, progress: Progress) -> JobOutput:
+def _preview(inp: JobInput) -> JobOutput:
     if not inp.signals:
         raise ValueError("no signals to preview")
     settings = inp.settings
     if settings.basis == "pointwise":
         raise ValueError("point to point carries every signal as it is: choose a basis to preview")
-    progress(0.1, "preparing the source")
     shape = _shape(inp.source, inp.names[0], inp.cache_folder)
     signals = {}
     for sig in inp.signals:
@@ -319,7 +312,7 @@ def _preview(inp: JobInput, progress: Progress) -> JobOutput:
                if sig.domain == "CORNER" else sig.values)
         checked = check_signal(sig.name, raw, shape.n_original, sig.kind)
         signals[sig.name] = Signal(sig.name, sig.kind, checked, checked.dtype)
-    progress(0.3, "building the basis")
+    stage(SMOOTHING)
     k = settings.k if settings.basis == "laplacian" else settings.K
     preview = approximate_signals(shape, signals, basis=settings.basis, k=k, order=settings.order)
     values: dict[str, NDArray[Any]] = {}

@@ -6,8 +6,10 @@ The three job operators (carry signals, carry detail, preview) share one shape:
   it in this process (:func:`.runs.run_plan`);
 - ``invoke`` (a click in the UI) makes the plan, hands it to the worker
   process and returns ``RUNNING_MODAL``; a timer calls :func:`step_run`, which
-  shows progress and writes the results once the worker is done; Esc calls
-  :func:`cancel_run`, which stops the worker and leaves the scene as it was.
+  shows the engine's stage the worker is in (:func:`show_step`: the sidebar's
+  bar, the window's progress, the status bar) and writes the results once the
+  worker is done; Esc calls :func:`cancel_run`, which stops the worker and
+  leaves the scene as it was.
 
 In module (background) mode ``INVOKE_DEFAULT`` runs ``execute`` and modal
 handlers never run, so :func:`step_run` and :func:`cancel_run` are plain
@@ -26,6 +28,7 @@ import bpy
 from . import bridge, preferences, properties
 from .job import forget_pairs
 from .engine import Cache
+from .engine.common.progress import DONE, STOPPED, Step, Writer
 from .records import UNCERTAIN_NAME
 from .runs import (MODE_WORDS, BackgroundRun, PairRequest, Plan, default_signals, make_plan, message_of,
                    pick_pair, run_plan, selected_pair)
@@ -37,7 +40,8 @@ if TYPE_CHECKING:
 __all__ = ["OVERTONE_OT_transfer_attributes", "OVERTONE_OT_transfer_detail",
            "OVERTONE_OT_preview_carry", "OVERTONE_OT_refresh_signals", "OVERTONE_OT_clear_cache",
            "OVERTONE_OT_select_uncertain",
-           "plan_from_context", "store_report", "store_error", "step_run", "cancel_run",
+           "plan_from_context", "store_report", "store_error", "step_run", "cancel_run", "stage_words",
+           "show_step", "window_progress",
            "runs_modal", "cache_words", "skipped_lines", "match_words", "self_check_words", "PREVIEW_BASIS",
            "register", "unregister"]
 
@@ -211,28 +215,68 @@ def store_error(settings: Any, message: str) -> None:
     settings.report_json = ""
 
 
+def stage_words(step: Step) -> str:
+    """The engine's stage as the sidebar shows it: "Matching the surfaces (2 of 4)", "Done"."""
+    name = step.name[:1].upper() + step.name[1:]
+    return name if step.name in (DONE, STOPPED) else f"{name} ({step.done} of {step.total})"
+
+
+def show_step(settings: Any, step: Step, context: bpy.types.Context | None = None) -> None:
+    """Show the stage a background run is in: the sidebar's bar and its words (the
+    settings the panel draws), the window's progress and the status bar."""
+    settings.progress = step.fraction
+    settings.progress_text = stage_words(step)
+    if context is None:
+        return
+    if context.window_manager is not None:
+        context.window_manager.progress_update(round(100 * step.fraction))
+    workspace = getattr(context, "workspace", None)
+    if workspace is not None:
+        workspace.status_text_set(f"Overtone: {settings.progress_text}, {step.seconds:.0f} s "
+                                  "(Esc cancels)")
+
+
+def window_progress(context: bpy.types.Context) -> Writer | None:
+    """The window's progress for a run in this process, which holds Blender until it ends
+    (Blender shows it by the mouse pointer); None without a window."""
+    wm = context.window_manager
+    if not runs_modal(context) or wm is None:
+        return None
+    wm.progress_begin(0, 100)
+
+    def write(step: Step) -> None:
+        if step.name in (DONE, STOPPED):
+            wm.progress_end()
+        else:
+            wm.progress_update(round(100 * step.fraction))
+
+    return write
+
+
 def _end(settings: Any, context: bpy.types.Context | None) -> None:
     settings.running = False
     settings.progress = 0.0
     settings.progress_text = ""
     if context is not None and context.window_manager is not None:
         context.window_manager.progress_end()
+    workspace = getattr(context, "workspace", None) if context is not None else None
+    if workspace is not None:
+        workspace.status_text_set(None)
 
 
 def step_run(run: BackgroundRun, settings: Any, report: Reporter,
              context: bpy.types.Context | None = None) -> set[str]:
-    """One timer tick of a background run: progress, or the results written.
+    """One timer tick of a background run: the stage the worker is in (:func:`show_step`;
+    "Done" last), or the results written.
 
     Returns the modal return set: ``{'RUNNING_MODAL'}`` while the worker works,
     ``{'FINISHED'}`` once the results are written, ``{'CANCELLED'}`` on failure
     (nothing written).
     """
     status = run.poll()
+    if status.step is not None and status.state in ("running", "done"):
+        show_step(settings, status.step, context)
     if status.state == "running":
-        settings.progress = status.fraction
-        settings.progress_text = status.text
-        if context is not None and context.window_manager is not None:
-            context.window_manager.progress_update(int(100 * status.fraction))
         return {'RUNNING_MODAL'}
     _end(settings, context)
     try:
@@ -285,7 +329,8 @@ class _JobOperator:
     def execute(self, context: bpy.types.Context) -> set[OperatorReturnItems]:
         settings = properties.settings_of(context)
         try:
-            result = run_plan(plan_from_context(context, self.kind))
+            plan = plan_from_context(context, self.kind)
+            result = run_plan(plan, window_progress(context))
         except ValueError as error:
             return self._fail(context, str(error))
         store_report(settings, result)
@@ -305,7 +350,7 @@ class _JobOperator:
             return self._fail(context, str(error))
         settings.running = True
         settings.progress = 0.0
-        settings.progress_text = "starting"
+        settings.progress_text = "Starting"
         wm = context.window_manager
         assert wm is not None  # runs_modal checked it
         wm.progress_begin(0, 100)

@@ -27,13 +27,14 @@ import time
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, replace
 from pathlib import Path
-from typing import TYPE_CHECKING, Any, cast
+from typing import TYPE_CHECKING, Any, TextIO, cast
 
 import bpy
 import numpy as np
 
 from . import bridge, job, preferences
 from .engine import Settings, Signal
+from .engine.common.progress import WRITING, Writer, job_stages, showing, stage
 from .records import (CONFIDENCE_NAME, DETAIL_NAME, UNCERTAIN_NAME, landmark_names, names_for, record,
                       written_on)
 from .worker import Status, load_output, save_input, shared_worker
@@ -692,11 +693,19 @@ def _summary(plan: Plan, report: dict[str, Any]) -> str:
 # --------------------------------------------------------------------------- running
 
 
-def run_plan(plan: Plan) -> dict[str, Any]:
+def _unseen(step: Any) -> None:
+    return None
+
+
+def run_plan(plan: Plan, show: Writer | TextIO | None = None) -> dict[str, Any]:
     """Run a plan in this process (background mode, batch, Blender without a
-    window) and write its results."""
+    window) and write its results; its stages go to ``show`` (a writer of the
+    engine's steps, or a stream for the command line's lines)."""
     started = time.perf_counter()
-    report = finish(plan, job.run_job(plan.inputs))
+    with showing(show or _unseen, job_stages(plan.kind)):
+        out = job.run_job(plan.inputs)
+        stage(WRITING)
+        report = finish(plan, out)
     report.setdefault("timings", {})["wall"] = round(time.perf_counter() - started, 4)
     return report
 
@@ -746,13 +755,13 @@ class BackgroundRun:
 
 
 def transfer_pair(source: bpy.types.Object, target: bpy.types.Object,
-                  request: PairRequest) -> dict[str, Any]:
+                  request: PairRequest, show: Writer | TextIO | None = None) -> dict[str, Any]:
     """Carry the requested signals and, with ``request.detail``, the detail from
     ``source`` to ``target``, in this process.
 
-    Both jobs run before anything is written. Returns the JSON-able report
-    (``written`` maps each result to the name it got; a detail run adds
-    ``detail``).
+    Both jobs run before anything is written; their stages go to ``show`` as
+    one plan (as :func:`run_plan`). Returns the JSON-able report (``written``
+    maps each result to the name it got; a detail run adds ``detail``).
     """
     plans = []
     if request.signals or not request.detail:
@@ -760,8 +769,10 @@ def transfer_pair(source: bpy.types.Object, target: bpy.types.Object,
     if request.detail:
         plans.append(make_plan("detail", source, target, request))
     started = time.perf_counter()
-    outs = [job.run_job(plan.inputs) for plan in plans]
-    reports = [finish(plan, out) for plan, out in zip(plans, outs)]
+    with showing(show or _unseen, job_stages(*(plan.kind for plan in plans))):
+        outs = [job.run_job(plan.inputs) for plan in plans]
+        stage(WRITING)
+        reports = [finish(plan, out) for plan, out in zip(plans, outs)]
     report = reports[0]
     if len(reports) == 2:
         report = {**reports[0], "detail": reports[1].get("detail"),

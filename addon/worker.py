@@ -8,7 +8,8 @@ process; nothing is ever written to Blender data by it.
 
 The file protocol (one folder per job)
     ``input.npz`` then ``input.json``    the job (:func:`save_input`)
-    ``progress.json``                    ``{"fraction", "text"}`` while it runs
+    ``progress.json``                    the stage it is in while it runs: ``{"stage", "done",
+                                         "total", "seconds", "fraction"}`` (:func:`step_record`)
     ``output.npz`` then ``output.json``  the result (:func:`save_output`)
     ``error.json``                       ``{"error"}`` when it failed
 Every file is written whole (``engine/common/atomic.py``); the ``.json`` of a
@@ -46,10 +47,11 @@ import numpy as np  # noqa: E402  (after the package set-up above)
 
 from .engine import MeshData, Settings, Signal  # noqa: E402
 from .engine.common.atomic import atomic_write  # noqa: E402
+from .engine.common.progress import DONE, WRITING, Step, job_stages, showing, stage  # noqa: E402
 from .job import JobInput, JobOutput, run_job  # noqa: E402
 from .threads import thread_limits  # noqa: E402
 
-__all__ = ["Status", "Worker", "child_environment", "python_executable", "shared_worker", "stop_shared_worker",
+__all__ = ["Status", "Worker", "step_record", "step_of", "child_environment", "python_executable", "shared_worker", "stop_shared_worker",
            "save_input", "load_input", "save_output", "load_output"]
 
 
@@ -71,11 +73,27 @@ def child_environment() -> dict[str, str]:
 
 @dataclass(frozen=True)
 class Status:
-    """Where a job stands: state is "running", "done", "failed" or "died"."""
+    """Where a job stands: state is "running", "done", "failed" or "died"; ``step``, the
+    engine's stage it last entered (None before the first), and ``done`` once done."""
 
     state: str
     fraction: float = 0.0
     text: str = ""
+    step: Step | None = None
+
+
+def step_record(step: Step) -> dict[str, Any]:
+    """A stage as the progress file holds it."""
+    return {"stage": step.name, "done": step.done, "total": step.total, "seconds": round(step.seconds, 3),
+            "fraction": step.fraction}
+
+
+def step_of(record: Any) -> Step | None:
+    """The stage a progress file holds (None for none, or one not written by :func:`step_record`)."""
+    try:
+        return Step(str(record["stage"]), int(record["done"]), int(record["total"]), float(record["seconds"]))
+    except (KeyError, TypeError, ValueError):
+        return None
 
 
 def _read_json(path: Path) -> Any:
@@ -123,8 +141,10 @@ class Worker:
         folder = self.folder
         if folder is None:
             return Status("failed", 0.0, "no job submitted")
+        step = step_of(_read_json(folder / "progress.json"))
         if (folder / "output.json").exists():
-            return Status("done", 1.0, "done")
+            last = step or Step(DONE, 1, 1, 0.0)
+            return Status("done", 1.0, DONE, Step(DONE, last.total, last.total, last.seconds))
         error = _read_json(folder / "error.json")
         if error is not None:
             return Status("failed", 1.0, str(error.get("error", "unknown error")))
@@ -136,8 +156,9 @@ class Worker:
                 except OSError:
                     pass
             return Status("died", 1.0, f"the worker process stopped ({stderr.strip() or 'no message'})")
-        progress = _read_json(folder / "progress.json") or {}
-        return Status("running", float(progress.get("fraction", 0.0)), str(progress.get("text", "starting")))
+        if step is None:
+            return Status("running", 0.0, "starting")
+        return Status("running", step.fraction, step.name, step)
 
     def wait(self, timeout: float = 600.0, interval: float = 0.05) -> Status:
         """Poll until the job is no longer running (for tests and scripts)."""
@@ -292,13 +313,18 @@ def load_output(folder: Path) -> JobOutput:
 
 
 def serve_folder(folder: Path) -> None:
-    """Run the job in ``folder``: its output, or ``error.json`` saying why not."""
+    """Run the job in ``folder``: its output, or ``error.json`` saying why not. The stages
+    it passes (``engine/common/progress.py``) go to ``progress.json`` as they come."""
 
-    def progress(fraction: float, text: str) -> None:
-        _write_json(folder / "progress.json", {"fraction": fraction, "text": text})
+    def progress(step: Step) -> None:
+        _write_json(folder / "progress.json", step_record(step))
 
     try:
-        save_output(folder, run_job(load_input(folder), progress))
+        inp = load_input(folder)
+        with showing(progress, job_stages(inp.kind)):
+            out = run_job(inp)
+            stage(WRITING)
+            save_output(folder, out)
     except ValueError as error:
         _write_json(folder / "error.json", {"error": str(error)})
     except Exception as error:  # anything else: say what, never leave the caller waiting

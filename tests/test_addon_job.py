@@ -35,6 +35,7 @@ def _package():
 
 
 job, worker, engine = _package()
+progress = importlib.import_module(PACKAGE + ".engine.common.progress")
 
 
 def _mesh(nx, ny):
@@ -170,7 +171,8 @@ def test_the_worker_serves_a_folder_and_says_why_it_failed(inputs, tmp_path):
     worker.serve_folder(done)
     out = worker.load_output(done)
     np.testing.assert_allclose(out.values["tint"], _ramp(inputs.target.vertices), atol=1e-6)
-    assert json.loads((done / "progress.json").read_text())["fraction"] == 1.0
+    last = json.loads((done / "progress.json").read_text())
+    assert last["stage"] == progress.DONE and last["fraction"] == 1.0 and last["done"] == last["total"]
     assert not (done / "error.json").exists()
     worker.save_input(failed, replace(inputs, signals=()))
     worker.serve_folder(failed)
@@ -196,3 +198,53 @@ def test_detail_leaves_vertices_outside_the_surface_where_they_were():
     np.testing.assert_array_equal(out.positions[-1], loose[0])
     assert np.isfinite(out.positions).all()
     assert np.abs(out.positions[:-1, 2]).max() > 0.005  # the surface did take the bumps (amplitude 0.02)
+
+
+def test_the_worker_sends_the_engines_stages_in_the_command_lines_order(inputs, tmp_path, monkeypatch):
+    """What the worker writes to its progress file, one record per stage, against the stage
+    lines of ``python -m engine transfer`` on the same two meshes (a pipe: plain lines)."""
+    import subprocess
+    import sys
+
+    from engine.intake.files import write_ply
+
+    from .test_progress import stage_lines
+
+    written = []
+    keep = worker._write_json
+
+    def recording(path, data):
+        if path.name == "progress.json":
+            written.append(dict(data))
+        keep(path, data)
+
+    monkeypatch.setattr(worker, "_write_json", recording)
+    worker.save_input(tmp_path / "first", inputs)
+    worker.serve_folder(tmp_path / "first")
+    assert (tmp_path / "first" / "output.json").exists()
+    names = [r["stage"] for r in written]
+    fractions = [r["fraction"] for r in written]
+    assert names == [progress.READING, progress.MATCHING, progress.CARRYING, progress.WRITING, progress.DONE]
+    assert all(b > a for a, b in zip(fractions, fractions[1:])) and fractions[-1] == 1.0
+    assert [(r["done"], r["total"]) for r in written[1:]] == [(2, 4), (3, 4), (4, 4), (4, 4)]
+    assert all(b["seconds"] >= a["seconds"] >= 0 for a, b in zip(written, written[1:]))
+    assert worker.step_of(written[1]) == progress.Step(progress.MATCHING, 2, 4, written[1]["seconds"])
+    # the command line, same meshes and job
+    src, tgt = inputs.source, inputs.target
+    write_ply(tmp_path / "src.ply", src.vertices, corners=src.corners, sizes=src.sizes,
+              properties={"dirt": src.vertices[:, 0].astype(np.float32)})
+    write_ply(tmp_path / "tgt.ply", tgt.vertices, corners=tgt.corners, sizes=tgt.sizes)
+    cli = subprocess.run([sys.executable, "-m", "engine", "transfer", "src.ply", "tgt.ply", "-o", "out.ply",
+                          "--match", "aligned"], cwd=tmp_path, capture_output=True, text=True,
+                         env={"PYTHONPATH": str(ROOT), "PATH": "/usr/bin:/bin", "OPENBLAS_NUM_THREADS": "1"})
+    assert cli.returncode == 0, cli.stderr
+    assert [name for _, _, name in stage_lines(cli.stdout)] == names[:-1]
+    # again: the match is kept in the worker's memory, so no matching stage, and the count says so
+    written.clear()
+    worker.save_input(tmp_path / "again", inputs)
+    worker.serve_folder(tmp_path / "again")
+    assert [(r["stage"], r["done"], r["total"]) for r in written] == [
+        (progress.READING, 1, 6), (progress.CARRYING, 2, 3), (progress.WRITING, 3, 3), (progress.DONE, 3, 3)]
+    status = worker.Worker()
+    status.folder = tmp_path / "again"
+    assert status.poll() == worker.Status("done", 1.0, progress.DONE, worker.step_of(written[-1]))

@@ -168,31 +168,6 @@ def test_missing_simplifier_is_a_clear_error(monkeypatch):
         standin.simplify_mesh(place(v), f, 100)
 
 
-def test_progress_shows_stages_as_lines_or_a_bar():
-    import io
-
-    from engine.common.progress import showing, stage
-
-    stage("nobody listens")                      # outside a block: shown nowhere, no error
-    plain = io.StringIO()
-    with showing(plain, total=2):
-        stage("reading")
-        stage("matching")
-    lines = plain.getvalue().splitlines()
-    assert [ln.split(" (")[0] for ln in lines] == ["stage 1/2: reading", "stage 2/2: matching"]
-
-    class Terminal(io.StringIO):
-        def isatty(self):
-            return True
-
-    tty = Terminal()
-    with showing(tty, total=2):
-        stage("reading")
-        stage("matching")
-    text = tty.getvalue()
-    assert "\n" not in text and text.count("\r") == 3 and "[##########----------] 2/2 matching" in text
-
-
 def test_nearby_locator_agrees_with_the_whole_mesh_search():
     # the closest points found on the indexed neighbourhood are those of the
     # exact search over every triangle (closest_point.SurfaceLocator)

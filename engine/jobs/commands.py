@@ -20,7 +20,7 @@ from numpy.typing import NDArray
 
 from ..common.atomic import atomic_write
 from ..spectra.approximation import SPECTRAL_BASES
-from ..common.progress import showing
+from ..common.progress import job_stages, showing
 
 if TYPE_CHECKING:
     from ..intake.files import MeshData
@@ -212,7 +212,7 @@ def run_transfer(args: argparse.Namespace) -> int:
 
     options = JobOptions(attributes=_split_names(args.attributes), basis=args.basis, match=args.match,
                          k=args.k, order=args.order)
-    with showing(sys.stdout, total=4):
+    with showing(sys.stdout, job_stages("transfer")):
         report = run_transfer_job(_job_files(args), options)
     _print_pair_report(report)
     basis = report["settings"]["basis"]
@@ -240,7 +240,7 @@ def run_detail(args: argparse.Namespace) -> int:
     from .file_jobs import JobOptions, run_detail_job
 
     options = JobOptions(match=args.match, strength=args.strength, size=args.size)
-    with showing(sys.stdout, total=4):
+    with showing(sys.stdout, job_stages("detail")):
         report = run_detail_job(_job_files(args), options)
     _print_pair_report(report)
     d = report["detail"]

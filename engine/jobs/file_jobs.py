@@ -29,7 +29,7 @@ from numpy.typing import NDArray
 
 from ..common.atomic import atomic_writes, remove_leftovers
 from ..common.cache import Cache
-from ..common.progress import stage
+from ..common.progress import CARRYING, DETAIL, READING, WRITING, stage
 from ..intake.files import MeshData, ply_chunks, read_mesh
 from ..spectra.shape import Shape
 from .pair import Pair, Settings, load_landmarks
@@ -178,7 +178,7 @@ def _shape_in_frame(path: PathLike, data: MeshData, cache: Cache | None,
 
 def _open_pair(files: JobFiles) -> tuple[MeshData, Shape, MeshData, Shape, tuple[NDArray[Any], float]]:
     check_paths(files.inputs(), files.outputs())
-    stage("reading the meshes")
+    stage(READING)
     src_data, tgt_data = read_mesh(files.source), read_mesh(files.target)
     cache = Cache(files.cache) if files.cache else None
     frame = unit_frame(surface_points(src_data), surface_points(tgt_data))
@@ -207,7 +207,7 @@ def _finish(files: JobFiles, mesh: tuple[NDArray[Any], MeshData, dict[str, Any]]
     report["files"] = {"source": os.fspath(files.source), "target": os.fspath(files.target),
                        "output": os.fspath(files.output)}
     report["timings"]["total"] = round(time.perf_counter() - started, 4)
-    stage("writing the result")
+    stage(WRITING)
     chunks = ply_chunks(vertices, corners=data.corners, sizes=data.sizes, properties=props)
     text = report_text(report) if files.report else ""
     with atomic_writes() as staging:
@@ -239,9 +239,8 @@ def run_transfer_job(files: JobFiles, options: JobOptions = JobOptions()) -> dic
         raise ValueError("the source has a property named 'confidence', which the output reserves")
     settings = _settings(files, source, target, basis=options.basis, match=options.match, k=options.k,
                          order=options.order)
-    stage("matching")
-    pair = Pair(source, target, settings)
-    stage("carrying")
+    pair = Pair(source, target, settings)   # announces the stages of matching
+    stage(CARRYING)
     results = pair.carry({name: (sig.values, sig.kind) for name, sig in signals.items()})
     props = dict(tgt_data.properties)
     for name, sig in signals.items():
@@ -259,9 +258,8 @@ def run_detail_job(files: JobFiles, options: JobOptions = JobOptions()) -> dict[
     _, source, tgt_data, target, (centre, scale) = _open_pair(files)
     settings = _settings(files, source, target, match=options.match, detail_strength=options.strength,
                          detail_size=options.size)
-    stage("matching")
     pair = Pair(source, target, settings)
-    stage("carrying the detail")
+    stage(DETAIL)
     with np.errstate(over="ignore"):
         unit_original = np.clip((tgt_data.vertices - centre) / scale, -_FAR, _FAR)
     unit_positions = pair.detail(original=unit_original)

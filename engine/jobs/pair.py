@@ -30,6 +30,7 @@ from ..matching.correspondence import MATCHES, Correspondence, correspond
 from ..carrying.detail import apply_detail, check_strength, place_on_original, smooth_base, split_detail
 from ..carrying.large_detail import lifted_layer, surface_area
 from ..common.cache import geometry_key
+from ..common.progress import MATCHING_STAGES, skip
 from ..matching.standin import needs_standin
 from ..spectra.shape import Shape
 from ..carrying.signals import check_signal
@@ -152,6 +153,7 @@ class Pair:
             meta = _valid_map(stored, self.source, self.target) if stored is not None else None
             if stored is not None and meta is not None:
                 self.cache_hits["correspondence"] = "disk"
+                skip(*MATCHING_STAGES)
                 return Correspondence(self.source, self.target, meta["mode"], meta["reason"],
                                       stored["triangle"], stored["barycentric"],
                                       stored["confidence"], stored["fmap"], meta["stats"])

@@ -47,6 +47,7 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 from scipy.spatial import cKDTree
 
+from ..common.progress import MATCHING, REFINING, SIMPLIFYING, STANDIN_STAGES, skip, stage
 from ..spectra.shape import Shape
 from .aligned import match_aligned
 from .closest_point import SurfaceLocator, barycentric_matrix
@@ -55,7 +56,7 @@ from .embedding import ProductSettings
 from .intrinsic import match_intrinsic
 from .modes import MatchOptions, ModeResult
 from .pieces import correspond_in_pieces
-from .standin import STANDIN_ABOVE, StandIn, lift_map, make_standin, standin_landmarks
+from .standin import STANDIN_ABOVE, StandIn, lift_map, make_standin, needs_standin, standin_landmarks
 
 __all__ = ["Correspondence", "correspond", "correspond_surface", "MatchOptions", "MATCHES"]
 
@@ -209,6 +210,8 @@ def correspond(source: Shape, target: Shape, *, match: str = "auto", landmarks: 
     if match not in MATCHES:
         raise ValueError(f"unknown match {match!r}; expected one of {', '.join(MATCHES)}")
     opts = MatchOptions() if options is None else options
+    if not (needs_standin(source) or needs_standin(target)):
+        skip(*STANDIN_STAGES)   # progress (engine/common/progress.py): matched as they are
     if pieces and (source.prepared.n_components > 1 or target.prepared.n_components > 1):
         return correspond_in_pieces(source, target, lambda s, t, lm: _checked(s, t, match, lm, refine, opts),
                                     landmarks=landmarks, match=match)
@@ -236,9 +239,14 @@ def correspond_surface(source: Shape, target: Shape, match: str, landmarks: Arra
     with the round-trip confidence only (no checks, no self-check, no pieces)."""
     lm = _check_landmarks(landmarks, source, target)
     t0 = time.perf_counter()
+    if needs_standin(source) or needs_standin(target):
+        stage(SIMPLIFYING)
     src, tgt = make_standin(source), make_standin(target)
     if src.simplified or tgt.simplified:
         return _through_standins(src, tgt, match, lm, refine, opts, time.perf_counter() - t0)
+    stage(MATCHING)
+    if src.missing or tgt.missing:
+        skip(REFINING)
     slow = (f"; matched at full resolution, much more slowly: a mesh over {STANDIN_ABOVE} vertices is "
             "matched through a simplified copy, which needs the 'fast-simplification' package (not installed)"
             if src.missing or tgt.missing else "")
@@ -275,6 +283,7 @@ def _through_standins(source: StandIn, target: StandIn, match: str, landmarks: t
     coarse = _checked(source.coarse, target.coarse, match, standin_landmarks(landmarks, source, target),
                       refine, options)
     t0 = time.perf_counter()
+    stage(REFINING)
     lifted = lift_map(source, target, coarse.points(), coarse.confidence, coarse.mode == "aligned")
     stats = dict(coarse.stats)
     stats["timings"] = {"simplify": round(simplify_time, 4), **stats.get("timings", {}),

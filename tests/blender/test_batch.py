@@ -198,7 +198,7 @@ def test_batch_carries_and_saves(batch, scene, tmp_path):
 
 
 def test_save_logic_once_a_pair_succeeds(batch, pair, tmp_path, monkeypatch):
-    monkeypatch.setattr(batch, "transfer_pair", lambda s, t, r: {"written": {"AO": "AO"}})
+    monkeypatch.setattr(batch, "transfer_pair", lambda s, t, r, show=None: {"written": {"AO": "AO"}})
     path = job_file(tmp_path, {"pairs": [{"source": "Scan", "target": "LOD1"}]})
     out = tmp_path / "saved.blend"
     assert batch.main([str(path), "--save-as", str(out), "--report", str(tmp_path / "r.json")]) == 0
