@@ -232,8 +232,8 @@ def show_step(settings: Any, step: Step, context: bpy.types.Context | None = Non
         context.window_manager.progress_update(round(100 * step.fraction))
     workspace = getattr(context, "workspace", None)
     if workspace is not None:
-        workspace.status_text_set(f"Overtone: {settings.progress_text}, {step.seconds:.0f} s "
-                                  "(Esc cancels)")
+        cancels = "" if step.name in (DONE, STOPPED) else " (Esc cancels)"
+        workspace.status_text_set(f"Overtone: {settings.progress_text}, {step.seconds:.0f} s{cancels}")
 
 
 def window_progress(context: bpy.types.Context) -> Writer | None:

@@ -14,7 +14,8 @@ the tests call those methods themselves:
   methods without being a Blender instance;
 - :class:`Context` is the real context with some members replaced (region,
   window manager, screen);
-- :class:`WindowManager` records progress and timer calls.
+- :class:`WindowManager` records progress and timer calls;
+- :class:`Workspace` records the status bar's text.
 """
 
 import inspect
@@ -112,6 +113,17 @@ class WindowManager:
     def modal_handler_add(self, operator):
         self.handlers.append(operator)
         return True
+
+
+class Workspace:
+    """Records what the status bar is asked to show (None: Blender's own text again)."""
+
+    def __init__(self):
+        self.status = []
+
+    def status_text_set(self, text):
+        assert text is None or isinstance(text, str)
+        self.status.append(text)
 
 
 class Event:

@@ -152,7 +152,7 @@ def test_a_failing_pair_is_reported_and_the_others_kept(batch, pair, tmp_path, c
 
 
 @pytest.mark.every_blender
-def test_batch_carries_and_saves(batch, scene, tmp_path):
+def test_batch_carries_and_saves(batch, scene, tmp_path, capsys):
     """Generated creature pairs in a saved .blend; the job saves a copy; reopened, the
     results equal the engine's own Pair on the same arrays."""
     from .conftest import engine_module, make_mesh
@@ -168,7 +168,19 @@ def test_batch_carries_and_saves(batch, scene, tmp_path):
                                "pairs": [{"source": "Scan", "target": "LOD1", "signals": "all",
                                           "detail": True}],
                                "report": "out/report.json", "save": {"as": "out/result.blend"}})
+    capsys.readouterr()
     assert batch.main([str(path)]) == 0
+    # the pair, then the engine's stages as the command line shows them in a pipe: one plain
+    # line each, one plan for the colours and the detail (the match made once)
+    progress = engine_module("common.progress")
+    out = [line for line in capsys.readouterr().out.splitlines() if not line.startswith("Info: ")]  # Blender's
+    assert out[0] == "overtone_batch: pair 1 of 1: Scan -> LOD1"
+    lines = [re.fullmatch(r"stage (\d)/(\d): (.+) \(\d+\.\d s\)", line) for line in out[1:]]
+    assert all(lines), out
+    expected = [progress.READING, progress.MATCHING, progress.CARRYING, progress.DETAIL, progress.WRITING]
+    assert [m[3] for m in lines] == expected
+    assert [(int(m[1]), int(m[2])) for m in lines] == [(1, 7), (2, 5), (3, 5), (4, 5), (5, 5)]
+    assert len(progress.job_stages("transfer", "detail")) == 7
     report = json.loads((tmp_path / "out" / "report.json").read_text())
     entry = report["pairs"][0]
     assert entry["status"] == "done" and report["saved"] == str(tmp_path / "out" / "result.blend")

@@ -11,15 +11,20 @@ the result.
 """
 
 import importlib
+import re
+import subprocess
 import time
+
+from pathlib import Path
 
 import bpy
 import numpy as np
 import pytest
 
-from .conftest import MODULE
-from .standins import Context, Event, Screen, StandIn, WindowManager
+from .conftest import MODULE, engine_module
+from .standins import Context, Event, Screen, StandIn, WindowManager, Workspace
 from .test_operators import _scene_state, painted_pair, read
+from .test_panels import draw_all
 
 
 # every panel draws, and the click path runs, on each Blender the manifest claims
@@ -40,7 +45,7 @@ def bridge(overtone):
 def ui_context(ops, monkeypatch):
     """A context as in the UI: the modal branch is taken."""
     monkeypatch.setattr(ops, "runs_modal", lambda context: True)
-    return Context(window_manager=WindowManager(), screen=Screen())
+    return Context(window_manager=WindowManager(), screen=Screen(), workspace=Workspace())
 
 
 def tick_until_done(cls, op, context, limit=300.0):
@@ -77,7 +82,7 @@ def test_click_progress_and_finish(ops, bridge, scene, ui_context):
     assert cls.invoke(op, ui_context, Event('LEFTMOUSE')) == {'RUNNING_MODAL'}
     assert wm.handlers == [op] and len(wm.timers) == 1 and wm.calls[0] == ("begin", 0, 100)
     settings = scene.overtone
-    assert settings.running and settings.progress_text == "starting"
+    assert settings.running and settings.progress_text == "Starting"
     assert _scene_state() == before  # nothing written while the worker works
     # a second click while running is refused without disturbing the run
     other = StandIn(cls)
@@ -157,3 +162,94 @@ def select_only(obj):
     for other in bpy.context.scene.objects:
         other.select_set(other == obj)
     bpy.context.view_layer.objects.active = obj
+
+
+WORDS = re.compile(r"^(.+) \((\d+) of (\d+)\)$")
+CLI_LINE = re.compile(r"^stage (\d+)/(\d+): (.+) \(\d+\.\d s\)$")
+
+
+def stage_of(text):
+    """(engine stage name, number, total) from what the sidebar's bar says, e.g.
+    "Matching the surfaces (2 of 4)"."""
+    found = WORDS.match(text)
+    assert found, text
+    return found[1][:1].lower() + found[1][1:], int(found[2]), int(found[3])
+
+
+def test_a_click_shows_the_engines_stages_in_the_command_lines_order(overtone, ops, scene, ui_context, tmp_path):
+    progress = engine_module("common.progress")
+    plan = progress.job_stages("transfer")
+    painted_pair(scene, rings=(70, 60), segments=(36, 40))
+    cls = ops.OVERTONE_OT_transfer_attributes
+    op = StandIn(cls)
+    assert cls.invoke(op, ui_context, Event('LEFTMOUSE')) == {'RUNNING_MODAL'}
+    inputs = op._run.plan.inputs
+    settings, shown, panel = scene.overtone, [], None
+    started = time.perf_counter()
+    while (result := cls.modal(op, ui_context, Event('TIMER'))) == {'RUNNING_MODAL'}:
+        assert time.perf_counter() - started < 300, "the worker did not finish"
+        if settings.progress_text != "Starting":
+            shown.append((stage_of(settings.progress_text), settings.progress))
+            if panel is None:   # the sidebar drawn while the worker works
+                panel = [b.get("text") for f, b in draw_all()["OVERTONE_PT_main"].log
+                         if f == "prop" and b["property"] == "progress"], settings.progress_text
+        time.sleep(0.005)
+    assert result == {'FINISHED'} and op.reports[-1][0] == {'INFO'}
+    # the bar names the engine's stages, in the plan's order, each once, its share growing
+    names = list(dict.fromkeys(name for (name, _, _), _ in shown))
+    assert progress.MATCHING in names and names == sorted(names, key=plan.index)
+    fractions = [f for _, f in shown]
+    assert all(b >= a for a, b in zip(fractions, fractions[1:]))
+    assert all((b > a) == (s != t) for (s, a), (t, b) in zip(shown, shown[1:]))
+    assert all(f == pytest.approx((number - 1) / total) for (_, number, total), f in shown)
+    drawn, words = panel
+    assert drawn == [words] and stage_of(words)[0] in plan
+    # the window's progress follows, ends at 100, then stops; the status bar says done, then is given back
+    wm = ui_context.window_manager
+    updates = [c[1] for c in wm.calls if c[0] == "update"]
+    assert updates == sorted(updates) and updates[-1] == 100 and wm.calls[-1] == ("end",)
+    status = ui_context.workspace.status
+    assert status[-1] is None and status[-2].startswith("Overtone: Done, ")
+    assert any(text and text.startswith("Overtone: Matching the surfaces (") for text in status)
+    # the command line on the same two meshes (the installed extension's engine, a pipe: plain lines)
+    files = engine_module("intake.files")
+    for role, mesh in (("source", inputs.source), ("target", inputs.target)):
+        point = next(sig for sig in inputs.signals if sig.domain == "POINT")
+        extra = {"color" if point.values.ndim == 2 else point.name: point.values} if role == "source" else None
+        files.write_ply(tmp_path / f"{role}.ply", mesh.vertices, corners=mesh.corners, sizes=mesh.sizes,
+                        properties=extra)
+    worker = importlib.import_module(MODULE + ".worker")
+    cli = subprocess.run([worker.python_executable(), "-m", "engine", "transfer", str(tmp_path / "source.ply"),
+                          str(tmp_path / "target.ply"), "-o", str(tmp_path / "out.ply")],
+                         cwd=Path(overtone.__file__).parent, env=worker.child_environment(),
+                         capture_output=True, text=True)
+    assert cli.returncode == 0, cli.stderr
+    lines = [CLI_LINE.match(line) for line in cli.stdout.splitlines() if line.startswith("stage ")]
+    assert all(lines), cli.stdout
+    on_the_command_line = [m[3] for m in lines]
+    assert on_the_command_line == [progress.READING, progress.MATCHING, progress.CARRYING, progress.WRITING]
+    assert names == [n for n in on_the_command_line if n in names]   # the same stages, the same order
+    # stage numbers past the first as the command line counts them (the first is counted before
+    # the job knows the meshes' sizes)
+    assert all((number, total) == (on_the_command_line.index(name) + 1, len(on_the_command_line))
+               for (name, number, total), _ in shown if name != progress.READING)
+
+
+def test_a_run_held_in_blenders_process_counts_the_stages_in_the_window(ops, scene, ui_context):
+    # execute (a redo, a script with a window) holds Blender until the run ends: the
+    # window's progress counts the same stages (Blender shows it by the mouse pointer)
+    importlib.import_module(MODULE + ".job").forget_pairs()   # no match kept from another test
+    painted_pair(scene)
+    cls = ops.OVERTONE_OT_transfer_attributes
+    op = StandIn(cls)
+    assert cls.execute(op, ui_context) == {'FINISHED'} and op.reports[-1][0] == {'INFO'}
+    calls = ui_context.window_manager.calls
+    assert calls[0] == ("begin", 0, 100) and calls[-1] == ("end",)
+    # reading (the first of 6 planned), then matching, carrying, writing of the 4 these meshes need
+    assert calls[1:-1] == [("update", 0), ("update", 25), ("update", 50), ("update", 75)]
+    # again: the match is kept in memory, no matching stage
+    ui_context.window_manager.calls.clear()
+    settings = scene.overtone
+    settings.replace_existing = True
+    assert cls.execute(op, ui_context) == {'FINISHED'}
+    assert calls[1:-1] == [("update", 0), ("update", 33), ("update", 67)]

@@ -176,10 +176,13 @@ def _op_class(idname):
 def test_while_running_the_buttons_wait_and_progress_shows(ui, scene):
     painted_pair(scene)
     settings = scene.overtone
-    settings.running, settings.progress, settings.progress_text = True, 0.4, "matching the surfaces"
+    progress = engine_module("common.progress")
+    settings.running = True   # the stage a run is in, as the operators show it
+    importlib.import_module(MODULE + ".operators").show_step(settings, progress.Step(progress.MATCHING, 2, 4, 1.0))
     main = draw_all()["OVERTONE_PT_main"]
-    assert ("progress", "matching the surfaces") in [(b["property"], b.get("text"))
-                                                   for f, b in main.log if f == "prop"]
+    assert ("progress", "Matching the surfaces (2 of 4)") in [(b["property"], b.get("text"))
+                                                            for f, b in main.log if f == "prop"]
+    assert settings.progress == 0.25
     assert "Esc cancels" in main.texts()
     # the run buttons are drawn disabled (a second run is refused anyway)
     assert main.log.count(("set", {"enabled": False})) == 2
