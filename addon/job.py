@@ -25,7 +25,9 @@ import numpy as np
 from .engine import (Cache, FaceHits, MeshData, Pair, Settings, Shape, Signal, approximate_signals,
                      carry_charted, carry_faces, check_signal, faces_under_centres, geometry_key,
                      vertex_average, weighted_centre_vertex)
-from .engine.common.progress import CARRYING, DETAIL, MATCHING_STAGES, READING, SMOOTHING, skip, stage
+from .engine.common.progress import (CARRYING, DETAIL, MATCHING_STAGES, READING, SMOOTHING, STANDIN_STAGES, skip,
+                                     stage)
+from .engine.matching.standin import STANDIN_ABOVE
 from .threads import limited_threads
 
 if TYPE_CHECKING:
@@ -149,9 +151,15 @@ def _pair(inp: JobInput, settings: Settings) -> tuple[Pair, str]:
     assert inp.target is not None
     key = (mesh_digest(inp.source), mesh_digest(inp.target), settings)
     kept = PAIRS.get(key)
+    # the stages this run passes are known before the first is shown: no matching for a kept
+    # pair, no simplified copies for meshes small enough (cleaning only removes vertices)
+    if kept is not None:
+        skip(*MATCHING_STAGES)
+    elif max(len(inp.source.vertices), len(inp.target.vertices)) <= STANDIN_ABOVE:
+        skip(*STANDIN_STAGES)
+    stage(READING)
     if kept is not None:
         kept.reuse()   # the report then gives this run's own times and cache use
-        skip(*MATCHING_STAGES)
         return kept, "memory"
     source = _shape(inp.source, inp.names[0], inp.cache_folder)
     target = _shape(inp.target, inp.names[1], inp.cache_folder)
@@ -182,7 +190,8 @@ def run_job(inp: JobInput) -> JobOutput:
     (:func:`.threads.limited_threads`) in this process too.
 
     The job announces the engine's stages (``engine/common/progress.py``:
-    reading, matching, carrying or smoothing); they are shown inside a
+    reading, matching, carrying or smoothing), the ones it will not pass
+    skipped before the first; they are shown inside a
     ``showing`` block its caller opens around the job and the writing of its
     results (the worker, :func:`.runs.run_plan`, :func:`.runs.transfer_pair`).
 
@@ -196,7 +205,6 @@ def run_job(inp: JobInput) -> JobOutput:
     if not isinstance(inp.settings, Settings):
         raise ValueError(f"bad settings: expected the engine's Settings, got {type(inp.settings).__name__}")
     started = time.perf_counter()
-    stage(READING)
     out = _preview(inp) if inp.kind == "preview" else _transfer(inp)
     out.report.setdefault("timings", {})["total"] = round(time.perf_counter() - started, 4)
     out.report.update(prune_cache(inp.cache_folder, inp.cache_limit_bytes))
@@ -303,6 +311,7 @@ def _preview(inp: JobInput) -> JobOutput:
     settings = inp.settings
     if settings.basis == "pointwise":
         raise ValueError("point to point carries every signal as it is: choose a basis to preview")
+    stage(READING)
     shape = _shape(inp.source, inp.names[0], inp.cache_folder)
     signals = {}
     for sig in inp.signals:

@@ -226,7 +226,8 @@ def test_the_worker_sends_the_engines_stages_in_the_command_lines_order(inputs, 
     fractions = [r["fraction"] for r in written]
     assert names == [progress.READING, progress.MATCHING, progress.CARRYING, progress.WRITING, progress.DONE]
     assert all(b > a for a, b in zip(fractions, fractions[1:])) and fractions[-1] == 1.0
-    assert [(r["done"], r["total"]) for r in written[1:]] == [(2, 4), (3, 4), (4, 4), (4, 4)]
+    # the job knows the meshes before its first stage: no simplified copies for meshes this small
+    assert [(r["done"], r["total"]) for r in written] == [(1, 4), (2, 4), (3, 4), (4, 4), (4, 4)]
     assert all(b["seconds"] >= a["seconds"] >= 0 for a, b in zip(written, written[1:]))
     assert worker.step_of(written[1]) == progress.Step(progress.MATCHING, 2, 4, written[1]["seconds"])
     # the command line, same meshes and job
@@ -244,7 +245,24 @@ def test_the_worker_sends_the_engines_stages_in_the_command_lines_order(inputs, 
     worker.save_input(tmp_path / "again", inputs)
     worker.serve_folder(tmp_path / "again")
     assert [(r["stage"], r["done"], r["total"]) for r in written] == [
-        (progress.READING, 1, 6), (progress.CARRYING, 2, 3), (progress.WRITING, 3, 3), (progress.DONE, 3, 3)]
+        (progress.READING, 1, 3), (progress.CARRYING, 2, 3), (progress.WRITING, 3, 3), (progress.DONE, 3, 3)]
     status = worker.Worker()
     status.folder = tmp_path / "again"
     assert status.poll() == worker.Status("done", 1.0, progress.DONE, worker.step_of(written[-1]))
+
+
+def test_detail_and_preview_jobs_pass_their_own_stages(inputs):
+    steps = []
+    job.forget_pairs()
+    detail = replace(inputs, kind="detail", signals=())
+    with progress.showing(steps.append, progress.job_stages("detail")):
+        job.run_job(detail)
+    assert [(s.name, s.done, s.total) for s in steps] == [
+        (progress.READING, 1, 4), (progress.MATCHING, 2, 4), (progress.DETAIL, 3, 4), (progress.DONE, 4, 4)]
+    steps.clear()
+    preview = replace(inputs, kind="preview", target=None, signals=inputs.signals[:1],
+                      settings=engine.Settings(basis="laplacian", k=8))
+    with progress.showing(steps.append, progress.job_stages("preview")):
+        job.run_job(preview)
+    assert [(s.name, s.done, s.total) for s in steps] == [
+        (progress.READING, 1, 3), (progress.SMOOTHING, 2, 3), (progress.DONE, 3, 3)]

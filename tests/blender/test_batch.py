@@ -179,8 +179,9 @@ def test_batch_carries_and_saves(batch, scene, tmp_path, capsys):
     assert all(lines), out
     expected = [progress.READING, progress.MATCHING, progress.CARRYING, progress.DETAIL, progress.WRITING]
     assert [m[3] for m in lines] == expected
-    assert [(int(m[1]), int(m[2])) for m in lines] == [(1, 7), (2, 5), (3, 5), (4, 5), (5, 5)]
+    # 5 of the 7 stages of the plan: meshes this small are matched without simplified copies
     assert len(progress.job_stages("transfer", "detail")) == 7
+    assert [(int(m[1]), int(m[2])) for m in lines] == [(1, 5), (2, 5), (3, 5), (4, 5), (5, 5)]
     report = json.loads((tmp_path / "out" / "report.json").read_text())
     entry = report["pairs"][0]
     assert entry["status"] == "done" and report["saved"] == str(tmp_path / "out" / "result.blend")

@@ -229,23 +229,24 @@ def test_a_click_shows_the_engines_stages_in_the_command_lines_order(overtone, o
     on_the_command_line = [m[3] for m in lines]
     assert on_the_command_line == [progress.READING, progress.MATCHING, progress.CARRYING, progress.WRITING]
     assert names == [n for n in on_the_command_line if n in names]   # the same stages, the same order
-    # stage numbers past the first as the command line counts them (the first is counted before
-    # the job knows the meshes' sizes)
+    # numbered as the command line numbers them once it has read the meshes (the add-on's job
+    # has them from the start: its first stage is counted in the final plan already)
     assert all((number, total) == (on_the_command_line.index(name) + 1, len(on_the_command_line))
-               for (name, number, total), _ in shown if name != progress.READING)
+               for (name, number, total), _ in shown)
+    assert [int(m[2]) for m in lines] == [len(plan)] + [len(on_the_command_line)] * 3
 
 
 def test_a_run_held_in_blenders_process_counts_the_stages_in_the_window(ops, scene, ui_context):
     # execute (a redo, a script with a window) holds Blender until the run ends: the
     # window's progress counts the same stages (Blender shows it by the mouse pointer)
     importlib.import_module(MODULE + ".job").forget_pairs()   # no match kept from another test
-    painted_pair(scene)
+    painted_pair(scene, rings=(33, 27), segments=(17, 19))     # sizes no other test uses: nothing cached
     cls = ops.OVERTONE_OT_transfer_attributes
     op = StandIn(cls)
     assert cls.execute(op, ui_context) == {'FINISHED'} and op.reports[-1][0] == {'INFO'}
     calls = ui_context.window_manager.calls
     assert calls[0] == ("begin", 0, 100) and calls[-1] == ("end",)
-    # reading (the first of 6 planned), then matching, carrying, writing of the 4 these meshes need
+    # reading, matching, carrying, writing: the 4 stages these meshes need
     assert calls[1:-1] == [("update", 0), ("update", 25), ("update", 50), ("update", 75)]
     # again: the match is kept in memory, no matching stage
     ui_context.window_manager.calls.clear()
