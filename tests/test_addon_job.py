@@ -266,3 +266,19 @@ def test_detail_and_preview_jobs_pass_their_own_stages(inputs):
         job.run_job(preview)
     assert [(s.name, s.done, s.total) for s in steps] == [
         (progress.READING, 1, 3), (progress.SMOOTHING, 2, 3), (progress.DONE, 3, 3)]
+
+
+def test_a_large_source_passes_the_stages_of_simplified_copies(inputs):
+    # over STANDIN_ABOVE vertices the match goes through simplified copies
+    # (engine/matching/standin.py), and the stages say so in the plan's order
+    source = _mesh(206, 200)
+    assert len(source.vertices) > importlib.import_module(PACKAGE + ".engine.matching.standin").STANDIN_ABOVE
+    steps = []
+    job.forget_pairs()
+    large = replace(inputs, source=source, signals=(_signal("tint", _ramp(source.vertices)),))
+    with progress.showing(steps.append, progress.job_stages("transfer")):
+        out = job.run_job(large)
+    assert [(s.name, s.done, s.total) for s in steps] == [
+        (progress.READING, 1, 6), (progress.SIMPLIFYING, 2, 6), (progress.MATCHING, 3, 6),
+        (progress.REFINING, 4, 6), (progress.CARRYING, 5, 6), (progress.DONE, 6, 6)]
+    assert "matched through stand-ins" in out.report["reason"]
