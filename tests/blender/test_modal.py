@@ -179,7 +179,7 @@ def stage_of(text):
 def test_a_click_shows_the_engines_stages_in_the_command_lines_order(overtone, ops, scene, ui_context, tmp_path):
     progress = engine_module("common.progress")
     plan = progress.job_stages("transfer")
-    painted_pair(scene, rings=(70, 60), segments=(36, 40))
+    painted_pair(scene, rings=(72, 62), segments=(36, 40))   # sizes of its own: nothing cached
     cls = ops.OVERTONE_OT_transfer_attributes
     op = StandIn(cls)
     assert cls.invoke(op, ui_context, Event('LEFTMOUSE')) == {'RUNNING_MODAL'}
