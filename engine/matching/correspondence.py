@@ -261,7 +261,7 @@ def correspond_surface(source: Shape, target: Shape, match: str, landmarks: Arra
                                ProductSettings(opts.product_K, opts.product_order))
         reason = f"{reason}; {result.why}"
     else:
-        result = match_intrinsic(source, target, lm, opts, refine, h, loc_t)
+        result = match_intrinsic(source, target, lm, opts, refine, h)
     reason += slow
     result.timings = {"overlap": overlap_time, **result.timings}
     stats: dict[str, Any] = {"overlap": {"target_near_source": frac_t, "source_near_target": frac_s},

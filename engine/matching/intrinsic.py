@@ -22,11 +22,11 @@ import numpy as np
 from numpy.typing import NDArray
 
 from ..spectra.shape import Shape
-from .closest_point import SurfaceLocator, incident_triangles
+from .closest_point import incident_triangles
 from .embedding import ProductSettings, refine_products
-from .functional_map import MapWeights, fmap_from_descriptors, nearest_rows, orientation_operator, zoomout
+from .functional_map import MapWeights, fmap_from_descriptors, nearest_rows, orientation_operators, zoomout
 from .modes import MatchOptions, ModeResult
-from .nonrigid import IcpOptions, SpectralPairs, deform_onto
+from .nonrigid import IcpOptions, SpectralPairs, deform_onto, near_closest
 
 __all__ = ["LANDMARK_TIMES", "match_intrinsic"]
 
@@ -50,7 +50,7 @@ class _SpectralMap:
 
 
 def match_intrinsic(source: Shape, target: Shape, landmarks: Landmarks | None, options: MatchOptions,
-                    refine: bool | None, h: float, loc_t: SurfaceLocator) -> ModeResult:
+                    refine: bool | None, h: float) -> ModeResult:
     """Spectral map, then the source deformed onto the target, then the product-embedding search.
 
     Parameters
@@ -58,7 +58,6 @@ def match_intrinsic(source: Shape, target: Shape, landmarks: Landmarks | None, o
     landmarks : (source vertices, target vertices) of the cleaned meshes, or None
     refine : the product-embedding search runs unless False
     h : the coarser mesh's mean edge length
-    loc_t : closest points on the target (for the reverse map)
     """
     timings: dict[str, float] = {}
     t0 = time.perf_counter()
@@ -76,8 +75,10 @@ def match_intrinsic(source: Shape, target: Shape, landmarks: Landmarks | None, o
         tri, bary, frame = deform_onto(source, target, SpectralPairs.of(source, target, tri, bary, spectral.rows),
                                        landmarks, icp)
         vertex = source.faces[tri, np.argmax(bary, axis=1)]
-        cp = loc_t.closest(frame)
-        back = target.faces[cp.triangle, np.argmax(cp.barycentric, axis=1)]
+        # the reverse map only feeds the round trip's confidence: the cheap search serves
+        b_tri, b_bary, _ = near_closest(target.vertices, target.faces,
+                                        incident_triangles(target.faces, target.n_vertices), frame)
+        back = target.faces[b_tri, np.argmax(b_bary, axis=1)]
         timings["align_refine"] = time.perf_counter() - t0
     sizes: dict[str, Any] = {}
     if refine is None or refine:
@@ -103,10 +104,10 @@ def _spectral_map(source: Shape, target: Shape, landmarks: Landmarks | None, opt
     k0 = int(min(options.k_start, kk))
     ms, mt = source.mass / source.area, target.mass / target.area
     # orientation operators of every 4th descriptor, each scaled to unit maximum
-    orient_s = [orientation_operator(source.vertices, source.faces, ps[:, :k0], ms, d / np.abs(d).max())
-                for d in ds.T[::4]]
-    orient_t = [orientation_operator(target.vertices, target.faces, pt[:, :k0], mt, d / np.abs(d).max())
-                for d in dt.T[::4]]
+    orient_s = list(orientation_operators(source.vertices, source.faces, ps[:, :k0],
+                                          ds[:, ::4] / np.abs(ds[:, ::4]).max(axis=0)))
+    orient_t = list(orientation_operators(target.vertices, target.faces, pt[:, :k0],
+                                          dt[:, ::4] / np.abs(dt[:, ::4]).max(axis=0)))
     weights = MapWeights(commute=options.commute, orient=options.orient, orient_s=orient_s, orient_t=orient_t)
     C0 = fmap_from_descriptors((ls[:k0], ps[:, :k0], ms, ds), (lt[:k0], pt[:, :k0], mt, dt), weights)
     # nearest orthogonal matrix: a near-isometry's map between orthonormal bases is orthogonal

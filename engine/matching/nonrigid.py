@@ -37,8 +37,10 @@ from numpy.typing import NDArray
 from scipy.spatial import cKDTree
 
 from ..carrying.detail import vertex_normals_unchecked
+from ..spectra.discretization import mesh_operators
 from ..spectra.shape import Shape
 from .closest_point import SurfaceLocator, barycentric_matrix, closest_points_on_triangles, incident_triangles
+from .standin import SimplifierMissing, simplified_shape
 
 __all__ = ["IcpOptions", "SpectralPairs", "deform_onto", "near_closest", "spd_factor", "SimilarityFit"]
 
@@ -60,6 +62,8 @@ class IcpOptions:
     similar : fit a scale with each rotation (as similar as possible; else as rigid)
     landmark_weight : all landmarks together weigh this times the surface
     map_solves : solves fitting the spectral map's pairs at the first length
+    coarse_above : when either shape has more vertices, the alignment runs on simplified copies
+    coarse_vertices : vertices of those copies (0: never simplify)
     """
 
     steps: tuple[float, ...] = (0.1, 0.05, 0.02, 0.01, 0.005)
@@ -69,6 +73,8 @@ class IcpOptions:
     similar: bool = True
     landmark_weight: float = 1.0
     map_solves: int = 2
+    coarse_above: int = 15000
+    coarse_vertices: int = 5000
 
 
 @dataclass(frozen=True)
@@ -92,11 +98,42 @@ class SpectralPairs:
 
 
 @dataclass(frozen=True)
+class Surface:
+    """What the alignment reads of a mesh: vertices (n, 3), faces (m, 3), lumped masses (n,),
+    area and the regulariser's stiffness (n, n)."""
+
+    vertices: FloatArray
+    faces: IntArray
+    mass: FloatArray
+    area: float
+    stiffness: Any
+
+    @property
+    def n_vertices(self) -> int:
+        return len(self.vertices)
+
+    @classmethod
+    def of(cls, shape: Shape) -> Surface:
+        """The shape's own operators."""
+        return cls(shape.vertices, shape.faces, shape.mass, shape.area, shape.stiffness)
+
+    @classmethod
+    def simplified(cls, shape: Shape, n_vertices: int) -> Surface:
+        """The shape simplified to about ``n_vertices`` vertices (itself when not larger), with its plain
+        cotangent operators, negative edge weights dropped (:func:`nonnegative_stiffness`)."""
+        if shape.n_vertices > n_vertices:
+            shape = simplified_shape(shape, n_vertices)
+        ops = mesh_operators(shape.vertices, shape.faces, robust=False)
+        mass = np.asarray(ops.mass, dtype=np.float64)
+        return cls(shape.vertices, shape.faces, mass, float(mass.sum()), nonnegative_stiffness(ops.stiffness))
+
+
+@dataclass(frozen=True)
 class _Fixed:
     """What stays the same over every solve."""
 
-    source: Shape
-    target: Shape
+    source: Surface
+    target: Surface
     L: Any                    # source stiffness, csr
     fit: SimilarityFit
     m_s: FloatArray           # source masses in target units
@@ -119,10 +156,46 @@ def deform_onto(source: Shape, target: Shape, pairs: SpectralPairs, landmarks: L
     last deformed source (found by :func:`near_closest`; the final map uses
     the exact search).
 
+    When either shape has more than ``options.coarse_above`` vertices, all of
+    that runs on simplified copies of ``options.coarse_vertices`` vertices
+    (:func:`coarse_copies`; the copy's size is fixed, so refining the input
+    does not change the alignment), and the deformation is carried to the
+    full source (:func:`carry_deformation`); the final map then uses the cheap
+    search, which the product-embedding step after it corrects locally.
+
     Returns
     -------
     triangle (n_t,), barycentric (n_t, 3) for every target vertex; the deformed source (n_s, 3).
     """
+    coarse = coarse_copies(source, target, options)
+    if coarse is None:
+        X = _deform(Surface.of(source), Surface.of(target), pairs, landmarks, options)
+        cp = SurfaceLocator(X, source.faces).closest(target.vertices)
+        return cp.triangle, cp.barycentric, X
+    cs, ct = coarse
+    on_coarse = SurfaceLocator(cs.vertices, cs.faces).closest(np.asarray(pairs.Pi @ source.vertices))
+    pairs_c = SpectralPairs(pairs.y, pairs.w, barycentric_matrix(cs.faces, on_coarse.triangle,
+                                                                 on_coarse.barycentric, cs.n_vertices))
+    Xc = _deform(cs, ct, pairs_c, coarse_landmarks(landmarks, (source, target), (cs, ct)), options)
+    X = carry_deformation(cs, Xc, SimilarityFit(cs.stiffness, cs.vertices, scale=options.similar), source.vertices)
+    tri, bary, _ = near_closest(X, source.faces, incident_triangles(source.faces, source.n_vertices),
+                                target.vertices)
+    return tri, bary, X
+
+
+def coarse_landmarks(landmarks: Landmarks | None, full: tuple[Shape, Shape],
+                     coarse: tuple[Surface, Surface]) -> Landmarks | None:
+    """Landmarks (vertices of the full shapes) as the nearest vertices of the coarse copies."""
+    if landmarks is None:
+        return None
+    ends = [np.asarray(cKDTree(c.vertices).query(f.vertices[idx])[1], dtype=np.int64)
+            for f, c, idx in zip(full, coarse, landmarks)]
+    return ends[0], ends[1]
+
+
+def _deform(source: Surface, target: Surface, pairs: SpectralPairs, landmarks: Landmarks | None,
+            options: IcpOptions) -> FloatArray:
+    """The deformed source: warp and affine fit, the map's solves, then the ICP solves."""
     X = _affine_fit(_landmark_warp(source, target, landmarks), pairs)
     fixed = _fixed_terms(source, target, landmarks, options)
     X = _fit_to_map(fixed, pairs, X, options)
@@ -131,11 +204,43 @@ def deform_onto(source: Shape, target: Shape, pairs: SpectralPairs, landmarks: L
         lam = r * r * A_t
         for _ in range(options.iterations):
             X = _icp_solve(fixed, X, lam, options)
-    cp = SurfaceLocator(X, source.faces).closest(target.vertices)
-    return cp.triangle, cp.barycentric, X
+    return X
 
 
-def _landmark_warp(source: Shape, target: Shape, landmarks: Landmarks | None) -> FloatArray:
+def coarse_copies(source: Shape, target: Shape, options: IcpOptions) -> tuple[Surface, Surface] | None:
+    """Simplified copies of both shapes the alignment runs on, or None to run on the shapes themselves
+    (neither above ``options.coarse_above`` vertices, or the simplifier is not installed)."""
+    if options.coarse_vertices <= 0 or max(source.n_vertices, target.n_vertices) <= options.coarse_above:
+        return None
+    try:
+        return (Surface.simplified(source, options.coarse_vertices),
+                Surface.simplified(target, options.coarse_vertices))
+    except SimplifierMissing:
+        return None
+
+
+def nonnegative_stiffness(L: Any) -> Any:
+    """``L`` with its negative edge weights (positive off-diagonal entries) dropped, rows summing to zero:
+    a simplified mesh's long thin triangles give such weights, which make the regulariser indefinite."""
+    C = sp.coo_matrix(L)
+    keep = (C.row != C.col) & (C.data < 0)
+    off = sp.csr_matrix((C.data[keep], (C.row[keep], C.col[keep])), shape=C.shape)
+    return (off - sp.diags(np.asarray(off.sum(axis=1)).ravel())).tocsr()
+
+
+def carry_deformation(coarse: Surface, X_coarse: FloatArray, fit: SimilarityFit, points: FloatArray) -> FloatArray:
+    """``points`` near the rest surface of ``coarse`` carried by its deformation ``X_coarse``: each
+    takes its closest point on the coarse surface, deformed barycentrically, plus its offset from
+    there through the corners' fitted rotations and scales (blended barycentrically)."""
+    tri, bary, foot = near_closest(coarse.vertices, coarse.faces,
+                                   incident_triangles(coarse.faces, coarse.n_vertices), points)
+    corners = coarse.faces[tri]
+    T = np.einsum("ij,ijab->iab", bary, fit.transforms(X_coarse)[corners])
+    out: FloatArray = np.einsum("ij,ijk->ik", bary, X_coarse[corners]) + np.einsum("iab,ib->ia", T, points - foot)
+    return out
+
+
+def _landmark_warp(source: Surface, target: Surface, landmarks: Landmarks | None) -> FloatArray:
     """Source vertices through a thin-plate spline taking the landmarks onto the target's (identity below four)."""
     X: FloatArray = source.vertices.copy()
     if landmarks is not None and len(landmarks[0]) >= 4:
@@ -157,7 +262,7 @@ def _affine_fit(X: FloatArray, pairs: SpectralPairs) -> FloatArray:
     return out
 
 
-def _fixed_terms(source: Shape, target: Shape, landmarks: Landmarks | None, options: IcpOptions) -> _Fixed:
+def _fixed_terms(source: Surface, target: Surface, landmarks: Landmarks | None, options: IcpOptions) -> _Fixed:
     n_s = source.n_vertices
     Y, A_t = target.vertices, target.area
     L = source.stiffness.tocsr()
@@ -268,8 +373,8 @@ class SimilarityFit:
         self.n = len(rest)
         self.norm = np.bincount(self.i, weights=self.w * np.einsum("ij,ij->i", self.e0, self.e0), minlength=self.n)
 
-    def rhs(self, X: FloatArray) -> FloatArray:
-        """``b`` of the global step for the rotations and scales fitted to ``X`` (n, 3)."""
+    def transforms(self, X: FloatArray) -> FloatArray:
+        """(n, 3, 3) per vertex its rotation times its scale, fitted to ``X`` (n, 3)."""
         i, j, w, e0, n = self.i, self.j, self.w, self.e0, self.n
         e = X[i] - X[j]
         cov = np.empty((n, 3, 3))
@@ -284,6 +389,12 @@ class SimilarityFit:
         scale = np.where(self.norm > 0, sig.sum(axis=1) / np.where(self.norm > 0, self.norm, 1.0), 1.0)
         if not self.scale:
             scale = np.ones(n)
-        T = (U @ Vt) * scale[:, None, None]
+        out: FloatArray = (U @ Vt) * scale[:, None, None]
+        return out
+
+    def rhs(self, X: FloatArray) -> FloatArray:
+        """``b`` of the global step for the rotations and scales fitted to ``X`` (n, 3)."""
+        i, j, w, e0, n = self.i, self.j, self.w, self.e0, self.n
+        T = self.transforms(X)
         Te = np.einsum("kab,kb->ka", T[i] + T[j], e0) * (0.5 * w)[:, None]
         return np.column_stack([np.bincount(i, weights=Te[:, a], minlength=n) for a in range(3)])
