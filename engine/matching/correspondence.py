@@ -333,8 +333,8 @@ def _overlap(loc_s: SurfaceLocator, loc_t: SurfaceLocator, source: Shape, target
     """Fractions of target vertices within ``radius`` of the source surface and of source vertices of the target."""
     sample_t = _overlap_sample(target.n_vertices)
     sample_s = _overlap_sample(source.n_vertices)
-    frac_t = float(np.mean(loc_s.closest(target.vertices[sample_t]).distance < radius))
-    frac_s = float(np.mean(loc_t.closest(source.vertices[sample_s]).distance < radius))
+    frac_t = float(np.mean(loc_s.within(target.vertices[sample_t], radius)))
+    frac_s = float(np.mean(loc_t.within(source.vertices[sample_s], radius)))
     return frac_t, frac_s
 
 

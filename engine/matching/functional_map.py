@@ -203,14 +203,12 @@ def nearest_rows(data: FloatArray, query: FloatArray, *, block: int = 256) -> In
         found: IntArray = cKDTree(data).query(query, workers=-1)[1].astype(np.int64)
         return found
     d = data.shape[1]
-    # single precision: twice the speed of the products, and a score's rounding
-    # (about 1e-7 of the embedding's squared norm) only decides near-exact ties
-    aug = np.empty((d + 1, len(data)), np.float32)
+    aug = np.empty((d + 1, len(data)))
     aug[:d] = data.T
     aug[d] = -0.5 * np.einsum("ij,ij->i", data, data)
-    qa = np.empty((min(block, len(query)), d + 1), np.float32)
+    qa = np.empty((min(block, len(query)), d + 1))
     qa[:, d] = 1.0
-    score = np.empty((qa.shape[0], len(data)), np.float32)
+    score = np.empty((qa.shape[0], len(data)))
     out = np.empty(len(query), np.int64)
     for s in range(0, len(query), block):
         b = min(block, len(query) - s)

@@ -40,9 +40,9 @@ from ..carrying.detail import vertex_normals_unchecked
 from ..spectra.discretization import mesh_operators
 from ..spectra.shape import Shape
 from .closest_point import SurfaceLocator, barycentric_matrix, closest_points_on_triangles, incident_triangles
-from .standin import SimplifierMissing, simplified_shape
 
-__all__ = ["IcpOptions", "SpectralPairs", "deform_onto", "near_closest", "spd_factor", "SimilarityFit"]
+__all__ = ["IcpOptions", "SpectralPairs", "Surface", "deform_onto", "deform_through", "carry_deformation",
+           "nonnegative_stiffness", "near_closest", "spd_factor", "SimilarityFit"]
 
 FloatArray = NDArray[np.float64]
 IntArray = NDArray[np.int64]
@@ -62,8 +62,6 @@ class IcpOptions:
     similar : fit a scale with each rotation (as similar as possible; else as rigid)
     landmark_weight : all landmarks together weigh this times the surface
     map_solves : solves fitting the spectral map's pairs at the first length
-    coarse_above : when either shape has more vertices, the alignment runs on simplified copies
-    coarse_vertices : vertices of those copies (0: never simplify)
     """
 
     steps: tuple[float, ...] = (0.1, 0.05, 0.02, 0.01, 0.005)
@@ -73,8 +71,6 @@ class IcpOptions:
     similar: bool = True
     landmark_weight: float = 1.0
     map_solves: int = 2
-    coarse_above: int = 15000
-    coarse_vertices: int = 5000
 
 
 @dataclass(frozen=True)
@@ -118,11 +114,9 @@ class Surface:
         return cls(shape.vertices, shape.faces, shape.mass, shape.area, shape.stiffness)
 
     @classmethod
-    def simplified(cls, shape: Shape, n_vertices: int) -> Surface:
-        """The shape simplified to about ``n_vertices`` vertices (itself when not larger), with its plain
-        cotangent operators, negative edge weights dropped (:func:`nonnegative_stiffness`)."""
-        if shape.n_vertices > n_vertices:
-            shape = simplified_shape(shape, n_vertices)
+    def coarse(cls, shape: Shape) -> Surface:
+        """A simplified copy's plain cotangent operators, negative edge weights dropped
+        (:func:`nonnegative_stiffness`)."""
         ops = mesh_operators(shape.vertices, shape.faces, robust=False)
         mass = np.asarray(ops.mass, dtype=np.float64)
         return cls(shape.vertices, shape.faces, mass, float(mass.sum()), nonnegative_stiffness(ops.stiffness))
@@ -156,41 +150,31 @@ def deform_onto(source: Shape, target: Shape, pairs: SpectralPairs, landmarks: L
     last deformed source (found by :func:`near_closest`; the final map uses
     the exact search).
 
-    When either shape has more than ``options.coarse_above`` vertices, all of
-    that runs on simplified copies of ``options.coarse_vertices`` vertices
-    (:func:`coarse_copies`; the copy's size is fixed, so refining the input
-    does not change the alignment), and the deformation is carried to the
-    full source (:func:`carry_deformation`); the final map then uses the cheap
-    search, which the product-embedding step after it corrects locally.
-
     Returns
     -------
     triangle (n_t,), barycentric (n_t, 3) for every target vertex; the deformed source (n_s, 3).
     """
-    coarse = coarse_copies(source, target, options)
-    if coarse is None:
-        X = _deform(Surface.of(source), Surface.of(target), pairs, landmarks, options)
-        cp = SurfaceLocator(X, source.faces).closest(target.vertices)
-        return cp.triangle, cp.barycentric, X
-    cs, ct = coarse
-    on_coarse = SurfaceLocator(cs.vertices, cs.faces).closest(np.asarray(pairs.Pi @ source.vertices))
-    pairs_c = SpectralPairs(pairs.y, pairs.w, barycentric_matrix(cs.faces, on_coarse.triangle,
-                                                                 on_coarse.barycentric, cs.n_vertices))
-    Xc = _deform(cs, ct, pairs_c, coarse_landmarks(landmarks, (source, target), (cs, ct)), options)
+    X = _deform(Surface.of(source), Surface.of(target), pairs, landmarks, options)
+    cp = SurfaceLocator(X, source.faces).closest(target.vertices)
+    return cp.triangle, cp.barycentric, X
+
+
+def deform_through(source: Shape, target: Shape, coarse: tuple[Shape, Shape], pairs: SpectralPairs,
+                   landmarks: Landmarks | None, options: IcpOptions) -> tuple[IntArray, FloatArray, FloatArray]:
+    """:func:`deform_onto` run on simplified copies of the shapes (``pairs`` and ``landmarks`` theirs),
+    the deformation carried to the full source (:func:`carry_deformation`) and every full target
+    vertex's point on it found by the cheap search (:func:`near_closest`).
+
+    Returns
+    -------
+    triangle (n_t,), barycentric (n_t, 3) for every full target vertex; the deformed full source (n_s, 3).
+    """
+    cs, ct = Surface.coarse(coarse[0]), Surface.coarse(coarse[1])
+    Xc = _deform(cs, ct, pairs, landmarks, options)
     X = carry_deformation(cs, Xc, SimilarityFit(cs.stiffness, cs.vertices, scale=options.similar), source.vertices)
     tri, bary, _ = near_closest(X, source.faces, incident_triangles(source.faces, source.n_vertices),
                                 target.vertices)
     return tri, bary, X
-
-
-def coarse_landmarks(landmarks: Landmarks | None, full: tuple[Shape, Shape],
-                     coarse: tuple[Surface, Surface]) -> Landmarks | None:
-    """Landmarks (vertices of the full shapes) as the nearest vertices of the coarse copies."""
-    if landmarks is None:
-        return None
-    ends = [np.asarray(cKDTree(c.vertices).query(f.vertices[idx])[1], dtype=np.int64)
-            for f, c, idx in zip(full, coarse, landmarks)]
-    return ends[0], ends[1]
 
 
 def _deform(source: Surface, target: Surface, pairs: SpectralPairs, landmarks: Landmarks | None,
@@ -205,18 +189,6 @@ def _deform(source: Surface, target: Surface, pairs: SpectralPairs, landmarks: L
         for _ in range(options.iterations):
             X = _icp_solve(fixed, X, lam, options)
     return X
-
-
-def coarse_copies(source: Shape, target: Shape, options: IcpOptions) -> tuple[Surface, Surface] | None:
-    """Simplified copies of both shapes the alignment runs on, or None to run on the shapes themselves
-    (neither above ``options.coarse_above`` vertices, or the simplifier is not installed)."""
-    if options.coarse_vertices <= 0 or max(source.n_vertices, target.n_vertices) <= options.coarse_above:
-        return None
-    try:
-        return (Surface.simplified(source, options.coarse_vertices),
-                Surface.simplified(target, options.coarse_vertices))
-    except SimplifierMissing:
-        return None
 
 
 def nonnegative_stiffness(L: Any) -> Any:
