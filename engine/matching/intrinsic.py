@@ -10,6 +10,11 @@ and every target vertex takes its closest point on the deformed source: this
 is what carries variants with other proportions, which no isometry prior
 serves. Last, the point map is searched again in the product embedding
 (:func:`engine.matching.embedding.refine_products`), unless ``refine=False``.
+
+Above ``MatchOptions.coarse_above`` vertices the spectral map and the
+alignment run on simplified copies of a fixed size and the deformation is
+carried to the full source; only the product-embedding search runs at full
+resolution (measurements: docs/measurements.md, "Transfer speed").
 """
 
 from __future__ import annotations

@@ -67,7 +67,7 @@ class MatchOptions:
     orient: float = 1e-3
     align_steps: tuple[float, ...] = (0.1, 0.05, 0.02, 0.01, 0.005)
     align_iterations: int = 3
-    coarse_above: int = 15000
+    coarse_above: int = 10000
     coarse_vertices: int = 5000
 
 
