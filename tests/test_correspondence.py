@@ -406,3 +406,29 @@ def test_row_scale_weights_the_last_three_columns():
         want[i] = (((Qs[cand[i]] - Qt[i]) * w) ** 2).sum(axis=1)
     np.testing.assert_allclose(got, want, rtol=1e-12)
     np.testing.assert_array_equal(row_distances(Qt, Qs, cand, row_scale=np.ones(7)), row_distances(Qt, Qs, cand))
+
+
+def test_best_on_triangles_per_triangle_grams():
+    """best_on_triangles without row scales (each triangle's corner Gram computed
+    once) against the per-row path (unit row scales) and against brute force: no
+    corner or edge midpoint of the searched triangles is nearer to the row than
+    the point chosen (each is a point of the simplex, common practice)."""
+    from engine.matching.closest_point import incident_triangles
+    from engine.matching.embedding import best_on_triangles
+    p = pairs.creature_pose()
+    S = Shape(p.source_vertices, p.source_faces)
+    rng = np.random.default_rng(3)
+    Qs = rng.normal(size=(S.n_vertices, 12))
+    best = rng.integers(0, S.n_vertices, 400)
+    Qt = Qs[best] + 0.3 * rng.normal(size=(400, 12))
+    inc = incident_triangles(S.faces, S.n_vertices)
+    tri, w = best_on_triangles(Qt, Qs, S.faces, inc, best, chunk=150)
+    tri1, w1 = best_on_triangles(Qt, Qs, S.faces, inc, best, chunk=150, row_scale=np.ones(400))
+    np.testing.assert_array_equal(tri, tri1)
+    np.testing.assert_allclose(w, w1, atol=1e-9)
+    got = np.linalg.norm(np.einsum("ij,ijk->ik", w, Qs[S.faces[tri]]) - Qt, axis=1)
+    for i in range(400):
+        T = inc[best[i]][inc[best[i]] >= 0]
+        c = Qs[S.faces[T]]                                          # (d, 3, r)
+        pts = np.concatenate([c.reshape(-1, 12), ((c + np.roll(c, 1, axis=1)) / 2).reshape(-1, 12)])
+        assert got[i] <= np.linalg.norm(pts - Qt[i], axis=1).min() + 1e-9
