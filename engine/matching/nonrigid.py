@@ -24,6 +24,10 @@ Pairs of either direction whose normals disagree (cosine below
 ``normal_min``) are dropped; the landmarks and the spectral map's pairs are
 always kept. Measurements of every variant: docs/measurements.md,
 "Correspondence and transfer accuracy".
+
+:func:`deform_through` runs the same on simplified copies of large shapes
+(their regulariser without negative edge weights, :func:`nonnegative_stiffness`)
+and carries the deformation to the full source (:func:`carry_deformation`).
 """
 
 from __future__ import annotations
