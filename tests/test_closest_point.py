@@ -154,3 +154,19 @@ def test_fan_caps_match_libigl_on_a_second_cylinder():
     q = np.random.default_rng(0).uniform([-1.5, -1.5, -0.5], [1.5, 1.5, 4.5], (20000, 3))
     d2, _, _ = igl.point_mesh_squared_distance(q, v, f)   # libigl reference
     np.testing.assert_allclose(SurfaceLocator(v, f).closest(q).distance, np.sqrt(d2), atol=1e-9)
+
+
+def test_within_radius_agrees_with_the_closest_distance():
+    """SurfaceLocator.within against its own exact distances (checked against
+    libigl above): queries near the sphere, inside it and far outside, with
+    radii from a fraction of an edge to beyond the far ones."""
+    v, f = icosphere(3)
+    loc = SurfaceLocator(v, f)
+    rng = np.random.default_rng(4)
+    d = rng.normal(size=(3000, 3))
+    d /= np.linalg.norm(d, axis=1)[:, None]
+    q = d * rng.choice([0.2, 0.97, 1.0, 1.02, 1.5, 8.0], size=(3000, 1))
+    dist = loc.closest(q).distance
+    for r in (0.005, 0.03, 0.6, 10.0):
+        np.testing.assert_array_equal(loc.within(q, r), dist < r)
+    assert loc.within(q[:0], 1.0).shape == (0,)

@@ -3,6 +3,7 @@
 import igl  # reference library, test environment only
 import numpy as np
 import pytest
+import scipy.sparse
 from scipy.spatial import cKDTree
 
 from engine.matching.correspondence import correspond
@@ -254,6 +255,59 @@ def test_similarity_fit_leaves_a_similar_copy_unchanged():
     assert np.abs(SimilarityFit(L, S.vertices, scale=False).rhs(X) - LX).max() > 0.1 * np.abs(LX).max()
 
 
+def test_carried_deformation_is_exact_for_a_similarity():
+    """carry_deformation on a similarity of the coarse copy, X = s R S + t: every
+    corner's fitted transform is s R (see the test above), so each full vertex,
+    its foot on the coarse surface plus its offset, lands exactly on s R p + t
+    (analytic: barycentric blending reproduces affine maps)."""
+    from engine.matching.nonrigid import SimilarityFit, Surface, carry_deformation
+    from engine.matching.standin import simplified_shape
+    p = pairs.creature_pose()
+    S = Shape(p.source_vertices, p.source_faces)
+    coarse = Surface.coarse(simplified_shape(S, 300))
+    a = 0.6
+    R = np.array([[1, 0, 0], [0, np.cos(a), -np.sin(a)], [0, np.sin(a), np.cos(a)]])
+    t = np.array([0.5, -1.0, 2.0])
+    X = 1.3 * coarse.vertices @ R.T + t
+    out = carry_deformation(coarse, X, SimilarityFit(coarse.stiffness, coarse.vertices), S.vertices)
+    np.testing.assert_allclose(out, 1.3 * S.vertices @ R.T + t, atol=1e-9 * np.abs(t).max())
+    assert coarse.n_vertices < S.n_vertices / 2
+
+
+def test_nonnegative_stiffness_keeps_a_laplacian():
+    """Dropping the negative edge weights of a simplified mesh leaves a graph
+    Laplacian: symmetric, no positive off-diagonal entry, rows summing to zero
+    (common practice), and every kept weight as it was."""
+    from engine.matching.nonrigid import nonnegative_stiffness
+    from engine.matching.standin import simplified_shape
+    from engine.spectra.discretization import mesh_operators
+    p = pairs.creature_pose()
+    c = simplified_shape(Shape(p.source_vertices, p.source_faces), 200)
+    L = mesh_operators(c.vertices, c.faces, robust=False).stiffness.tocsr()
+    N = nonnegative_stiffness(L).tocsr()
+    off = N - scipy.sparse.diags(N.diagonal())
+    assert (L.tocoo().data > 0).sum() > (L.diagonal() > 0).sum()      # the copy has negative weights
+    assert off.max() <= 0 and abs(N - N.T).max() < 1e-12
+    np.testing.assert_allclose(np.asarray(N.sum(axis=1)).ravel(), 0, atol=1e-10 * abs(N).max())
+    C = off.tocoo()
+    np.testing.assert_array_equal(C.data, np.asarray(L[C.row, C.col]).ravel())
+
+
+def test_matching_through_coarse_copies_keeps_the_map():
+    """The path large meshes take (spectral map and alignment on simplified
+    copies, product search at full resolution), forced on the small posed
+    creature: the map error against the rest-frame truth stays below the
+    landmark warp + closest point baseline (0.031, docs/measurements.md) and
+    near the full path's (measured: 0.018 against 0.016)."""
+    from engine.matching.modes import MatchOptions
+    p = pairs.creature_pose()
+    S, T = _shapes(p)
+    c = correspond(S, T, landmarks=p.landmarks, options=MatchOptions(coarse_above=500, coarse_vertices=500))
+    assert c.mode == "intrinsic" and c.stats["sizes"]["coarse_source_vertices"] <= 510
+    assert _map_error(p, c).mean() < 0.025
+    assert c.fmap.shape == (30, 30)
+
+
 @pytest.mark.refdata
 def test_cheap_closest_points_agree_with_the_full_search():
     """near_closest (used between alignment solves) against SurfaceLocator,
@@ -352,3 +406,29 @@ def test_row_scale_weights_the_last_three_columns():
         want[i] = (((Qs[cand[i]] - Qt[i]) * w) ** 2).sum(axis=1)
     np.testing.assert_allclose(got, want, rtol=1e-12)
     np.testing.assert_array_equal(row_distances(Qt, Qs, cand, row_scale=np.ones(7)), row_distances(Qt, Qs, cand))
+
+
+def test_best_on_triangles_per_triangle_grams():
+    """best_on_triangles without row scales (each triangle's corner Gram computed
+    once) against the per-row path (unit row scales) and against brute force: no
+    corner or edge midpoint of the searched triangles is nearer to the row than
+    the point chosen (each is a point of the simplex, common practice)."""
+    from engine.matching.closest_point import incident_triangles
+    from engine.matching.embedding import best_on_triangles
+    p = pairs.creature_pose()
+    S = Shape(p.source_vertices, p.source_faces)
+    rng = np.random.default_rng(3)
+    Qs = rng.normal(size=(S.n_vertices, 12))
+    best = rng.integers(0, S.n_vertices, 400)
+    Qt = Qs[best] + 0.3 * rng.normal(size=(400, 12))
+    inc = incident_triangles(S.faces, S.n_vertices)
+    tri, w = best_on_triangles(Qt, Qs, S.faces, inc, best, chunk=150)
+    tri1, w1 = best_on_triangles(Qt, Qs, S.faces, inc, best, chunk=150, row_scale=np.ones(400))
+    np.testing.assert_array_equal(tri, tri1)
+    np.testing.assert_allclose(w, w1, atol=1e-9)
+    got = np.linalg.norm(np.einsum("ij,ijk->ik", w, Qs[S.faces[tri]]) - Qt, axis=1)
+    for i in range(400):
+        T = inc[best[i]][inc[best[i]] >= 0]
+        c = Qs[S.faces[T]]                                          # (d, 3, r)
+        pts = np.concatenate([c.reshape(-1, 12), ((c + np.roll(c, 1, axis=1)) / 2).reshape(-1, 12)])
+        assert got[i] <= np.linalg.norm(pts - Qt[i], axis=1).min() + 1e-9

@@ -255,6 +255,23 @@ class SurfaceLocator:
         dist = np.linalg.norm(pts - query, axis=1)
         return SurfacePoints(tri, bary, pts, dist)
 
+    def within(self, query: FloatArray, radius: float) -> NDArray[np.bool_]:
+        """Per query point, whether the surface comes nearer than ``radius``: the same answer as
+        ``closest(query).distance < radius``, without the exact search for queries whose first
+        candidates are already near enough or that no triangle's bounding ball reaches."""
+        query = np.asarray(query, dtype=np.float64)
+        near = np.zeros(len(query), dtype=bool)
+        # a triangle within radius has its centroid within radius + its bounding radius
+        reach, _ = self.centroid_tree.query(query, distance_upper_bound=radius + self.largest, workers=-1)
+        rows = np.flatnonzero(np.isfinite(reach))
+        if len(rows):
+            _, _, pts = self._best(query[rows], self._candidates(query[rows])[0])
+            near[rows] = np.linalg.norm(pts - query[rows], axis=1) < radius
+            rest = rows[~near[rows]]
+            if len(rest):
+                near[rest] = self.closest(query[rest]).distance < radius
+        return near
+
     def _best(self, q: FloatArray, cand: IntArray) -> tuple[IntArray, FloatArray, FloatArray]:
         nq, nc = cand.shape
         f = self.faces[cand.ravel()]

@@ -269,7 +269,7 @@ def correspond_surface(source: Shape, target: Shape, match: str, landmarks: Arra
                                ProductSettings(opts.product_K, opts.product_order))
         reason = f"{reason}; {result.why}"
     else:
-        result = match_intrinsic(source, target, lm, opts, refine, h, loc_t)
+        result = match_intrinsic(source, target, lm, opts, refine, h)
     reason += slow
     result.timings = {"overlap": overlap_time, **result.timings}
     stats: dict[str, Any] = {"overlap": {"target_near_source": frac_t, "source_near_target": frac_s},
@@ -342,8 +342,8 @@ def _overlap(loc_s: SurfaceLocator, loc_t: SurfaceLocator, source: Shape, target
     """Fractions of target vertices within ``radius`` of the source surface and of source vertices of the target."""
     sample_t = _overlap_sample(target.n_vertices)
     sample_s = _overlap_sample(source.n_vertices)
-    frac_t = float(np.mean(loc_s.closest(target.vertices[sample_t]).distance < radius))
-    frac_s = float(np.mean(loc_t.closest(source.vertices[sample_s]).distance < radius))
+    frac_t = float(np.mean(loc_s.within(target.vertices[sample_t], radius)))
+    frac_s = float(np.mean(loc_t.within(source.vertices[sample_s], radius)))
     return frac_t, frac_s
 
 

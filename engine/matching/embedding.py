@@ -31,7 +31,8 @@ from ..spectra.shape import Shape
 from .closest_point import barycentric_matrix, incident_triangles
 
 __all__ = ["PRODUCT_K", "PRODUCT_SPATIAL", "PRODUCT_WINDOW", "ProductSettings", "ProductEmbedding",
-           "product_embedding", "refine_products", "row_distances", "best_on_triangles", "simplex_qp"]
+           "product_embedding", "refine_products", "row_distances", "best_on_triangles", "triangle_grams",
+           "simplex_qp"]
 
 FloatArray = NDArray[np.float64]
 IntArray = NDArray[np.int64]
@@ -201,6 +202,8 @@ def best_on_triangles(Qt: FloatArray, Qs: FloatArray, faces: IntArray, inc: IntA
     n = len(best)
     tri_out = np.empty(n, np.int64)
     w_out = np.empty((n, 3))
+    # without row scales a triangle's corner Gram is the same for every row: once per triangle
+    grams = triangle_grams(Qs, faces, np.unique(inc[best]), chunk) if row_scale is None else np.zeros((0, 3, 3))
     for s in range(0, n, chunk):
         b = best[s:s + chunk]
         q = Qt[s:s + chunk]
@@ -208,13 +211,16 @@ def best_on_triangles(Qt: FloatArray, Qs: FloatArray, faces: IntArray, inc: IntA
         valid = T >= 0
         T = np.where(valid, T, T[:, :1])
         F = faces[T]                                 # (c, d, 3)
-        P = Qs[F]                                    # (c, d, 3, r)
-        if row_scale is not None:
+        if row_scale is None:
+            Gm = grams[T]
+            sv = np.stack([np.einsum("cdr,cr->cd", Qs[F[..., i]], q) for i in range(3)], axis=-1)
+        else:
+            P = Qs[F]                                # (c, d, 3, r)
             q = q.copy()
             q[:, -3:] *= row_scale[s:s + chunk, None]
             P[..., -3:] *= row_scale[s:s + chunk, None, None, None]
-        Gm = np.einsum("cdir,cdjr->cdij", P, P)      # corner Gram
-        sv = np.einsum("cdir,cr->cdi", P, q)
+            Gm = np.einsum("cdir,cdjr->cdij", P, P)  # corner Gram
+            sv = np.einsum("cdir,cr->cdi", P, q)
         w, val = simplex_qp(Gm, sv)
         val = np.where(valid, val, np.inf)
         j = np.argmin(val, axis=1)
@@ -222,6 +228,20 @@ def best_on_triangles(Qt: FloatArray, Qs: FloatArray, faces: IntArray, inc: IntA
         tri_out[s:s + chunk] = T[rows, j]
         w_out[s:s + chunk] = w[rows, j]
     return tri_out, w_out
+
+
+def triangle_grams(Qs: FloatArray, faces: IntArray, triangles: IntArray, chunk: int = 4000) -> FloatArray:
+    """(m, 3, 3) Gram matrices of the rows of ``Qs`` at each triangle's corners, filled for
+    ``triangles`` (negative ids skipped), zero elsewhere."""
+    out = np.zeros((len(faces), 3, 3))
+    triangles = triangles[triangles >= 0]
+    for s in range(0, len(triangles), chunk):
+        t = triangles[s:s + chunk]
+        corners = [Qs[faces[t, i]] for i in range(3)]
+        for i in range(3):
+            for j in range(i, 3):
+                out[t, i, j] = out[t, j, i] = np.einsum("ur,ur->u", corners[i], corners[j])
+    return out
 
 
 def simplex_qp(G: FloatArray, s: FloatArray) -> tuple[FloatArray, FloatArray]:

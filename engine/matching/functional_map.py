@@ -22,7 +22,7 @@ from numpy.typing import NDArray
 from scipy.spatial import cKDTree
 
 __all__ = ["MapWeights", "fmap_from_descriptors", "fmap_from_pointmap", "pointmap_from_fmap", "zoomout",
-           "orientation_operator", "nearest_rows"]
+           "orientation_operator", "orientation_operators", "nearest_rows"]
 
 FloatArray = NDArray[np.float64]
 IntArray = NDArray[np.int64]
@@ -104,6 +104,17 @@ def orientation_operator(vertices: FloatArray, faces: IntArray, phi: FloatArray,
     -------
     (k, k) float64 array ``O`` with ``O[i, j] = <phi_i, n . (grad f x grad phi_j)>_M``.
     """
+    out: FloatArray = orientation_operators(vertices, faces, phi, np.asarray(f, float)[:, None])[0]
+    return out
+
+
+def orientation_operators(vertices: FloatArray, faces: IntArray, phi: FloatArray, fs: FloatArray) -> FloatArray:
+    """:func:`orientation_operator` of every column of ``fs`` (n, d), the mesh's geometry computed once.
+
+    Returns
+    -------
+    (d, k, k) float64 array.
+    """
     v0, v1, v2 = (vertices[faces[:, i]] for i in range(3))
     nrm = np.cross(v1 - v0, v2 - v0)
     dbl = np.linalg.norm(nrm, axis=1)
@@ -113,17 +124,18 @@ def orientation_operator(vertices: FloatArray, faces: IntArray, phi: FloatArray,
     # gradient of a hat function: (n x e_opposite) / (2 area)
     e = [v2 - v1, v0 - v2, v1 - v0]
     gh = [np.cross(n, ei) / dbl[:, None] for ei in e]
-
-    f = np.asarray(f, float)
-    gf = sum(g * f[faces[:, i], None] for i, g in enumerate(gh))  # (m, 3)
-    nf = np.cross(n, gf)  # n . (gf x gg) = (n x gf) . gg
-    # n . (gf x grad phi_k) = sum_i (nf . gh_i) phi_k(corner i): per face and
-    # corner a scalar, so no (m, 3, k) gradient array of the basis is formed
+    # n . (grad f x grad phi) = sum_i (n x grad f) . gh_i phi(corner i), and with
+    # grad f = sum_j f(corner j) gh_j that is sum_ij f_j phi_i gh_j . (gh_i x n):
+    # per face a 3 x 3 table, so no (m, 3, k) gradient array of the basis is formed
     # (docs/measurements.md)
-    corners = [phi[faces[:, i]] for i in range(3)]           # (m, k) each
-    h = sum(np.einsum("mc,mc->m", nf, g)[:, None] * c for g, c in zip(gh, corners))
-    phi_face = (corners[0] + corners[1] + corners[2]) / 3.0  # (m, k)
-    out: FloatArray = phi_face.T @ (area[:, None] * h)
+    table = [[np.einsum("mc,mc->m", gh[j], np.cross(gh[i], n)) for j in range(3)] for i in range(3)]
+    fc = [np.asarray(fs, float)[faces[:, j]] for j in range(3)]          # (m, d) each
+    corners = [phi[faces[:, i]] for i in range(3)]                       # (m, k) each
+    phi_face = (corners[0] + corners[1] + corners[2]) / 3.0
+    weight = [area[:, None] * sum(table[i][j][:, None] * fc[j] for j in range(3)) for i in range(3)]   # (m, d)
+    out = np.empty((fc[0].shape[1], phi.shape[1], phi.shape[1]))
+    for d in range(len(out)):
+        out[d] = phi_face.T @ sum(weight[i][:, d, None] * corners[i] for i in range(3))
     return out
 
 

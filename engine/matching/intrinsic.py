@@ -10,6 +10,11 @@ and every target vertex takes its closest point on the deformed source: this
 is what carries variants with other proportions, which no isometry prior
 serves. Last, the point map is searched again in the product embedding
 (:func:`engine.matching.embedding.refine_products`), unless ``refine=False``.
+
+Above ``MatchOptions.coarse_above`` vertices the spectral map and the
+alignment run on simplified copies of a fixed size and the deformation is
+carried to the full source; only the product-embedding search runs at full
+resolution (measurements: docs/measurements.md, "Transfer speed").
 """
 
 from __future__ import annotations
@@ -20,15 +25,17 @@ from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
+from scipy.spatial import cKDTree
 
 from ..spectra.shape import Shape
-from .closest_point import SurfaceLocator, incident_triangles
+from .closest_point import incident_triangles
 from .embedding import ProductSettings, refine_products
-from .functional_map import MapWeights, fmap_from_descriptors, nearest_rows, orientation_operator, zoomout
+from .functional_map import MapWeights, fmap_from_descriptors, nearest_rows, orientation_operators, zoomout
 from .modes import MatchOptions, ModeResult
-from .nonrigid import IcpOptions, SpectralPairs, deform_onto
+from .nonrigid import IcpOptions, SpectralPairs, deform_onto, deform_through, near_closest
+from .standin import SimplifierMissing, simplified_shape
 
-__all__ = ["LANDMARK_TIMES", "match_intrinsic"]
+__all__ = ["LANDMARK_TIMES", "match_intrinsic", "coarse_shapes", "coarse_landmarks"]
 
 FloatArray = NDArray[np.float64]
 IntArray = NDArray[np.int64]
@@ -50,16 +57,23 @@ class _SpectralMap:
 
 
 def match_intrinsic(source: Shape, target: Shape, landmarks: Landmarks | None, options: MatchOptions,
-                    refine: bool | None, h: float, loc_t: SurfaceLocator) -> ModeResult:
+                    refine: bool | None, h: float) -> ModeResult:
     """Spectral map, then the source deformed onto the target, then the product-embedding search.
+
+    With the alignment on and either shape over ``options.coarse_above``
+    vertices, the spectral map and the alignment run on simplified copies
+    (:func:`coarse_shapes`) and only the product-embedding search at full
+    resolution (:func:`_match_through`).
 
     Parameters
     ----------
     landmarks : (source vertices, target vertices) of the cleaned meshes, or None
     refine : the product-embedding search runs unless False
     h : the coarser mesh's mean edge length
-    loc_t : closest points on the target (for the reverse map)
     """
+    coarse = coarse_shapes(source, target, options) if options.align_steps else None
+    if coarse is not None:
+        return _match_through(source, target, coarse, landmarks, options, refine, h)
     timings: dict[str, float] = {}
     t0 = time.perf_counter()
     kk = int(min(options.k, source.n_vertices - 1, target.n_vertices - 1))
@@ -72,12 +86,9 @@ def match_intrinsic(source: Shape, target: Shape, landmarks: Landmarks | None, o
         back = nearest_rows(spectral.embedding_t, spectral.embedding_s)
     else:
         t0 = time.perf_counter()
-        icp = IcpOptions(steps=tuple(options.align_steps), iterations=options.align_iterations)
         tri, bary, frame = deform_onto(source, target, SpectralPairs.of(source, target, tri, bary, spectral.rows),
-                                       landmarks, icp)
-        vertex = source.faces[tri, np.argmax(bary, axis=1)]
-        cp = loc_t.closest(frame)
-        back = target.faces[cp.triangle, np.argmax(cp.barycentric, axis=1)]
+                                       landmarks, _icp_options(options))
+        vertex, back = _round_trip(source, target, tri, bary, frame)
         timings["align_refine"] = time.perf_counter() - t0
     sizes: dict[str, Any] = {}
     if refine is None or refine:
@@ -86,6 +97,76 @@ def match_intrinsic(source: Shape, target: Shape, landmarks: Landmarks | None, o
         tri, bary, vertex, sizes = refine_products(source, target, tri, bary, settings, h, frame)
         timings["product_refine"] = time.perf_counter() - t0
     return ModeResult(tri, bary, vertex, back, kk, timings, sizes)
+
+
+def coarse_shapes(source: Shape, target: Shape, options: MatchOptions) -> tuple[Shape, Shape] | None:
+    """Copies of both shapes simplified to ``options.coarse_vertices`` (a shape not larger kept as it
+    is) when either has more than ``options.coarse_above`` vertices; else, or without the simplifier,
+    None. The copies' size is fixed, so refining the input does not change what is matched on them."""
+    if options.coarse_vertices <= 0 or max(source.n_vertices, target.n_vertices) <= options.coarse_above:
+        return None
+    try:
+        cs, ct = (simplified_shape(sh, options.coarse_vertices) if sh.n_vertices > options.coarse_vertices
+                  else sh for sh in (source, target))
+    except SimplifierMissing:
+        return None
+    return cs, ct
+
+
+def _match_through(source: Shape, target: Shape, coarse: tuple[Shape, Shape], landmarks: Landmarks | None,
+                   options: MatchOptions, refine: bool | None, h: float) -> ModeResult:
+    """:func:`match_intrinsic` with the spectral map and the alignment on the ``coarse`` copies
+    (:func:`engine.matching.nonrigid.deform_through` carries the deformation to the full source).
+    The final functional map is reported in a basis of ``2 product_K + 10`` functions, the size the
+    product embedding computes on the source anyway."""
+    timings: dict[str, float] = {}
+    t0 = time.perf_counter()
+    cs, ct = coarse
+    lm = coarse_landmarks(landmarks, (source, target), coarse)
+    kk = int(min(options.k, cs.n_vertices - 1, ct.n_vertices - 1))
+    spectral = _spectral_map(cs, ct, lm, options, kk, timings)
+    tri, bary = _vertex_as_point(cs, spectral.vertex)
+    timings["initial_map"] = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    tri, bary, frame = deform_through(source, target, coarse, SpectralPairs.of(cs, ct, tri, bary, spectral.rows),
+                                      lm, _icp_options(options))
+    vertex, back = _round_trip(source, target, tri, bary, frame)
+    timings["align_refine"] = time.perf_counter() - t0
+    sizes: dict[str, Any] = {"coarse_source_vertices": cs.n_vertices, "coarse_target_vertices": ct.n_vertices}
+    basis = int(min(2 * options.product_K + 10, source.n_vertices - 2, target.n_vertices - 2))
+    target.eigenbasis(basis)         # one solve for the product embedding's few and the final map's
+    if refine is None or refine:
+        t0 = time.perf_counter()
+        settings = ProductSettings(options.product_K, options.product_order)
+        tri, bary, vertex, more = refine_products(source, target, tri, bary, settings, h, frame)
+        sizes.update(more)
+        timings["product_refine"] = time.perf_counter() - t0
+    return ModeResult(tri, bary, vertex, back, basis, timings, sizes)
+
+
+def coarse_landmarks(landmarks: Landmarks | None, full: tuple[Shape, Shape],
+                     coarse: tuple[Shape, Shape]) -> Landmarks | None:
+    """Landmarks (vertices of the full shapes) as the nearest vertices of the coarse copies."""
+    if landmarks is None:
+        return None
+    ends = [np.asarray(cKDTree(c.vertices).query(f.vertices[idx])[1], dtype=np.int64)
+            for f, c, idx in zip(full, coarse, landmarks)]
+    return ends[0], ends[1]
+
+
+def _icp_options(options: MatchOptions) -> IcpOptions:
+    return IcpOptions(steps=tuple(options.align_steps), iterations=options.align_iterations)
+
+
+def _round_trip(source: Shape, target: Shape, tri: IntArray, bary: FloatArray,
+                frame: FloatArray) -> tuple[IntArray, IntArray]:
+    """The map's source vertex per target vertex, and the reverse map: per source vertex the
+    target vertex at its deformed position (``frame``), found by the cheap search, which
+    serves the round trip's confidence."""
+    vertex = source.faces[tri, np.argmax(bary, axis=1)]
+    b_tri, b_bary, _ = near_closest(target.vertices, target.faces,
+                                    incident_triangles(target.faces, target.n_vertices), frame)
+    return vertex, target.faces[b_tri, np.argmax(b_bary, axis=1)]
 
 
 def _spectral_map(source: Shape, target: Shape, landmarks: Landmarks | None, options: MatchOptions, kk: int,
@@ -103,10 +184,10 @@ def _spectral_map(source: Shape, target: Shape, landmarks: Landmarks | None, opt
     k0 = int(min(options.k_start, kk))
     ms, mt = source.mass / source.area, target.mass / target.area
     # orientation operators of every 4th descriptor, each scaled to unit maximum
-    orient_s = [orientation_operator(source.vertices, source.faces, ps[:, :k0], ms, d / np.abs(d).max())
-                for d in ds.T[::4]]
-    orient_t = [orientation_operator(target.vertices, target.faces, pt[:, :k0], mt, d / np.abs(d).max())
-                for d in dt.T[::4]]
+    orient_s = list(orientation_operators(source.vertices, source.faces, ps[:, :k0],
+                                          ds[:, ::4] / np.abs(ds[:, ::4]).max(axis=0)))
+    orient_t = list(orientation_operators(target.vertices, target.faces, pt[:, :k0],
+                                          dt[:, ::4] / np.abs(dt[:, ::4]).max(axis=0)))
     weights = MapWeights(commute=options.commute, orient=options.orient, orient_s=orient_s, orient_t=orient_t)
     C0 = fmap_from_descriptors((ls[:k0], ps[:, :k0], ms, ds), (lt[:k0], pt[:, :k0], mt, dt), weights)
     # nearest orthogonal matrix: a near-isometry's map between orthonormal bases is orthogonal

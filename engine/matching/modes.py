@@ -49,6 +49,10 @@ class MatchOptions:
         :func:`engine.matching.nonrigid.deform_onto`). Empty to skip.
     align_iterations : int
         ICP solves per smoothing length.
+    coarse_above, coarse_vertices : int
+        Intrinsic mode with the alignment: when either shape has more than
+        ``coarse_above`` vertices, the spectral map and the alignment run on
+        copies simplified to ``coarse_vertices`` (0: never).
     """
 
     k: int = 60
@@ -63,6 +67,8 @@ class MatchOptions:
     orient: float = 1e-3
     align_steps: tuple[float, ...] = (0.1, 0.05, 0.02, 0.01, 0.005)
     align_iterations: int = 3
+    coarse_above: int = 10000
+    coarse_vertices: int = 5000
 
 
 @dataclass

@@ -24,6 +24,10 @@ Pairs of either direction whose normals disagree (cosine below
 ``normal_min``) are dropped; the landmarks and the spectral map's pairs are
 always kept. Measurements of every variant: docs/measurements.md,
 "Correspondence and transfer accuracy".
+
+:func:`deform_through` runs the same on simplified copies of large shapes
+(their regulariser without negative edge weights, :func:`nonnegative_stiffness`)
+and carries the deformation to the full source (:func:`carry_deformation`).
 """
 
 from __future__ import annotations
@@ -37,10 +41,12 @@ from numpy.typing import NDArray
 from scipy.spatial import cKDTree
 
 from ..carrying.detail import vertex_normals_unchecked
+from ..spectra.discretization import mesh_operators
 from ..spectra.shape import Shape
 from .closest_point import SurfaceLocator, barycentric_matrix, closest_points_on_triangles, incident_triangles
 
-__all__ = ["IcpOptions", "SpectralPairs", "deform_onto", "near_closest", "spd_factor", "SimilarityFit"]
+__all__ = ["IcpOptions", "SpectralPairs", "Surface", "deform_onto", "deform_through", "carry_deformation",
+           "nonnegative_stiffness", "near_closest", "spd_factor", "SimilarityFit"]
 
 FloatArray = NDArray[np.float64]
 IntArray = NDArray[np.int64]
@@ -92,11 +98,40 @@ class SpectralPairs:
 
 
 @dataclass(frozen=True)
+class Surface:
+    """What the alignment reads of a mesh: vertices (n, 3), faces (m, 3), lumped masses (n,),
+    area and the regulariser's stiffness (n, n)."""
+
+    vertices: FloatArray
+    faces: IntArray
+    mass: FloatArray
+    area: float
+    stiffness: Any
+
+    @property
+    def n_vertices(self) -> int:
+        return len(self.vertices)
+
+    @classmethod
+    def of(cls, shape: Shape) -> Surface:
+        """The shape's own operators."""
+        return cls(shape.vertices, shape.faces, shape.mass, shape.area, shape.stiffness)
+
+    @classmethod
+    def coarse(cls, shape: Shape) -> Surface:
+        """A simplified copy's plain cotangent operators, negative edge weights dropped
+        (:func:`nonnegative_stiffness`)."""
+        ops = mesh_operators(shape.vertices, shape.faces, robust=False)
+        mass = np.asarray(ops.mass, dtype=np.float64)
+        return cls(shape.vertices, shape.faces, mass, float(mass.sum()), nonnegative_stiffness(ops.stiffness))
+
+
+@dataclass(frozen=True)
 class _Fixed:
     """What stays the same over every solve."""
 
-    source: Shape
-    target: Shape
+    source: Surface
+    target: Surface
     L: Any                    # source stiffness, csr
     fit: SimilarityFit
     m_s: FloatArray           # source masses in target units
@@ -123,6 +158,32 @@ def deform_onto(source: Shape, target: Shape, pairs: SpectralPairs, landmarks: L
     -------
     triangle (n_t,), barycentric (n_t, 3) for every target vertex; the deformed source (n_s, 3).
     """
+    X = _deform(Surface.of(source), Surface.of(target), pairs, landmarks, options)
+    cp = SurfaceLocator(X, source.faces).closest(target.vertices)
+    return cp.triangle, cp.barycentric, X
+
+
+def deform_through(source: Shape, target: Shape, coarse: tuple[Shape, Shape], pairs: SpectralPairs,
+                   landmarks: Landmarks | None, options: IcpOptions) -> tuple[IntArray, FloatArray, FloatArray]:
+    """:func:`deform_onto` run on simplified copies of the shapes (``pairs`` and ``landmarks`` theirs),
+    the deformation carried to the full source (:func:`carry_deformation`) and every full target
+    vertex's point on it found by the cheap search (:func:`near_closest`).
+
+    Returns
+    -------
+    triangle (n_t,), barycentric (n_t, 3) for every full target vertex; the deformed full source (n_s, 3).
+    """
+    cs, ct = Surface.coarse(coarse[0]), Surface.coarse(coarse[1])
+    Xc = _deform(cs, ct, pairs, landmarks, options)
+    X = carry_deformation(cs, Xc, SimilarityFit(cs.stiffness, cs.vertices, scale=options.similar), source.vertices)
+    tri, bary, _ = near_closest(X, source.faces, incident_triangles(source.faces, source.n_vertices),
+                                target.vertices)
+    return tri, bary, X
+
+
+def _deform(source: Surface, target: Surface, pairs: SpectralPairs, landmarks: Landmarks | None,
+            options: IcpOptions) -> FloatArray:
+    """The deformed source: warp and affine fit, the map's solves, then the ICP solves."""
     X = _affine_fit(_landmark_warp(source, target, landmarks), pairs)
     fixed = _fixed_terms(source, target, landmarks, options)
     X = _fit_to_map(fixed, pairs, X, options)
@@ -131,11 +192,31 @@ def deform_onto(source: Shape, target: Shape, pairs: SpectralPairs, landmarks: L
         lam = r * r * A_t
         for _ in range(options.iterations):
             X = _icp_solve(fixed, X, lam, options)
-    cp = SurfaceLocator(X, source.faces).closest(target.vertices)
-    return cp.triangle, cp.barycentric, X
+    return X
 
 
-def _landmark_warp(source: Shape, target: Shape, landmarks: Landmarks | None) -> FloatArray:
+def nonnegative_stiffness(L: Any) -> Any:
+    """``L`` with its negative edge weights (positive off-diagonal entries) dropped, rows summing to zero:
+    a simplified mesh's long thin triangles give such weights, which make the regulariser indefinite."""
+    C = sp.coo_matrix(L)
+    keep = (C.row != C.col) & (C.data < 0)
+    off = sp.csr_matrix((C.data[keep], (C.row[keep], C.col[keep])), shape=C.shape)
+    return (off - sp.diags(np.asarray(off.sum(axis=1)).ravel())).tocsr()
+
+
+def carry_deformation(coarse: Surface, X_coarse: FloatArray, fit: SimilarityFit, points: FloatArray) -> FloatArray:
+    """``points`` near the rest surface of ``coarse`` carried by its deformation ``X_coarse``: each
+    takes its closest point on the coarse surface, deformed barycentrically, plus its offset from
+    there through the corners' fitted rotations and scales (blended barycentrically)."""
+    tri, bary, foot = near_closest(coarse.vertices, coarse.faces,
+                                   incident_triangles(coarse.faces, coarse.n_vertices), points)
+    corners = coarse.faces[tri]
+    T = np.einsum("ij,ijab->iab", bary, fit.transforms(X_coarse)[corners])
+    out: FloatArray = np.einsum("ij,ijk->ik", bary, X_coarse[corners]) + np.einsum("iab,ib->ia", T, points - foot)
+    return out
+
+
+def _landmark_warp(source: Surface, target: Surface, landmarks: Landmarks | None) -> FloatArray:
     """Source vertices through a thin-plate spline taking the landmarks onto the target's (identity below four)."""
     X: FloatArray = source.vertices.copy()
     if landmarks is not None and len(landmarks[0]) >= 4:
@@ -157,7 +238,7 @@ def _affine_fit(X: FloatArray, pairs: SpectralPairs) -> FloatArray:
     return out
 
 
-def _fixed_terms(source: Shape, target: Shape, landmarks: Landmarks | None, options: IcpOptions) -> _Fixed:
+def _fixed_terms(source: Surface, target: Surface, landmarks: Landmarks | None, options: IcpOptions) -> _Fixed:
     n_s = source.n_vertices
     Y, A_t = target.vertices, target.area
     L = source.stiffness.tocsr()
@@ -268,8 +349,8 @@ class SimilarityFit:
         self.n = len(rest)
         self.norm = np.bincount(self.i, weights=self.w * np.einsum("ij,ij->i", self.e0, self.e0), minlength=self.n)
 
-    def rhs(self, X: FloatArray) -> FloatArray:
-        """``b`` of the global step for the rotations and scales fitted to ``X`` (n, 3)."""
+    def transforms(self, X: FloatArray) -> FloatArray:
+        """(n, 3, 3) per vertex its rotation times its scale, fitted to ``X`` (n, 3)."""
         i, j, w, e0, n = self.i, self.j, self.w, self.e0, self.n
         e = X[i] - X[j]
         cov = np.empty((n, 3, 3))
@@ -284,6 +365,12 @@ class SimilarityFit:
         scale = np.where(self.norm > 0, sig.sum(axis=1) / np.where(self.norm > 0, self.norm, 1.0), 1.0)
         if not self.scale:
             scale = np.ones(n)
-        T = (U @ Vt) * scale[:, None, None]
+        out: FloatArray = (U @ Vt) * scale[:, None, None]
+        return out
+
+    def rhs(self, X: FloatArray) -> FloatArray:
+        """``b`` of the global step for the rotations and scales fitted to ``X`` (n, 3)."""
+        i, j, w, e0, n = self.i, self.j, self.w, self.e0, self.n
+        T = self.transforms(X)
         Te = np.einsum("kab,kb->ka", T[i] + T[j], e0) * (0.5 * w)[:, None]
         return np.column_stack([np.bincount(i, weights=Te[:, a], minlength=n) for a in range(3)])
