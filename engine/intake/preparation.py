@@ -21,7 +21,7 @@ from ..common.arrays import Array, ArrayLike
 from .triangulation import triangulate
 
 __all__ = ["validate_mesh", "validate_triangles", "prepare_mesh", "PreparedMesh", "mesh_topology", "EdgeGroups",
-           "group_edges"]
+           "group_edges", "fan_counts"]
 
 # Triangles with area <= _ZERO_AREA * (bounding-box diagonal)**2 are dropped.
 # The area comes from a cross product of edge vectors whose coordinates are at
@@ -434,7 +434,6 @@ def mesh_topology(faces: Array, nv: int) -> tuple[int, int, int]:
     corners at the vertex in two triangles that share an edge through it are
     joined (common practice; the same definition as a vertex-manifold test).
     """
-    m = len(faces)
     tail = faces.reshape(-1)
     head = faces[:, [1, 2, 0]].reshape(-1)
     groups = group_edges(tail, head, nv)
@@ -462,7 +461,24 @@ def mesh_topology(faces: Array, nv: int) -> tuple[int, int, int]:
             labels = connected_components(g, directed=False)[1]
             loops = len(np.unique(labels[verts]))
 
-    # Non-manifold vertices: fans of corners around each vertex.
+    nm_vertices = int((fan_counts(faces, nv, groups) > 1).sum())
+    return loops, nm_edges, nm_vertices
+
+
+def fan_counts(faces: Array, nv: int, groups: EdgeGroups | None = None) -> Array:
+    """(nv,) int64: the fans of each vertex, 0 for a vertex no triangle uses.
+
+    Corners at the vertex in two triangles that share an edge through it are
+    joined (common practice; the same definition as a vertex-manifold test);
+    a fan is a connected set of joined corners. ``groups`` are the face-edges
+    of ``faces`` grouped by :func:`group_edges` (half-edge ``t*3 + k`` from
+    corner ``k`` to ``k + 1``), computed here when not given.
+    """
+    m = len(faces)
+    tail = faces.reshape(-1)
+    if groups is None:
+        groups = group_edges(tail, faces[:, [1, 2, 0]].reshape(-1), nv)
+    order = groups.order
     # Half-edge h = (a -> b) in triangle t: corners (t, a) and (t, b). Two
     # half-edges of the same undirected edge join the corners at a and at b.
     corner_at = np.arange(m * 3)  # half-edge h starts at corner h
@@ -481,8 +497,7 @@ def mesh_topology(faces: Array, nv: int) -> tuple[int, int, int]:
     # one entry per distinct (vertex, fan) pair; vertex * 3m + label < nv * 3m fits in int64
     pairs = np.sort(tail * np.int64(m * 3) + labels)
     fans = pairs[np.r_[True, pairs[1:] != pairs[:-1]]] // np.int64(m * 3)
-    nm_vertices = int((np.bincount(fans, minlength=nv) > 1).sum())
-    return loops, nm_edges, nm_vertices
+    return np.bincount(fans, minlength=nv).astype(np.int64)
 
 
 def _first_of_rows(rows: Array, bound: int) -> Array:

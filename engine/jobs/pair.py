@@ -40,13 +40,14 @@ from ..spectra.approximation import check_basis_name
 __all__ = ["Settings", "Pair", "weighted_centre_vertex", "load_landmarks", "check_landmarks",
            "CORRESPONDENCE_VERSION"]
 
-CORRESPONDENCE_VERSION = 7   # 2: product-embedding step in the intrinsic map; 3: non-rigid ICP
+CORRESPONDENCE_VERSION = 8   # 2: product-embedding step in the intrinsic map; 3: non-rigid ICP
                              # alignment; 4: spectral check in aligned mode where the surfaces differ;
                              # 5: nearest embedding rows from one fused product (near-ties may differ);
                              # 6: pieces matched piece to piece, confidence with facing and signature
                              # checks, auto mode's self-check (new report keys)
                              # 7: meshes over 40k vertices matched through stand-ins; no functional
-                             # map in aligned mode
+                             # map in aligned mode; 8: a huge mesh clustered on a grid before its
+                             # stand-in's quadric simplification, the lift indexing only its own queries
 
 
 @dataclass(frozen=True)
