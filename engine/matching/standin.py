@@ -44,7 +44,7 @@ from scipy.spatial import cKDTree
 from ..intake.preparation import PreparedMesh
 from ..spectra.shape import Shape
 from .aligned import vertices_on_surface
-from .closest_point import SurfaceLocator, SurfacePoints
+from .closest_point import SurfaceLocator, SurfacePoints, closest_points_on_triangles, near_degenerate
 from .coarsening import cluster_mesh, drop_fins
 
 __all__ = ["STANDIN_VERTICES", "STANDIN_ABOVE", "SimplifierMissing", "simplify_mesh", "simplified_shape",
@@ -200,27 +200,51 @@ LIFT_NEIGHBOURS = 8
 
 
 class NearbyLocator:
-    """Closest points on the part of a huge mesh near a known set of queries.
+    """Closest points on a huge mesh for queries near it.
 
-    Only the triangles touching the :data:`LIFT_NEIGHBOURS` nearest vertices
-    of some query are indexed (a :class:`SurfaceLocator` over them), so a
-    million-vertex source is never indexed whole for a target-sized set of
-    queries. Queries near the given ones (within their vertices' reach) get
-    the exact closest point on those triangles.
+    Each query gets the exact closest point on the triangles around its
+    :data:`LIFT_NEIGHBOURS` nearest vertices, computed for those triangles
+    only, so a million-vertex source is never indexed whole (only a tree of its
+    vertices is built). For a query near the surface (within about an edge
+    length, as the lift's are) the closest triangle is among them.
     """
 
-    def __init__(self, shape: Shape, queries: FloatArray) -> None:
-        _, near = cKDTree(shape.vertices).query(queries, k=min(LIFT_NEIGHBOURS, shape.n_vertices), workers=-1)
-        wanted = np.zeros(shape.n_vertices, dtype=bool)
-        wanted[np.asarray(near).ravel()] = True
-        self.triangles = np.flatnonzero(wanted[shape.faces].any(axis=1))
-        used, faces = np.unique(shape.faces[self.triangles], return_inverse=True)
-        self.locator = SurfaceLocator(shape.vertices[used], faces.reshape(-1, 3))
+    def __init__(self, shape: Shape) -> None:
+        self.vertices, self.faces = shape.vertices, shape.faces
+        self.tree = cKDTree(shape.vertices)
 
     def closest(self, query: FloatArray) -> SurfacePoints:
-        """As :meth:`SurfaceLocator.closest`, triangles numbered in the whole mesh."""
-        found = self.locator.closest(query)
-        return SurfacePoints(self.triangles[found.triangle], found.barycentric, found.points, found.distance)
+        """As :meth:`SurfaceLocator.closest`; ties go to the lowest triangle index."""
+        qi, tri = self._candidates(query)
+        f = self.faces[tri]
+        a, b, c = self.vertices[f[:, 0]], self.vertices[f[:, 1]], self.vertices[f[:, 2]]
+        w, p = closest_points_on_triangles(query[qi], a, b, c, near_degenerate(a, b, c))
+        d = np.einsum("ij,ij->i", p - query[qi], p - query[qi])
+        starts = np.flatnonzero(np.r_[True, qi[1:] != qi[:-1]])        # pairs come sorted by query
+        nearest = np.repeat(np.minimum.reduceat(d, starts), np.diff(np.r_[starts, len(d)]))
+        hit = np.flatnonzero(d == nearest)
+        first = hit[np.r_[True, qi[hit][1:] != qi[hit][:-1]]]
+        return SurfacePoints(tri[first], w[first], p[first], np.linalg.norm(p[first] - query, axis=1))
+
+    def _candidates(self, query: FloatArray) -> tuple[IntArray, IntArray]:
+        """(query, triangle) pairs, sorted and distinct: the triangles around each query's nearest vertices."""
+        n, m = len(self.vertices), len(self.faces)
+        _, near = self.tree.query(query, k=min(LIFT_NEIGHBOURS, n), workers=-1)
+        near = np.asarray(near, dtype=np.int64).reshape(len(query), -1)
+        wanted = np.zeros(n, dtype=bool)
+        wanted[near.ravel()] = True
+        touch = np.flatnonzero(wanted[self.faces].any(axis=1))
+        v, t = self.faces[touch].ravel(), np.repeat(touch, 3)
+        v, t = v[wanted[v]], t[wanted[v]]
+        order = np.argsort(v, kind="stable")
+        v, t = v[order], t[order]                      # triangles around each wanted vertex, in a row
+        count = np.bincount(v, minlength=n)
+        first = np.cumsum(count) - count
+        c = count[near.ravel()]
+        rep = np.repeat(np.arange(near.size), c)
+        tri = t[np.repeat(first[near.ravel()], c) + np.arange(len(rep)) - np.repeat(np.cumsum(c) - c, c)]
+        key = np.unique((rep // near.shape[1]) * np.int64(m) + tri)
+        return key // m, key % m
 
 
 @dataclass(frozen=True)
@@ -264,7 +288,7 @@ def lift_map(source: StandIn, target: StandIn, coarse_points: FloatArray, coarse
         coarse_direct = vertices_on_surface(target.full, source.coarse)
         keep = np.linalg.norm(coarse_direct.points - points, axis=1) <= 0.25 * source.coarse.mean_edge
     query = np.where(keep[:, None], target.full.vertices, points)
-    found = NearbyLocator(source.full, query).closest(query)
+    found = NearbyLocator(source.full).closest(query)
     tri, bary = found.triangle, found.barycentric
     correction = found.distance[~keep]
     kept = int(keep.sum())
