@@ -395,6 +395,33 @@ def test_non_manifold_counts_agree_with_libigl():
     assert p.notes == ("1 non-manifold edges",)
 
 
+def _cone(sides, apex, base_height):
+    """A closed cone: ``sides`` triangles to the apex, a fan closing the base (outward winding)."""
+    t = 2 * np.pi * np.arange(sides) / sides
+    ring = np.column_stack([np.cos(t), np.sin(t), np.full(sides, base_height)])
+    v = np.vstack([apex, ring, [0, 0, base_height]])
+    i = np.arange(sides)
+    side = np.column_stack([np.zeros(sides, int), 1 + i, 1 + (i + 1) % sides])
+    base = np.column_stack([np.full(sides, sides + 1), 1 + (i + 1) % sides, 1 + i])
+    return v, np.vstack([side, base])
+
+
+@pytest.mark.parametrize("sides", [6, 200])     # 200: longer than the walk around a vertex (FAN_WALK)
+def test_two_closed_cones_touching_at_their_apex_agree_with_libigl(sides):
+    import igl  # reference library, test environment only
+    # every edge has two triangles in opposite directions, yet the shared apex has two fans
+    v1, f1 = _cone(sides, [0, 0, 0], 1.0)
+    v2, f2 = _cone(sides, [0, 0, 0], -1.0)
+    f2 = f2[:, ::-1] + len(v1)
+    f2[f2 == len(v1)] = 0                        # the second apex is the first
+    v, f = np.vstack([v1, v2]), np.vstack([f1, f2])
+    p = prepare_mesh(v, f)
+    assert (p.non_manifold_vertices, p.non_manifold_edges, p.n_boundary_loops) == (1, 0, 0)
+    assert int((~np.asarray(igl.is_vertex_manifold(p.faces), bool)).sum()) == 1
+    one = prepare_mesh(v1, f1)                   # one cone alone: a manifold sphere
+    assert (one.non_manifold_vertices, one.handles) == (0, 0)
+
+
 @pytest.mark.parametrize("vdtype", [np.float32, np.float64, np.int32])
 @pytest.mark.parametrize("fdtype", [np.int32, np.int64, np.uint32, np.uint16])
 def test_dtypes(vdtype, fdtype):

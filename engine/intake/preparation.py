@@ -21,7 +21,7 @@ from ..common.arrays import Array, ArrayLike
 from .triangulation import triangulate
 
 __all__ = ["validate_mesh", "validate_triangles", "prepare_mesh", "PreparedMesh", "mesh_topology", "EdgeGroups",
-           "group_edges"]
+           "group_edges", "split_fans", "fan_counts", "FAN_WALK", "edge_graph"]
 
 # Triangles with area <= _ZERO_AREA * (bounding-box diagonal)**2 are dropped.
 # The area comes from a cross product of edge vectors whose coordinates are at
@@ -358,12 +358,12 @@ def prepare_mesh(vertices: ArrayLike, faces: ArrayLike | None = None, *, corners
         restore_index[loose] = cKDTree(verts_c).query(v[loose])[1]
 
     nv = len(verts_c)
-    e = np.concatenate([faces_c[:, [0, 1]], faces_c[:, [1, 2]], faces_c[:, [2, 0]]])
-    adjacency = sp.coo_matrix((np.ones(len(e)), (e[:, 0], e[:, 1])), shape=(nv, nv))
-    n_components, component = connected_components(adjacency, directed=False)
+    groups = group_edges(faces_c.reshape(-1), faces_c[:, [1, 2, 0]].reshape(-1), nv)
+    n_components, component = connected_components(edge_graph(faces_c, nv, groups), directed=True,
+                                                   connection="weak")
     if n_components > 1:
         notes.append(f"{n_components} connected components")
-    loops, nm_edges, nm_vertices = mesh_topology(faces_c, nv)
+    loops, nm_edges, nm_vertices = mesh_topology(faces_c, nv, groups)
     if nm_edges:
         notes.append(f"{nm_edges} non-manifold edges")
     if nm_vertices:
@@ -418,7 +418,18 @@ def _drop_degenerate(v: Array, tris: Array, tri_polygon: Array,
     return tris, tri_polygon
 
 
-def mesh_topology(faces: Array, nv: int) -> tuple[int, int, int]:
+def edge_graph(faces: Array, nv: int, groups: EdgeGroups) -> sp.csr_matrix:
+    """(nv, nv) sparse graph with each edge of ``faces`` once, from the smaller vertex to the larger
+    (``groups``: its face-edges grouped by :func:`group_edges`, already in that order)."""
+    h = groups.order[groups.starts]
+    tail, head = faces.reshape(-1)[h], faces[:, [1, 2, 0]].reshape(-1)[h]
+    low, high = np.minimum(tail, head), np.maximum(tail, head)
+    indptr = np.zeros(nv + 1, dtype=np.int64)
+    np.cumsum(np.bincount(low, minlength=nv), out=indptr[1:])
+    return sp.csr_matrix((np.ones(len(h), dtype=np.int8), high, indptr), shape=(nv, nv))
+
+
+def mesh_topology(faces: Array, nv: int, groups: EdgeGroups | None = None) -> tuple[int, int, int]:
     """Boundary loops, non-manifold edges and non-manifold vertices of a triangle mesh.
 
     Half-edge ``t*3 + k`` runs from corner ``k`` to corner ``k + 1`` of triangle
@@ -433,11 +444,12 @@ def mesh_topology(faces: Array, nv: int) -> tuple[int, int, int]:
     A vertex is non-manifold when its corners split into more than one fan:
     corners at the vertex in two triangles that share an edge through it are
     joined (common practice; the same definition as a vertex-manifold test).
+    ``groups``: the face-edges grouped by :func:`group_edges`, computed here when not given.
     """
-    m = len(faces)
     tail = faces.reshape(-1)
     head = faces[:, [1, 2, 0]].reshape(-1)
-    groups = group_edges(tail, head, nv)
+    if groups is None:
+        groups = group_edges(tail, head, nv)
     order, starts, counts = groups.order, groups.starts, groups.counts
     nm_edges = int((counts > 2).sum())
 
@@ -462,7 +474,73 @@ def mesh_topology(faces: Array, nv: int) -> tuple[int, int, int]:
             labels = connected_components(g, directed=False)[1]
             loops = len(np.unique(labels[verts]))
 
-    # Non-manifold vertices: fans of corners around each vertex.
+    nm_vertices = int(split_fans(faces, nv, groups).sum())
+    return loops, nm_edges, nm_vertices
+
+
+def split_fans(faces: Array, nv: int, groups: EdgeGroups | None = None) -> Array:
+    """(nv,) bool: vertices whose triangles form more than one fan.
+
+    Corners at the vertex in two triangles that share an edge through it are
+    joined (common practice; the same definition as a vertex-manifold test);
+    a fan is a connected set of joined corners. ``groups`` are the face-edges
+    of ``faces`` grouped by :func:`group_edges` (half-edge ``t*3 + k`` from
+    corner ``k`` to ``k + 1``), computed here when not given.
+
+    Where every edge at a vertex is an ordinary one (two triangles, opposite
+    directions), the corner across the outgoing edge is the next corner around
+    the vertex, and the vertex has one fan when walking from one of its corners
+    comes back after all of them; the other vertices, and those whose walk is
+    longer than :data:`FAN_WALK` steps, have their fans counted as connected
+    components of the joined corners (:func:`fan_counts`).
+    """
+    m3 = 3 * len(faces)
+    tail = faces.reshape(-1)
+    head = faces[:, [1, 2, 0]].reshape(-1)
+    if groups is None:
+        groups = group_edges(tail, head, nv)
+    order, starts, counts = groups.order, groups.starts, groups.counts
+    first, second = order[starts], order[np.minimum(starts + 1, m3 - 1)]
+    ordinary = (counts == 2) & (tail[first] == head[second])
+    irregular = np.zeros(nv, dtype=bool)
+    irregular[tail[first[~ordinary]]] = True
+    irregular[head[first[~ordinary]]] = True
+    # the next corner around the vertex: the corner after the twin half-edge's in its triangle
+    after = (np.arange(len(faces))[:, None] * 3 + np.array([1, 2, 0])).reshape(-1)
+    step = np.arange(m3)
+    step[first[ordinary]], step[second[ordinary]] = after[second[ordinary]], after[first[ordinary]]
+    size = np.bincount(tail, minlength=nv)
+    start = np.full(nv, -1, dtype=np.int64)
+    start[tail] = np.arange(m3)
+    walk = np.flatnonzero((size > 0) & ~irregular)
+    here, length = step[start[walk]], np.ones(len(walk), dtype=np.int64)
+    active = np.flatnonzero(here != start[walk])
+    for _ in range(FAN_WALK):
+        if not active.size:
+            break
+        here[active] = step[here[active]]
+        length[active] += 1
+        active = active[here[active] != start[walk[active]]]
+    irregular[walk[active]] = True                  # walked too long: counted below
+    split = np.zeros(nv, dtype=bool)
+    done = ~irregular[walk]
+    split[walk[done]] = length[done] < size[walk[done]]
+    if irregular.any():
+        split |= fan_counts(faces, nv, groups, only=irregular) > 1
+    return split
+
+
+FAN_WALK = 64
+"""Steps of the walk around a vertex in :func:`split_fans` before its fans are counted the general way."""
+
+
+def fan_counts(faces: Array, nv: int, groups: EdgeGroups, only: Array | None = None) -> Array:
+    """(nv,) int64: the fans of each vertex (of each vertex in the mask ``only``; 0 elsewhere and
+    for a vertex no triangle uses), as connected components of the joined corners
+    (see :func:`split_fans`)."""
+    m = len(faces)
+    tail = faces.reshape(-1)
+    order = groups.order
     # Half-edge h = (a -> b) in triangle t: corners (t, a) and (t, b). Two
     # half-edges of the same undirected edge join the corners at a and at b.
     corner_at = np.arange(m * 3)  # half-edge h starts at corner h
@@ -476,14 +554,15 @@ def mesh_topology(faces: Array, nv: int) -> tuple[int, int, int]:
     same_dir = tail[h0] == tail[h1]
     t1c = np.where(same_dir[:, None], t1c, t1c[:, ::-1])
     rows, cols = t0c.reshape(-1), t1c.reshape(-1)
+    if only is not None:
+        rows, cols = rows[only[tail[rows]]], cols[only[tail[rows]]]
     g = sp.coo_matrix((np.ones(len(rows)), (rows, cols)), shape=(m * 3, m * 3))
     labels = connected_components(g, directed=False)[1]
     # one entry per distinct (vertex, fan) pair; vertex * 3m + label < nv * 3m fits in int64
-    pairs = np.sort(tail * np.int64(m * 3) + labels)
+    corners = np.arange(m * 3) if only is None else np.flatnonzero(only[tail])
+    pairs = np.sort(tail[corners] * np.int64(m * 3) + labels[corners])
     fans = pairs[np.r_[True, pairs[1:] != pairs[:-1]]] // np.int64(m * 3)
-    nm_vertices = int((np.bincount(fans, minlength=nv) > 1).sum())
-    return loops, nm_edges, nm_vertices
-
+    return np.bincount(fans, minlength=nv).astype(np.int64)
 
 def _first_of_rows(rows: Array, bound: int) -> Array:
     """Indices of the first occurrence of each distinct row, ascending.

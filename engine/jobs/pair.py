@@ -41,7 +41,7 @@ from ..spectra.approximation import check_basis_name
 __all__ = ["Settings", "Pair", "weighted_centre_vertex", "load_landmarks", "check_landmarks",
            "CORRESPONDENCE_VERSION"]
 
-CORRESPONDENCE_VERSION = 8   # 2: product-embedding step in the intrinsic map; 3: non-rigid ICP
+CORRESPONDENCE_VERSION = 9   # 2: product-embedding step in the intrinsic map; 3: non-rigid ICP
                              # alignment; 4: spectral check in aligned mode where the surfaces differ;
                              # 5: nearest embedding rows from one fused product (near-ties may differ);
                              # 6: pieces matched piece to piece, confidence with facing and signature
@@ -51,6 +51,8 @@ CORRESPONDENCE_VERSION = 8   # 2: product-embedding step in the intrinsic map; 3
                              # 8: intrinsic mode over 10k vertices: spectral map and alignment on
                              # 5k-vertex copies, functional map in 30 functions; reverse map (the
                              # round trip's confidence) by the cheap search
+                             # 9: a huge mesh clustered on a grid before its stand-in's quadric
+                             # simplification, the lift searching each query's own neighbourhood
 
 
 @dataclass(frozen=True)

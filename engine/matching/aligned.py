@@ -17,6 +17,7 @@ docs/measurements.md, "Correspondence and transfer accuracy".
 from __future__ import annotations
 
 import time
+import weakref
 from dataclasses import dataclass
 from typing import Any
 
@@ -30,7 +31,8 @@ from .embedding import PRODUCT_SPATIAL, ProductSettings, best_on_triangles, prod
 from .modes import ModeResult
 
 __all__ = ["ALIGNED_QUANTILE", "ALIGNED_COINCIDE", "ALIGNED_MARGIN", "ALIGNED_SPATIAL", "ALIGNED_WINDOW",
-           "ALIGNED_NEIGHBOURS", "ALIGNED_PASSES", "match_aligned", "check_closest_points"]
+           "ALIGNED_NEIGHBOURS", "ALIGNED_PASSES", "match_aligned", "check_closest_points",
+           "vertices_on_surface"]
 
 FloatArray = NDArray[np.float64]
 IntArray = NDArray[np.int64]
@@ -85,8 +87,8 @@ def match_aligned(source: Shape, target: Shape, locators: tuple[SurfaceLocator, 
     """
     loc_s, loc_t = locators
     t0 = time.perf_counter()
-    cp_t = loc_s.closest(target.vertices)       # target vertices -> source surface
-    cp_s = loc_t.closest(source.vertices)       # source vertices -> target surface
+    cp_t = vertices_on_surface(target, source, loc_s)       # target vertices -> source surface
+    cp_s = vertices_on_surface(source, target, loc_t)       # source vertices -> target surface
     tri, bary = cp_t.triangle, cp_t.barycentric
     gap = float(max(np.quantile(cp_t.distance, ALIGNED_QUANTILE),
                     np.quantile(cp_s.distance, ALIGNED_QUANTILE)) / h)
@@ -112,6 +114,26 @@ def match_aligned(source: Shape, target: Shape, locators: tuple[SurfaceLocator, 
     result.stats["aligned_refine"] = checked
     result.why = why
     return result
+
+
+_ON_SURFACE: weakref.WeakKeyDictionary[Shape, weakref.WeakKeyDictionary[Shape, SurfacePoints]] = \
+    weakref.WeakKeyDictionary()
+
+
+def vertices_on_surface(points_of: Shape, surface: Shape, locator: SurfaceLocator | None = None) -> SurfacePoints:
+    """Closest points of ``points_of``'s vertices on ``surface``, computed once per pair of shapes
+    while both live (the lift of a map matched through stand-ins asks again for the same ones).
+
+    ``locator`` searches ``surface`` (made here when not given).
+    """
+    kept = _ON_SURFACE.setdefault(points_of, weakref.WeakKeyDictionary())
+    if surface not in kept:
+        loc = SurfaceLocator(surface.vertices, surface.faces) if locator is None else locator
+        found = loc.closest(points_of.vertices)
+        for a in (found.triangle, found.barycentric, found.points, found.distance):
+            a.setflags(write=False)            # shared between callers
+        kept[surface] = found
+    return kept[surface]
 
 
 def _nearest_corner(shape: Shape, points: SurfacePoints) -> IntArray:

@@ -41,11 +41,14 @@ import numpy as np
 from numpy.typing import NDArray
 from scipy.spatial import cKDTree
 
+from ..intake.preparation import PreparedMesh
 from ..spectra.shape import Shape
-from .closest_point import SurfaceLocator, SurfacePoints
+from .aligned import vertices_on_surface
+from .closest_point import SurfaceLocator, SurfacePoints, closest_points_on_triangles, near_degenerate
+from .coarsening import cluster_mesh, drop_fins
 
 __all__ = ["STANDIN_VERTICES", "STANDIN_ABOVE", "SimplifierMissing", "simplify_mesh", "simplified_shape",
-           "needs_standin",
+           "CLUSTER_CELLS", "CLUSTER_ABOVE", "same_topology", "needs_standin",
            "StandIn", "make_standin", "standin_landmarks", "LIFT_NEIGHBOURS", "NearbyLocator", "LiftedMap",
            "lift_map"]
 
@@ -54,6 +57,16 @@ IntArray = NDArray[np.int64]
 
 STANDIN_VERTICES = 12000
 """Vertices of a stand-in (about twice as many triangles)."""
+
+CLUSTER_CELLS = 10
+"""Grid cells per wanted vertex when a huge mesh is clustered before the quadric simplification:
+a cell is about a third of the simplified mesh's edge."""
+
+CLUSTER_ABOVE = 3
+"""A mesh is clustered first when it has more than this many vertices per grid cell."""
+
+CLUSTER_AREA_SAMPLE = 100000
+"""Triangles (every so many) whose mean area sizes the clustering's grid."""
 
 STANDIN_ABOVE = 40000
 """Meshes with more vertices than this are matched through a stand-in; at or
@@ -65,8 +78,15 @@ class SimplifierMissing(RuntimeError):
     """The mesh simplifier (the ``fast-simplification`` package) is not installed."""
 
 
-def simplify_mesh(vertices: FloatArray, faces: IntArray, n_vertices: int) -> tuple[FloatArray, IntArray]:
+def simplify_mesh(vertices: FloatArray, faces: IntArray, n_vertices: int, *,
+                  cluster: bool = True, boundary: bool = True) -> tuple[FloatArray, IntArray]:
     """Quadric edge-collapse simplification to about ``n_vertices`` vertices.
+
+    A mesh of more than :data:`CLUSTER_ABOVE` times :data:`CLUSTER_CELLS` times
+    ``n_vertices`` vertices is first clustered on a grid of that many cells of
+    its area (:func:`engine.matching.coarsening.cluster_mesh`; ``cluster=False``
+    skips it). Repeated triangles the collapses leave are dropped
+    (:func:`engine.matching.coarsening.drop_fins`).
 
     Parameters
     ----------
@@ -74,6 +94,10 @@ def simplify_mesh(vertices: FloatArray, faces: IntArray, n_vertices: int) -> tup
         A cleaned triangle mesh.
     n_vertices : int
         Vertices wanted (a closed surface has about twice as many triangles).
+    cluster : bool
+        Cluster a huge mesh first.
+    boundary : bool
+        Whether the mesh may have a boundary (False: known to be closed).
 
     Returns
     -------
@@ -87,10 +111,16 @@ def simplify_mesh(vertices: FloatArray, faces: IntArray, n_vertices: int) -> tup
             f"'fast-simplification' package (pip install fast-simplification); it is not installed") from exc
     if not 4 <= n_vertices < len(vertices):
         raise ValueError(f"cannot simplify {len(vertices)} vertices to {n_vertices}")
+    cells = CLUSTER_CELLS * n_vertices
+    if cluster and len(vertices) > CLUSTER_ABOVE * cells:
+        some = faces[::max(1, len(faces) // CLUSTER_AREA_SAMPLE)]     # the area, near enough for a grid
+        p0, p1, p2 = (vertices[some[:, i]] for i in range(3))
+        area = 0.5 * float(np.linalg.norm(np.cross(p1 - p0, p2 - p0), axis=1).mean()) * len(faces)
+        vertices, faces = cluster_mesh(vertices, faces, float(np.sqrt(area / cells)), boundary=boundary)
     target = int(round(len(faces) * n_vertices / len(vertices)))
     v, f = fast_simplification.simplify(np.ascontiguousarray(vertices, dtype=np.float64),
                                         np.ascontiguousarray(faces, dtype=np.int64), target_count=target)
-    return np.asarray(v, dtype=np.float64), np.asarray(f, dtype=np.int64)
+    return drop_fins(np.asarray(v, dtype=np.float64), np.asarray(f, dtype=np.int64))
 
 
 def needs_standin(shape: Shape) -> bool:
@@ -131,9 +161,21 @@ def simplified_shape(shape: Shape, n_vertices: int) -> Shape:
     shape and size and kept while the shape lives (matching and detail share it)."""
     kept = _SIMPLIFIED.setdefault(shape, {})
     if n_vertices not in kept:
-        v, f = simplify_mesh(shape.vertices, shape.faces, n_vertices)
-        kept[n_vertices] = Shape(v, f, cache=shape.cache)
+        p = shape.prepared
+        clean = not (p.non_manifold_edges or p.non_manifold_vertices)
+        coarse = Shape(*simplify_mesh(shape.vertices, shape.faces, n_vertices, cluster=clean,
+                                      boundary=p.n_boundary_loops > 0), cache=shape.cache)
+        if clean and not same_topology(coarse.prepared, p):    # the clustering's repair fell short
+            coarse = Shape(*simplify_mesh(shape.vertices, shape.faces, n_vertices, cluster=False), cache=shape.cache)
+        kept[n_vertices] = coarse
     return kept[n_vertices]
+
+
+def same_topology(a: PreparedMesh, b: PreparedMesh) -> bool:
+    """Whether two cleaned meshes are the same kind of surface: as many pieces, boundary loops
+    and handles, neither with non-manifold edges or vertices."""
+    return (a.n_components, a.n_boundary_loops, a.handles) == (b.n_components, b.n_boundary_loops, b.handles) \
+        and not (a.non_manifold_edges or a.non_manifold_vertices or b.non_manifold_edges or b.non_manifold_vertices)
 
 
 def standin_landmarks(landmarks: tuple[IntArray, IntArray] | None, source: StandIn,
@@ -158,27 +200,51 @@ LIFT_NEIGHBOURS = 8
 
 
 class NearbyLocator:
-    """Closest points on the part of a huge mesh near a known set of queries.
+    """Closest points on a huge mesh for queries near it.
 
-    Only the triangles touching the :data:`LIFT_NEIGHBOURS` nearest vertices
-    of some query are indexed (a :class:`SurfaceLocator` over them), so a
-    million-vertex source is never indexed whole for a target-sized set of
-    queries. Queries near the given ones (within their vertices' reach) get
-    the exact closest point on those triangles.
+    Each query gets the exact closest point on the triangles around its
+    :data:`LIFT_NEIGHBOURS` nearest vertices, computed for those triangles
+    only, so a million-vertex source is never indexed whole (only a tree of its
+    vertices is built). For a query near the surface (within about an edge
+    length, as the lift's are) the closest triangle is among them.
     """
 
-    def __init__(self, shape: Shape, queries: FloatArray) -> None:
-        _, near = cKDTree(shape.vertices).query(queries, k=min(LIFT_NEIGHBOURS, shape.n_vertices), workers=-1)
-        wanted = np.zeros(shape.n_vertices, dtype=bool)
-        wanted[np.asarray(near).ravel()] = True
-        self.triangles = np.flatnonzero(wanted[shape.faces].any(axis=1))
-        used, faces = np.unique(shape.faces[self.triangles], return_inverse=True)
-        self.locator = SurfaceLocator(shape.vertices[used], faces.reshape(-1, 3))
+    def __init__(self, shape: Shape) -> None:
+        self.vertices, self.faces = shape.vertices, shape.faces
+        self.tree = cKDTree(shape.vertices)
 
     def closest(self, query: FloatArray) -> SurfacePoints:
-        """As :meth:`SurfaceLocator.closest`, triangles numbered in the whole mesh."""
-        found = self.locator.closest(query)
-        return SurfacePoints(self.triangles[found.triangle], found.barycentric, found.points, found.distance)
+        """As :meth:`SurfaceLocator.closest`; ties go to the lowest triangle index."""
+        qi, tri = self._candidates(query)
+        f = self.faces[tri]
+        a, b, c = self.vertices[f[:, 0]], self.vertices[f[:, 1]], self.vertices[f[:, 2]]
+        w, p = closest_points_on_triangles(query[qi], a, b, c, near_degenerate(a, b, c))
+        d = np.einsum("ij,ij->i", p - query[qi], p - query[qi])
+        starts = np.flatnonzero(np.r_[True, qi[1:] != qi[:-1]])        # pairs come sorted by query
+        nearest = np.repeat(np.minimum.reduceat(d, starts), np.diff(np.r_[starts, len(d)]))
+        hit = np.flatnonzero(d == nearest)
+        first = hit[np.r_[True, qi[hit][1:] != qi[hit][:-1]]]
+        return SurfacePoints(tri[first], w[first], p[first], np.linalg.norm(p[first] - query, axis=1))
+
+    def _candidates(self, query: FloatArray) -> tuple[IntArray, IntArray]:
+        """(query, triangle) pairs, sorted and distinct: the triangles around each query's nearest vertices."""
+        n, m = len(self.vertices), len(self.faces)
+        _, near = self.tree.query(query, k=min(LIFT_NEIGHBOURS, n), workers=-1)
+        near = np.asarray(near, dtype=np.int64).reshape(len(query), -1)
+        wanted = np.zeros(n, dtype=bool)
+        wanted[near.ravel()] = True
+        touch = np.flatnonzero(wanted[self.faces].any(axis=1))
+        v, t = self.faces[touch].ravel(), np.repeat(touch, 3)
+        v, t = v[wanted[v]], t[wanted[v]]
+        order = np.argsort(v, kind="stable")
+        v, t = v[order], t[order]                      # triangles around each wanted vertex, in a row
+        count = np.bincount(v, minlength=n)
+        first = np.cumsum(count) - count
+        c = count[near.ravel()]
+        rep = np.repeat(np.arange(near.size), c)
+        tri = t[np.repeat(first[near.ravel()], c) + np.arange(len(rep)) - np.repeat(np.cumsum(c) - c, c)]
+        key = np.unique((rep // near.shape[1]) * np.int64(m) + tri)
+        return key // m, key % m
 
 
 @dataclass(frozen=True)
@@ -217,20 +283,14 @@ def lift_map(source: StandIn, target: StandIn, coarse_points: FloatArray, coarse
         confidence = np.einsum("ij,ij->i", cp.barycentric, coarse_confidence[corners])
     if not source.simplified and not target.simplified:
         raise ValueError("nothing to lift: neither mesh was simplified")
-    loc = NearbyLocator(source.full, np.vstack([points, target.full.vertices]) if aligned else points)
     keep = np.zeros(len(points), dtype=bool)
-    if aligned:
-        coarse_direct = SurfaceLocator(source.coarse.vertices, source.coarse.faces).closest(target.full.vertices)
+    if aligned:     # the stand-in match kept the closest point (the same search as the match's own)
+        coarse_direct = vertices_on_surface(target.full, source.coarse)
         keep = np.linalg.norm(coarse_direct.points - points, axis=1) <= 0.25 * source.coarse.mean_edge
-    tri = np.empty(len(points), dtype=np.int64)
-    bary = np.empty((len(points), 3))
-    correction = np.zeros(0)
-    for rows, query in ((np.flatnonzero(keep), target.full.vertices), (np.flatnonzero(~keep), points)):
-        if len(rows):
-            found = loc.closest(query[rows])
-            tri[rows], bary[rows] = found.triangle, found.barycentric
-            if query is points:
-                correction = found.distance
+    query = np.where(keep[:, None], target.full.vertices, points)
+    found = NearbyLocator(source.full).closest(query)
+    tri, bary = found.triangle, found.barycentric
+    correction = found.distance[~keep]
     kept = int(keep.sum())
     h = source.coarse.mean_edge
     stats = {"source_standin_vertices": source.coarse.n_vertices,
