@@ -1,7 +1,7 @@
 """The smooth base of a huge surface, through a stand-in.
 
-:func:`engine.carrying.detail.smooth_base` low-passes a surface by two sparse
-solves of its own size, and the detail frames follow the gradients of its
+:func:`engine.carrying.detail.smooth_base` low-passes a surface by sparse
+factorisations of its own size, and the detail frames follow the gradients of its
 first eigenfunctions: both grow faster than linearly with the vertex count.
 Neither needs the full resolution. The filter removes everything shorter than
 the detail wavelength, so a simplified copy of the surface with
