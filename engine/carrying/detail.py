@@ -33,7 +33,7 @@ from numpy.typing import ArrayLike, NDArray
 from ..intake.preparation import validate_mesh
 
 __all__ = ["DetailLayer", "vertex_normals", "vertex_gradients", "tangent_frames",
-           "smooth_base", "FILTER_ORDER", "split_detail", "apply_detail", "place_on_original", "check_strength",
+           "smooth_base", "split_detail", "apply_detail", "place_on_original", "check_strength",
            "MAX_STRENGTH"]
 
 MAX_STRENGTH = 100.0  # |strength| accepted: a hundred times the source's detail is already a caricature
@@ -150,10 +150,6 @@ def tangent_frames(vertices: ArrayLike, faces: ArrayLike, guides: ArrayLike) -> 
     return np.stack([t1, t2, n], axis=1)
 
 
-FILTER_ORDER = 3
-"""Order of the smooth base's low-pass response ``1 / (1 + (t lambda)^order)``."""
-
-
 def smooth_base(vertices: ArrayLike, stiffness: Any, mass: ArrayLike, *, wavelength: float) -> NDArray[Any]:
     """Coordinates low-passed by ``1 / (1 + (t lambda)^3)``, (n, 3).
 
@@ -183,7 +179,7 @@ def smooth_base(vertices: ArrayLike, stiffness: Any, mass: ArrayLike, *, wavelen
         raise ValueError(f"wavelength must be positive, got {wavelength}")
     if v.ndim != 2 or stiffness.shape != (v.shape[0], v.shape[0]) or m.shape != (v.shape[0],):
         raise ValueError(f"stiffness {stiffness.shape} and mass {m.shape} do not fit {v.shape[0]} vertices")
-    t = 3.0 ** (1.0 / FILTER_ORDER) * (wavelength / (2 * np.pi)) ** 2
+    t = 3.0 ** (1.0 / 3.0) * (wavelength / (2 * np.pi)) ** 2     # (t lambda)^3 = 3 at the wavelength
     rhs = m[:, None] * v
     lower = sp.csc_matrix(sp.diags(m) + t * stiffness)           # root -1, coefficient 1/3
     base: NDArray[Any] = spla.splu(lower).solve(rhs) / 3.0
