@@ -50,23 +50,45 @@ def test_split_then_apply_restores_the_surface():
     np.testing.assert_allclose(apply_detail(layer, layer.offsets, strength=0.0), layer.base)
 
 
-def test_smooth_base_filters_each_eigenfunction_by_its_eigenvalue():
-    # On the unit sphere the coordinates are eigenfunctions with lambda = 2
-    # (l = 1: l(l+1)), so two implicit steps give x / (1 + 2t)^2. A degree-4
-    # zonal bump eps * P4(z) along the normal adds x_i * P4, which lies in
-    # degrees 3 and 5 only (Gaunt coefficients; lambda = 12 and 30), so the
-    # filter keeps between eps / (1 + 30t)^2 and eps / (1 + 12t)^2 of it.
-    v, f = meshes.icosphere(4)
+def _zonal(z):
+    """Legendre polynomials P1, P2, P4 of z: zonal spherical harmonics of degrees 1, 2, 4
+    (Abramowitz & Stegun 22.3.8), eigenfunctions of the unit sphere's Laplace-Beltrami
+    operator with lambda = l (l + 1) = 2, 6, 20 (common practice)."""
+    return np.column_stack([z, (3 * z**2 - 1) / 2, (35 * z**4 - 30 * z**2 + 3) / 8])
+
+
+@pytest.mark.parametrize("wavelength", [2 * np.pi / np.sqrt(20.0), 1.0, 2.5])
+def test_smooth_base_filters_each_eigenfunction_by_its_eigenvalue(wavelength):
+    # The base filters an eigenfunction of eigenvalue lambda by 1 / (1 + (t lambda)^3) with
+    # t = 3^(1/3) (wavelength / 2 pi)^2 (the third-order response of engine.carrying.detail).
+    # Checked on zonal harmonics of the unit sphere (analytic eigenfunctions, see _zonal):
+    # the ratio <base, Y>_M / <Y, Y>_M against the analytic response, to the O(h^2)
+    # discretisation error of a 10k-vertex icosphere.
+    v, f = meshes.icosphere(5)
     L, m = cotangent_laplacian(v, f), mass_matrix(v, f)
-    wavelength = 1.0
-    t = (wavelength / (2 * np.pi)) ** 2
-    base = smooth_base(v, L, m, wavelength=wavelength)
-    np.testing.assert_allclose(base, v / (1 + 2 * t) ** 2, atol=2e-3)  # discretisation, O(h^2)
-    z, eps = v[:, 2], 0.05
-    bumped = v * (1 + eps * (35 * z**4 - 30 * z**2 + 3) / 8)[:, None]
-    kept = np.abs(smooth_base(bumped, L, m, wavelength=wavelength) - base).max()
-    assert kept < eps / (1 + 12 * t) ** 2 + 2e-3
-    assert kept > eps / (1 + 30 * t) ** 2 - 2e-3
+    y = _zonal(v[:, 2])
+    base = smooth_base(y, L, m, wavelength=wavelength)
+    kept = np.einsum("ij,i,ij->j", base, m, y) / np.einsum("ij,i,ij->j", y, m, y)
+    t = 3 ** (1 / 3) * (wavelength / (2 * np.pi)) ** 2
+    np.testing.assert_allclose(kept, 1 / (1 + (t * np.array([2.0, 6.0, 20.0])) ** 3), atol=0.01)
+    # each harmonic stays itself (no leak into other degrees)
+    np.testing.assert_allclose(base, y * kept, atol=0.01)
+
+
+def test_smooth_base_keeps_a_quarter_at_the_cut_off_and_sharper_than_one_heat_step():
+    # The wave at the cut-off keeps a quarter in the base (by the definition of t); the
+    # degree-1 harmonic (the sphere's own shape, a tenth of the cut-off's lambda) loses
+    # only 1 - 1 / (1 + 0.1442^3) = 0.3% of it, where two implicit heat-flow steps with
+    # the same quarter point, 1 / (1 + t' lambda)^2, t' = (wavelength / 2 pi)^2, lose 17%
+    # (analytic responses at lambda = 2 and 20).
+    v, f = meshes.icosphere(5)
+    L, m = cotangent_laplacian(v, f), mass_matrix(v, f)
+    y = _zonal(v[:, 2])
+    base = smooth_base(y, L, m, wavelength=2 * np.pi / np.sqrt(20.0))
+    kept = np.einsum("ij,i,ij->j", base, m, y) / np.einsum("ij,i,ij->j", y, m, y)
+    assert abs(kept[2] - 0.25) < 0.01
+    np.testing.assert_allclose(1 - kept[0], 1 - 1 / (1 + (3 ** (1 / 3) / 10) ** 3), atol=1e-3)
+    assert 1 - kept[0] < 0.1 * (1 - 1 / (1 + 2 / 20) ** 2)
 
 
 def test_errors():
@@ -96,3 +118,32 @@ def test_strength_is_bounded_and_finite():
     for bad in (1e160, float("inf"), float("nan"), MAX_STRENGTH * 1.01, "x"):
         with pytest.raises(ValueError, match="detail strength must be"):
             check_strength(bad)
+
+
+def _bump_band(subdivisions, wavelength, eps=0.01):
+    """Share of a radial bump eps * P8(z) on the unit sphere that the split puts in the detail
+    (normal offsets of the bumped sphere less those of the plain one, projected on the bump)."""
+    v, f = meshes.icosphere(subdivisions)
+    z = v[:, 2]
+    bump = eps * (6435 * z**8 - 12012 * z**6 + 6930 * z**4 - 1260 * z**2 + 35) / 128   # P8 (A&S 22.3.8)
+    out = []
+    for x in (v * (1 + bump)[:, None], v):
+        L, m = cotangent_laplacian(x, f), mass_matrix(x, f)
+        layer = split_detail(x, f, smooth_base(x, L, m, wavelength=wavelength), guides=v[:, :2])
+        out.append(layer.offsets[:, 2])
+    m = mass_matrix(v, f)
+    return float(np.sum(m * (out[0] - out[1]) * bump) / np.sum(m * bump * bump))
+
+
+def test_the_band_is_the_same_at_two_resolutions():
+    # A radial bump eps P8 on the unit sphere (lambda = 8 * 9 = 72, common practice) with the
+    # cut-off set so that t * 72 = 3: the bump is shorter than the cut-off wave (whose
+    # lambda is 3^(1/3) / t = 35), so by the filter's response more than the cut-off's
+    # three quarters of it is detail, and less than all of it. The band is set by the
+    # wavelength alone, so two meshings of the sphere (2,562 and 10,242 vertices, edges
+    # 2x apart) give the same share (measured 0.896 and 0.898).
+    t = 3 / 72
+    wavelength = 2 * np.pi * np.sqrt(t / 3 ** (1 / 3))
+    coarse, fine = _bump_band(4, wavelength), _bump_band(5, wavelength)
+    assert 0.75 < fine < 1 and 0.75 < coarse < 1
+    assert abs(coarse - fine) < 0.01

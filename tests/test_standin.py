@@ -114,16 +114,20 @@ def test_landmarks_reach_the_standin(small_standins):
     assert "stand-ins of" in c.reason and c.stats["sizes"]["landmarks"] == 1
 
 
-def test_local_fit_is_exact_for_affine_fields_and_ignores_the_normal_offset():
-    # analytic: on the plane z = 0 an affine field of (x, y) is reproduced
+def test_local_fit_is_exact_for_quadratic_fields_and_ignores_the_normal_offset():
+    # analytic: on the plane z = 0 a quadratic field of (x, y) is reproduced
     # exactly at any query, wherever it sits above or below the plane
     rng = np.random.default_rng(3)
     pts = np.column_stack([rng.uniform(-1, 1, (400, 2)), np.zeros(400)])
     normals = np.tile([0.0, 0.0, 1.0], (400, 1))
-    values = np.column_stack([2 * pts[:, 0] - pts[:, 1] + 0.5, 3 * pts[:, 1]])
+
+    def fields(p):
+        x, y = p[:, 0], p[:, 1]
+        return np.column_stack([2 * x - y + 0.5, 3 * y, 1 + x * x - 2 * x * y + 0.5 * y * y])
+
     q = np.column_stack([rng.uniform(-0.7, 0.7, (50, 2)), rng.uniform(-0.05, 0.05, 50)])
-    got = local_fit(pts, normals, values, q)
-    np.testing.assert_allclose(got, np.column_stack([2 * q[:, 0] - q[:, 1] + 0.5, 3 * q[:, 1]]), atol=1e-9)
+    got = local_fit(pts, normals, fields(pts), q)
+    np.testing.assert_allclose(got, fields(q), atol=1e-9)
 
 
 def test_band_vertices_follow_the_band_not_the_input():

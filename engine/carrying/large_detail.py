@@ -1,14 +1,14 @@
 """The smooth base of a huge surface, through a stand-in.
 
-:func:`engine.carrying.detail.smooth_base` low-passes a surface by two sparse
-solves of its own size, and the detail frames follow the gradients of its
+:func:`engine.carrying.detail.smooth_base` low-passes a surface by sparse
+factorisations of its own size, and the detail frames follow the gradients of its
 first eigenfunctions: both grow faster than linearly with the vertex count.
 Neither needs the full resolution. The filter removes everything shorter than
 the detail wavelength, so a simplified copy of the surface with
 :data:`EDGES_PER_WAVELENGTH` edges per wavelength (quadric simplification,
 :func:`engine.matching.standin.simplify_mesh`) has the same base: the
 stand-in is smoothed and its first eigenfunctions computed, and every full
-vertex takes both by a local affine fit over the nearest stand-in vertices in
+vertex takes both by a local quadratic fit over the nearest stand-in vertices in
 their tangent plane (:func:`local_fit`: near-linear, no closest-point search
 over the stand-in's triangles). The vertex's offset from that base is its detail. The
 stand-in's size follows the band (the wavelength against the area), not the
@@ -28,8 +28,9 @@ from .detail import smooth_base, split_detail, vertex_normals
 
 __all__ = ["EDGES_PER_WAVELENGTH", "FIT_NEIGHBOURS", "band_vertices", "lifted_layer", "local_fit", "surface_area"]
 
-FIT_NEIGHBOURS = 10
-"""Stand-in vertices in each local fit (:func:`local_fit`): a ring and a half around the query."""
+FIT_NEIGHBOURS = 16
+"""Stand-in vertices in each local fit (:func:`local_fit`): about two rings around the query,
+well over the six terms of the quadratic fit."""
 
 EDGES_PER_WAVELENGTH = 12.0
 """Stand-in edges per detail wavelength: the filter's response at the
@@ -100,15 +101,16 @@ def lifted_layer(shape: Shape, wavelength: float, rows: NDArray[Any],
 
 def local_fit(points: NDArray[Any], normals: NDArray[Any], values: NDArray[Any], query: NDArray[Any], *,
               neighbours: int = FIT_NEIGHBOURS, chunk: int = 100_000) -> NDArray[Any]:
-    """Smooth per-vertex fields of a surface evaluated at nearby points, by local affine fits.
+    """Smooth per-vertex fields of a surface evaluated at nearby points, by local quadratic fits.
 
     Each query takes its ``neighbours`` nearest surface vertices, projects
     them into the tangent plane of the nearest one (its normal), and fits
-    ``value = c + a u + b v`` over the tangent coordinates ``(u, v)`` relative
-    to the query by least squares weighted ``1 / (d^2 + r^2)`` (``d`` the
-    distance, ``r`` the nearest one's); ``c`` is the answer. Exact for fields
-    affine along the surface; the query's offset along the normal (its detail)
-    does not enter.
+    ``value = c + a u + b v + d u^2 + e u v + f v^2`` over the tangent
+    coordinates ``(u, v)`` relative to the query by least squares weighted
+    ``1 / (d^2 + r^2)`` (``d`` the distance, ``r`` the nearest one's); ``c``
+    is the answer. Exact for fields quadratic along the surface (so a curved
+    base is not flattened by the fit); the query's offset along the normal
+    (its detail) does not enter.
 
     Parameters
     ----------
@@ -128,16 +130,18 @@ def local_fit(points: NDArray[Any], normals: NDArray[Any], values: NDArray[Any],
     for s in range(0, len(query), chunk):
         q = query[s:s + chunk]
         d, idx = tree.query(q, k=k, workers=-1)
+        d, idx = d.reshape(len(q), k), idx.reshape(len(q), k)
         n = normals[idx[:, 0]]
         t1 = np.cross(n, np.where(np.abs(n[:, :1]) < 0.9, [[1.0, 0.0, 0.0]], [[0.0, 1.0, 0.0]]))
         t1 /= np.linalg.norm(t1, axis=1, keepdims=True)
         t2 = np.cross(n, t1)
         rel = points[idx] - q[:, None, :]                                   # (m, k, 3)
-        design = np.stack([np.ones(idx.shape), np.einsum("mkj,mj->mk", rel, t1),
-                           np.einsum("mkj,mj->mk", rel, t2)], axis=2)       # (m, k, 3)
+        u, v = np.einsum("mkj,mj->mk", rel, t1), np.einsum("mkj,mj->mk", rel, t2)
+        terms = [np.ones(idx.shape), u, v, u * u, u * v, v * v][:min(6, k)]  # fewer points: fewer terms
+        design = np.stack(terms, axis=2)                                    # (m, k, terms)
         w = 1.0 / (d ** 2 + d[:, :1] ** 2 + 1e-300)
         gram = np.einsum("mk,mki,mkj->mij", w, design, design)
-        gram += 1e-12 * np.trace(gram, axis1=1, axis2=2)[:, None, None] * np.eye(3)
+        gram += 1e-12 * np.trace(gram, axis1=1, axis2=2)[:, None, None] * np.eye(len(terms))
         rhs = np.einsum("mk,mki,mkc->mic", w, design, values[idx])
         out[s:s + chunk] = np.linalg.solve(gram, rhs)[:, 0, :]
     return out

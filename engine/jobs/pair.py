@@ -28,6 +28,7 @@ from numpy.typing import ArrayLike, NDArray
 
 from ..matching.correspondence import MATCHES, Correspondence, correspond
 from ..carrying.detail import apply_detail, check_strength, place_on_original, smooth_base, split_detail
+from ..carrying.detail_sampling import ray_weights, smooth_sample
 from ..carrying.large_detail import lifted_layer, surface_area
 from ..common.cache import geometry_key
 from ..common.progress import MATCHING_STAGES, skip
@@ -251,7 +252,12 @@ class Pair:
         of the area ratio (so detail keeps its size relative to the shape),
         and added to the target's own base in the target's frames. Frames
         follow the gradients of the source's first eigenfunctions, pulled to
-        the target through the same map, so they agree on both meshes.
+        the target through the same map, so they agree on both meshes. The
+        offsets are read with their vertex gradients (exact for quadratic
+        fields) and, when the meshes overlap in space (aligned), where the
+        target's base normal through the vertex meets the source, not at the
+        closest point (which slides down the detail's slopes);
+        :mod:`engine.carrying.detail_sampling`.
 
         Parameters
         ----------
@@ -277,7 +283,8 @@ class Pair:
         area_s = surface_area(self.source.vertices, self.source.faces) if large else self.source.area
         wavelength = size * np.sqrt(area_s)
         scale = np.sqrt(self.target.area / area_s)
-        rows = np.unique(self.source.faces[self.correspondence.triangle])    # the source vertices P reads
+        corr = self.correspondence
+        rows = np.unique(self.source.faces[corr.triangle])    # the source vertices the map reads
         lifted = lifted_layer(self.source, wavelength, rows) if large else None
         if lifted is None:
             guides_s = self.source.eigenbasis(4).eigenvectors[:, 1:4]
@@ -289,7 +296,11 @@ class Pair:
         base_t = smooth_base(self.target.vertices, self.target.stiffness, self.target.mass,
                              wavelength=wavelength * scale)
         layer_t = split_detail(self.target.vertices, self.target.faces, base_t, guides=np.asarray(P @ guides_s))
-        offsets = np.asarray(P @ offsets_s) * scale
+        weights = corr.barycentric
+        if corr.mode == "aligned":     # the target vertex's own place under or over the source's detail
+            weights = ray_weights(self.source.vertices, self.source.faces, corr.triangle, weights,
+                                  self.target.vertices, layer_t.frames[:, 2])
+        offsets = smooth_sample(self.source.vertices, self.source.faces, offsets_s, corr.triangle, weights) * scale
         positions = apply_detail(layer_t, offsets, strength=strength)
         self.timings["detail"] = round(time.perf_counter() - t0, 4)
         if not np.isfinite(positions).all():
