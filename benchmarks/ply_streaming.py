@@ -8,8 +8,9 @@ measurement runs in its own process: the engine's ``read_mesh`` / ``write_ply``
 same run, ``np.load`` / ``np.save`` of the same arrays as ``.npy`` files (a
 plain copy between the file and the arrays). Memory is the process's peak
 resident size (VmHWM) above what it held before the step, printed against the
-bytes of the arrays themselves; a reader or writer that kept several copies of
-the arrays would show a multiple of them. Time is CPU time (user + system, the
+bytes of the arrays themselves: a reader that kept several copies of the
+arrays would show a multiple of them, a writer that built the file's bytes
+whole about one or more. Time is CPU time (user + system, the
 better figure on a shared machine) and wall time. The read is also checked
 value for value against the ``.npy`` arrays.
 
@@ -130,11 +131,11 @@ def main() -> None:
             for what in ("read", "write"):
                 base, ply = run(f"npy-{what}", folder, binary), run(f"ply-{what}", folder, binary)
                 same = "" if what == "write" else f"; values identical to the .npy arrays: {ply['same']}"
-                print(f"{kind} PLY {what}: {ply['cpu']:.2f} s CPU ({ply['wall']:.2f} s wall), "
-                      f"{ply['added_mib']:.0f} MiB added = {ply['added_mib'] / mib:.2f}x the arrays; "
-                      f"np.{'load' if what == 'read' else 'save'} {base['cpu']:.2f} s CPU, "
-                      f"{base['added_mib']:.0f} MiB; ratio PLY / npy: {ply['cpu'] / max(base['cpu'], 1e-3):.1f}x "
-                      f"CPU, {ply['added_mib'] / max(base['added_mib'], 1.0):.2f}x memory{same}", flush=True)
+                print(f"{kind} PLY {what}: {ply['cpu']:.2f} s CPU ({ply['wall']:.2f} s wall), peak memory added "
+                      f"{ply['added_mib']:.0f} MiB = {ply['added_mib'] / mib:.2f}x the arrays; "
+                      f"np.{'load' if what == 'read' else 'save'}: {base['cpu']:.2f} s CPU ({base['wall']:.2f} s "
+                      f"wall), {base['added_mib']:.0f} MiB = {base['added_mib'] / mib:.2f}x the arrays; "
+                      f"CPU ratio PLY / npy {ply['cpu'] / max(base['cpu'], 1e-3):.1f}x{same}", flush=True)
     print(f"load average at end: {os.getloadavg()[0]:.1f}")
 
 

@@ -1,9 +1,10 @@
-"""PLY files read and written in chunks: the same arrays and bytes whatever the chunk size.
+"""Mesh files read and written in chunks: the same arrays and bytes whatever the chunk size.
 
 Reading streams the file a chunk at a time straight into the final arrays
 (engine/intake/ply_stream.py); writing formats one chunk of records at a time.
 Chunk sizes here go down to one byte, so every record, list and value
-straddles a chunk boundary somewhere. PLY layout as described by Greg Turk,
+straddles a chunk boundary somewhere. OBJ files are read in pieces that
+end at line ends. PLY layout as described by Greg Turk,
 "The PLY Polygon File Format" (1994) (from memory).
 """
 
@@ -183,3 +184,36 @@ def test_huge_counts_are_refused_at_once(tmp_path, content, message):
     for chunk in (4, CHUNK_BYTES):
         with pytest.raises(ValueError, match=message):
             read_mesh(path, chunk_bytes=chunk)
+
+
+def test_obj_in_pieces_reads_the_same(tmp_path):
+    # OBJ (Wavefront, from memory): 'v' lines, 'f' lines of 1-based or negative (relative)
+    # indices with v/vt/vn tokens, '#' comments; a UTF-8 byte-order mark and CRLF line ends.
+    text = ("\ufeff# made by hand\r\nv 0 0 0\r\nv 1 0 0 # x\r\nv 1 1 0\r\nvt 0.5 0.5\r\nf 1/1 2/1 3/1\r\n"
+            "v 0 1 0\r\nv 0.5 0.5 1\r\nf -1 -4 -3 -2\r\nf\t5//1 4//1 1//1\r\n")
+    path = tmp_path / "hand.obj"
+    path.write_bytes(text.encode("utf-8"))
+    for chunk in CHUNKS:
+        m = read_mesh(path, chunk_bytes=chunk)
+        assert m.vertices.tolist() == [[0, 0, 0], [1, 0, 0], [1, 1, 0], [0, 1, 0], [0.5, 0.5, 1]]
+        assert m.sizes.tolist() == [3, 4, 3] and m.corners.tolist() == [0, 1, 2, 4, 1, 2, 3, 4, 3, 0]
+    bad = tmp_path / "bad.obj"
+    bad.write_bytes(b"v 0 0 0\nv 1 0 0\nv 0 1 0\nf 1 2 3\n# a comment\nv 1 1 1\nf -5 1 2\n")
+    for chunk in CHUNKS:
+        with pytest.raises(ValueError, match=r"face index -5 on line 7 reaches before the first vertex "
+                                             r"\(4 vertices defined so far\)"):
+            read_mesh(bad, chunk_bytes=chunk)
+
+
+def test_obj_written_by_libigl_reads_the_same(tmp_path):
+    import igl  # reference library (libigl's OBJ writer and reader), test environment only
+
+    rng = np.random.default_rng(14)
+    v = rng.standard_normal((2000, 3))
+    f = rng.integers(0, 2000, (3000, 3)).astype(np.int64)
+    path = tmp_path / "igl.obj"
+    igl.writeOBJ(str(path), v, f)
+    ref_v, ref_f = igl.read_triangle_mesh(str(path))
+    for chunk in (5, 4096, CHUNK_BYTES):
+        m = read_mesh(path, chunk_bytes=chunk)
+        assert np.array_equal(m.vertices, ref_v) and np.array_equal(m.triangles(), ref_f)

@@ -104,8 +104,9 @@ def read_mesh(path: str | os.PathLike[str], *, chunk_bytes: int = CHUNK_BYTES) -
     ----------
     path : str or os.PathLike
     chunk_bytes : int
-        How much of a PLY file is read at a time: its records go straight
-        into the final arrays, so reading holds little more than them.
+        How much of a PLY or OBJ file is read at a time. PLY records go
+        straight into the final arrays, so reading holds little more than
+        them; OBJ pieces are joined at the end.
 
     Returns
     -------
@@ -121,15 +122,14 @@ def read_mesh(path: str | os.PathLike[str], *, chunk_bytes: int = CHUNK_BYTES) -
     """
     path = Path(path)
     ext = path.suffix.lower()
-    readers = {".obj": _read_obj, ".off": _read_off}
-    if ext != ".ply" and ext not in readers:
+    if ext not in (".ply", ".obj", ".off"):
         raise ValueError(f"{path.name}: unknown mesh format {ext!r} (expected .ply, .obj or .off)")
     try:
-        if ext == ".ply":
-            with open(path, "rb") as fh:
-                vertices, corners, sizes, props = _read_ply(fh, chunk_bytes)
+        if ext == ".off":
+            vertices, corners, sizes, props = _read_off(path.read_bytes())
         else:
-            vertices, corners, sizes, props = readers[ext](path.read_bytes())
+            with open(path, "rb") as fh:
+                vertices, corners, sizes, props = (_read_ply if ext == ".ply" else _read_obj)(fh, chunk_bytes)
     except FormatError as e:
         raise ValueError(f"{path.name}: {e}") from None
     if corners.size and (corners.min() < 0 or corners.max() >= len(vertices)):
@@ -319,26 +319,60 @@ def _indices(flat: list[str]) -> NDArray[Any]:
         raise FormatError(f"bad face index {bad!r} (not a whole number, or out of range)") from None
 
 
-def _read_obj(data: bytes) -> _Parts:
-    text = _decode(data)
+def _text_pieces(fh: IO[bytes], chunk: int) -> Iterator[str]:
+    """A text file's contents in pieces that end at line ends; a UTF-8 byte-order mark is dropped."""
+    tail, first = b"", True
+    while True:
+        data = fh.read(max(chunk, 1))
+        if not data:
+            if tail or first:
+                yield tail.decode("utf-8-sig" if first else "utf-8", errors="replace")
+            return
+        data = tail + data
+        cut = data.rfind(b"\n") + 1  # a UTF-8 newline byte is never part of another character
+        if cut:
+            yield data[:cut].decode("utf-8-sig" if first else "utf-8", errors="replace")
+            first = False
+        tail = data[cut:]
+
+
+def _read_obj(fh: IO[bytes], chunk: int) -> _Parts:
+    """OBJ vertices and faces, a piece of the file at a time; the pieces' arrays are joined at the end."""
+    pieces: list[tuple[NDArray[Any], NDArray[Any], NDArray[Any]]] = []
+    number = count = 0  # lines and vertices before the piece
+    for text in _text_pieces(fh, chunk):
+        piece, lines = _obj_piece(text, number, count)
+        pieces.append(piece)
+        number += lines
+        count += len(piece[0])
+    if not count:
+        raise FormatError("no vertex ('v') lines")
+    vertices = np.concatenate([p[0] for p in pieces])
+    corners = np.concatenate([p[1] for p in pieces])
+    sizes = np.concatenate([p[2] for p in pieces])
+    return vertices, corners, sizes, {}
+
+
+def _obj_piece(text: str, before: int, count: int) -> tuple[tuple[NDArray[Any], NDArray[Any], NDArray[Any]], int]:
+    """Vertices (m, 3), corners and sizes of the ``v`` and ``f`` lines of ``text``, which follows ``before``
+    lines and ``count`` vertices; and how many lines it has."""
     vlines: list[str] = []
     flines: list[str] = []
     fbase: list[int] = []
     fnumber: list[int] = []
-    for number, line in enumerate(text.splitlines(), 1):
+    lines = text.splitlines()
+    for number, line in enumerate(lines, before + 1):
         line = line.split("#", 1)[0]  # a trailing comment
         if line[:2] == "v " or line[:2] == "v\t":
             vlines.append(line)
         elif line[:2] == "f " or line[:2] == "f\t":
             flines.append(line)
-            fbase.append(len(vlines))
+            fbase.append(count + len(vlines))
             fnumber.append(number)
-    if not vlines:
-        raise FormatError("no vertex ('v') lines")
     rows = [ln.split() for ln in vlines]
     try:
         if all(len(r) == 4 for r in rows):
-            vertices = np.array([r[1:] for r in rows], dtype=np.float64)
+            vertices = np.array([r[1:] for r in rows], dtype=np.float64).reshape(-1, 3)
         else:
             bad = next((r for r in rows if len(r) < 4), None)
             if bad is not None:
@@ -347,6 +381,7 @@ def _read_obj(data: bytes) -> _Parts:
     except ValueError:
         bad = next(r for r in rows if not all(is_number(t.encode(), "f") for t in r[1:4]))
         raise FormatError(f"bad vertex line {' '.join(bad)!r}") from None
+    del rows, vlines
     sizes = np.empty(len(flines), dtype=np.int64)
     flat: list[str] = []
     for i, line in enumerate(flines):
@@ -366,8 +401,8 @@ def _read_obj(data: bytes) -> _Parts:
         j = int(np.flatnonzero(corners < 0)[0])
         i = int(np.searchsorted(np.cumsum(sizes), j, side="right"))
         raise FormatError(f"face index {int(idx[j])} on line {fnumber[i]} reaches before the first vertex "
-                           f"({fbase[i]} vertices defined so far)")
-    return vertices, corners, sizes, {}
+                          f"({fbase[i]} vertices defined so far)")
+    return (vertices, corners, sizes), len(lines)
 
 
 def _read_off(data: bytes) -> _Parts:
