@@ -217,3 +217,27 @@ def test_obj_written_by_libigl_reads_the_same(tmp_path):
     for chunk in (5, 4096, CHUNK_BYTES):
         m = read_mesh(path, chunk_bytes=chunk)
         assert np.array_equal(m.vertices, ref_v) and np.array_equal(m.triangles(), ref_f)
+
+
+def test_writer_checks_its_arguments_before_the_first_piece():
+    from engine.intake.files import ply_chunks
+
+    # a lazy writer that checked only while writing would leave the error to the staged file
+    with pytest.raises(ValueError, match="property 'w' has non-finite values"):
+        ply_chunks(np.eye(3), faces=[[0, 1, 2]], properties={"w": np.array([0.0, np.inf, 1.0])})
+    pieces = list(ply_chunks(np.eye(3), faces=[[0, 1, 2]], chunk_bytes=1))
+    assert pieces[0].startswith(b"ply\n") and len(pieces) == 1 + 3 + 1  # header, a piece per vertex, the face
+
+
+@pytest.mark.parametrize("fmt", ["ascii", "binary_little_endian"])
+def test_elements_without_records_or_properties(tmp_path, fmt):
+    # An element may have no properties or no records (Turk 1994, from memory): nothing to read.
+    head = (f"ply\nformat {fmt} 1.0\nelement marker 4\nelement vertex 3\nproperty float x\nproperty float y\n"
+            "property float z\nelement face 0\nproperty list uchar int vertex_indices\nelement edge 0\n"
+            "property int a\nend_header\n").encode()
+    body = b"1 0 0\n0 1 0\n0 0 1\n" if fmt == "ascii" else np.eye(3, dtype="<f4").tobytes()
+    path = tmp_path / "e.ply"
+    path.write_bytes(head + body)
+    for chunk in (1, CHUNK_BYTES):
+        m = read_mesh(path, chunk_bytes=chunk)
+        assert m.vertices.tolist() == np.eye(3).tolist() and m.corners.size == 0 and m.sizes.size == 0

@@ -3,7 +3,9 @@
 Polygons are kept as the file has them (a flat corner list and a size per
 polygon); :meth:`MeshData.triangles` triangulates on request. PLY vertex
 properties other than the position travel with their file dtype, so a file
-read and written again is bit-for-bit the same data.
+read and written again is bit-for-bit the same data. Large files are read
+and written a chunk at a time (PLY bodies by :mod:`engine.intake.ply_stream`,
+OBJ in pieces that end at line ends), so neither holds the file's bytes whole.
 
 Format sources: PLY as described by Greg Turk, "The PLY Polygon File Format"
 (1994) (from memory): an ASCII header (``ply``, ``format ascii|
