@@ -15,7 +15,8 @@ followed by its items; ASCII values separated by whitespace.
 
 from __future__ import annotations
 
-from collections.abc import Iterator
+import struct
+from collections.abc import Iterator, Sequence
 from typing import IO, Any
 
 import numpy as np
@@ -110,8 +111,10 @@ class _ListSink:
 
     def add(self, r: int, items: NDArray[Any], lengths: NDArray[Any] | int) -> None:
         count = items.size
-        if self.used + count > len(self.items):  # more items than guessed: grow in place
-            self.items.resize(max(self.used + count, 2 * len(self.items)), refcheck=False)
+        need = self.used + count
+        if need > len(self.items):  # more items than guessed: room for all records at this rate
+            records = r + (len(items) if isinstance(lengths, int) else len(lengths))
+            self.items.resize(max(need, need * len(self.lengths) // max(records, 1)), refcheck=False)
         dest = self.items[self.used:self.used + count]
         if isinstance(lengths, int):
             dest.reshape(items.shape)[...] = items
@@ -185,10 +188,9 @@ class BinaryBody:
         r = 0
         while r < e.count:
             first = self._lengths_at(e, r)
-            if r == 0:
-                items = [k * np.dtype(e.props[i][1]).itemsize for i, k in first.items()]
-                per_record = max(1, smallest + sum(items))
-                plan.allocate(e, min(e.count, self.left // per_record) * max([*first.values(), 1]))
+            if r == 0:  # room for one item more per record than the first has, as far as the file can hold
+                isize = min(np.dtype(e.props[i][1]).itemsize for i in first)
+                plan.allocate(e, min(e.count * (max(first.values()) + 1), self.left // isize))
             done = self._same_run(e, r, first, plan)
             if done < _RUN:
                 done += self._walk(e, r + done, plan)
@@ -280,6 +282,9 @@ class BinaryBody:
 
     def _walk(self, e: Element, r: int, plan: Plan) -> int:
         """Records from ``r`` one by one, as far as the buffer holds whole ones; returns how many."""
+        lists = [j for j, p in enumerate(e.props) if len(p) == 3]
+        if len(lists) == 1:
+            return self._walk_one_list(e, r, plan, lists[0])
         layout = [(np.dtype(p[1]).itemsize, np.dtype(p[2]).itemsize if len(p) == 3 else 0,
                    self._dt(p[2]) if len(p) == 3 else None) for p in e.props]
         buf, end, at = self.buf, len(self.buf), self.off
@@ -313,7 +318,45 @@ class BinaryBody:
         self._gather(e, r, plan, starts, lengths)
         return done
 
-    def _gather(self, e: Element, r: int, plan: Plan, starts: list[list[int]], lengths: list[list[int]]) -> None:
+    def _walk_one_list(self, e: Element, r: int, plan: Plan, j0: int) -> int:
+        """:meth:`_walk` for records with one list (the usual faces): the loop reads only the list
+        lengths; where every property starts follows from a cumulative sum."""
+        sizes = [np.dtype(p[1]).itemsize for p in e.props]  # a list's entry: the size of one item
+        isize, ccode = sizes[j0], e.props[j0][2]
+        csize = np.dtype(ccode).itemsize
+        pre = sum(sizes[:j0])
+        fixed = sum(sizes) - isize + csize  # a record's bytes besides its items
+        buf, end, at = self.buf, len(self.buf), self.off
+        ks: list[int] = []
+        limit = min(e.count - r, _WALK)
+        if ccode == "u1":
+            while len(ks) < limit and at + pre < end:
+                k = buf[at + pre]
+                if at + fixed + k * isize > end:
+                    break
+                ks.append(k)
+                at += fixed + k * isize
+        else:
+            unpack = struct.Struct(self.endian + np.dtype(ccode).char).unpack_from
+            while len(ks) < limit and at + pre + csize <= end:
+                k = unpack(buf, at + pre)[0]
+                if k < 0:
+                    raise FormatError(f"negative list length {k}")
+                if at + fixed + k * isize > end:
+                    break
+                ks.append(k)
+                at += fixed + k * isize
+        ln = np.asarray(ks, dtype=np.int64)
+        record = fixed + ln * isize
+        rec = self.off + np.cumsum(record) - record
+        starts = [rec + sum(sizes[:j]) if j < j0 else rec + pre + csize if j == j0 else
+                  rec + csize + ln * isize + sum(sizes[:j]) - isize for j in range(len(sizes))]
+        self.off = at
+        self._gather(e, r, plan, starts, [ln] * len(sizes))
+        return len(ks)
+
+    def _gather(self, e: Element, r: int, plan: Plan, starts: Sequence[Sequence[int] | NDArray[Any]],
+                lengths: Sequence[Sequence[int] | NDArray[Any]]) -> None:
         raw = np.frombuffer(self.buf, dtype=np.uint8)
         for j, p in enumerate(e.props):
             if j not in plan.scalars and j not in plan.sinks:
@@ -424,8 +467,8 @@ class AsciiBody:
         while not self.available and self.more():
             pass
         cols = self._first_widths(e) or []
-        longest = max([k for _, k in cols if k is not None] + [1])
-        plan.allocate(e, min(n * longest, self.bound()))
+        longest = max([k for _, k in cols if k is not None] + [0])
+        plan.allocate(e, min(n * (longest + 1), self.bound()))  # as for binary files
         r = 0
         while r < n:
             if not self.available and self.more():
