@@ -241,3 +241,21 @@ def test_elements_without_records_or_properties(tmp_path, fmt):
     for chunk in (1, CHUNK_BYTES):
         m = read_mesh(path, chunk_bytes=chunk)
         assert m.vertices.tolist() == np.eye(3).tolist() and m.corners.size == 0 and m.sizes.size == 0
+
+
+def test_a_write_that_fails_between_pieces_leaves_the_old_file(tmp_path, monkeypatch):
+    # The pieces go straight into the staged file (engine/common/atomic.py): a failure after
+    # some of them were written leaves the target as it was and no temporary file.
+    import engine.intake.files as files
+
+    def broken(columns, polygons, types, chunk):
+        yield b"some records"
+        raise MemoryError("no room for the next piece")
+
+    path = tmp_path / "keep.ply"
+    path.write_bytes(b"old content")
+    monkeypatch.setattr(files, "binary_records", broken)
+    with pytest.raises(MemoryError):
+        write_ply(path, np.eye(3), faces=[[0, 1, 2]])
+    assert path.read_bytes() == b"old content"
+    assert [p.name for p in tmp_path.iterdir()] == ["keep.ply"]
