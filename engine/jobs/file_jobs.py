@@ -232,6 +232,7 @@ def run_transfer_job(files: JobFiles, options: JobOptions = JobOptions()) -> dic
     t0 = time.perf_counter()
     src_data, source, tgt_data, target, _ = _open_pair(files)
     signals = signals_from_properties(src_data.properties, names=options.attributes)
+    del src_data  # the source's file arrays: the shape and the signals hold what the job needs
     if not signals:
         raise ValueError(f"{Path(files.source).name}: the source has no vertex properties to carry "
                          "(only coordinates and normals)")
