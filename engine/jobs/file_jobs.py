@@ -257,7 +257,8 @@ def run_detail_job(files: JobFiles, options: JobOptions = JobOptions()) -> dict[
     Target vertices that belong to no face keep their positions.
     """
     t0 = time.perf_counter()
-    _, source, tgt_data, target, (centre, scale) = _open_pair(files)
+    src_data, source, tgt_data, target, (centre, scale) = _open_pair(files)
+    del src_data  # the source's file arrays: its shape holds what the job needs
     settings = _settings(files, source, target, match=options.match, detail_strength=options.strength,
                          detail_size=options.size)
     stage("matching")
