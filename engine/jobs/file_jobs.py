@@ -232,6 +232,7 @@ def run_transfer_job(files: JobFiles, options: JobOptions = JobOptions()) -> dic
     t0 = time.perf_counter()
     src_data, source, tgt_data, target, _ = _open_pair(files)
     signals = signals_from_properties(src_data.properties, names=options.attributes)
+    del src_data  # the source's file arrays: the shape and the signals hold what the job needs
     if not signals:
         raise ValueError(f"{Path(files.source).name}: the source has no vertex properties to carry "
                          "(only coordinates and normals)")
@@ -255,7 +256,8 @@ def run_detail_job(files: JobFiles, options: JobOptions = JobOptions()) -> dict[
     Target vertices that belong to no face keep their positions.
     """
     t0 = time.perf_counter()
-    _, source, tgt_data, target, (centre, scale) = _open_pair(files)
+    src_data, source, tgt_data, target, (centre, scale) = _open_pair(files)
+    del src_data  # the source's file arrays: its shape holds what the job needs
     settings = _settings(files, source, target, match=options.match, detail_strength=options.strength,
                          detail_size=options.size)
     pair = Pair(source, target, settings)
