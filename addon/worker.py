@@ -46,6 +46,7 @@ if __name__ == "__main__" and not __package__:
 import numpy as np  # noqa: E402  (after the package set-up above)
 
 from .engine import MeshData, Settings, Signal  # noqa: E402
+from .engine.common.allocator import keep_freed_memory, release_freed_memory  # noqa: E402
 from .engine.common.atomic import atomic_write  # noqa: E402
 from .engine.common.progress import DONE, WRITING, Step, job_stages, showing, stage  # noqa: E402
 from .job import JobInput, JobOutput, run_job  # noqa: E402
@@ -332,9 +333,11 @@ def serve_folder(folder: Path) -> None:
 
 
 def _serve() -> None:
+    keep_freed_memory()
     for line in sys.stdin:
         if line.strip():
             serve_folder(Path(line.strip()))
+            release_freed_memory()     # the worker waits for the next job: nothing kept
 
 
 if __name__ == "__main__":

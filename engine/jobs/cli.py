@@ -32,6 +32,7 @@ import warnings
 from collections.abc import Sequence
 from typing import NoReturn
 
+from ..common.allocator import keep_freed_memory
 from ..common.atomic import end_on_signals, is_temporary, remove_own_temporaries
 
 EXIT_BAD_INPUT = 2
@@ -112,6 +113,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     args = list(sys.argv[1:] if argv is None else argv)
     for name in _IMPORTED_FIRST:
         importlib.import_module(name)
+    keep_freed_memory()
     with warnings.catch_warnings(record=True) as caught, end_on_signals():
         warnings.simplefilter("always")
         try:
