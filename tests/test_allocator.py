@@ -20,7 +20,8 @@ SCRIPT = textwrap.dedent("""
     import os, sys
     import numpy as np
     from engine.common.allocator import keep_freed_memory, release_freed_memory
-        def resident_mib():
+
+    def resident_mib():
         with open("/proc/self/statm") as f:
             return int(f.read().split()[1]) * os.sysconf("SC_PAGE_SIZE") / 2**20
 
