@@ -102,6 +102,8 @@ def match_aligned(source: Shape, target: Shape, locators: tuple[SurfaceLocator, 
     result.timings["initial_map"] = time.perf_counter() - t0
     if run:
         t0 = time.perf_counter()
+        if differ:      # the self-check's intrinsic match wants 2K + 10 on the target: one solve for both
+            target.eigenbasis(int(min(2 * settings.K + 10, source.n_vertices - 2, target.n_vertices - 2)))
         result.triangle, result.barycentric, result.vertex, result.sizes, counts = check_closest_points(
             source, target, cp_t, settings, h)
         result.timings["aligned_refine"] = time.perf_counter() - t0
