@@ -205,28 +205,28 @@ def best_on_triangles(Qt: FloatArray, Qs: FloatArray, faces: IntArray, inc: IntA
     # without row scales a triangle's corner Gram is the same for every row: once per triangle
     grams = triangle_grams(Qs, faces, np.unique(inc[best]), chunk) if row_scale is None else np.zeros((0, 3, 3))
     for s in range(0, n, chunk):
-        b = best[s:s + chunk]
-        q = Qt[s:s + chunk]
-        T = inc[b]                                   # (c, d) triangles, -1 padded
-        valid = T >= 0
-        T = np.where(valid, T, T[:, :1])
-        F = faces[T]                                 # (c, d, 3)
+        T = inc[best[s:s + chunk]]                   # (c, d) triangles, -1 padded
+        r_i, c_i = np.nonzero(T >= 0)                # only the real ones are solved, one per row of (u, 1)
+        q = Qt[s:s + chunk][r_i]
+        F = faces[T[r_i, c_i]][:, None, :]           # (u, 1, 3)
         if row_scale is None:
-            Gm = grams[T]
+            Gm = grams[T[r_i, c_i]][:, None]
             sv = np.stack([np.einsum("cdr,cr->cd", Qs[F[..., i]], q) for i in range(3)], axis=-1)
         else:
-            P = Qs[F]                                # (c, d, 3, r)
-            q = q.copy()
-            q[:, -3:] *= row_scale[s:s + chunk, None]
-            P[..., -3:] *= row_scale[s:s + chunk, None, None, None]
+            P = Qs[F]                                # (u, 1, 3, r)
+            scale = row_scale[s:s + chunk][r_i]
+            q[:, -3:] *= scale[:, None]
+            P[..., -3:] *= scale[:, None, None, None]
             Gm = np.einsum("cdir,cdjr->cdij", P, P)  # corner Gram
             sv = np.einsum("cdir,cr->cdi", P, q)
-        w, val = simplex_qp(Gm, sv)
-        val = np.where(valid, val, np.inf)
-        j = np.argmin(val, axis=1)
-        rows = np.arange(len(b))
-        tri_out[s:s + chunk] = T[rows, j]
-        w_out[s:s + chunk] = w[rows, j]
+        w, v = simplex_qp(Gm, sv)
+        val = np.full(T.shape, np.inf)
+        val[r_i, c_i] = v[:, 0]
+        at = np.zeros(T.shape, np.int64)
+        at[r_i, c_i] = np.arange(len(r_i))
+        pick = at[np.arange(len(T)), np.argmin(val, axis=1)]
+        tri_out[s:s + chunk] = T[r_i[pick], c_i[pick]]
+        w_out[s:s + chunk] = w[pick, 0]
     return tri_out, w_out
 
 
