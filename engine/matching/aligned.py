@@ -213,9 +213,7 @@ def _search_pass(search: _Search, current: FloatArray, faces: IntArray, tree: cK
     Qt_a, Qs_a, rs = search.Qt, search.Qs, search.row_scale
     k_n = min(ALIGNED_NEIGHBOURS, len(Qs_a))
     dist, cand = tree.query(search.here, k=k_n)
-    chunk = int(max(64, min(4000, 2e7 // (k_n * Qt_a.shape[1]))))   # at most ~160 MB of differences
-    cost = np.where(dist <= search.window[:, None], row_distances(Qt_a, Qs_a, cand, chunk=chunk, row_scale=rs),
-                    np.inf)
+    cost = np.where(dist <= search.window[:, None], row_distances(Qt_a, Qs_a, cand, row_scale=rs), np.inf)
     cost[:, 0] = np.minimum(cost[:, 0], row_distances(Qt_a, Qs_a, cand[:, :1], row_scale=rs)[:, 0])
     best = cand[np.arange(len(cand)), np.argmin(cost, axis=1)]
     t2, b2 = best_on_triangles(Qt_a, Qs_a, faces, inc, best, row_scale=rs)
