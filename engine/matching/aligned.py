@@ -32,7 +32,7 @@ from .modes import ModeResult
 
 __all__ = ["ALIGNED_QUANTILE", "ALIGNED_COINCIDE", "ALIGNED_MARGIN", "ALIGNED_SPATIAL", "ALIGNED_WINDOW",
            "ALIGNED_NEIGHBOURS", "ALIGNED_PASSES", "match_aligned", "check_closest_points",
-           "vertices_on_surface"]
+           "vertices_on_surface", "surface_locator"]
 
 FloatArray = NDArray[np.float64]
 IntArray = NDArray[np.int64]
@@ -130,12 +130,23 @@ def vertices_on_surface(points_of: Shape, surface: Shape, locator: SurfaceLocato
     """
     kept = _ON_SURFACE.setdefault(points_of, weakref.WeakKeyDictionary())
     if surface not in kept:
-        loc = SurfaceLocator(surface.vertices, surface.faces) if locator is None else locator
+        loc = surface_locator(surface) if locator is None else locator
         found = loc.closest(points_of.vertices)
         for a in (found.triangle, found.barycentric, found.points, found.distance):
             a.setflags(write=False)            # shared between callers
         kept[surface] = found
     return kept[surface]
+
+
+_LOCATORS: weakref.WeakKeyDictionary[Shape, SurfaceLocator] = weakref.WeakKeyDictionary()
+
+
+def surface_locator(shape: Shape) -> SurfaceLocator:
+    """The closest-point search on ``shape``, made once while it lives (the aligned match and the
+    self-check's intrinsic match of the same pair share it)."""
+    if shape not in _LOCATORS:
+        _LOCATORS[shape] = SurfaceLocator(shape.vertices, shape.faces)
+    return _LOCATORS[shape]
 
 
 def _nearest_corner(shape: Shape, points: SurfacePoints) -> IntArray:
