@@ -211,7 +211,7 @@ class NearbyLocator:
 
     def __init__(self, shape: Shape) -> None:
         self.vertices, self.faces = shape.vertices, shape.faces
-        self.tree = cKDTree(shape.vertices)
+        self.tree = cKDTree(shape.vertices, balanced_tree=False)    # builds faster; the same neighbours
 
     def closest(self, query: FloatArray) -> SurfacePoints:
         """As :meth:`SurfaceLocator.closest`; ties go to the lowest triangle index."""
