@@ -75,7 +75,7 @@ the last one left, so that a fixed match stops pulling its neighbours' back."""
 
 
 def match_aligned(source: Shape, target: Shape, locators: tuple[SurfaceLocator, SurfaceLocator], h: float,
-                  refine: bool | None, settings: ProductSettings) -> ModeResult:
+                  refine: bool | None, settings: ProductSettings, ahead: int = 0) -> ModeResult:
     """Closest points both ways, checked in the product embedding where the surfaces differ.
 
     Parameters
@@ -84,6 +84,8 @@ def match_aligned(source: Shape, target: Shape, locators: tuple[SurfaceLocator, 
     h : the coarser mesh's mean edge length
     refine : None: check where the surfaces differ; True: always; False: never
     settings : the product embedding's size
+    ahead : where the surfaces differ (the self-check will run), the target's eigenbasis is solved
+        at this size first, so that the check's first ``K`` and the self-check's come from one solve
     """
     loc_s, loc_t = locators
     t0 = time.perf_counter()
@@ -102,8 +104,8 @@ def match_aligned(source: Shape, target: Shape, locators: tuple[SurfaceLocator, 
     result.timings["initial_map"] = time.perf_counter() - t0
     if run:
         t0 = time.perf_counter()
-        if differ:      # the self-check's intrinsic match wants 2K + 10 on the target: one solve for both
-            target.eigenbasis(int(min(2 * settings.K + 10, source.n_vertices - 2, target.n_vertices - 2)))
+        if differ and ahead > 0:
+            target.eigenbasis(ahead)
         result.triangle, result.barycentric, result.vertex, result.sizes, counts = check_closest_points(
             source, target, cp_t, settings, h)
         result.timings["aligned_refine"] = time.perf_counter() - t0

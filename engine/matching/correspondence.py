@@ -54,7 +54,7 @@ from .aligned import match_aligned, surface_locator
 from .closest_point import SurfaceLocator, barycentric_matrix
 from .confidence import checked_auto, with_confidence
 from .embedding import ProductSettings
-from .intrinsic import match_intrinsic
+from .intrinsic import match_intrinsic, through_coarse_basis
 from .modes import MatchOptions, ModeResult
 from .pieces import correspond_in_pieces
 from .standin import STANDIN_ABOVE, StandIn, lift_map, make_standin, needs_standin, standin_landmarks
@@ -265,8 +265,10 @@ def correspond_surface(source: Shape, target: Shape, match: str, landmarks: Arra
         mode = match
         reason = f"requested {mode} (measured overlap {overlap:.0%})"
     if mode == "aligned":
+        # the self-check's intrinsic match (auto or aligned asked for) solves this target basis too
+        ahead = through_coarse_basis(source, target, opts) if match in ("auto", "aligned") else 0
         result = match_aligned(source, target, (loc_s, loc_t), h, refine,
-                               ProductSettings(opts.product_K, opts.product_order))
+                               ProductSettings(opts.product_K, opts.product_order), ahead)
         reason = f"{reason}; {result.why}"
     else:
         result = match_intrinsic(source, target, lm, opts, refine, h)

@@ -199,7 +199,7 @@ def row_distances(Qt: FloatArray, Qs: FloatArray, cand: IntArray, chunk: int | N
     are multiplied by ``row_scale[i]`` first. ``chunk`` rows at a time (default:
     :data:`BLOCK_VALUES` differences, so the gathered block stays in cache)."""
     if chunk is None:
-        chunk = max(1, BLOCK_VALUES // max(1, cand.shape[1] * Qt.shape[1]))
+        chunk = max(8, BLOCK_VALUES // max(1, cand.shape[1] * Qt.shape[1]))    # a few rows at least
     out = np.empty(cand.shape)
     for s in range(0, len(cand), chunk):
         c = cand[s:s + chunk]
