@@ -10,7 +10,7 @@ from numpy.typing import ArrayLike, NDArray
 Array = NDArray[Any]
 """Any NumPy array, for annotations (shapes and dtypes are given in the docstrings)."""
 
-__all__ = ['Array', 'ArrayLike', 'finite_float', 'check_coefficients', 'check_eigenvectors_mass', 'check_mass', 'check_vertex_signal', 'float_matrix', 'numeric_array']
+__all__ = ['Array', 'ArrayLike', 'cross_rows', 'finite_float', 'check_coefficients', 'check_eigenvectors_mass', 'check_mass', 'check_vertex_signal', 'float_matrix', 'numeric_array']
 
 
 def numeric_array(a: ArrayLike, name: str, *, allow_bool: bool = False) -> Array:
@@ -66,3 +66,16 @@ def check_coefficients(coeffs: ArrayLike, r: int) -> Array:
     if c.ndim not in (1, 2) or c.shape[0] != r:
         raise ValueError(f"coefficients must have shape ({r},) or ({r}, c), got {c.shape}")
     return c
+
+
+def cross_rows(a: Array, b: Array) -> Array:
+    """Row-wise cross products of two (n, 3) float arrays: the same values as ``np.cross`` (the same
+    products and differences), without its axis juggling and temporaries (several times faster on
+    millions of rows)."""
+    a0, a1, a2 = a[:, 0], a[:, 1], a[:, 2]
+    b0, b1, b2 = b[:, 0], b[:, 1], b[:, 2]
+    out: Array = np.empty(np.broadcast_shapes(a.shape, b.shape), dtype=np.result_type(a, b))
+    np.subtract(a1 * b2, a2 * b1, out=out[:, 0])
+    np.subtract(a2 * b0, a0 * b2, out=out[:, 1])
+    np.subtract(a0 * b1, a1 * b0, out=out[:, 2])
+    return out

@@ -17,7 +17,7 @@ import scipy.sparse as sp
 from scipy.sparse.csgraph import connected_components
 from scipy.spatial import cKDTree
 
-from ..common.arrays import Array, ArrayLike
+from ..common.arrays import Array, ArrayLike, cross_rows
 from .triangulation import triangulate
 
 __all__ = ["validate_mesh", "validate_triangles", "prepare_mesh", "PreparedMesh", "mesh_topology", "EdgeGroups",
@@ -402,7 +402,7 @@ def _drop_degenerate(v: Array, tris: Array, tri_polygon: Array,
     span = v[used].max(axis=0) - v[used].min(axis=0)
     diag2 = float(span @ span)
     p0, p1, p2 = v[tris[:, 0]], v[tris[:, 1]], v[tris[:, 2]]
-    area = 0.5 * np.linalg.norm(np.cross(p1 - p0, p2 - p0), axis=1)
+    area = 0.5 * np.linalg.norm(cross_rows(p1 - p0, p2 - p0), axis=1)
     keep = area > _ZERO_AREA * diag2
     keep &= (tris[:, 0] != tris[:, 1]) & (tris[:, 1] != tris[:, 2]) & (tris[:, 2] != tris[:, 0])
     if not keep.any():

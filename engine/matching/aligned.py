@@ -32,7 +32,7 @@ from .modes import ModeResult
 
 __all__ = ["ALIGNED_QUANTILE", "ALIGNED_COINCIDE", "ALIGNED_MARGIN", "ALIGNED_SPATIAL", "ALIGNED_WINDOW",
            "ALIGNED_NEIGHBOURS", "ALIGNED_PASSES", "match_aligned", "check_closest_points",
-           "vertices_on_surface"]
+           "vertices_on_surface", "surface_locator"]
 
 FloatArray = NDArray[np.float64]
 IntArray = NDArray[np.int64]
@@ -75,7 +75,7 @@ the last one left, so that a fixed match stops pulling its neighbours' back."""
 
 
 def match_aligned(source: Shape, target: Shape, locators: tuple[SurfaceLocator, SurfaceLocator], h: float,
-                  refine: bool | None, settings: ProductSettings) -> ModeResult:
+                  refine: bool | None, settings: ProductSettings, ahead: int = 0) -> ModeResult:
     """Closest points both ways, checked in the product embedding where the surfaces differ.
 
     Parameters
@@ -84,6 +84,8 @@ def match_aligned(source: Shape, target: Shape, locators: tuple[SurfaceLocator, 
     h : the coarser mesh's mean edge length
     refine : None: check where the surfaces differ; True: always; False: never
     settings : the product embedding's size
+    ahead : where the surfaces differ (the self-check will run), the target's eigenbasis is solved
+        at this size first, so that the check's first ``K`` and the self-check's come from one solve
     """
     loc_s, loc_t = locators
     t0 = time.perf_counter()
@@ -102,6 +104,8 @@ def match_aligned(source: Shape, target: Shape, locators: tuple[SurfaceLocator, 
     result.timings["initial_map"] = time.perf_counter() - t0
     if run:
         t0 = time.perf_counter()
+        if differ and ahead > 0:
+            target.eigenbasis(ahead)
         result.triangle, result.barycentric, result.vertex, result.sizes, counts = check_closest_points(
             source, target, cp_t, settings, h)
         result.timings["aligned_refine"] = time.perf_counter() - t0
@@ -128,12 +132,23 @@ def vertices_on_surface(points_of: Shape, surface: Shape, locator: SurfaceLocato
     """
     kept = _ON_SURFACE.setdefault(points_of, weakref.WeakKeyDictionary())
     if surface not in kept:
-        loc = SurfaceLocator(surface.vertices, surface.faces) if locator is None else locator
+        loc = surface_locator(surface) if locator is None else locator
         found = loc.closest(points_of.vertices)
         for a in (found.triangle, found.barycentric, found.points, found.distance):
             a.setflags(write=False)            # shared between callers
         kept[surface] = found
     return kept[surface]
+
+
+_LOCATORS: weakref.WeakKeyDictionary[Shape, SurfaceLocator] = weakref.WeakKeyDictionary()
+
+
+def surface_locator(shape: Shape) -> SurfaceLocator:
+    """The closest-point search on ``shape``, made once while it lives (the aligned match and the
+    self-check's intrinsic match of the same pair share it)."""
+    if shape not in _LOCATORS:
+        _LOCATORS[shape] = SurfaceLocator(shape.vertices, shape.faces)
+    return _LOCATORS[shape]
 
 
 def _nearest_corner(shape: Shape, points: SurfacePoints) -> IntArray:
@@ -211,9 +226,7 @@ def _search_pass(search: _Search, current: FloatArray, faces: IntArray, tree: cK
     Qt_a, Qs_a, rs = search.Qt, search.Qs, search.row_scale
     k_n = min(ALIGNED_NEIGHBOURS, len(Qs_a))
     dist, cand = tree.query(search.here, k=k_n)
-    chunk = int(max(64, min(4000, 2e7 // (k_n * Qt_a.shape[1]))))   # at most ~160 MB of differences
-    cost = np.where(dist <= search.window[:, None], row_distances(Qt_a, Qs_a, cand, chunk=chunk, row_scale=rs),
-                    np.inf)
+    cost = np.where(dist <= search.window[:, None], row_distances(Qt_a, Qs_a, cand, row_scale=rs), np.inf)
     cost[:, 0] = np.minimum(cost[:, 0], row_distances(Qt_a, Qs_a, cand[:, :1], row_scale=rs)[:, 0])
     best = cand[np.arange(len(cand)), np.argmin(cost, axis=1)]
     t2, b2 = best_on_triangles(Qt_a, Qs_a, faces, inc, best, row_scale=rs)

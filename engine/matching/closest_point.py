@@ -273,15 +273,22 @@ class SurfaceLocator:
         return near
 
     def _best(self, q: FloatArray, cand: IntArray) -> tuple[IntArray, FloatArray, FloatArray]:
+        """The nearest of each row's candidate triangles (the first of equals, in the row's order),
+        its barycentric weights and point. A candidate repeated in its row (the padding, triangles
+        shared by the nearest vertices' fans) is computed once."""
         nq, nc = cand.shape
-        f = self.faces[cand.ravel()]
-        qq = np.repeat(q, nc, axis=0)
-        w, p = closest_points_on_triangles(qq, self.vertices[f[:, 0]], self.vertices[f[:, 1]],
-                                           self.vertices[f[:, 2]], self.flat[cand.ravel()])
-        d = np.einsum("ij,ij->i", p - qq, p - qq).reshape(nq, nc)
-        best = np.argmin(d, axis=1)
-        flat = np.arange(nq) * nc + best
-        return cand[np.arange(nq), best], w[flat], p[flat]
+        first = _first_occurrences(cand)
+        at = np.flatnonzero(first)
+        rows = at // nc
+        t = cand.ravel()[at]
+        f = self.faces[t]
+        w, p = closest_points_on_triangles(q[rows], self.vertices[f[:, 0]], self.vertices[f[:, 1]],
+                                           self.vertices[f[:, 2]], self.flat[t])
+        d = np.full(nq * nc, np.inf)
+        d[at] = np.einsum("ij,ij->i", p - q[rows], p - q[rows])
+        flat = np.arange(nq) * nc + np.argmin(d.reshape(nq, nc), axis=1)
+        pick = np.searchsorted(at, flat)
+        return cand.ravel()[flat], w[pick], p[pick]
 
     def _improve(self, q: FloatArray, cand: IntArray, reach: FloatArray,
                  answer: tuple[IntArray, FloatArray, FloatArray]) -> None:
@@ -361,6 +368,17 @@ class SurfaceLocator:
             qi, node = np.repeat(qi, counts), level.children[at]
         keep = self.triangle_bounds.lower(q[qi], node) < found[qi]
         return qi[keep], node[keep]
+
+
+def _first_occurrences(cand: IntArray) -> NDArray[np.bool_]:
+    """(q, c) mask of the entries of each row not seen earlier in that row."""
+    order = np.argsort(cand, axis=1, kind="stable")
+    ranked = np.take_along_axis(cand, order, axis=1)
+    new = np.ones(cand.shape, dtype=bool)
+    new[:, 1:] = ranked[:, 1:] != ranked[:, :-1]
+    out = np.empty(cand.shape, dtype=bool)
+    np.put_along_axis(out, order, new, axis=1)
+    return out
 
 
 @dataclass(frozen=True)

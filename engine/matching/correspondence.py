@@ -40,6 +40,7 @@ docs/measurements.md, "Correspondence and transfer accuracy".
 from __future__ import annotations
 
 import time
+import weakref
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -49,11 +50,11 @@ from scipy.spatial import cKDTree
 
 from ..common.progress import MATCHING, REFINING, SIMPLIFYING, STANDIN_STAGES, skip, stage
 from ..spectra.shape import Shape
-from .aligned import match_aligned
+from .aligned import match_aligned, surface_locator
 from .closest_point import SurfaceLocator, barycentric_matrix
 from .confidence import checked_auto, with_confidence
 from .embedding import ProductSettings
-from .intrinsic import match_intrinsic
+from .intrinsic import match_intrinsic, through_coarse_basis
 from .modes import MatchOptions, ModeResult
 from .pieces import correspond_in_pieces
 from .standin import STANDIN_ABOVE, StandIn, lift_map, make_standin, needs_standin, standin_landmarks
@@ -250,8 +251,7 @@ def correspond_surface(source: Shape, target: Shape, match: str, landmarks: Arra
     slow = (f"; matched at full resolution, much more slowly: a mesh over {STANDIN_ABOVE} vertices is "
             "matched through a simplified copy, which needs the 'fast-simplification' package (not installed)"
             if src.missing or tgt.missing else "")
-    loc_s = SurfaceLocator(source.vertices, source.faces)
-    loc_t = SurfaceLocator(target.vertices, target.faces)
+    loc_s, loc_t = surface_locator(source), surface_locator(target)
     h = max(source.mean_edge, target.mean_edge)
     frac_t, frac_s = _overlap(loc_s, loc_t, source, target, opts.overlap_radius * h)
     overlap = min(frac_t, frac_s)
@@ -265,8 +265,10 @@ def correspond_surface(source: Shape, target: Shape, match: str, landmarks: Arra
         mode = match
         reason = f"requested {mode} (measured overlap {overlap:.0%})"
     if mode == "aligned":
+        # the self-check's intrinsic match (auto or aligned asked for) solves this target basis too
+        ahead = through_coarse_basis(source, target, opts) if match in ("auto", "aligned") else 0
         result = match_aligned(source, target, (loc_s, loc_t), h, refine,
-                               ProductSettings(opts.product_K, opts.product_order))
+                               ProductSettings(opts.product_K, opts.product_order), ahead)
         reason = f"{reason}; {result.why}"
     else:
         result = match_intrinsic(source, target, lm, opts, refine, h)
@@ -337,14 +339,21 @@ OVERLAP_SAMPLE = 4000
 sample of this size gives to about +-1% (binomial)."""
 
 
+_OVERLAPS: weakref.WeakKeyDictionary[Shape, weakref.WeakKeyDictionary[Shape, dict[float, tuple[float, float]]]] = \
+    weakref.WeakKeyDictionary()
+
+
 def _overlap(loc_s: SurfaceLocator, loc_t: SurfaceLocator, source: Shape, target: Shape,
              radius: float) -> tuple[float, float]:
-    """Fractions of target vertices within ``radius`` of the source surface and of source vertices of the target."""
-    sample_t = _overlap_sample(target.n_vertices)
-    sample_s = _overlap_sample(source.n_vertices)
-    frac_t = float(np.mean(loc_s.within(target.vertices[sample_t], radius)))
-    frac_s = float(np.mean(loc_t.within(source.vertices[sample_s], radius)))
-    return frac_t, frac_s
+    """Fractions of target vertices within ``radius`` of the source surface and of source vertices of the target,
+    measured once per pair of shapes and radius while both live (the self-check asks again)."""
+    kept = _OVERLAPS.setdefault(source, weakref.WeakKeyDictionary()).setdefault(target, {})
+    if radius not in kept:
+        sample_t = _overlap_sample(target.n_vertices)
+        sample_s = _overlap_sample(source.n_vertices)
+        kept[radius] = (float(np.mean(loc_s.within(target.vertices[sample_t], radius))),
+                        float(np.mean(loc_t.within(source.vertices[sample_s], radius))))
+    return kept[radius]
 
 
 def _overlap_sample(n: int) -> IntArray:

@@ -51,6 +51,9 @@ PRODUCT_WINDOW = 3.0
 PRODUCT_NEIGHBOURS = 32
 """Candidate source vertices per target vertex in the product refinement (then cut to the window)."""
 
+BLOCK_VALUES = 1 << 16
+"""Float64 values per gathered block of embedding rows (512 KB: it stays in cache)."""
+
 
 @dataclass(frozen=True)
 class ProductSettings:
@@ -135,7 +138,16 @@ def _residual_scale(faces: IntArray, Qs: FloatArray, F: FloatArray, res: FloatAr
     """Root of the median squared residual, at least the embedding's change over ``floor``."""
     s2 = float(np.median(np.einsum("ij,ij->i", res, res)))
     e = np.vstack([faces[:, [0, 1]], faces[:, [1, 2]], faces[:, [2, 0]]])    # every edge, interior ones twice
-    dq = np.einsum("ij,ij->i", Qs[e[:, 0]] - Qs[e[:, 1]], Qs[e[:, 0]] - Qs[e[:, 1]])
+    # each edge's change computed once (both directions give the same bits), in blocks that stay in cache
+    n = np.int64(len(Qs))
+    keys, each = np.unique(np.minimum(e[:, 0], e[:, 1]) * n + np.maximum(e[:, 0], e[:, 1]), return_inverse=True)
+    pairs = np.column_stack([keys // n, keys % n])
+    dq_once = np.empty(len(pairs))
+    step = max(1, BLOCK_VALUES // max(1, Qs.shape[1]))
+    for a in range(0, len(pairs), step):
+        d = Qs[pairs[a:a + step, 0]] - Qs[pairs[a:a + step, 1]]
+        dq_once[a:a + step] = np.einsum("ij,ij->i", d, d)
+    dq = dq_once[each.ravel()]
     dx = np.einsum("ij,ij->i", F[e[:, 0]] - F[e[:, 1]], F[e[:, 0]] - F[e[:, 1]])
     ok = dx > 0
     g2 = float(np.median(dq[ok] / dx[ok])) if ok.any() else 0.0
@@ -180,11 +192,14 @@ def refine_products(source: Shape, target: Shape, tri: IntArray, bary: FloatArra
                                "product_median_move_over_h": float(np.median(moved) / h)}
 
 
-def row_distances(Qt: FloatArray, Qs: FloatArray, cand: IntArray, chunk: int = 4000,
+def row_distances(Qt: FloatArray, Qs: FloatArray, cand: IntArray, chunk: int | None = None,
                   row_scale: FloatArray | None = None) -> FloatArray:
     """Squared distances from each row of ``Qt`` to its candidate rows of ``Qs``;
     with ``row_scale`` the differences in the last three columns of row ``i``
-    are multiplied by ``row_scale[i]`` first."""
+    are multiplied by ``row_scale[i]`` first. ``chunk`` rows at a time (default:
+    :data:`BLOCK_VALUES` differences, so the gathered block stays in cache)."""
+    if chunk is None:
+        chunk = max(8, BLOCK_VALUES // max(1, cand.shape[1] * Qt.shape[1]))    # a few rows at least
     out = np.empty(cand.shape)
     for s in range(0, len(cand), chunk):
         c = cand[s:s + chunk]
@@ -205,28 +220,28 @@ def best_on_triangles(Qt: FloatArray, Qs: FloatArray, faces: IntArray, inc: IntA
     # without row scales a triangle's corner Gram is the same for every row: once per triangle
     grams = triangle_grams(Qs, faces, np.unique(inc[best]), chunk) if row_scale is None else np.zeros((0, 3, 3))
     for s in range(0, n, chunk):
-        b = best[s:s + chunk]
-        q = Qt[s:s + chunk]
-        T = inc[b]                                   # (c, d) triangles, -1 padded
-        valid = T >= 0
-        T = np.where(valid, T, T[:, :1])
-        F = faces[T]                                 # (c, d, 3)
+        T = inc[best[s:s + chunk]]                   # (c, d) triangles, -1 padded
+        r_i, c_i = np.nonzero(T >= 0)                # only the real ones are solved, one per row of (u, 1)
+        q = Qt[s:s + chunk][r_i]
+        F = faces[T[r_i, c_i]][:, None, :]           # (u, 1, 3)
         if row_scale is None:
-            Gm = grams[T]
+            Gm = grams[T[r_i, c_i]][:, None]
             sv = np.stack([np.einsum("cdr,cr->cd", Qs[F[..., i]], q) for i in range(3)], axis=-1)
         else:
-            P = Qs[F]                                # (c, d, 3, r)
-            q = q.copy()
-            q[:, -3:] *= row_scale[s:s + chunk, None]
-            P[..., -3:] *= row_scale[s:s + chunk, None, None, None]
+            P = Qs[F]                                # (u, 1, 3, r)
+            scale = row_scale[s:s + chunk][r_i]
+            q[:, -3:] *= scale[:, None]
+            P[..., -3:] *= scale[:, None, None, None]
             Gm = np.einsum("cdir,cdjr->cdij", P, P)  # corner Gram
             sv = np.einsum("cdir,cr->cdi", P, q)
-        w, val = simplex_qp(Gm, sv)
-        val = np.where(valid, val, np.inf)
-        j = np.argmin(val, axis=1)
-        rows = np.arange(len(b))
-        tri_out[s:s + chunk] = T[rows, j]
-        w_out[s:s + chunk] = w[rows, j]
+        w, v = simplex_qp(Gm, sv)
+        val = np.full(T.shape, np.inf)
+        val[r_i, c_i] = v[:, 0]
+        at = np.zeros(T.shape, np.int64)
+        at[r_i, c_i] = np.arange(len(r_i))
+        pick = at[np.arange(len(T)), np.argmin(val, axis=1)]
+        tri_out[s:s + chunk] = T[r_i[pick], c_i[pick]]
+        w_out[s:s + chunk] = w[pick, 0]
     return tri_out, w_out
 
 

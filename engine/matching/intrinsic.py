@@ -35,7 +35,7 @@ from .modes import MatchOptions, ModeResult
 from .nonrigid import IcpOptions, SpectralPairs, deform_onto, deform_through, near_closest
 from .standin import SimplifierMissing, simplified_shape
 
-__all__ = ["LANDMARK_TIMES", "match_intrinsic", "coarse_shapes", "coarse_landmarks"]
+__all__ = ["LANDMARK_TIMES", "match_intrinsic", "coarse_shapes", "coarse_landmarks", "through_coarse_basis"]
 
 FloatArray = NDArray[np.float64]
 IntArray = NDArray[np.int64]
@@ -103,7 +103,7 @@ def coarse_shapes(source: Shape, target: Shape, options: MatchOptions) -> tuple[
     """Copies of both shapes simplified to ``options.coarse_vertices`` (a shape not larger kept as it
     is) when either has more than ``options.coarse_above`` vertices; else, or without the simplifier,
     None. The copies' size is fixed, so refining the input does not change what is matched on them."""
-    if options.coarse_vertices <= 0 or max(source.n_vertices, target.n_vertices) <= options.coarse_above:
+    if not _coarsened(source, target, options):
         return None
     try:
         cs, ct = (simplified_shape(sh, options.coarse_vertices) if sh.n_vertices > options.coarse_vertices
@@ -111,6 +111,20 @@ def coarse_shapes(source: Shape, target: Shape, options: MatchOptions) -> tuple[
     except SimplifierMissing:
         return None
     return cs, ct
+
+
+def _coarsened(source: Shape, target: Shape, options: MatchOptions) -> bool:
+    """Whether :func:`coarse_shapes` simplifies this pair (given the simplifier)."""
+    return options.coarse_vertices > 0 and max(source.n_vertices, target.n_vertices) > options.coarse_above
+
+
+def through_coarse_basis(source: Shape, target: Shape, options: MatchOptions) -> int:
+    """Size of the target eigenbasis the intrinsic match solves when it runs through coarse copies
+    (:func:`_match_through`: the product embedding's ``2 product_K + 10``); 0 when it would not
+    (it then solves its own, larger basis on the target)."""
+    if not (options.align_steps and _coarsened(source, target, options)):
+        return 0
+    return int(min(2 * options.product_K + 10, source.n_vertices - 2, target.n_vertices - 2))
 
 
 def _match_through(source: Shape, target: Shape, coarse: tuple[Shape, Shape], landmarks: Landmarks | None,
@@ -133,7 +147,7 @@ def _match_through(source: Shape, target: Shape, coarse: tuple[Shape, Shape], la
     vertex, back = _round_trip(source, target, tri, bary, frame)
     timings["align_refine"] = time.perf_counter() - t0
     sizes: dict[str, Any] = {"coarse_source_vertices": cs.n_vertices, "coarse_target_vertices": ct.n_vertices}
-    basis = int(min(2 * options.product_K + 10, source.n_vertices - 2, target.n_vertices - 2))
+    basis = through_coarse_basis(source, target, options)
     target.eigenbasis(basis)         # one solve for the product embedding's few and the final map's
     if refine is None or refine:
         t0 = time.perf_counter()

@@ -305,8 +305,11 @@ def near_closest(vertices: FloatArray, faces: IntArray, incident: IntArray, quer
     """
     _, vi = cKDTree(vertices).query(query, workers=-1)
     _, ti = cKDTree(vertices[faces].mean(axis=1)).query(query, k=centroids, workers=-1)
-    cand = np.concatenate([incident[vi], ti.reshape(len(query), -1)], axis=1)
-    qi, ci = np.nonzero(cand >= 0)
+    fan, ti = incident[vi], ti.reshape(len(query), -1)
+    cand = np.concatenate([fan, ti], axis=1)
+    # a centroid's triangle already in the vertex's fan is not tried twice (its first place counts)
+    again = np.concatenate([np.zeros(fan.shape, dtype=bool), (ti[:, :, None] == fan[:, None, :]).any(axis=2)], axis=1)
+    qi, ci = np.nonzero((cand >= 0) & ~again)
     t = cand[qi, ci]
     f = faces[t]
     w, pts = closest_points_on_triangles(query[qi], vertices[f[:, 0]], vertices[f[:, 1]], vertices[f[:, 2]])

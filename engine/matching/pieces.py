@@ -54,7 +54,6 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 import scipy.linalg as sla
 import scipy.sparse as sp
-from scipy.optimize import linear_sum_assignment
 from scipy.sparse.linalg import eigsh
 from numpy.typing import NDArray
 from scipy.spatial import cKDTree
@@ -313,6 +312,7 @@ def match_pieces(ps: Pieces, pt: Pieces, spectra_s: Array, spectra_t: Array,
         sub = costs[f:, f:]
         # a "none" column per target piece at the unmatched cost
         padded = np.hstack([np.minimum(sub, 1e12), np.full((m, m), UNMATCHED_COST)])
+        from scipy.optimize import linear_sum_assignment   # imported when needed: slow to import
         rows, cols = linear_sum_assignment(padded)
         total = float(padded[rows, cols].sum())
         kept = [(r, c) for r, c in zip(rows, cols) if c < ns - f and sub[r, c] <= UNMATCHED_COST]
@@ -332,6 +332,7 @@ def _clarity(padded: Array, r: int, c: int, total: float, unit: float) -> float:
         return 1.0
     forbidden = padded.copy()
     forbidden[r, c] = 1e12
+    from scipy.optimize import linear_sum_assignment   # imported when needed: slow to import
     rows, cols = linear_sum_assignment(forbidden)
     regret = float(forbidden[rows, cols].sum()) - total
     return float(1.0 - np.exp(-max(regret, 0.0) / unit))

@@ -211,7 +211,7 @@ class NearbyLocator:
 
     def __init__(self, shape: Shape) -> None:
         self.vertices, self.faces = shape.vertices, shape.faces
-        self.tree = cKDTree(shape.vertices)
+        self.tree = cKDTree(shape.vertices, balanced_tree=False)    # builds faster; the same neighbours
 
     def closest(self, query: FloatArray) -> SurfacePoints:
         """As :meth:`SurfaceLocator.closest`; ties go to the lowest triangle index."""
@@ -243,7 +243,8 @@ class NearbyLocator:
         c = count[near.ravel()]
         rep = np.repeat(np.arange(near.size), c)
         tri = t[np.repeat(first[near.ravel()], c) + np.arange(len(rep)) - np.repeat(np.cumsum(c) - c, c)]
-        key = np.unique((rep // near.shape[1]) * np.int64(m) + tri)
+        key = np.sort((rep // near.shape[1]) * np.int64(m) + tri)      # distinct, as np.unique (sorting is faster)
+        key = key[np.r_[True, key[1:] != key[:-1]]]
         return key // m, key % m
 
 

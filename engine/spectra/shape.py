@@ -71,6 +71,7 @@ class Shape:
         self.key = geometry_key(self.vertices, self.faces)
         self.hits = {"memory": 0, "disk": 0, "computed": 0}
         self._operators: Any = None
+        self._mean_edge: float | None = None
         self._eig: Eigenbasis | None = None
         self._products: dict[tuple[int, int, float], ProductBasis] = {}
 
@@ -113,8 +114,11 @@ class Shape:
 
     @property
     def mean_edge(self) -> float:
-        e = self.vertices[self.faces] - self.vertices[np.roll(self.faces, 1, axis=1)]
-        return float(np.sqrt((e ** 2).sum(axis=2)).mean())
+        """Mean length of the triangles' edges (each interior edge counted twice), computed once."""
+        if self._mean_edge is None:
+            e = self.vertices[self.faces] - self.vertices[np.roll(self.faces, 1, axis=1)]
+            self._mean_edge = float(np.sqrt((e ** 2).sum(axis=2)).mean())
+        return self._mean_edge
 
     # ------------------------------------------------------------------ bases
     def eigenbasis(self, k: int) -> Eigenbasis:
