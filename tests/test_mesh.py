@@ -486,3 +486,18 @@ def test_cross_rows_matches_numpy_cross():
     np.testing.assert_array_equal(cross_rows(a, b), np.cross(a, b))
     np.testing.assert_array_equal(cross_rows(np.array([[1.0, 0.0, 0.0]]), np.array([[0.0, 1.0, 0.0]])),
                                   [[0.0, 0.0, 1.0]])
+
+
+def test_triangles_only_come_back_as_they_are():
+    """A mesh of triangles only takes a shortcut; it must give what the general path gives
+    (the same triangles with one more polygon, a quad, appended) and never share the input."""
+    rng = np.random.default_rng(3)
+    v = rng.normal(size=(40, 3))
+    corners = rng.integers(0, 40, size=3 * 25).astype(np.int64)
+    sizes = np.full(25, 3, dtype=np.int64)
+    tris, owner = triangulate(v, corners, sizes)
+    mixed, mixed_owner = triangulate(v, np.concatenate([corners, [0, 1, 2, 3]]), np.append(sizes, 4))
+    np.testing.assert_array_equal(tris, mixed[:25])
+    np.testing.assert_array_equal(owner, mixed_owner[:25])
+    tris[0, 0] = -1
+    assert corners[0] != -1
