@@ -103,3 +103,30 @@ def test_a_clustering_that_changes_the_topology_is_not_used(monkeypatch):
     coarse = standin.simplified_shape(shape, 800)
     assert standin.same_topology(coarse.prepared, shape.prepared)
     assert coarse.prepared.n_boundary_loops == 0
+
+
+@needs_simplifier
+def test_a_stand_in_that_changed_the_surface_is_made_again_on_a_finer_grid(monkeypatch):
+    """When the first grid's stand-in is not the same kind of surface (here: made to gain a
+    non-manifold edge), the finer grid is tried before the whole-mesh simplification, and a
+    good copy from it is kept. The topology is judged by the engine's cleaning, checked against
+    Euler's formula V - E + F = 2 for a closed genus-0 surface (common practice)."""
+    p, f = sphere_sample(8000, seed=5)
+    shape = Shape(place(p), f)
+    real = standin.simplify_mesh
+    asked = []
+
+    def first_grid_breaks(vertices, faces, n_vertices, **kw):
+        asked.append((kw.get("cluster", True), kw.get("cells_per_vertex")))
+        v, t = real(vertices, faces, n_vertices, **kw)
+        if kw.get("cells_per_vertex") == standin.CLUSTER_CELLS:    # a third triangle on one edge
+            t = np.vstack([t, [t[0, 0], t[0, 1], t[1:, :].max()]])
+        return v, t
+
+    monkeypatch.setattr(standin, "simplify_mesh", first_grid_breaks)
+    coarse = standin.simplified_shape(shape, 100)       # 8000 > 3 x 20 x 100: both grids cluster it
+    assert asked == [(True, standin.CLUSTER_CELLS), (True, standin.CLUSTER_RETRY_CELLS)]
+    edges = np.unique(np.sort(np.concatenate([coarse.faces[:, [0, 1]], coarse.faces[:, [1, 2]],
+                                              coarse.faces[:, [2, 0]]]), axis=1), axis=0)
+    assert coarse.n_vertices - len(edges) + len(coarse.faces) == 2
+    assert standin.same_topology(coarse.prepared, shape.prepared)

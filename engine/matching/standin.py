@@ -48,7 +48,7 @@ from .closest_point import SurfaceLocator, SurfacePoints, closest_points_on_tria
 from .coarsening import cluster_mesh, drop_fins
 
 __all__ = ["STANDIN_VERTICES", "STANDIN_ABOVE", "SimplifierMissing", "simplify_mesh", "simplified_shape",
-           "CLUSTER_CELLS", "CLUSTER_ABOVE", "same_topology", "needs_standin",
+           "CLUSTER_CELLS", "CLUSTER_RETRY_CELLS", "CLUSTER_ABOVE", "same_topology", "needs_standin",
            "StandIn", "make_standin", "standin_landmarks", "LIFT_NEIGHBOURS", "NearbyLocator", "LiftedMap",
            "lift_map"]
 
@@ -61,6 +61,10 @@ STANDIN_VERTICES = 12000
 CLUSTER_CELLS = 10
 """Grid cells per wanted vertex when a huge mesh is clustered before the quadric simplification:
 a cell is about a third of the simplified mesh's edge."""
+
+CLUSTER_RETRY_CELLS = 20
+"""The finer grid tried when the first grid's stand-in changed the surface's kind (pieces,
+holes, handles, non-manifold edges), before the slower whole-mesh simplification."""
 
 CLUSTER_ABOVE = 3
 """A mesh is clustered first when it has more than this many vertices per grid cell."""
@@ -79,7 +83,8 @@ class SimplifierMissing(RuntimeError):
 
 
 def simplify_mesh(vertices: FloatArray, faces: IntArray, n_vertices: int, *,
-                  cluster: bool = True, boundary: bool = True) -> tuple[FloatArray, IntArray]:
+                  cluster: bool = True, boundary: bool = True,
+                  cells_per_vertex: int = CLUSTER_CELLS) -> tuple[FloatArray, IntArray]:
     """Quadric edge-collapse simplification to about ``n_vertices`` vertices.
 
     A mesh of more than :data:`CLUSTER_ABOVE` times :data:`CLUSTER_CELLS` times
@@ -98,6 +103,8 @@ def simplify_mesh(vertices: FloatArray, faces: IntArray, n_vertices: int, *,
         Cluster a huge mesh first.
     boundary : bool
         Whether the mesh may have a boundary (False: known to be closed).
+    cells_per_vertex : int
+        Grid cells per stand-in vertex (a finer grid clusters less and repairs more).
 
     Returns
     -------
@@ -111,7 +118,7 @@ def simplify_mesh(vertices: FloatArray, faces: IntArray, n_vertices: int, *,
             f"'fast-simplification' package (pip install fast-simplification); it is not installed") from exc
     if not 4 <= n_vertices < len(vertices):
         raise ValueError(f"cannot simplify {len(vertices)} vertices to {n_vertices}")
-    cells = CLUSTER_CELLS * n_vertices
+    cells = cells_per_vertex * n_vertices
     if cluster and len(vertices) > CLUSTER_ABOVE * cells:
         some = faces[::max(1, len(faces) // CLUSTER_AREA_SAMPLE)]     # the area, near enough for a grid
         p0, p1, p2 = (vertices[some[:, i]] for i in range(3))
@@ -161,14 +168,23 @@ def simplified_shape(shape: Shape, n_vertices: int) -> Shape:
     shape and size and kept while the shape lives (matching and detail share it)."""
     kept = _SIMPLIFIED.setdefault(shape, {})
     if n_vertices not in kept:
-        p = shape.prepared
-        clean = not (p.non_manifold_edges or p.non_manifold_vertices)
-        coarse = Shape(*simplify_mesh(shape.vertices, shape.faces, n_vertices, cluster=clean,
-                                      boundary=p.n_boundary_loops > 0), cache=shape.cache)
-        if clean and not same_topology(coarse.prepared, p):    # the clustering's repair fell short
-            coarse = Shape(*simplify_mesh(shape.vertices, shape.faces, n_vertices, cluster=False), cache=shape.cache)
-        kept[n_vertices] = coarse
+        kept[n_vertices] = _simplified_checked(shape, n_vertices)
     return kept[n_vertices]
+
+
+def _simplified_checked(shape: Shape, n_vertices: int) -> Shape:
+    """The stand-in through the grid clustering, on a finer grid when the first one's copy
+    changed the surface's kind, and by the whole-mesh simplification when that did too (or
+    when the mesh is not manifold to begin with)."""
+    p = shape.prepared
+    if not (p.non_manifold_edges or p.non_manifold_vertices):
+        for cells in (c for c in (CLUSTER_CELLS, CLUSTER_RETRY_CELLS)
+                      if shape.n_vertices > CLUSTER_ABOVE * c * n_vertices):   # grids that cluster it
+            coarse = Shape(*simplify_mesh(shape.vertices, shape.faces, n_vertices, cells_per_vertex=cells,
+                                          boundary=p.n_boundary_loops > 0), cache=shape.cache)
+            if same_topology(coarse.prepared, p):
+                return coarse
+    return Shape(*simplify_mesh(shape.vertices, shape.faces, n_vertices, cluster=False), cache=shape.cache)
 
 
 def same_topology(a: PreparedMesh, b: PreparedMesh) -> bool:
