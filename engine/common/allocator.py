@@ -5,8 +5,8 @@ of megabytes. With glibc's default settings each of them is a fresh ``mmap``
 returned to the system when freed, and the next one faults its pages in
 again: several seconds of system time per job (docs/measurements.md,
 "Sculpt-scale meshes"). :func:`keep_freed_memory` asks glibc's allocator to
-serve those arrays from its heap and keep what is freed there, at the cost of
-a somewhat higher peak. It is called by the processes that run one job and
+serve every block from its heap (no block gets a mapping of its own) and keep
+what is freed there for the next one, at the cost of a somewhat higher peak. It is called by the processes that run one job and
 end (the command line) or wait between jobs (the add-on's worker, which gives
 the kept memory back after each job with :func:`release_freed_memory`), never
 inside Blender's own process. Elsewhere (another C library, another system)
@@ -20,19 +20,17 @@ import ctypes.util
 import sys
 from typing import Any
 
-__all__ = ["keep_freed_memory", "release_freed_memory", "TRIM_THRESHOLD", "TOP_PAD", "MMAP_THRESHOLD"]
+__all__ = ["keep_freed_memory", "release_freed_memory", "TRIM_THRESHOLD", "TOP_PAD"]
 
 # mallopt parameters (glibc's malloc.h)
 _M_TRIM_THRESHOLD = -1
 _M_TOP_PAD = -2
-_M_MMAP_THRESHOLD = -3
+_M_MMAP_MAX = -4
 
 TRIM_THRESHOLD = 1 << 30
 """Free memory at the top of the heap kept before any is returned to the system."""
 TOP_PAD = 256 << 20
 """Extra memory asked for each time the heap grows."""
-MMAP_THRESHOLD = 32 << 20
-"""Blocks at least this large still get their own mapping (glibc's largest allowed value)."""
 
 
 def _glibc_function(name: str) -> Any:
@@ -56,7 +54,7 @@ def keep_freed_memory() -> bool:
     mallopt.argtypes = [ctypes.c_int, ctypes.c_int]
     mallopt.restype = ctypes.c_int
     return all(mallopt(param, value) == 1 for param, value in
-               ((_M_MMAP_THRESHOLD, MMAP_THRESHOLD), (_M_TRIM_THRESHOLD, TRIM_THRESHOLD), (_M_TOP_PAD, TOP_PAD)))
+               ((_M_MMAP_MAX, 0), (_M_TRIM_THRESHOLD, TRIM_THRESHOLD), (_M_TOP_PAD, TOP_PAD)))
 
 
 def release_freed_memory() -> bool:
