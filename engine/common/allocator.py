@@ -6,11 +6,11 @@ returned to the system when freed, and the next one faults its pages in
 again: several seconds of system time per job (docs/measurements.md,
 "Sculpt-scale meshes"). :func:`keep_freed_memory` asks glibc's allocator to
 serve every block from its heap (no block gets a mapping of its own) and keep
-what is freed there for the next one, at the cost of a somewhat higher peak. It is called by the processes that run one job and
-end (the command line) or wait between jobs (the add-on's worker, which gives
-the kept memory back after each job with :func:`release_freed_memory`), never
-inside Blender's own process. Elsewhere (another C library, another system)
-both do nothing.
+what is freed there for the next one, at the cost of a somewhat higher peak.
+It is called by the processes that run one job and end (the command line) or
+wait between jobs (the add-on's worker, which gives the kept memory back
+after each job with :func:`release_freed_memory`), never inside Blender's own
+process. Elsewhere (another C library, another system) both do nothing.
 """
 
 from __future__ import annotations

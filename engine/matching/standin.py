@@ -48,7 +48,8 @@ from .closest_point import SurfaceLocator, SurfacePoints, closest_points_on_tria
 from .coarsening import cluster_mesh, drop_fins
 
 __all__ = ["STANDIN_VERTICES", "STANDIN_ABOVE", "SimplifierMissing", "simplify_mesh", "simplified_shape",
-           "CLUSTER_CELLS", "CLUSTER_RETRY_CELLS", "CLUSTER_ABOVE", "same_topology", "needs_standin",
+           "CLUSTER_CELLS", "CLUSTER_RETRY_CELLS", "CLUSTER_ABOVE", "grid_clusters",
+           "same_topology", "needs_standin",
            "StandIn", "make_standin", "standin_landmarks", "LIFT_NEIGHBOURS", "NearbyLocator", "LiftedMap",
            "lift_map"]
 
@@ -119,7 +120,7 @@ def simplify_mesh(vertices: FloatArray, faces: IntArray, n_vertices: int, *,
     if not 4 <= n_vertices < len(vertices):
         raise ValueError(f"cannot simplify {len(vertices)} vertices to {n_vertices}")
     cells = cells_per_vertex * n_vertices
-    if cluster and len(vertices) > CLUSTER_ABOVE * cells:
+    if cluster and grid_clusters(len(vertices), n_vertices, cells_per_vertex):
         some = faces[::max(1, len(faces) // CLUSTER_AREA_SAMPLE)]     # the area, near enough for a grid
         p0, p1, p2 = (vertices[some[:, i]] for i in range(3))
         area = 0.5 * float(np.linalg.norm(np.cross(p1 - p0, p2 - p0), axis=1).mean()) * len(faces)
@@ -172,14 +173,20 @@ def simplified_shape(shape: Shape, n_vertices: int) -> Shape:
     return kept[n_vertices]
 
 
+def grid_clusters(n_mesh: int, n_vertices: int, cells_per_vertex: int) -> bool:
+    """Whether :func:`simplify_mesh` clusters a mesh of ``n_mesh`` vertices on a grid of
+    ``cells_per_vertex`` cells per wanted vertex before its quadric simplification."""
+    return n_mesh > CLUSTER_ABOVE * cells_per_vertex * n_vertices
+
+
 def _simplified_checked(shape: Shape, n_vertices: int) -> Shape:
     """The stand-in through the grid clustering, on a finer grid when the first one's copy
     changed the surface's kind, and by the whole-mesh simplification when that did too (or
     when the mesh is not manifold to begin with)."""
     p = shape.prepared
     if not (p.non_manifold_edges or p.non_manifold_vertices):
-        for cells in (c for c in (CLUSTER_CELLS, CLUSTER_RETRY_CELLS)
-                      if shape.n_vertices > CLUSTER_ABOVE * c * n_vertices):   # grids that cluster it
+        grids = [c for c in (CLUSTER_CELLS, CLUSTER_RETRY_CELLS) if grid_clusters(shape.n_vertices, n_vertices, c)]
+        for cells in grids:
             coarse = Shape(*simplify_mesh(shape.vertices, shape.faces, n_vertices, cells_per_vertex=cells,
                                           boundary=p.n_boundary_loops > 0), cache=shape.cache)
             if same_topology(coarse.prepared, p):
